@@ -1,0 +1,449 @@
+"""Typed scenario schemas, their Hydra registration and validation.
+
+Every configuration group of ``conf/`` has one dataclass here. The command-line entry points
+turn Hydra's DictConfig into a :class:`Scenario` with :func:`to_scenario`, which also validates
+every value (:func:`validate`) before any work starts; the stages only ever see these typed
+objects. Units are in the field names or docstrings; angles in arcsec, wavelengths in nm,
+times in s, areas in m^2.
+"""
+
+from __future__ import annotations
+
+import hashlib
+from dataclasses import dataclass, field
+from typing import Any, Optional
+
+from omegaconf import MISSING, DictConfig, OmegaConf
+
+from .errors import ConfigError, check_range, require
+
+__all__ = [
+    "BandConfig",
+    "PupilConfig",
+    "PSFConfig",
+    "TelescopeConfig",
+    "PopulationConfig",
+    "LensComponentConfig",
+    "LensConfig",
+    "DetectorConfig",
+    "SurveyConfig",
+    "DetectionConfig",
+    "ScoreConfig",
+    "Scenario",
+    "register_configs",
+    "to_scenario",
+    "validate",
+    "config_hash",
+    "to_yaml",
+]
+
+
+# --------------------------------------------------------------------------------------------
+# telescope
+# --------------------------------------------------------------------------------------------
+@dataclass
+class BandConfig:
+    """One band: a top-hat throughput with soft edges (see :func:`simfield.bands.make_band`)."""
+
+    name: str = MISSING
+    center_nm: float = MISSING  #: centre wavelength (nm)
+    width_nm: float = MISSING  #: full width at half maximum (nm)
+    throughput: float = 0.4  #: total system throughput on the flat top (0..1)
+    sky_mjy_sr: float = 0.2  #: zodiacal sky surface brightness in the band (MJy/sr)
+
+
+@dataclass
+class PupilConfig:
+    """Entrance-pupil geometry (m). ``kind``: ``segmented`` (hexagonal tiles) or ``circular``."""
+
+    kind: str = "segmented"
+    segment_rings: int = 3  #: rings of hexagons around the centre position
+    segment_flat_m: float = 0.85  #: flat-to-flat size of one segment (m)
+    gap_m: float = 0.01  #: gap between neighbouring segments (m)
+    central_hole: bool = True  #: leave the central segment position open
+    obstruction_diameter_m: float = 0.0  #: central obstruction size (m), 0 for none
+    obstruction_shape: str = "circle"  #: circle | hexagon
+    strut_count: int = 0
+    strut_width_m: float = 0.05
+    strut_angles_deg: list[float] = field(default_factory=list)  #: empty: equally spaced
+    strut_offset_m: float = 0.0  #: lateral offset of each strut from the centre line (m)
+    segment_wfe_rms_nm: float = 0.0  #: per-segment piston/tip/tilt rms (nm)
+    zernike_rms_nm: list[float] = field(default_factory=list)  #: global Zernike rms, Noll 4...
+    grid_size: int = 512  #: samples across the pupil raster
+
+
+@dataclass
+class PSFConfig:
+    """How PSFs are computed and used (see :mod:`simfield.optics.psf`)."""
+
+    oversample: int = 2  #: PSF samples per scene pixel
+    core_radius_arcsec: float = 1.5  #: half-size of the PSF used for every source (arcsec)
+    spike_radius_arcsec: float = 8.0  #: half-size of the large PSF for bright sources (arcsec)
+    bright_mag: float = 21.0  #: sources brighter than this (AB) get the large PSF
+    n_wavelengths: int = 9  #: monochromatic PSFs per band
+    reference_beta: float = -2.0  #: reference spectrum f_lambda ~ lambda^beta for band weighting
+    jitter_mas: float = 5.0  #: pointing jitter rms per axis (milliarcsec)
+    cache_dir: str = "outputs/.psf_cache"
+
+
+@dataclass
+class TelescopeConfig:
+    """A telescope: aperture, pupil, detector pixel scale and bands."""
+
+    name: str = MISSING
+    diameter_m: float = MISSING  #: circumscribed aperture diameter (m)
+    collecting_area_m2: float = MISSING  #: clear collecting area (m^2)
+    pixel_scale_arcsec: float = 0.04  #: detector pixel (arcsec)
+    pixel_size_um: float = 18.0  #: physical detector pixel (micron)
+    bands: list[BandConfig] = field(default_factory=list)
+    pupil: PupilConfig = field(default_factory=PupilConfig)
+    psf: PSFConfig = field(default_factory=PSFConfig)
+
+
+# --------------------------------------------------------------------------------------------
+# population
+# --------------------------------------------------------------------------------------------
+@dataclass
+class PopulationConfig:
+    """The galaxy and star population of the light cone."""
+
+    mode: str = "luminosity_function"  #: luminosity_function | uniform (injection)
+    z_min: float = 0.2
+    z_max: float = 15.0
+    abs_mag_faint: float = -13.0  #: faintest rest-UV absolute magnitude drawn (AB)
+    mag_limit: float = 31.5  #: faintest apparent magnitude kept, in ``selection_band`` (AB)
+    selection_band: str = ""  #: band for ``mag_limit``; empty: the reddest band
+    uniform_mag_min: float = 24.0  #: uniform mode: apparent magnitude range (AB)
+    uniform_mag_max: float = 31.0
+    uniform_density_arcmin2: float = 50.0  #: uniform mode: sources per arcmin^2
+    star_density_arcmin2: float = 3.0  #: foreground stars per arcmin^2 brighter than star_mag_max
+    star_mag_min: float = 16.0
+    star_mag_max: float = 30.0
+    clumpy: bool = True  #: star-forming knots in blue, large galaxies
+    max_sources: int = 200000
+
+
+# --------------------------------------------------------------------------------------------
+# lens
+# --------------------------------------------------------------------------------------------
+@dataclass
+class LensComponentConfig:
+    """One mass component; positions are offsets from the field centre (arcsec)."""
+
+    kind: str = MISSING  #: nfw | sis | sie | point | shear
+    x_arcsec: float = 0.0
+    y_arcsec: float = 0.0
+    mass_msun: float = 0.0  #: nfw: M200c (Msun); point: mass (Msun)
+    concentration: float = 4.0  #: nfw
+    sigma_kms: float = 0.0  #: sis / sie velocity dispersion (km/s)
+    axis_ratio: float = 1.0  #: sie / nfw (elliptical potential)
+    position_angle_deg: float = 0.0
+    gamma1: float = 0.0  #: external shear
+    gamma2: float = 0.0
+
+
+@dataclass
+class LensConfig:
+    """Foreground lens. ``kind``: ``none`` or ``cluster``."""
+
+    kind: str = "none"
+    redshift: float = 0.4
+    components: list[LensComponentConfig] = field(default_factory=list)
+    n_members: int = 0  #: cluster member galaxies (isothermal lenses and sources)
+    member_mag_bright: float = 19.0
+    member_mag_faint: float = 25.0
+    icl_fraction: float = 0.0  #: diffuse intracluster light, fraction of member light
+    reference_redshift: float = 9.0  #: critical curves / caustics are drawn for this z_s
+
+
+# --------------------------------------------------------------------------------------------
+# detector and survey
+# --------------------------------------------------------------------------------------------
+@dataclass
+class DetectorConfig:
+    """Infrared array and its readout."""
+
+    read_noise_e: float = 12.0  #: correlated double sampling read noise (e-)
+    dark_e_s: float = 0.005  #: dark current (e-/s)
+    gain_e_adu: float = 2.0
+    full_well_e: float = 80000.0
+    n_groups: int = 8
+    n_frames: int = 4  #: frames averaged per group
+    ipc_alpha: float = 0.01
+    flat_rms: float = 0.01
+    hot_pixel_fraction: float = 1e-4
+    dead_pixel_fraction: float = 1e-4
+    cosmic_ray_rate_cm2_s: float = 5.0
+    poisson: bool = True
+    read_noise: bool = True
+    ipc: bool = True
+    flat: bool = True
+    bad_pixels: bool = True
+    cosmic_rays: bool = True
+    saturation: bool = True
+
+
+@dataclass
+class SurveyConfig:
+    """The observed field, its exposures and mosaic grid."""
+
+    name: str = MISSING
+    ra_deg: float = 150.0
+    dec_deg: float = 2.0
+    width_arcsec: float = 100.0
+    height_arcsec: float = 100.0
+    mosaic_pixel_arcsec: float = 0.03
+    scene_oversample: int = 2  #: scene pixel = detector pixel / scene_oversample
+    exposure_time_s: float = 1000.0  #: per exposure (s)
+    n_exposures: int = 4
+    dither_step_arcsec: float = 0.5
+    roll_deg: float = 0.0
+    drizzle_kernel: str = "square"
+    pixfrac: float = 0.8
+    write_exposures: bool = False
+
+
+# --------------------------------------------------------------------------------------------
+# detection and score
+# --------------------------------------------------------------------------------------------
+@dataclass
+class DetectionConfig:
+    """Baseline detector run on each mosaic."""
+
+    enabled: bool = True
+    bands: list[str] = field(default_factory=list)  #: empty: every band
+    threshold_sigma: float = 1.5
+    npixels: int = 9
+    kernel_fwhm_arcsec: float = 0.0  #: matched filter; 0: the band's PSF FWHM
+    deblend: bool = True
+    nlevels: int = 32
+    contrast: float = 0.005
+    aperture_radius_arcsec: float = 0.2
+
+
+@dataclass
+class ScoreConfig:
+    """Scoring of a detection catalogue against the truth."""
+
+    enabled: bool = True
+    match_radius_arcsec: float = 0.15
+    mag_min: float = 22.0
+    mag_max: float = 32.0
+    mag_step: float = 0.25
+    interval: float = 0.683  #: central credible level of per-bin intervals
+    reference_mag: float = 28.0  #: purity is quoted at this measured magnitude
+    report: bool = True
+
+
+# --------------------------------------------------------------------------------------------
+@dataclass
+class Scenario:
+    """One complete scenario: what simfield needs to make a field and score it."""
+
+    seed: int = 0
+    telescope: TelescopeConfig = MISSING
+    population: PopulationConfig = MISSING
+    lens: LensConfig = MISSING
+    detector: DetectorConfig = MISSING
+    survey: SurveyConfig = MISSING
+    detection: DetectionConfig = field(default_factory=DetectionConfig)
+    score: ScoreConfig = field(default_factory=ScoreConfig)
+
+    @property
+    def band_names(self) -> list[str]:
+        return [b.name for b in self.telescope.bands]
+
+
+def register_configs() -> None:
+    """Register the schemas with Hydra's ConfigStore (called by the command-line entry points)."""
+    from hydra.core.config_store import ConfigStore
+
+    cs = ConfigStore.instance()
+    cs.store(name="scenario_schema", node=Scenario)
+
+
+# --------------------------------------------------------------------------------------------
+# validation
+# --------------------------------------------------------------------------------------------
+def _validate_telescope(t: TelescopeConfig) -> None:
+    check_range("telescope.diameter_m", t.diameter_m, 0, None, lo_open=True)
+    check_range("telescope.collecting_area_m2", t.collecting_area_m2, 0,
+                3.1416 / 4 * t.diameter_m**2 * 1.0001, lo_open=True)
+    check_range("telescope.pixel_scale_arcsec", t.pixel_scale_arcsec, 0, 10, lo_open=True)
+    require(len(t.bands) > 0, "telescope.bands", t.bands, "must list at least one band")
+    names = [b.name for b in t.bands]
+    require(len(set(names)) == len(names), "telescope.bands", names, "band names must be unique")
+    for i, b in enumerate(t.bands):
+        k = f"telescope.bands.{i}"
+        require(bool(b.name) and b.name.isidentifier(), f"{k}.name", b.name,
+                "must be a non-empty identifier (letters, digits, _)")
+        check_range(f"{k}.center_nm", b.center_nm, 100, 30000)
+        check_range(f"{k}.width_nm", b.width_nm, 0, b.center_nm, lo_open=True, hi_open=True)
+        check_range(f"{k}.throughput", b.throughput, 0, 1, lo_open=True)
+        check_range(f"{k}.sky_mjy_sr", b.sky_mjy_sr, 0, None)
+    p = t.pupil
+    require(p.kind in ("segmented", "circular"), "telescope.pupil.kind", p.kind,
+            "must be one of: segmented, circular")
+    require(p.obstruction_shape in ("circle", "hexagon"), "telescope.pupil.obstruction_shape",
+            p.obstruction_shape, "must be one of: circle, hexagon")
+    check_range("telescope.pupil.segment_rings", p.segment_rings, 0, 20)
+    check_range("telescope.pupil.segment_flat_m", p.segment_flat_m, 0, None, lo_open=True)
+    check_range("telescope.pupil.gap_m", p.gap_m, 0, p.segment_flat_m, hi_open=True)
+    check_range("telescope.pupil.obstruction_diameter_m", p.obstruction_diameter_m, 0,
+                t.diameter_m, hi_open=True)
+    check_range("telescope.pupil.strut_count", p.strut_count, 0, 12)
+    check_range("telescope.pupil.strut_width_m", p.strut_width_m, 0, t.diameter_m / 4)
+    require(not p.strut_angles_deg or len(p.strut_angles_deg) == p.strut_count,
+            "telescope.pupil.strut_angles_deg", list(p.strut_angles_deg),
+            f"must be empty or list telescope.pupil.strut_count={p.strut_count} angles")
+    check_range("telescope.pupil.segment_wfe_rms_nm", p.segment_wfe_rms_nm, 0, 1000)
+    for j, z in enumerate(p.zernike_rms_nm):
+        check_range(f"telescope.pupil.zernike_rms_nm.{j}", z, 0, 1000)
+    check_range("telescope.pupil.grid_size", p.grid_size, 64, 4096)
+    s = t.psf
+    check_range("telescope.psf.oversample", s.oversample, 1, 8)
+    check_range("telescope.psf.core_radius_arcsec", s.core_radius_arcsec, 0, 60, lo_open=True)
+    check_range("telescope.psf.spike_radius_arcsec", s.spike_radius_arcsec,
+                s.core_radius_arcsec, 120)
+    check_range("telescope.psf.n_wavelengths", s.n_wavelengths, 1, 100)
+    check_range("telescope.psf.jitter_mas", s.jitter_mas, 0, 1000)
+
+
+def _validate_population(p: PopulationConfig, bands: list[str]) -> None:
+    require(p.mode in ("luminosity_function", "uniform"), "population.mode", p.mode,
+            "must be one of: luminosity_function, uniform")
+    check_range("population.z_min", p.z_min, 0, 30, lo_open=True)
+    check_range("population.z_max", p.z_max, 0, 30, lo_open=True)
+    require(p.z_max > p.z_min, "population.z_max", p.z_max,
+            f"must be greater than population.z_min={p.z_min}")
+    check_range("population.abs_mag_faint", p.abs_mag_faint, -30, -5)
+    check_range("population.mag_limit", p.mag_limit, 10, 40)
+    require(p.selection_band == "" or p.selection_band in bands, "population.selection_band",
+            p.selection_band, f"must be empty or one of: {', '.join(bands)}")
+    check_range("population.uniform_mag_min", p.uniform_mag_min, 10, 40)
+    check_range("population.uniform_mag_max", p.uniform_mag_max, p.uniform_mag_min, 40,
+                lo_open=True)
+    check_range("population.uniform_density_arcmin2", p.uniform_density_arcmin2, 0, 1e5)
+    check_range("population.star_density_arcmin2", p.star_density_arcmin2, 0, 1e4)
+    check_range("population.star_mag_min", p.star_mag_min, 5, 40)
+    check_range("population.star_mag_max", p.star_mag_max, p.star_mag_min, 40)
+    check_range("population.max_sources", p.max_sources, 1, 1e8)
+
+
+def _validate_lens(lens: LensConfig, z_max: float) -> None:
+    require(lens.kind in ("none", "cluster"), "lens.kind", lens.kind,
+            "must be one of: none, cluster")
+    if lens.kind == "none":
+        return
+    check_range("lens.redshift", lens.redshift, 0, z_max, lo_open=True, hi_open=True)
+    check_range("lens.reference_redshift", lens.reference_redshift, lens.redshift, 30,
+                lo_open=True)
+    check_range("lens.n_members", lens.n_members, 0, 10000)
+    check_range("lens.icl_fraction", lens.icl_fraction, 0, 1)
+    for i, c in enumerate(lens.components):
+        k = f"lens.components.{i}"
+        require(c.kind in ("nfw", "sis", "sie", "point", "shear"), f"{k}.kind", c.kind,
+                "must be one of: nfw, sis, sie, point, shear")
+        check_range(f"{k}.mass_msun", c.mass_msun, 0, 1e17)
+        check_range(f"{k}.concentration", c.concentration, 0, 100, lo_open=True)
+        check_range(f"{k}.sigma_kms", c.sigma_kms, 0, 3000)
+        check_range(f"{k}.axis_ratio", c.axis_ratio, 0, 1, lo_open=True)
+
+
+def _validate_detector(d: DetectorConfig) -> None:
+    check_range("detector.read_noise_e", d.read_noise_e, 0, 1000)
+    check_range("detector.dark_e_s", d.dark_e_s, 0, 100)
+    check_range("detector.gain_e_adu", d.gain_e_adu, 0, 100, lo_open=True)
+    check_range("detector.full_well_e", d.full_well_e, 0, 1e7, lo_open=True)
+    check_range("detector.n_groups", d.n_groups, 2, 1000)
+    check_range("detector.n_frames", d.n_frames, 1, 100)
+    check_range("detector.ipc_alpha", d.ipc_alpha, 0, 0.05)
+    check_range("detector.flat_rms", d.flat_rms, 0, 0.5)
+    check_range("detector.hot_pixel_fraction", d.hot_pixel_fraction, 0, 0.1)
+    check_range("detector.dead_pixel_fraction", d.dead_pixel_fraction, 0, 0.1)
+    check_range("detector.cosmic_ray_rate_cm2_s", d.cosmic_ray_rate_cm2_s, 0, 1000)
+
+
+def _validate_survey(s: SurveyConfig) -> None:
+    check_range("survey.ra_deg", s.ra_deg, 0, 360, hi_open=True)
+    check_range("survey.dec_deg", s.dec_deg, -89, 89)
+    check_range("survey.width_arcsec", s.width_arcsec, 1, 3600)
+    check_range("survey.height_arcsec", s.height_arcsec, 1, 3600)
+    check_range("survey.mosaic_pixel_arcsec", s.mosaic_pixel_arcsec, 0.001, 10)
+    check_range("survey.scene_oversample", s.scene_oversample, 1, 8)
+    check_range("survey.exposure_time_s", s.exposure_time_s, 0, 1e6, lo_open=True)
+    check_range("survey.n_exposures", s.n_exposures, 1, 1000)
+    check_range("survey.dither_step_arcsec", s.dither_step_arcsec, 0, 60)
+    check_range("survey.roll_deg", s.roll_deg, -360, 360)
+    require(s.drizzle_kernel in ("square", "point", "turbo", "gaussian", "lanczos3"),
+            "survey.drizzle_kernel", s.drizzle_kernel,
+            "must be one of: square, point, turbo, gaussian, lanczos3")
+    check_range("survey.pixfrac", s.pixfrac, 0, 1, lo_open=True)
+
+
+def _validate_detection(d: DetectionConfig, bands: list[str]) -> None:
+    for i, b in enumerate(d.bands):
+        require(b in bands, f"detection.bands.{i}", b, f"must be one of: {', '.join(bands)}")
+    check_range("detection.threshold_sigma", d.threshold_sigma, 0, 1000, lo_open=True)
+    check_range("detection.npixels", d.npixels, 1, 10000)
+    check_range("detection.kernel_fwhm_arcsec", d.kernel_fwhm_arcsec, 0, 10)
+    check_range("detection.nlevels", d.nlevels, 1, 1000)
+    check_range("detection.contrast", d.contrast, 0, 1)
+    check_range("detection.aperture_radius_arcsec", d.aperture_radius_arcsec, 0, 60,
+                lo_open=True)
+
+
+def _validate_score(s: ScoreConfig) -> None:
+    check_range("score.match_radius_arcsec", s.match_radius_arcsec, 0, 10, lo_open=True)
+    check_range("score.mag_max", s.mag_max, s.mag_min, 50, lo_open=True)
+    check_range("score.mag_step", s.mag_step, 0, s.mag_max - s.mag_min, lo_open=True)
+    check_range("score.interval", s.interval, 0, 1, lo_open=True, hi_open=True)
+
+
+def validate(sc: Scenario) -> Scenario:
+    """Check every value of ``sc``; raise :class:`ConfigError` on the first bad one."""
+    require(isinstance(sc.seed, int) and sc.seed >= 0, "seed", sc.seed,
+            "must be a non-negative integer")
+    _validate_telescope(sc.telescope)
+    bands = sc.band_names
+    _validate_population(sc.population, bands)
+    _validate_lens(sc.lens, sc.population.z_max)
+    _validate_detector(sc.detector)
+    _validate_survey(sc.survey)
+    _validate_detection(sc.detection, bands)
+    _validate_score(sc.score)
+    return sc
+
+
+def to_scenario(cfg: DictConfig | dict[str, Any]) -> Scenario:
+    """Turn a (Hydra) configuration into a validated :class:`Scenario`.
+
+    Keys Hydra adds (``hydra``) are ignored. Raises :class:`ConfigError` for bad values and for
+    keys the schema does not know.
+    """
+    if isinstance(cfg, DictConfig):
+        data = OmegaConf.to_container(cfg, resolve=True)
+    else:
+        data = dict(cfg)
+    data.pop("hydra", None)
+    schema = OmegaConf.structured(Scenario)
+    try:
+        merged = OmegaConf.merge(schema, data)
+        sc = OmegaConf.to_object(merged)
+    except Exception as exc:  # omegaconf's ValidationError / ConfigKeyError / MissingMandatory
+        key = getattr(exc, "full_key", None) or "?"
+        msg = str(exc).splitlines()[0]
+        raise ConfigError(key, getattr(exc, "value", None) if hasattr(exc, "value") else "?",
+                          f"is not accepted: {msg}") from None
+    return validate(sc)
+
+
+def config_hash(sc: Scenario) -> str:
+    """Short SHA-256 of the resolved scenario (16 hex digits), recorded in every output."""
+    text = OmegaConf.to_yaml(OmegaConf.structured(sc), sort_keys=True)
+    return hashlib.sha256(text.encode()).hexdigest()[:16]
+
+
+def to_yaml(sc: Scenario) -> str:
+    """The resolved scenario as YAML text."""
+    return OmegaConf.to_yaml(OmegaConf.structured(sc))

@@ -1,0 +1,65 @@
+"""Exceptions of simfield.
+
+Each class also subclasses the matching builtin, keeps the offending value and puts the key,
+the value and what is allowed into one message, so a command-line user reads one clear line.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+__all__ = ["SimfieldError", "ConfigError", "CatalogError", "require", "check_range"]
+
+
+class SimfieldError(Exception):
+    """Base class of every error raised on purpose by simfield."""
+
+
+class ConfigError(SimfieldError, ValueError):
+    """A configuration value is invalid.
+
+    Parameters
+    ----------
+    key : str
+        Dotted configuration key, e.g. ``survey.exposure_time``.
+    value : object
+        The offending value.
+    allowed : str
+        Human description of what is allowed, e.g. ``"must be > 0"``.
+    """
+
+    def __init__(self, key: str, value: Any, allowed: str):
+        self.key = key
+        self.value = value
+        self.allowed = allowed
+        super().__init__(f"invalid configuration: {key}={value!r} {allowed}")
+
+
+class CatalogError(SimfieldError, ValueError):
+    """A user catalogue (detections, truth) cannot be used as given."""
+
+
+def require(condition: bool, key: str, value: Any, allowed: str) -> None:
+    """Raise :class:`ConfigError` for ``key``/``value`` unless ``condition`` holds."""
+    if not condition:
+        raise ConfigError(key, value, allowed)
+
+
+def check_range(key: str, value: float, lo: float | None = None, hi: float | None = None,
+                lo_open: bool = False, hi_open: bool = False) -> None:
+    """Check ``lo <= value <= hi`` (open ends with ``lo_open``/``hi_open``).
+
+    Raises :class:`ConfigError` naming ``key``, ``value`` and the allowed range. NaN is
+    always refused.
+    """
+    bad = value != value  # NaN
+    if lo is not None:
+        bad |= value <= lo if lo_open else value < lo
+    if hi is not None:
+        bad |= value >= hi if hi_open else value > hi
+    if bad:
+        left = "(" if lo_open else "["
+        right = ")" if hi_open else "]"
+        lo_s = "-inf" if lo is None else f"{lo:g}"
+        hi_s = "inf" if hi is None else f"{hi:g}"
+        raise ConfigError(key, value, f"must be in {left}{lo_s}, {hi_s}{right}")

@@ -1,0 +1,1 @@
+"""lensing stage of simfield."""

@@ -1,0 +1,1 @@
+"""optics stage of simfield."""

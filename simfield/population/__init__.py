@@ -1,0 +1,1 @@
+"""population stage of simfield."""
