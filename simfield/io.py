@@ -1,0 +1,149 @@
+"""Writing outputs: atomic files, provenance in every header, FITS and ECSV helpers.
+
+Every file is written to a temporary name in its destination folder and renamed into place
+(``os.replace`` is atomic on POSIX), so an interrupted run never leaves a half-written file
+under a final name. Every file records the software version, the seed and the hash of the
+resolved configuration; FITS primary headers also carry the whole resolved configuration as
+HISTORY cards and ECSV files carry it in their metadata.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import json
+import os
+import tempfile
+from pathlib import Path
+from typing import Any, Iterator
+
+import numpy as np
+from astropy.io import fits
+from astropy.table import Table
+
+from . import __version__
+
+__all__ = [
+    "Provenance",
+    "atomic_path",
+    "write_fits",
+    "write_table",
+    "write_json",
+    "write_text",
+    "COMPLETE_MARKER",
+]
+
+#: Written last into a run directory; its presence means every output is complete.
+COMPLETE_MARKER = "COMPLETE"
+
+
+class Provenance:
+    """What every output file records: version, seed, configuration hash and text."""
+
+    def __init__(self, seed: int, config_hash: str, config_yaml: str):
+        self.version = __version__
+        self.seed = int(seed)
+        self.config_hash = config_hash
+        self.config_yaml = config_yaml
+
+    def header_cards(self, full: bool = False) -> list[tuple[str, Any, str]]:
+        """FITS cards (key, value, comment); ``full`` adds the configuration as HISTORY."""
+        cards = [
+            ("SIMFVER", self.version, "simfield version"),
+            ("SIMFSEED", self.seed, "scenario seed"),
+            ("SIMFHASH", self.config_hash, "SHA-256 (16 hex) of the resolved configuration"),
+        ]
+        if full:
+            cards += [("HISTORY", "simfield config: " + line, "")
+                      for line in self.config_yaml.splitlines()]
+        return cards
+
+    def meta(self) -> dict[str, Any]:
+        """Metadata for ECSV/JSON outputs."""
+        return {"simfield_version": self.version, "seed": self.seed,
+                "config_hash": self.config_hash, "config": self.config_yaml}
+
+
+@contextlib.contextmanager
+def atomic_path(path: str | os.PathLike) -> Iterator[Path]:
+    """Yield a temporary path beside ``path``; rename it to ``path`` if the block succeeds."""
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=path.parent)
+    os.close(fd)
+    tmp = Path(tmp)
+    try:
+        yield tmp
+        os.replace(tmp, path)
+    finally:
+        if tmp.exists():
+            tmp.unlink()
+
+
+def _add_cards(header: fits.Header, cards) -> None:
+    for key, value, comment in cards:
+        if key == "HISTORY":
+            header.add_history(value)
+        else:
+            header[key] = (value, comment)
+
+
+def write_fits(path, hdus: list[fits.hdu.base.ExtensionHDU], prov: Provenance,
+               primary_cards: list[tuple[str, Any, str]] = ()) -> Path:
+    """Write ``hdus`` after an empty primary HDU carrying provenance; atomic.
+
+    Each extension gets the short provenance cards too.
+    """
+    primary = fits.PrimaryHDU()
+    _add_cards(primary.header, prov.header_cards(full=True))
+    _add_cards(primary.header, primary_cards)
+    for h in hdus:
+        _add_cards(h.header, prov.header_cards())
+    hl = fits.HDUList([primary, *hdus])
+    hl.verify("exception")
+    with atomic_path(path) as tmp:
+        hl.writeto(tmp, overwrite=True)
+    return Path(path)
+
+
+def write_table(path, table: Table, prov: Provenance, fmt: str = "ascii.ecsv") -> Path:
+    """Write an astropy table (ECSV by default) with provenance in its metadata; atomic."""
+    table = table.copy(copy_data=False)
+    table.meta.update(prov.meta())
+    with atomic_path(path) as tmp:
+        table.write(tmp, format=fmt, overwrite=True)
+    return Path(path)
+
+
+def _clean(obj):
+    """JSON-ready copy: numpy scalars and arrays to Python, NaN and inf to None."""
+    if isinstance(obj, dict):
+        return {str(k): _clean(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_clean(v) for v in obj]
+    if isinstance(obj, np.ndarray):
+        return _clean(obj.tolist())
+    if isinstance(obj, (np.integer, np.bool_)):
+        return obj.item()
+    if isinstance(obj, (float, np.floating)):
+        return float(obj) if np.isfinite(obj) else None
+    if isinstance(obj, Path):
+        return str(obj)
+    return obj
+
+
+def write_json(path, data: dict, prov: Provenance | None = None) -> Path:
+    """Write a JSON document (NaN written as null; a ``provenance`` entry when ``prov`` is
+    given); atomic."""
+    data = dict(data)
+    if prov is not None:
+        data["provenance"] = prov.meta()
+    with atomic_path(path) as tmp:
+        tmp.write_text(json.dumps(_clean(data), indent=2, allow_nan=False))
+    return Path(path)
+
+
+def write_text(path, text: str) -> Path:
+    """Write a text file atomically."""
+    with atomic_path(path) as tmp:
+        tmp.write_text(text)
+    return Path(path)
