@@ -219,6 +219,10 @@ class DetectionConfig:
     nlevels: int = 32
     contrast: float = 0.005
     aperture_radius_arcsec: float = 0.2
+    background_box_arcsec: float = 3.0  #: mesh size of the background map (arcsec)
+    background_filter: int = 3  #: median filter over background meshes (odd, meshes)
+    kron_factor: float = 2.5  #: Kron aperture = kron_factor x first-moment radius
+    kron_min_radius: float = 1.4  #: smallest Kron radius (in first-moment radii)
 
 
 @dataclass
@@ -233,6 +237,19 @@ class ScoreConfig:
     interval: float = 0.683  #: central credible level of per-bin intervals
     reference_mag: float = 28.0  #: purity is quoted at this measured magnitude
     report: bool = True
+    match_radius_fwhm: float = 0.0  #: > 0: match radius = this x PSF FWHM (overrides arcsec)
+    size_bins_arcsec: list[float] = field(
+        default_factory=lambda: [0.0, 0.05, 0.1, 0.2, 0.4, 0.8, 1.6])  #: r_half bin edges
+    z_bins: list[float] = field(
+        default_factory=lambda: [0.0, 1.0, 2.0, 3.0, 4.0, 5.0, 6.0, 7.0, 8.0, 10.0, 12.0, 15.0])
+    bright_star_mag: float = 22.0  #: stars brighter than this (AB, observed) can throw spikes
+    spike_ref_mag: float = 18.0  #: reference magnitude of the spike / halo radii (AB)
+    spike_length_arcsec: float = 6.0  #: spike length of a spike_ref_mag star (arcsec)
+    halo_radius_arcsec: float = 1.5  #: halo radius of a spike_ref_mag star (arcsec)
+    spike_angles_deg: list[float] = field(default_factory=list)  #: empty: measured on the PSF
+    spike_half_width_deg: float = 4.0  #: angular half-width of a spike (deg)
+    blend_radius_arcsec: float = 0.5  #: two truth images within this of a detection: blend
+    fit_model: str = "logistic"  #: logistic | erf: headline completeness-limit fit
 
 
 # --------------------------------------------------------------------------------------------
@@ -391,6 +408,13 @@ def _validate_detection(d: DetectionConfig, bands: list[str]) -> None:
     check_range("detection.contrast", d.contrast, 0, 1)
     check_range("detection.aperture_radius_arcsec", d.aperture_radius_arcsec, 0, 60,
                 lo_open=True)
+    check_range("detection.background_box_arcsec", d.background_box_arcsec, 0, 3600,
+                lo_open=True)
+    check_range("detection.background_filter", d.background_filter, 1, 99)
+    require(int(d.background_filter) % 2 == 1, "detection.background_filter",
+            d.background_filter, "must be an odd number of meshes")
+    check_range("detection.kron_factor", d.kron_factor, 0, 10, lo_open=True)
+    check_range("detection.kron_min_radius", d.kron_min_radius, 0, 10)
 
 
 def _validate_score(s: ScoreConfig) -> None:
@@ -398,6 +422,21 @@ def _validate_score(s: ScoreConfig) -> None:
     check_range("score.mag_max", s.mag_max, s.mag_min, 50, lo_open=True)
     check_range("score.mag_step", s.mag_step, 0, s.mag_max - s.mag_min, lo_open=True)
     check_range("score.interval", s.interval, 0, 1, lo_open=True, hi_open=True)
+    check_range("score.match_radius_fwhm", s.match_radius_fwhm, 0, 20)
+    for key, edges in (("score.size_bins_arcsec", s.size_bins_arcsec), ("score.z_bins", s.z_bins)):
+        require(len(edges) >= 2 and all(b > a for a, b in zip(edges, edges[1:]))
+                and edges[0] >= 0, key, list(edges),
+                "must list at least two increasing, non-negative bin edges")
+    check_range("score.bright_star_mag", s.bright_star_mag, 0, 40)
+    check_range("score.spike_ref_mag", s.spike_ref_mag, 0, 40)
+    check_range("score.spike_length_arcsec", s.spike_length_arcsec, 0, 600)
+    check_range("score.halo_radius_arcsec", s.halo_radius_arcsec, 0, 600)
+    for j, a in enumerate(s.spike_angles_deg):
+        check_range(f"score.spike_angles_deg.{j}", a, -360, 360)
+    check_range("score.spike_half_width_deg", s.spike_half_width_deg, 0, 90, lo_open=True)
+    check_range("score.blend_radius_arcsec", s.blend_radius_arcsec, 0, 60)
+    require(s.fit_model in ("logistic", "erf"), "score.fit_model", s.fit_model,
+            "must be one of: logistic, erf")
 
 
 def validate(sc: Scenario) -> Scenario:
