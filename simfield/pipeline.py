@@ -1,0 +1,467 @@
+"""Run one scenario: the only module that knows the order of the stages.
+
+``run_scenario(scenario, out_dir)`` goes from a validated :class:`~simfield.config.Scenario` to
+a run directory holding mosaics, truth images, PSFs, truth tables, detections and scores. Each
+stage gets typed inputs and its own named random stream (:func:`simfield.random.stream`), so
+the same scenario and seed give identical files and changing one stage's settings does not
+reshuffle the others' randomness. Outputs are written atomically; :data:`COMPLETE_MARKER` is
+written last.
+"""
+
+from __future__ import annotations
+
+import logging
+import time
+from contextlib import contextmanager
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+from astropy.io import fits
+from astropy.table import Table
+
+from . import __version__
+from .bands import Band, ab_to_njy, make_band, njy_to_ab
+from .config import Scenario, config_hash, to_yaml
+from .grid import Grid
+from .io import COMPLETE_MARKER, Provenance, write_fits, write_json, write_table, write_text
+from .random import stream
+from .scene import Stamp, accumulate, add_bright, convolve_tiled, dominant_source, draw_stamps
+
+__all__ = ["RunResult", "run_scenario", "make_bands", "SEGMENTATION_NSIGMA"]
+
+log = logging.getLogger("simfield")
+
+#: A mosaic pixel belongs to a truth source in the SEGM map where that source contributes the
+#: most light and at least this many times the sky-limited noise of one mosaic pixel.
+SEGMENTATION_NSIGMA = 1.0
+
+#: Sources are generated over the field plus this margin on each side (arcsec), so light from
+#: just outside the field, and lensed images of sources behind its edge, are present.
+FIELD_MARGIN_ARCSEC = 2.0
+
+
+@dataclass
+class RunResult:
+    """What a run produced: its directory, the files, headline numbers and stage timings (s)."""
+
+    out_dir: Path
+    files: list[Path] = field(default_factory=list)
+    summary: dict = field(default_factory=dict)
+    timings: dict[str, float] = field(default_factory=dict)
+
+
+class _Timer:
+    def __init__(self, timings: dict[str, float], progress: bool):
+        self.timings = timings
+        self.progress = progress
+
+    @contextmanager
+    def __call__(self, name: str):
+        t0 = time.perf_counter()
+        if self.progress:
+            log.info("%s ...", name)
+        yield
+        dt = time.perf_counter() - t0
+        self.timings[name] = self.timings.get(name, 0.0) + dt
+        if self.progress:
+            log.info("%s done in %.2f s", name, dt)
+
+
+def make_bands(sc: Scenario) -> list[Band]:
+    """The scenario's bands as :class:`~simfield.bands.Band` objects."""
+    return [make_band(b.name, b.center_nm, b.width_nm, b.throughput, b.sky_mjy_sr)
+            for b in sc.telescope.bands]
+
+
+def _stamp_half_size(profile, scale: float, cap: int = 256) -> int:
+    """Half-size (pixels) of the stamp for ``profile``: GalSim's good image size, capped."""
+    n = profile.getGoodImageSize(scale)
+    return int(np.clip(n // 2 + 1, 3, cap))
+
+
+def _bands_table(bands: list[Band], area: float) -> Table:
+    t = Table()
+    t["name"] = [b.name for b in bands]
+    t["pivot_nm"] = [b.pivot_nm for b in bands]
+    t["width_nm"] = [b.width_nm for b in bands]
+    t["zeropoint"] = [b.zeropoint(area) for b in bands]
+    t["sky_mjy_sr"] = [b.sky_mjy_sr for b in bands]
+    t["pivot_nm"].unit = "nm"
+    t["width_nm"].unit = "nm"
+    t["zeropoint"].unit = "mag"
+    t["sky_mjy_sr"].unit = "MJy/sr"
+    t.meta["description"] = ("Bands of the scenario. zeropoint: AB magnitude giving 1 e-/s "
+                             "(m = zeropoint - 2.5 log10(rate / (e-/s))).")
+    return t
+
+
+def run_scenario(sc: Scenario, out_dir: str | Path, progress: bool = False) -> RunResult:
+    """Make the mock field of ``sc`` in ``out_dir``; see the README for the files written.
+
+    Parameters
+    ----------
+    sc : Scenario
+        A validated scenario (:func:`simfield.config.to_scenario`).
+    out_dir : path
+        Run directory (created if needed).
+    progress : bool
+        Log stage progress.
+    """
+    # stage modules are imported here so that ``import simfield.pipeline`` stays light
+    from .detector import expose, make_fixed_pattern
+    from .optics.psf import cached_band_psf, effective_psf, write_psf_png
+    from .optics.pupil import make_pupil
+    from .population.lightcone import make_population
+    from .population.morphology import make_profile
+    from .survey import (drizzle_mosaic, exposure_grids, measured_depth, mosaic_grid,
+                         predicted_depth, sample_scene, scene_grid)
+
+    out = Path(out_dir)
+    out.mkdir(parents=True, exist_ok=True)
+    marker = out / COMPLETE_MARKER
+    if marker.exists():
+        marker.unlink()
+    res = RunResult(out_dir=out)
+    timer = _Timer(res.timings, progress)
+    prov = Provenance(sc.seed, config_hash(sc), to_yaml(sc))
+    tel, srv = sc.telescope, sc.survey
+    area = tel.collecting_area_m2
+    bands = make_bands(sc)
+    files = res.files
+
+    with timer("setup"):
+        sgrid: Grid = scene_grid(srv, tel)
+        mgrid: Grid = mosaic_grid(srv)
+        files.append(write_table(out / "bands.ecsv", _bands_table(bands, area), prov))
+        write_text(out / "scenario.yaml", to_yaml(sc))
+
+    # ---------------------------------------------------------------- population (+ lens)
+    with timer("population"):
+        hx = srv.width_arcsec / 2 + FIELD_MARGIN_ARCSEC
+        hy = srv.height_arcsec / 2 + FIELD_MARGIN_ARCSEC
+        sources = make_population(sc.population, bands, (-hx, hx), (-hy, hy),
+                                  stream(sc.seed, "population"))
+        lens = None
+        if sc.lens.kind != "none":
+            from .lensing import build_lens
+            from .population.members import make_members
+
+            members = make_members(sc.lens, bands, stream(sc.seed, "members"), (-hx, hx),
+                                   (-hy, hy))
+            sources = _stack_sources(sources, members)
+            lens = build_lens(sc.lens, members)
+        sources["id"] = np.arange(1, len(sources) + 1)
+
+    with timer("lensing"):
+        images, mag_total, n_images = _truth_images(sources, lens, sc, hx, hy)
+        sources["magnification"] = mag_total
+        sources["n_images"] = n_images
+
+    # ---------------------------------------------------------------- optics
+    with timer("optics"):
+        scale = sgrid.scale
+        cache = Path(tel.psf.cache_dir)
+        psf_core, psf_wide = {}, {}
+        for b in bands:
+            psf_core[b.name] = cached_band_psf(tel, b, scale, tel.psf.core_radius_arcsec,
+                                               sc.seed, cache)
+            psf_wide[b.name] = cached_band_psf(tel, b, scale, tel.psf.spike_radius_arcsec,
+                                               sc.seed, cache)
+        for b in bands:
+            files.append(_write_psf(out / f"psf_{b.name}.fits", psf_core[b.name],
+                                    psf_wide[b.name],
+                                    effective_psf(psf_core[b.name], tel.pixel_scale_arcsec),
+                                    b, prov))
+        pupil = make_pupil(tel, stream(sc.seed, "pupil"))
+        write_psf_png([psf_wide[b.name] for b in bands], pupil, out / "psf.png")
+
+    # ---------------------------------------------------------------- stamps (once)
+    with timer("stamps"):
+        stamps = _draw_all(sources, sgrid, sc, lens, make_profile)
+
+    # ---------------------------------------------------------------- bands
+    fixed = None
+    depths = {}
+    obs_mag = {}
+    for bi, b in enumerate(bands):
+        zp = b.zeropoint(area)
+        rate = ab_to_njy(np.asarray(sources[f"mag_{b.name}"], float)) * b.rate_per_njy(area)
+        rate = np.nan_to_num(rate, nan=0.0)
+        mobs = np.asarray(sources[f"mag_{b.name}"], float) - 2.5 * np.log10(
+            np.maximum(np.asarray(sources["magnification"], float), 1e-6))
+        bright = mobs < tel.psf.bright_mag
+        obs_mag[b.name] = mobs
+        with timer("scene"):
+            core = psf_core[b.name].image
+            scene = convolve_tiled(accumulate(stamps, rate, sgrid.shape, select=~bright), core)
+            add_bright(scene, stamps, rate, bright, psf_wide[b.name].image)
+        with timer("truth_image"):
+            truth_img = sample_scene(scene, sgrid, mgrid)
+            t_total = srv.exposure_time_s * srv.n_exposures
+            sky_mosaic = b.sky_rate(area, mgrid.scale)
+            sigma_pix = np.sqrt(sky_mosaic * t_total) / t_total  # e-/s per mosaic pixel
+            thr_scene = SEGMENTATION_NSIGMA * sigma_pix * (sgrid.scale / mgrid.scale) ** 2
+            small = _crop_center(core, 0.4 / sgrid.scale)
+            seg_scene = dominant_source(stamps, rate, np.asarray(sources["id"]), sgrid.shape,
+                                        small / small.sum(), thr_scene)
+            seg = _resample_ids(seg_scene, sgrid, mgrid)
+            files.append(_write_truth_image(out / f"truth_image_{b.name}.fits", truth_img, seg,
+                                            mgrid, b, zp, sigma_pix, prov))
+        with timer("exposures"):
+            egrids = exposure_grids(srv, tel, stream(sc.seed, "dither"))
+            if fixed is None:
+                fixed = make_fixed_pattern((egrids[0].ny, egrids[0].nx), sc.detector,
+                                           stream(sc.seed, "detector_fixed"))
+            sky = b.sky_rate(area, tel.pixel_scale_arcsec)
+            exposures = []
+            for k, eg in enumerate(egrids):
+                r = sample_scene(scene, sgrid, eg)
+                exposures.append(expose(r, sky, sc.detector.dark_e_s, sc.detector,
+                                        srv.exposure_time_s, tel.pixel_size_um,
+                                        stream(sc.seed, "exposure", b.name, k), fixed))
+                if srv.write_exposures:
+                    files.append(_write_exposure(out / "exposures" / f"exp_{b.name}_{k:02d}.fits",
+                                                 exposures[-1], eg, b, zp, prov))
+        with timer("mosaic"):
+            mosaic = drizzle_mosaic(exposures, egrids, mgrid, srv.drizzle_kernel, srv.pixfrac)
+            files.append(_write_mosaic(out / f"mosaic_{b.name}.fits", mosaic, mgrid, b, zp,
+                                       srv, prov))
+        with timer("depth"):
+            ee = effective_psf(psf_core[b.name], tel.pixel_scale_arcsec)
+            depths[b.name] = {
+                "predicted_5sigma": float(predicted_depth(sc, b, ee)),
+                "measured_5sigma": float(measured_depth(mosaic, mgrid, zp,
+                                                        sc.detection.aperture_radius_arcsec,
+                                                        stream(sc.seed, "depth", b.name),
+                                                        mask=seg > 0)),
+            }
+        del scene, exposures
+
+    # ---------------------------------------------------------------- truth tables
+    with timer("truth"):
+        for b in bands:
+            images[f"mag_{b.name}"] = _image_mags(images, sources, b.name)
+        files.append(_write_truth(out / "truth.fits", sources, images, mgrid, prov))
+
+    summary = {
+        "simfield_version": __version__,
+        "seed": sc.seed,
+        "n_sources": int(len(sources)),
+        "n_galaxies": int(np.sum(sources["kind"] == "galaxy")),
+        "n_stars": int(np.sum(sources["kind"] == "star")),
+        "n_images": int(len(images)),
+        "n_multiply_imaged": int(np.sum(np.asarray(sources["n_images"]) > 1)),
+        "field_arcmin2": srv.width_arcsec * srv.height_arcsec / 3600.0,
+        "depth_ab": depths,
+    }
+
+    # ---------------------------------------------------------------- detect and score
+    if sc.detection.enabled:
+        with timer("detect"):
+            from .detect import run_detection
+
+            summary["detections"] = run_detection(out, sc, bands, prov)
+    if sc.score.enabled and sc.detection.enabled:
+        with timer("score"):
+            from .score.run import score_pipeline_run
+
+            summary["score"] = score_pipeline_run(out, sc, prov)
+
+    summary["timings_s"] = dict(res.timings)
+    files.append(write_json(out / "summary.json", summary, prov))
+    res.summary = summary
+    write_text(marker, f"simfield {__version__} seed {sc.seed} config {prov.config_hash}\n")
+    return res
+
+
+# ---------------------------------------------------------------------------- helpers
+def _stack_sources(a: Table, b: Table) -> Table:
+    from astropy.table import vstack
+
+    return vstack([a, b], join_type="outer", metadata_conflicts="silent")
+
+
+def _truth_images(sources: Table, lens, sc: Scenario, hx: float, hy: float):
+    """IMAGES rows for every source, with total magnification and image count per source."""
+    n = len(sources)
+    xs = np.asarray(sources["x_arcsec"], float)
+    ys = np.asarray(sources["y_arcsec"], float)
+    if lens is None:
+        images = Table()
+        images["source_id"] = np.asarray(sources["id"])
+        images["x_arcsec"] = xs
+        images["y_arcsec"] = ys
+        images["magnification"] = np.ones(n)
+        images["parity"] = np.ones(n, dtype=np.int8)
+        return images, np.ones(n), np.ones(n, dtype=np.int32)
+    from .lensing import lens_sources
+
+    images, mag_total, n_images = lens_sources(lens, sources, sc.lens, (-hx, hx), (-hy, hy))
+    return images, np.asarray(mag_total, float), np.asarray(n_images, np.int32)
+
+
+def _draw_all(sources: Table, sgrid: Grid, sc: Scenario, lens, make_profile) -> list[Stamp]:
+    """Unit-flux stamps of every source (lensed ones by ray tracing)."""
+    xpix, ypix = sgrid.offsets_to_pixel(np.asarray(sources["x_arcsec"], float),
+                                        np.asarray(sources["y_arcsec"], float))
+    kinds = np.asarray(sources["kind"]).astype(str)
+    profiles = {}
+
+    def items():
+        for i in range(len(sources)):
+            if kinds[i] == "star":
+                yield i, None, xpix[i], ypix[i], 0
+                continue
+            prof = make_profile(sources[i], sc.seed)
+            profiles[i] = prof
+            yield i, prof, xpix[i], ypix[i], _stamp_half_size(prof, sgrid.scale)
+
+    lensed = None
+    if lens is not None:
+        from .lensing import render_lensed
+
+        z = np.asarray(sources["redshift"], float)
+        zl = sc.lens.redshift
+
+        def lensed(i, prof):
+            if z[i] <= zl or kinds[i] == "member":
+                return None
+            import galsim
+
+            p = prof if prof is not None else galsim.Gaussian(sigma=1e-3)
+            got = render_lensed(lens, p, float(sources["x_arcsec"][i]),
+                                float(sources["y_arcsec"][i]), float(z[i]), sgrid)
+            return [Stamp(np.asarray(im, np.float32), int(iy0), int(ix0), i)
+                    for im, iy0, ix0 in got]
+
+    return draw_stamps(items(), sgrid.scale, lensed=lensed)
+
+
+def _crop_center(img: np.ndarray, half: float) -> np.ndarray:
+    h = int(max(1, round(half)))
+    cy, cx = img.shape[0] // 2, img.shape[1] // 2
+    h = min(h, cy, cx)
+    return img[cy - h:cy + h + 1, cx - h:cx + h + 1]
+
+
+def _resample_ids(ids: np.ndarray, src: Grid, dst: Grid) -> np.ndarray:
+    """Nearest-neighbour lookup of an id image on grid ``src`` at the pixel centres of ``dst``."""
+    xi, eta = dst.pixel_offsets()
+    x, y = src.offsets_to_pixel(xi, eta)
+    ix = np.clip(np.rint(x).astype(np.int64), 0, src.nx - 1)
+    iy = np.clip(np.rint(y).astype(np.int64), 0, src.ny - 1)
+    return ids[iy, ix]
+
+
+def _image_mags(images: Table, sources: Table, band: str) -> np.ndarray:
+    """Observed AB magnitude of each image: intrinsic - 2.5 log10 |mu|."""
+    idx = np.asarray(images["source_id"]) - 1
+    m = np.asarray(sources[f"mag_{band}"], float)[idx]
+    return m - 2.5 * np.log10(np.abs(np.asarray(images["magnification"], float)))
+
+
+def _band_cards(b: Band, zp: float):
+    return [("BAND", b.name, "simfield band name"),
+            ("PIVOT", round(b.pivot_nm, 4), "[nm] pivot wavelength"),
+            ("ZP_AB", round(zp, 5), "[mag] AB mag giving 1 e-/s: m = ZP_AB - 2.5 log10(e-/s)"),
+            ("PHOTFNJY", float(ab_to_njy(zp)), "[nJy] flux density giving 1 e-/s")]
+
+
+def _image_hdu(data, name, grid: Grid, bunit: str, cards=()) -> fits.ImageHDU:
+    hdu = fits.ImageHDU(np.ascontiguousarray(data), name=name)
+    hdu.header.update(grid.wcs.to_header())
+    hdu.header["BUNIT"] = bunit
+    for k, v, c in cards:
+        hdu.header[k] = (v, c)
+    return hdu
+
+
+def _write_mosaic(path, mosaic, grid: Grid, b: Band, zp: float, srv, prov) -> Path:
+    t_total = srv.exposure_time_s * srv.n_exposures
+    cards = _band_cards(b, zp) + [("EXPTIME", t_total, "[s] total exposure time at full depth"),
+                                  ("NEXP", srv.n_exposures, "exposures combined")]
+    from .survey import DQ_BITS
+
+    dq_cards = [(f"DQBIT{i}", name, f"DQ value {1 << i}") for i, name in
+                enumerate(DQ_BITS)]
+    hdus = [_image_hdu(mosaic.sci.astype(np.float32), "SCI", grid, "electron/s", cards),
+            _image_hdu(mosaic.wht.astype(np.float32), "WHT", grid, "s2/electron2", cards),
+            _image_hdu(mosaic.exp.astype(np.float32), "EXP", grid, "s"),
+            _image_hdu(mosaic.dq.astype(np.int32), "DQ", grid, "", dq_cards)]
+    return write_fits(path, hdus, prov, cards)
+
+
+def _write_exposure(path, exp, grid: Grid, b: Band, zp: float, prov) -> Path:
+    cards = _band_cards(b, zp) + [("EXPTIME", exp.exptime, "[s] exposure time")]
+    hdus = [_image_hdu(exp.sci.astype(np.float32), "SCI", grid, "electron/s", cards),
+            _image_hdu(exp.var.astype(np.float32), "VAR", grid, "electron2/s2"),
+            _image_hdu(exp.dq.astype(np.int32), "DQ", grid, "")]
+    return write_fits(path, hdus, prov, cards)
+
+
+def _write_truth_image(path, img, seg, grid: Grid, b: Band, zp: float, sigma: float,
+                       prov) -> Path:
+    cards = _band_cards(b, zp)
+    seg_cards = [("SEGNSIG", SEGMENTATION_NSIGMA, "threshold in sky-limited sigma per pixel"),
+                 ("SEGTHR", float(SEGMENTATION_NSIGMA * sigma), "[electron/s] threshold"),
+                 ("SEGDEF", "id of the source contributing most light above SEGTHR", "")]
+    hdus = [_image_hdu(img.astype(np.float32), "SCI", grid, "electron/s", cards),
+            _image_hdu(seg.astype(np.int32), "SEGM", grid, "", seg_cards)]
+    return write_fits(path, hdus, prov, cards)
+
+
+def _write_psf(path, core, wide, eff, b: Band, prov) -> Path:
+    def hdu(p, name, desc):
+        h = fits.ImageHDU(p.image.astype(np.float32), name=name)
+        h.header["PIXSCALE"] = (p.scale_arcsec, "[arcsec] PSF pixel")
+        h.header["PIVOT"] = (round(b.pivot_nm, 4), "[nm] pivot wavelength")
+        h.header["FWHM"] = (round(float(p.fwhm_arcsec), 6), "[arcsec] full width at half max")
+        h.header["NORM"] = ("sum=1", "image normalised to unit sum")
+        h.header["PSFDESC"] = desc
+        return h
+
+    ee = Table({"radius": np.asarray(eff.ee_radii_arcsec, float),
+                "ee": np.asarray(eff.ee_values, float)})
+    ee["radius"].unit = "arcsec"
+    ee_hdu = fits.BinTableHDU(ee, name="EE")
+    ee_hdu.header["COMMENT"] = "encircled energy of the PSF including the detector pixel"
+    hdus = [hdu(core, "PSF", "optics+jitter, integrated over scene pixels"),
+            hdu(wide, "PSF_WIDE", "large PSF used for bright sources"),
+            hdu(eff, "PSF_DET", "PSF convolved with the detector pixel"), ee_hdu]
+    return write_fits(path, hdus, prov, [("BAND", b.name, "simfield band name")])
+
+
+def _write_truth(path, sources: Table, images: Table, grid: Grid, prov) -> Path:
+    s = sources.copy()
+    ra, dec = grid.offsets_to_sky(np.asarray(s["x_arcsec"], float),
+                                  np.asarray(s["y_arcsec"], float))
+    x, y = grid.offsets_to_pixel(np.asarray(s["x_arcsec"], float),
+                                 np.asarray(s["y_arcsec"], float))
+    s["ra"], s["dec"], s["x"], s["y"] = ra, dec, x, y
+    im = images.copy()
+    im["image_id"] = np.arange(1, len(im) + 1)
+    ra, dec = grid.offsets_to_sky(np.asarray(im["x_arcsec"], float),
+                                  np.asarray(im["y_arcsec"], float))
+    x, y = grid.offsets_to_pixel(np.asarray(im["x_arcsec"], float),
+                                 np.asarray(im["y_arcsec"], float))
+    im["ra"], im["dec"], im["x"], im["y"] = ra, dec, x, y
+    im["in_mosaic"] = grid.contains(x, y)
+    for t in (s, im):
+        t["ra"].unit = t["dec"].unit = "deg"
+        t["x"].unit = t["y"].unit = "pix"
+        t["x_arcsec"].unit = t["y_arcsec"].unit = "arcsec"
+        t.meta["PIXCONV"] = "x, y: 0-based mosaic pixels, centre of first pixel = (0, 0)"
+        t.meta["OFFSETS"] = "x_arcsec, y_arcsec: tangent-plane offsets, xi east, eta north"
+    cols = ["image_id", "source_id"] + [c for c in im.colnames
+                                        if c not in ("image_id", "source_id")]
+    im = im[cols]
+    first = ["id", "kind", "ra", "dec", "x", "y"]
+    s = s[first + [c for c in s.colnames if c not in first]]
+    for c in s.colnames:
+        if s[c].dtype.kind == "U":
+            s[c] = s[c].astype("S")
+    hdus = [fits.BinTableHDU(s, name="SOURCES"), fits.BinTableHDU(im, name="IMAGES")]
+    for h in hdus:
+        h.header["PIXCONV"] = ("0-based", "x, y: 0-based mosaic pixels")
+    return write_fits(path, hdus, prov)
