@@ -7,6 +7,7 @@
 
 from __future__ import annotations
 
+import contextlib
 import logging
 import shutil
 import sys
@@ -31,6 +32,9 @@ def _discard_empty_run_dir(run_dir: Path) -> None:
     own = {".hydra", "main.log", "cli.log", "simfield.log"}
     if all(p.name in own for p in run_dir.iterdir()):
         shutil.rmtree(run_dir, ignore_errors=True)
+        # and the date folder Hydra made for it, if that is now empty
+        with contextlib.suppress(OSError):
+            run_dir.parent.rmdir()
 
 
 def _task(cfg) -> None:
