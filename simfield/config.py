@@ -9,11 +9,14 @@ times in s, areas in m^2.
 
 from __future__ import annotations
 
+import dataclasses
 import hashlib
+import typing
 from dataclasses import dataclass, field
 from typing import Any, Optional
 
 from omegaconf import MISSING, DictConfig, OmegaConf
+from omegaconf.errors import ConfigKeyError, MissingMandatoryValue, ValidationError
 
 from .errors import ConfigError, check_range, require
 
@@ -69,7 +72,8 @@ class PupilConfig:
     strut_offset_m: float = 0.0  #: lateral offset of each strut from the centre line (m)
     segment_wfe_rms_nm: float = 0.0  #: per-segment piston/tip/tilt rms (nm)
     zernike_rms_nm: list[float] = field(default_factory=list)  #: global Zernike rms, Noll 4...
-    grid_size: int = 512  #: samples across the pupil raster
+    grid_size: int = 512  #: samples across the pupil raster (raised per PSF when needed)
+    supersample: int = 4  #: point samples per raster cell side (anti-aliased edges)
 
 
 @dataclass
@@ -138,8 +142,9 @@ class LensComponentConfig:
     sigma_kms: float = 0.0  #: sis / sie velocity dispersion (km/s)
     axis_ratio: float = 1.0  #: sie / nfw (elliptical potential)
     position_angle_deg: float = 0.0
-    gamma1: float = 0.0  #: external shear
+    gamma1: float = 0.0  #: external shear, as seen by a source at lens.reference_redshift
     gamma2: float = 0.0
+    truncation_arcsec: float = 0.0  #: sis: truncation radius (arcsec), 0 for none
 
 
 @dataclass
@@ -161,31 +166,37 @@ class LensConfig:
 # --------------------------------------------------------------------------------------------
 @dataclass
 class DetectorConfig:
-    """Infrared array and its readout."""
+    """Infrared array and its up-the-ramp readout (see :mod:`simfield.detector`)."""
 
-    read_noise_e: float = 12.0  #: correlated double sampling read noise (e-)
+    read_noise_e: float = 12.0  #: correlated double sampling read noise (e-); per frame / sqrt(2)
     dark_e_s: float = 0.005  #: dark current (e-/s)
-    gain_e_adu: float = 2.0
-    full_well_e: float = 80000.0
-    n_groups: int = 8
+    gain_e_adu: float = 2.0  #: conversion gain (e-/ADU)
+    full_well_e: float = 80000.0  #: full well (e-)
+    n_groups: int = 8  #: groups in the ramp
     n_frames: int = 4  #: frames averaged per group
-    ipc_alpha: float = 0.01
-    flat_rms: float = 0.01
+    ipc_alpha: float = 0.01  #: inter-pixel capacitance coupling to each of the four neighbours
+    flat_rms: float = 0.01  #: pixel-to-pixel response rms (fraction)
+    flat_error_rms: float = 0.002  #: rms error of the calibration flat (fraction), left in
     hot_pixel_fraction: float = 1e-4
+    hot_dark_e_s: float = 0.5  #: hot pixels: dark current log-uniform in [1, 100] x this (e-/s)
     dead_pixel_fraction: float = 1e-4
-    cosmic_ray_rate_cm2_s: float = 5.0
+    cosmic_ray_rate_cm2_s: float = 5.0  #: cosmic-ray events per cm^2 per s
+    cosmic_ray_charge_e: float = 6000.0  #: median total charge of one event (e-)
+    jump_threshold_sigma: float = 5.0  #: a ramp jump above this many sigma is detected
     poisson: bool = True
     read_noise: bool = True
+    dark_current: bool = True
     ipc: bool = True
     flat: bool = True
     bad_pixels: bool = True
     cosmic_rays: bool = True
     saturation: bool = True
+    quantize: bool = True  #: integer ADU readout
 
 
 @dataclass
 class SurveyConfig:
-    """The observed field, its exposures and mosaic grid."""
+    """The observed field, its exposures and mosaic grid (see :mod:`simfield.survey`)."""
 
     name: str = MISSING
     ra_deg: float = 150.0
@@ -194,10 +205,11 @@ class SurveyConfig:
     height_arcsec: float = 100.0
     mosaic_pixel_arcsec: float = 0.03
     scene_oversample: int = 2  #: scene pixel = detector pixel / scene_oversample
-    exposure_time_s: float = 1000.0  #: per exposure (s)
+    exposure_time_s: float = 1000.0  #: per exposure, effective (ramp slope baseline) (s)
     n_exposures: int = 4
-    dither_step_arcsec: float = 0.5
-    roll_deg: float = 0.0
+    dither_step_arcsec: float = 0.5  #: step of the large dither pattern (arcsec)
+    pointing_rms_arcsec: float = 0.003  #: random pointing error per axis (arcsec), known
+    roll_deg: float = 0.0  #: detector +y east of north (deg)
     drizzle_kernel: str = "square"
     pixfrac: float = 0.8
     write_exposures: bool = False
@@ -317,6 +329,7 @@ def _validate_telescope(t: TelescopeConfig) -> None:
     for j, z in enumerate(p.zernike_rms_nm):
         check_range(f"telescope.pupil.zernike_rms_nm.{j}", z, 0, 1000)
     check_range("telescope.pupil.grid_size", p.grid_size, 64, 4096)
+    check_range("telescope.pupil.supersample", p.supersample, 1, 16)
     s = t.psf
     check_range("telescope.psf.oversample", s.oversample, 1, 8)
     check_range("telescope.psf.core_radius_arcsec", s.core_radius_arcsec, 0, 60, lo_open=True)
@@ -365,6 +378,20 @@ def _validate_lens(lens: LensConfig, z_max: float) -> None:
         check_range(f"{k}.concentration", c.concentration, 0, 100, lo_open=True)
         check_range(f"{k}.sigma_kms", c.sigma_kms, 0, 3000)
         check_range(f"{k}.axis_ratio", c.axis_ratio, 0, 1, lo_open=True)
+        check_range(f"{k}.position_angle_deg", c.position_angle_deg, -360, 360)
+        check_range(f"{k}.gamma1", c.gamma1, -0.5, 0.5)
+        check_range(f"{k}.gamma2", c.gamma2, -0.5, 0.5)
+        check_range(f"{k}.truncation_arcsec", c.truncation_arcsec, 0, 3600)
+        if c.kind == "nfw":
+            check_range(f"{k}.mass_msun", c.mass_msun, 1e8, 1e17)
+            check_range(f"{k}.axis_ratio", c.axis_ratio, 0.5, 1)
+        if c.kind == "point":
+            check_range(f"{k}.mass_msun", c.mass_msun, 0, 1e17, lo_open=True)
+        if c.kind in ("sis", "sie"):
+            check_range(f"{k}.sigma_kms", c.sigma_kms, 0, 3000, lo_open=True)
+    check_range("lens.member_mag_bright", lens.member_mag_bright, 5, 40)
+    check_range("lens.member_mag_faint", lens.member_mag_faint, lens.member_mag_bright, 40,
+                lo_open=True)
 
 
 def _validate_detector(d: DetectorConfig) -> None:
@@ -376,9 +403,13 @@ def _validate_detector(d: DetectorConfig) -> None:
     check_range("detector.n_frames", d.n_frames, 1, 100)
     check_range("detector.ipc_alpha", d.ipc_alpha, 0, 0.05)
     check_range("detector.flat_rms", d.flat_rms, 0, 0.5)
+    check_range("detector.flat_error_rms", d.flat_error_rms, 0, 0.5)
     check_range("detector.hot_pixel_fraction", d.hot_pixel_fraction, 0, 0.1)
+    check_range("detector.hot_dark_e_s", d.hot_dark_e_s, 0, 1e4)
     check_range("detector.dead_pixel_fraction", d.dead_pixel_fraction, 0, 0.1)
     check_range("detector.cosmic_ray_rate_cm2_s", d.cosmic_ray_rate_cm2_s, 0, 1000)
+    check_range("detector.cosmic_ray_charge_e", d.cosmic_ray_charge_e, 0, 1e7)
+    check_range("detector.jump_threshold_sigma", d.jump_threshold_sigma, 0, 1000, lo_open=True)
 
 
 def _validate_survey(s: SurveyConfig) -> None:
@@ -391,6 +422,7 @@ def _validate_survey(s: SurveyConfig) -> None:
     check_range("survey.exposure_time_s", s.exposure_time_s, 0, 1e6, lo_open=True)
     check_range("survey.n_exposures", s.n_exposures, 1, 1000)
     check_range("survey.dither_step_arcsec", s.dither_step_arcsec, 0, 60)
+    check_range("survey.pointing_rms_arcsec", s.pointing_rms_arcsec, 0, 10)
     check_range("survey.roll_deg", s.roll_deg, -360, 360)
     require(s.drizzle_kernel in ("square", "point", "turbo", "gaussian", "lanczos3"),
             "survey.drizzle_kernel", s.drizzle_kernel,
@@ -469,12 +501,43 @@ def to_scenario(cfg: DictConfig | dict[str, Any]) -> Scenario:
     try:
         merged = OmegaConf.merge(schema, data)
         sc = OmegaConf.to_object(merged)
-    except Exception as exc:  # omegaconf's ValidationError / ConfigKeyError / MissingMandatory
-        key = getattr(exc, "full_key", None) or "?"
+    except ConfigKeyError as exc:  # a key the schema does not know
+        key = str(exc.full_key or exc.key)
+        parent = key.rpartition(".")[0]
+        raise ConfigError(key, _lookup(data, key),
+                          f"is not a key of {parent or 'the scenario'}; known keys: "
+                          f"{', '.join(_known_keys(parent))}") from None
+    except (ValidationError, MissingMandatoryValue) as exc:  # wrong type, missing value
+        key = str(exc.full_key or exc.key or "?")
         msg = str(exc).splitlines()[0]
-        raise ConfigError(key, getattr(exc, "value", None) if hasattr(exc, "value") else "?",
-                          f"is not accepted: {msg}") from None
+        raise ConfigError(key, getattr(exc, "value", None), f"is not accepted: {msg}") from None
     return validate(sc)
+
+
+def _lookup(data: dict, key: str) -> Any:
+    node: Any = data
+    for part in key.split("."):
+        if isinstance(node, dict) and part in node:
+            node = node[part]
+        elif isinstance(node, list) and part.isdigit() and int(part) < len(node):
+            node = node[int(part)]
+        else:
+            return None
+    return node
+
+
+def _known_keys(parent: str) -> list[str]:
+    """Field names of the schema node at dotted path ``parent`` ('' for the root)."""
+    cls: Any = Scenario
+    for part in filter(None, parent.split(".")):
+        if part.isdigit():  # list element: the list's item type was resolved already
+            continue
+        hint = typing.get_type_hints(cls).get(part)
+        args = typing.get_args(hint)
+        cls = args[0] if args else hint
+        if not dataclasses.is_dataclass(cls):
+            return []
+    return [f.name for f in dataclasses.fields(cls)]
 
 
 def config_hash(sc: Scenario) -> str:

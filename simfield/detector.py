@@ -1,0 +1,411 @@
+"""Infrared array exposures: up-the-ramp readout, noise and artefacts, in e-/s.
+
+One exposure is a ramp of ``n_groups`` groups of ``n_frames`` frames read without gaps after a
+reset. Frame j (0-based) is read at t_j = (j + 1) t_f; group k averages frames k m ... k m + m - 1;
+the pipeline fits a least-squares line with equal weights to the group averages (the estimator
+of Rauscher et al. 2007, PASP 119, 768). The exposure time ``exptime_s`` is the slope baseline,
+(n - 1) t_g with t_g = m t_f, so t_f = exptime_s / ((n - 1) m); the ramp itself lasts n t_g.
+
+How the noise is drawn (instead of simulating every frame)
+-----------------------------------------------------------
+The fitted slope is a linear combination b = sum_j c_j S_j of the frame values S_j. Read noise
+enters as sigma_f^2 sum_j c_j^2, exactly Gaussian. The charge is a Poisson process: an electron
+arriving in frame interval i (between reads i - 1 and i) adds D_i = sum_{j >= i} c_j to b. Given
+the total charge N of the ramp (Poisson, drawn exactly), arrival times are independent and
+uniform, so b = N mean(D) + sqrt(N var(D)) z with z standard normal (the sum over electrons by
+its central limit; exact mean and variance for any N). The resulting variance is Rauscher et
+al. 2007 eq. 1, which the tests check against a Monte Carlo of frames. Integer-ADU readout adds
+gain^2 / 12 to the frame variance (uniform quantisation error, valid while the frame read noise
+exceeds about one ADU; checked in the tests against quantised frames).
+
+Effects (each switched by a :class:`~simfield.config.DetectorConfig` boolean)
+-----------------------------------------------------------------------------
+- ``flat``: pixel response P ~ 1 + flat_rms N(0, 1) multiplies the photo-current. The pipeline
+  divides by a calibration flat P (1 + flat_error_rms N(0, 1)), so only the calibration error
+  stays in the image (and the noise is scaled by 1 / P).
+- ``dark_current``: dark_e_s accumulates (with shot noise); the pipeline subtracts the known
+  dark. Hot pixels (``bad_pixels``) add a much larger dark, flagged ``DQ_HOT``.
+- ``bad_pixels``: hot and dead (P = 0, flagged ``DQ_DEAD``) pixels, fixed per detector
+  (:func:`make_fixed_pattern`).
+- ``poisson``: shot noise of sky + sources + dark.
+- ``ipc``: inter-pixel capacitance, a 3x3 kernel with ``ipc_alpha`` on the four neighbours and
+  1 - 4 alpha in the centre, acting on the collected charge (read noise is added after it).
+- ``cosmic_rays``: events at ``cosmic_ray_rate_cm2_s`` per cm^2 of detector (pixel area from
+  ``pixel_size_um``) during the ramp, each a short straight track touching a few pixels with a
+  log-normal total charge around ``cosmic_ray_charge_e`` (Rauscher & Fixsen 2025, PASP 137,
+  095003: a few ions per cm^2 per s, ~7 pixels, several thousand e-). A deposit whose jump
+  exceeds ``jump_threshold_sigma`` times the noise of a group difference is detected: the pixel
+  is flagged ``DQ_COSMIC_RAY`` and its slope is fitted to the longest clean run of groups (its
+  variance grows accordingly); with fewer than two clean groups it gets ``DQ_NO_SLOPE``.
+  Fainter deposits stay in the ramp and bias the slope by charge x D_i.
+- ``saturation``: groups whose last frame holds more than ``full_well_e`` are dropped; a pixel
+  that loses groups is flagged ``DQ_SATURATED`` and fitted to the rest; with fewer than two
+  groups left it gets ``DQ_NO_SLOPE`` and sci = 0.
+- ``read_noise`` and ``quantize`` (gain_e_adu): see above.
+
+Pixels with a redrawn slope (``DQ_COSMIC_RAY``, ``DQ_SATURATED``) get Gaussian noise of their
+segment's variance around the IPC-convolved expected rate. The ``var`` estimate is the noise
+model at the expected (noiseless) rate, like a variance from a smoothed rate image.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import ndimage
+
+from .config import DetectorConfig
+from .errors import check_range, require
+
+__all__ = [
+    "DQ_HOT",
+    "DQ_DEAD",
+    "DQ_COSMIC_RAY",
+    "DQ_SATURATED",
+    "DQ_NO_SLOPE",
+    "DQ_EXCLUDE",
+    "FixedPattern",
+    "Exposure",
+    "make_fixed_pattern",
+    "frame_time",
+    "slope_weights",
+    "slope_variance_factors",
+    "apply_ipc",
+    "expose",
+]
+
+#: DQ bit: hot pixel (dark current ``hot_dark_e_s`` x 1...100); excluded from mosaics.
+DQ_HOT = 1
+#: DQ bit: dead pixel (no response); excluded.
+DQ_DEAD = 2
+#: DQ bit: cosmic-ray jump detected; slope from the longest clean run of groups (kept).
+DQ_COSMIC_RAY = 4
+#: DQ bit: saturated before the end of the ramp; slope from the unsaturated groups (kept).
+DQ_SATURATED = 8
+#: DQ bit: fewer than two usable groups, no slope, sci = 0 (excluded).
+DQ_NO_SLOPE = 32
+#: Pixels with these bits should not be used (simfield.survey gives them zero weight).
+DQ_EXCLUDE = DQ_HOT | DQ_DEAD | DQ_NO_SLOPE
+
+_CR_SIGMA_LN = 0.5  # log-normal width of the event charge (common practice)
+_CR_MAX_LENGTH_PIX = 3.0  # projected track length uniform in [0, this] pixels (common practice)
+_CR_POINTS = 6  # charge points along a track, each spread bilinearly (charge diffusion)
+
+
+@dataclass(frozen=True, eq=False)
+class FixedPattern:
+    """Per-detector fixed pattern (the same for every exposure of a detector).
+
+    Attributes
+    ----------
+    flat : ndarray (dimensionless)
+        True pixel response (mean 1; dead pixels are zeroed by :func:`expose`, not here).
+    flat_cal : ndarray (dimensionless)
+        The calibration flat the pipeline divides by.
+    hot : ndarray of bool
+    hot_dark : ndarray (e-/s)
+        Extra dark current of hot pixels (0 elsewhere).
+    dead : ndarray of bool
+    """
+
+    flat: np.ndarray
+    flat_cal: np.ndarray
+    hot: np.ndarray
+    hot_dark: np.ndarray
+    dead: np.ndarray
+
+
+@dataclass(frozen=True, eq=False)
+class Exposure:
+    """One calibrated exposure on its detector grid.
+
+    Attributes
+    ----------
+    sci : ndarray (e-/s per pixel)
+        Fitted slope, dark subtracted, flat fielded; sky still in.
+    var : ndarray ((e-/s)^2)
+        Variance estimate of ``sci`` (noise model at the expected rate).
+    var_sky : ndarray ((e-/s)^2)
+        Variance of a source-free pixel (sky + dark + read), for inverse-variance weights.
+    dq : ndarray (int32 bit mask)
+        ``DQ_*`` bits.
+    exptime : float (s)
+        Effective exposure time, (n_groups - 1) x group time.
+    sky : float (e-/s per pixel)
+        Mean sky level in ``sci`` (for sky subtraction).
+    n_cr : int
+        Cosmic-ray events during the ramp.
+    """
+
+    sci: np.ndarray
+    var: np.ndarray
+    var_sky: np.ndarray
+    dq: np.ndarray
+    exptime: float
+    sky: float
+    n_cr: int
+
+
+def make_fixed_pattern(shape: tuple[int, int], det: DetectorConfig,
+                       rng: np.random.Generator) -> FixedPattern:
+    """Flat field, hot and dead pixels of one detector.
+
+    Parameters
+    ----------
+    shape : (ny, nx)
+    det : DetectorConfig
+    rng : numpy.random.Generator
+        Seed it per detector (e.g. ``simfield.random.stream(seed, "detector")``) so every
+        exposure of that detector shares the pattern.
+    """
+    require(len(shape) == 2 and min(shape) > 0, "shape", shape, "must be (ny, nx) with ny, nx > 0")
+    flat = np.clip(1.0 + det.flat_rms * rng.standard_normal(shape), 0.05, None)
+    flat_cal = flat * (1.0 + det.flat_error_rms * rng.standard_normal(shape))
+    u = rng.random(shape)
+    hot = u < det.hot_pixel_fraction
+    dead = (u >= det.hot_pixel_fraction) & (u < det.hot_pixel_fraction + det.dead_pixel_fraction)
+    hot_dark = np.where(hot, det.hot_dark_e_s * 10.0 ** (2.0 * rng.random(shape)), 0.0)
+    return FixedPattern(flat=flat, flat_cal=flat_cal, hot=hot, hot_dark=hot_dark, dead=dead)
+
+
+def frame_time(det: DetectorConfig, exptime_s: float) -> float:
+    """Frame time t_f = exptime_s / ((n_groups - 1) n_frames) (s)."""
+    return exptime_s / ((det.n_groups - 1) * det.n_frames)
+
+
+def slope_weights(n_groups: int, n_frames: int, t_frame_s: float, first: int = 0,
+                  count: int | None = None) -> np.ndarray:
+    """Coefficients c_j (1/s) of the least-squares slope b = sum_j c_j S_j over all frames.
+
+    The fit uses groups ``first ... first + count - 1`` (equal weights on group averages).
+
+    Returns
+    -------
+    ndarray, shape (n_groups * n_frames,) (1/s)
+    """
+    count = n_groups - first if count is None else count
+    m = n_frames
+    k = np.arange(first, first + count, dtype=float)
+    tk = (k * m + (m + 1) / 2.0) * t_frame_s  # mean read time of group k
+    w = (tk - tk.mean()) / ((tk - tk.mean()) ** 2).sum()
+    c = np.zeros(n_groups * m)
+    for i, kk in enumerate(range(first, first + count)):
+        c[kk * m:(kk + 1) * m] = w[i] / m
+    return c
+
+
+def _interval_weights(c: np.ndarray) -> np.ndarray:
+    """D_i = sum_{j >= i} c_j: slope change per electron arriving in frame interval i (1/s)."""
+    return np.cumsum(c[::-1])[::-1]
+
+
+def slope_variance_factors(n_groups: int, n_frames: int, t_frame_s: float,
+                           count: int | None = None) -> tuple[float, float]:
+    """(a, b) with Var(slope) = a sigma_f^2 + b f for a fit to ``count`` groups.
+
+    a = sum c_j^2 (1/s^2, per e-^2 of frame variance); b = t_f sum D_i^2 (1/s, per e-/s).
+    """
+    c = slope_weights(n_groups, n_frames, t_frame_s, 0, count)
+    d = _interval_weights(c)
+    return float((c * c).sum()), float(t_frame_s * (d * d).sum())
+
+
+def apply_ipc(img: np.ndarray, alpha: float) -> np.ndarray:
+    """Convolve with the IPC kernel [[0, a, 0], [a, 1 - 4a, a], [0, a, 0]] (zero outside)."""
+    out = (1.0 - 4.0 * alpha) * img
+    out[1:] += alpha * img[:-1]
+    out[:-1] += alpha * img[1:]
+    out[:, 1:] += alpha * img[:, :-1]
+    out[:, :-1] += alpha * img[:, 1:]
+    return out
+
+
+def _cosmic_rays(shape, det: DetectorConfig, pixel_size_um: float, duration_s: float,
+                 n_intervals: int, rng: np.random.Generator):
+    """Charge image (e-) and arrival frame-interval index image of cosmic-ray events."""
+    ny, nx = shape
+    area_cm2 = ny * nx * (pixel_size_um * 1e-4) ** 2
+    n = int(rng.poisson(det.cosmic_ray_rate_cm2_s * area_cm2 * duration_s))
+    charge = np.zeros(ny * nx)
+    when = np.full(ny * nx, -1, dtype=np.int64)
+    if n == 0:
+        return charge.reshape(shape), when.reshape(shape), 0
+    cx = rng.uniform(-0.5, nx - 0.5, n)
+    cy = rng.uniform(-0.5, ny - 0.5, n)
+    theta = rng.uniform(0.0, np.pi, n)
+    length = rng.uniform(0.0, _CR_MAX_LENGTH_PIX, n)
+    q = det.cosmic_ray_charge_e * np.exp(_CR_SIGMA_LN * rng.standard_normal(n))
+    interval = rng.integers(0, n_intervals, n)
+    s = (np.arange(_CR_POINTS) + 0.5) / _CR_POINTS - 0.5
+    px = (cx[:, None] + s[None, :] * (length * np.cos(theta))[:, None]).ravel()
+    py = (cy[:, None] + s[None, :] * (length * np.sin(theta))[:, None]).ravel()
+    pq = np.repeat(q / _CR_POINTS, _CR_POINTS)
+    pe = np.repeat(interval, _CR_POINTS)
+    x0, y0 = np.floor(px).astype(np.int64), np.floor(py).astype(np.int64)
+    fx, fy = px - x0, py - y0
+    for dx, dy, wgt in ((0, 0, (1 - fx) * (1 - fy)), (1, 0, fx * (1 - fy)),
+                        (0, 1, (1 - fx) * fy), (1, 1, fx * fy)):
+        xx, yy = x0 + dx, y0 + dy
+        ok = (xx >= 0) & (xx < nx) & (yy >= 0) & (yy < ny) & (wgt > 1e-3)
+        idx = yy[ok] * nx + xx[ok]
+        charge += np.bincount(idx, weights=(pq * wgt)[ok], minlength=ny * nx)
+        when[idx] = pe[ok]
+    return charge.reshape(shape), when.reshape(shape), n
+
+
+def _best_runs(usable: np.ndarray, brk: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Start and length of the longest run of usable groups without a break inside it.
+
+    usable, brk : bool (n_pix, n_groups); brk[:, k] means a jump between groups k - 1 and k.
+    """
+    npix, n = usable.shape
+    cur_len = np.zeros(npix, np.int64)
+    cur_start = np.zeros(npix, np.int64)
+    best_len = np.zeros(npix, np.int64)
+    best_start = np.zeros(npix, np.int64)
+    for k in range(n):
+        cont = usable[:, k] & ~brk[:, k] & (cur_len > 0)
+        cur_start = np.where(cont, cur_start, k)
+        cur_len = np.where(usable[:, k], np.where(cont, cur_len + 1, 1), 0)
+        better = cur_len > best_len
+        best_len = np.where(better, cur_len, best_len)
+        best_start = np.where(better, cur_start, best_start)
+    return best_start, best_len
+
+
+def expose(rate: np.ndarray, sky_rate, dark, det: DetectorConfig, exptime_s: float,
+           pixel_size_um: float, rng: np.random.Generator, fixed: FixedPattern) -> Exposure:
+    """Simulate and calibrate one up-the-ramp exposure.
+
+    Parameters
+    ----------
+    rate : ndarray (e-/s per detector pixel)
+        Noiseless source signal (from :func:`simfield.survey.sample_scene`).
+    sky_rate : float or ndarray (e-/s per pixel)
+        Sky signal.
+    dark : float or ndarray (e-/s) or None
+        Dark current (None: ``det.dark_e_s``); the pipeline subtracts this known value.
+    det : DetectorConfig
+    exptime_s : float (s)
+        Effective exposure time (slope baseline (n_groups - 1) t_g).
+    pixel_size_um : float (micron)
+        Physical pixel side (sets the cosmic-ray hit rate per pixel).
+    rng : numpy.random.Generator
+        The exposure's own stream.
+    fixed : FixedPattern
+        The detector's fixed pattern, of the same shape as ``rate``.
+
+    Returns
+    -------
+    Exposure
+    """
+    rate = np.asarray(rate, dtype=float)
+    require(rate.ndim == 2, "rate", rate.shape, "must be a 2-D image (e-/s per pixel)")
+    require(fixed.flat.shape == rate.shape, "fixed", fixed.flat.shape,
+            f"must have the image's shape {rate.shape}")
+    check_range("exptime_s", exptime_s, 0, None, lo_open=True)
+    check_range("pixel_size_um", pixel_size_um, 0, None, lo_open=True)
+    require(np.all(rate >= 0), "rate", float(rate.min()), "must be >= 0 everywhere")
+    n, m = det.n_groups, det.n_frames
+    tf = frame_time(det, exptime_s)
+    tg = m * tf
+    n_int = n * m
+    duration = n_int * tf
+    gain = det.gain_e_adu
+    sig_f2 = (det.read_noise_e ** 2 / 2.0 if det.read_noise else 0.0) + \
+        (gain * gain / 12.0 if det.quantize else 0.0)
+    alpha = det.ipc_alpha if det.ipc else 0.0
+    ipc_var = (1.0 - 4.0 * alpha) ** 2 + 4.0 * alpha ** 2  # variance kept by IPC (uncorrelated)
+
+    resp = fixed.flat if det.flat else np.ones(rate.shape)
+    cal = fixed.flat_cal if det.flat else np.ones(rate.shape)
+    if det.bad_pixels:
+        resp = np.where(fixed.dead, 0.0, resp)
+    dark_nom = det.dark_e_s if dark is None else dark
+    dark_nom = np.asarray(dark_nom, dtype=float) if det.dark_current else np.zeros(1)
+    dark_true = dark_nom + (fixed.hot_dark if det.bad_pixels else 0.0)
+    sky = np.asarray(sky_rate, dtype=float)
+    f_sky = sky * resp + dark_true  # expected e-/s without sources
+    f = rate * resp + f_sky  # expected e-/s
+
+    c = slope_weights(n, m, tf)
+    d_int = _interval_weights(c)
+    a_full, b_full = float((c * c).sum()), float(tf * (d_int * d_int).sum())
+    if det.poisson:
+        total = rng.poisson(f * duration).astype(float)
+        slope = total * d_int.mean() + np.sqrt(total * d_int.var()) * rng.standard_normal(f.shape)
+    else:
+        slope = f.copy()
+    dq = np.zeros(rate.shape, np.int32)
+    if det.bad_pixels:
+        dq[fixed.hot] |= DQ_HOT
+        dq[fixed.dead] |= DQ_DEAD
+
+    n_cr = 0
+    jump = np.zeros(rate.shape, bool)
+    when = None
+    if det.cosmic_rays and det.cosmic_ray_rate_cm2_s > 0:
+        cr_q, when, n_cr = _cosmic_rays(rate.shape, det, pixel_size_um, duration, n_int, rng)
+        if alpha > 0:
+            cr_q = apply_ipc(cr_q, alpha)
+            when = np.where(when >= 0, when, ndimage.grey_dilation(
+                when, footprint=np.array([[0, 1, 0], [1, 1, 1], [0, 1, 0]], bool)))
+        hit = (cr_q > 0) & (when >= 0)
+        sig_diff = np.sqrt(2.0 * sig_f2 / m + f * tg)
+        jump = hit & (cr_q > det.jump_threshold_sigma * sig_diff)
+        faint = hit & ~jump
+        # an undetected deposit in interval i adds charge x D_i to the fitted slope
+        slope[faint] += cr_q[faint] * d_int[when[faint]]
+    if alpha > 0:
+        slope = apply_ipc(slope, alpha)
+    if sig_f2 > 0:
+        slope += math.sqrt(a_full * sig_f2) * rng.standard_normal(f.shape)
+
+    n_ok = np.full(rate.shape, n, np.int64)
+    if det.saturation:
+        with np.errstate(divide="ignore"):
+            q = np.where(f > 0, det.full_well_e / (np.where(f > 0, f, 1.0) * tg), np.inf)
+        n_ok = np.clip(np.ceil(np.minimum(q, n + 1)) - 1, 0, n).astype(np.int64)
+    special = (n_ok < n) | jump
+    var_a = np.full(rate.shape, a_full)
+    var_b = np.full(rate.shape, b_full)
+    if special.any():
+        idx = np.nonzero(special)
+        k = np.arange(n)
+        usable = k[None, :] < n_ok[idx][:, None]
+        brk = np.zeros_like(usable)
+        if when is not None:
+            w = when[idx]
+            jmp = jump[idx]
+            kc = np.where(jmp, w // m, n)
+            at_start = (w % m) == 0
+            rows = np.nonzero(jmp)[0]
+            brk[rows, kc[rows]] = True
+            mixed = rows[~at_start[rows]]
+            usable[mixed, kc[mixed]] = False
+        start, length = _best_runs(usable, brk)
+        table_a = np.zeros(n + 1)
+        table_b = np.zeros(n + 1)
+        for cnt in range(2, n + 1):
+            table_a[cnt], table_b[cnt] = slope_variance_factors(n, m, tf, cnt)
+        fa, fb = table_a[length], table_b[length]
+        f_ipc = apply_ipc(f, alpha) if alpha > 0 else f
+        sd = np.sqrt(fa * sig_f2 + (fb * f[idx] * ipc_var if det.poisson else 0.0))
+        new = f_ipc[idx] + sd * rng.standard_normal(sd.shape)
+        new[length < 2] = 0.0
+        slope[idx] = new
+        var_a[idx], var_b[idx] = fa, fb
+        sat = n_ok[idx] < n
+        flags = np.where(sat, DQ_SATURATED, 0) | np.where(jump[idx], DQ_COSMIC_RAY, 0) | \
+            np.where(length < 2, DQ_NO_SLOPE, 0)
+        dq[idx] |= flags.astype(np.int32)
+
+    sci = (slope - dark_nom) / cal
+    sci[(dq & DQ_NO_SLOPE) != 0] = 0.0
+    pois = ipc_var if det.poisson else 0.0
+    var = (var_a * sig_f2 + var_b * pois * f) / cal ** 2
+    var_sky = (a_full * sig_f2 + b_full * pois * f_sky) / cal ** 2
+    return Exposure(sci=sci, var=var, var_sky=np.broadcast_to(var_sky, rate.shape).copy(),
+                    dq=dq, exptime=float(exptime_s), sky=float(np.mean(sky)), n_cr=int(n_cr))
