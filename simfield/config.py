@@ -123,8 +123,9 @@ class PopulationConfig:
     star_density_arcmin2: float = 3.0  #: foreground stars per arcmin^2 brighter than star_mag_max
     star_mag_min: float = 16.0
     star_mag_max: float = 30.0
+    star_count_slope: float = 0.15  #: slope of the star counts d log10 N / dm (dex/mag)
     clumpy: bool = True  #: star-forming knots in blue, large galaxies
-    max_sources: int = 200000
+    max_sources: int = 200000  #: refuse fields expecting more candidate sources than this
 
 
 # --------------------------------------------------------------------------------------------
@@ -357,6 +358,7 @@ def _validate_population(p: PopulationConfig, bands: list[str]) -> None:
     check_range("population.star_density_arcmin2", p.star_density_arcmin2, 0, 1e4)
     check_range("population.star_mag_min", p.star_mag_min, 5, 40)
     check_range("population.star_mag_max", p.star_mag_max, p.star_mag_min, 40)
+    check_range("population.star_count_slope", p.star_count_slope, -1, 1)
     check_range("population.max_sources", p.max_sources, 1, 1e8)
 
 
