@@ -23,7 +23,7 @@ from .bands import AB_NJY_ZERO
 from .config import DetectionConfig
 from .errors import ConfigError, check_range, require
 
-__all__ = ["Detections", "detect_sources"]
+__all__ = ["Detections", "detect_sources", "run_detection"]
 
 # 2.5 / ln(10): magnitude error per unit fractional flux error
 _MAG_PER_FRAC = 2.5 / np.log(10.0)
@@ -195,3 +195,55 @@ def detect_sources(sci, wht, wcs: WCS, cfg: DetectionConfig, psf_fwhm_arcsec: fl
                  "THRESH": float(cfg.threshold_sigma)})
     t.meta.update(meta)
     return Detections(t, np.asarray(segm.data, dtype=np.int32), back)
+
+
+def run_detection(run_dir, sc, bands, prov) -> dict:
+    """Run :func:`detect_sources` on each mosaic of a run directory; write ``detections_<band>.fits``.
+
+    Parameters
+    ----------
+    run_dir : path
+        Run directory holding ``mosaic_<band>.fits`` and ``psf_<band>.fits``.
+    sc : simfield.config.Scenario
+        The scenario (``sc.detection`` is used; ``detection.bands`` empty means every band).
+    bands : list of simfield.bands.Band
+        The scenario's bands.
+    prov : simfield.io.Provenance
+        Provenance written into every file.
+
+    Returns
+    -------
+    dict
+        Number of detections per band.
+    """
+    from pathlib import Path
+
+    from astropy.io import fits
+
+    from .io import write_fits
+
+    run_dir = Path(run_dir)
+    cfg = sc.detection
+    wanted = list(cfg.bands) or [b.name for b in bands]
+    counts = {}
+    for name in wanted:
+        with fits.open(run_dir / f"mosaic_{name}.fits") as hl:
+            sci = hl["SCI"].data.astype(float)
+            wht = hl["WHT"].data.astype(float)
+            hdr = hl["SCI"].header
+            dq = hl["DQ"].data if "DQ" in hl else None
+        wcs = WCS(hdr)
+        scale = float(np.sqrt(abs(np.linalg.det(wcs.pixel_scale_matrix))) * 3600.0)
+        with fits.open(run_dir / f"psf_{name}.fits") as hl:
+            fwhm = float(hl["PSF_DET" if "PSF_DET" in hl else 1].header["FWHM"])
+        det = detect_sources(sci, wht, wcs, cfg, fwhm, float(hdr["ZP_AB"]), scale,
+                             exptime=float(hdr.get("EXPTIME", 0)) or None,
+                             mask=None if dq is None else dq != 0)
+        cat = det.catalog
+        cat.meta.update({"BAND": name})
+        seg = fits.ImageHDU(det.segmentation, header=wcs.to_header(), name="SEGM")
+        write_fits(run_dir / f"detections_{name}.fits",
+                   [fits.BinTableHDU(cat, name="DETECTIONS"), seg], prov,
+                   [("BAND", name, "simfield band name")])
+        counts[name] = int(len(cat))
+    return counts

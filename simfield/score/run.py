@@ -1,0 +1,588 @@
+"""Score a detection catalogue against a run directory's truth: tables, summary and report.
+
+``load_catalog`` reads and checks a user catalogue (FITS, ECSV or CSV), ``score_run`` matches it
+to the truth images of one band and writes, into ``<out_dir>`` (default ``<run_dir>/score``):
+
+- ``completeness_mag.ecsv``, ``completeness_size.ecsv``, ``completeness_sb.ecsv``,
+  ``completeness_z.ecsv``, ``completeness_mu.ecsv``, ``completeness_mag_size.ecsv``: fractions of
+  truth galaxies recovered per bin of observed magnitude, observed half-light radius, mean
+  surface brightness, redshift, magnification, and magnitude x size;
+- ``purity_mag.ecsv``: fraction of detections matched, per measured magnitude;
+- ``false_detections.ecsv``: every unmatched detection with its likely cause;
+- ``photometry.ecsv``: measured - true magnitude per true magnitude;
+- ``effective_volume.ecsv``: recovered fraction x comoving volume per (M_UV, z) bin;
+- ``recovered.ecsv``: each truth source with its recovery flag and matched detection;
+- ``summary.json``, and ``report.html`` with its PNG plots when ``cfg.report``.
+
+Every file is written atomically (temporary file, then ``os.replace``), and only after every
+input has been read and checked, so a failure leaves no partial output.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+from pathlib import Path
+
+import numpy as np
+from astropy.io import fits
+from astropy.table import Table
+from astropy.wcs import WCS
+
+from ..bands import AB_NJY_ZERO
+from ..config import ScoreConfig, _validate_score
+from ..errors import CatalogError, ConfigError
+from . import metrics
+from .match import match_radius, match_sky
+
+__all__ = ["FLUX_UNITS", "load_catalog", "load_truth", "score_run", "score_pipeline_run",
+           "score_main_args"]
+
+#: AB magnitude of unit flux in each accepted flux unit (m = ZP - 2.5 log10 f):
+#: nJy 31.4, uJy 23.9, mJy 16.4, Jy 8.9 (Oke & Gunn 1983, ApJ 266, 713); e-/s needs the
+#: mosaic's ZP_AB.
+FLUX_UNITS = {"nJy": AB_NJY_ZERO, "uJy": AB_NJY_ZERO - 7.5, "mJy": AB_NJY_ZERO - 15.0,
+              "Jy": AB_NJY_ZERO - 22.5, "e-/s": None}
+
+# plausible range of AB magnitudes of real detections in a deep field (common practice)
+_MAG_PLAUSIBLE = (5.0, 45.0)
+
+
+def _read_table(path: Path) -> Table:
+    name = path.name.lower()
+    if not path.is_file():
+        raise CatalogError(f"catalogue {str(path)!r} does not exist or is not a file")
+    try:
+        if name.endswith((".fits", ".fit", ".fits.gz", ".fts")):
+            with fits.open(path) as hl:
+                ext = next((i for i, h in enumerate(hl) if isinstance(h, fits.BinTableHDU)
+                            or isinstance(h, fits.TableHDU)), None)
+                if ext is None:
+                    raise CatalogError(f"catalogue {str(path)!r} has no table extension")
+            return Table.read(path, hdu=ext)
+        if name.endswith(".ecsv"):
+            return Table.read(path, format="ascii.ecsv")
+        if name.endswith(".csv"):
+            return Table.read(path, format="ascii.csv")
+    except CatalogError:
+        raise
+    except Exception as exc:
+        raise CatalogError(f"catalogue {str(path)!r} cannot be read: "
+                           f"{str(exc).splitlines()[0] if str(exc) else type(exc).__name__}"
+                           ) from None
+    raise CatalogError(f"catalogue {str(path)!r}: unknown format; use .fits, .ecsv or .csv")
+
+
+def load_catalog(path, columns: dict | None = None, skip_invalid: bool = False,
+                 zeropoint: float | None = None, field: tuple[WCS, tuple[int, int]] | None = None
+                 ) -> Table:
+    """Read and check a detection catalogue.
+
+    Parameters
+    ----------
+    path : str or Path
+        FITS (first table extension), ECSV or CSV file.
+    columns : dict, optional
+        Column names: ``ra``, ``dec`` (deg), and either ``mag`` (AB) or ``flux`` with
+        ``flux_unit`` (one of :data:`FLUX_UNITS`). Default ``ra``, ``dec``, ``mag``.
+    skip_invalid : bool
+        Drop rows with NaN/inf values or positions outside the field instead of refusing.
+    zeropoint : float (AB mag), optional
+        Magnitude of 1 e-/s; needed for ``flux_unit='e-/s'``.
+    field : (WCS, (ny, nx)), optional
+        Mosaic WCS and shape; positions must fall on it.
+
+    Returns
+    -------
+    Table
+        Columns ``ra``, ``dec`` (deg), ``mag`` (AB; NaN where a flux is <= 0) and ``row`` (row
+        index in the file). Metadata: ``source``, ``n_skipped``, ``n_nonpositive_flux``.
+
+    Raises
+    ------
+    CatalogError
+        For an unreadable or empty file, missing columns (the available ones are listed),
+        non-numeric values, NaN/inf values, RA/Dec out of range, implausible magnitudes,
+        positions outside the field.
+    """
+    cols = {"ra": "ra", "dec": "dec"}
+    cols.update({k: v for k, v in (columns or {}).items() if v is not None})
+    if "mag" in cols and "flux" in cols:
+        raise CatalogError("give either a magnitude column or a flux column, not both")
+    if "flux" not in cols:
+        cols.setdefault("mag", "mag")
+    unit = cols.pop("flux_unit", None)
+    if "flux" in cols:
+        unit = unit or "nJy"
+        if unit not in FLUX_UNITS:
+            raise CatalogError(f"flux unit {unit!r} is not one of: {', '.join(FLUX_UNITS)}")
+        if unit == "e-/s" and zeropoint is None:
+            raise CatalogError("flux unit 'e-/s' needs the mosaic zero point (ZP_AB)")
+    path = Path(path)
+    t = _read_table(path)
+    if len(t) == 0:
+        raise CatalogError(f"catalogue {str(path)!r} is empty (no rows)")
+    avail = list(t.colnames)
+    lower = {c.lower(): c for c in avail}
+    missing = []
+    resolved = {}
+    for role, name in cols.items():
+        if name in avail:
+            resolved[role] = name
+        elif name.lower() in lower:
+            resolved[role] = lower[name.lower()]
+        else:
+            missing.append(f"{role}={name!r}")
+    if missing:
+        raise CatalogError(f"catalogue {str(path)!r} lacks column(s) {', '.join(missing)}; "
+                           f"available: {', '.join(avail)}")
+    data = {}
+    for role, name in resolved.items():
+        col = t[name]
+        if getattr(col, "dtype", np.dtype(object)).kind not in "fiu":
+            raise CatalogError(f"column {name!r} ({role}) is not numeric "
+                               f"(dtype {col.dtype}); sexagesimal positions are not accepted")
+        v = np.ma.filled(np.ma.asarray(col, dtype=float), np.nan)
+        data[role] = np.asarray(v, float)
+    keep = np.ones(len(t), bool)
+    bad = {role: int(np.sum(~np.isfinite(v))) for role, v in data.items()}
+    if any(bad.values()):
+        rows = ~np.all([np.isfinite(v) for v in data.values()], axis=0)
+        if not skip_invalid:
+            desc = ", ".join(f"{resolved[r]}: {n}" for r, n in bad.items() if n)
+            raise CatalogError(f"catalogue {str(path)!r} has {int(rows.sum())} row(s) with "
+                               f"NaN/inf values ({desc}); use skip_invalid (--skip-invalid) "
+                               "to drop them")
+        keep &= ~rows
+    ra, dec = data["ra"], data["dec"]
+    fin = keep
+    if np.any((ra[fin] < 0) | (ra[fin] >= 360)):
+        raise CatalogError(f"column {resolved['ra']!r} has values outside [0, 360) "
+                           f"(range {np.nanmin(ra):g} .. {np.nanmax(ra):g}); RA must be in degrees")
+    if np.any(np.abs(dec[fin]) > 90):
+        raise CatalogError(f"column {resolved['dec']!r} has values outside [-90, 90] "
+                           f"(range {np.nanmin(dec):g} .. {np.nanmax(dec):g}); "
+                           "Dec must be in degrees")
+    n_nonpos = 0
+    if "flux" in data:
+        f = data["flux"]
+        zp = zeropoint if unit == "e-/s" else FLUX_UNITS[unit]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            mag = np.where(f > 0, zp - 2.5 * np.log10(np.where(f > 0, f, 1.0)), np.nan)
+        n_nonpos = int(np.sum(keep & (f <= 0)))
+        med = np.nanmedian(mag[keep]) if np.any(keep & np.isfinite(mag)) else np.nan
+        if np.isfinite(med) and not (_MAG_PLAUSIBLE[0] <= med <= _MAG_PLAUSIBLE[1]):
+            raise CatalogError(f"fluxes in column {resolved['flux']!r} give a median AB "
+                               f"magnitude of {med:.1f} with unit {unit!r}; check --flux-unit")
+    else:
+        mag = data["mag"]
+        m = mag[keep]
+        lo, hi = _MAG_PLAUSIBLE
+        if np.any((m < lo) | (m > hi)):
+            raise CatalogError(f"column {resolved['mag']!r} has values outside the plausible "
+                               f"AB range [{lo:g}, {hi:g}] (range {m.min():g} .. {m.max():g}); "
+                               "if it holds fluxes use --flux-col with --flux-unit")
+    n_out = 0
+    if field is not None:
+        wcs, (ny, nx) = field
+        x, y = wcs.all_world2pix(ra, dec, 0)
+        inside = (x >= -0.5) & (x <= nx - 0.5) & (y >= -0.5) & (y <= ny - 0.5)
+        out = keep & ~inside
+        n_out = int(out.sum())
+        if n_out == int(keep.sum()):
+            raise CatalogError(f"none of the {n_out} positions of catalogue {str(path)!r} falls "
+                               "on the mosaic (wrong field, or RA/Dec swapped?)")
+        if n_out and not skip_invalid:
+            raise CatalogError(f"{n_out} position(s) of catalogue {str(path)!r} fall outside "
+                               "the mosaic; use skip_invalid (--skip-invalid) to drop them")
+        keep &= inside
+    res = Table({"ra": ra[keep], "dec": dec[keep], "mag": mag[keep],
+                 "row": np.flatnonzero(keep)})
+    res["ra"].unit = res["dec"].unit = "deg"
+    res["mag"].unit = "mag"
+    res.meta.update({"source": str(path), "columns": resolved,
+                     "n_skipped": int(len(t) - keep.sum()), "n_outside": n_out,
+                     "n_nonpositive_flux": n_nonpos})
+    return res
+
+
+# --------------------------------------------------------------------------------------------
+def _need(path: Path) -> Path:
+    if not path.is_file():
+        raise CatalogError(f"run directory lacks {path.name} ({str(path)!r})")
+    return path
+
+
+def load_truth(run_dir, band: str) -> dict:
+    """Read what scoring needs from a run directory.
+
+    Returns
+    -------
+    dict
+        ``sources``, ``images`` (Tables), ``wcs``, ``shape`` (ny, nx), ``zeropoint`` (AB),
+        ``pixel_scale`` (arcsec), ``segm`` and ``dq`` (int maps or None), ``psf`` (image or
+        None), ``psf_fwhm`` (arcsec or None), ``sci`` (mosaic image).
+    """
+    run_dir = Path(run_dir)
+    if not run_dir.is_dir():
+        raise CatalogError(f"run directory {str(run_dir)!r} does not exist")
+    mpath = _need(run_dir / f"mosaic_{band}.fits")
+    with fits.open(mpath) as hl:
+        hdr = hl["SCI"].header
+        sci = np.asarray(hl["SCI"].data, float)
+        dq = np.asarray(hl["DQ"].data) if "DQ" in hl else None
+    if "ZP_AB" not in hdr:
+        raise CatalogError(f"{mpath.name} has no ZP_AB keyword in its SCI header")
+    wcs = WCS(hdr).celestial
+    scale = float(np.sqrt(abs(np.linalg.det(wcs.pixel_scale_matrix))) * 3600.0)
+    tpath = _need(run_dir / "truth.fits")
+    sources = Table.read(tpath, hdu="SOURCES")
+    try:
+        images = Table.read(tpath, hdu="IMAGES")
+    except KeyError:
+        images = None
+    if images is None or len(images) == 0:
+        images = Table({"image_id": np.arange(1, len(sources) + 1), "source_id": sources["id"],
+                        "ra": sources["ra"], "dec": sources["dec"], "x": sources["x"],
+                        "y": sources["y"], "magnification": np.ones(len(sources)),
+                        f"mag_{band}": sources[f"mag_{band}"]})
+    if f"mag_{band}" not in images.colnames:
+        raise CatalogError(f"truth IMAGES has no column mag_{band}; "
+                           f"available: {', '.join(images.colnames)}")
+    segm = None
+    ti = run_dir / f"truth_image_{band}.fits"
+    if ti.is_file():
+        with fits.open(ti) as hl:
+            if "SEGM" in hl:
+                segm = np.asarray(hl["SEGM"].data).astype(np.int64)
+    psf, fwhm = None, None
+    pp = run_dir / f"psf_{band}.fits"
+    if pp.is_file():
+        with fits.open(pp) as hl:
+            h = hl["PSF_WIDE"] if "PSF_WIDE" in hl else hl[1 if len(hl) > 1 else 0]
+            psf = np.asarray(h.data, float)
+            det = hl["PSF_DET"] if "PSF_DET" in hl else h
+            fwhm = float(det.header["FWHM"]) if "FWHM" in det.header else None
+            psf_scale = float(h.header.get("PIXSCALE", scale))
+    return {"sources": sources, "images": images, "wcs": wcs, "shape": sci.shape,
+            "zeropoint": float(hdr["ZP_AB"]), "pixel_scale": scale, "segm": segm, "dq": dq,
+            "psf": psf, "psf_fwhm": fwhm, "psf_scale": psf_scale if psf is not None else None,
+            "sci": sci, "run_dir": run_dir}
+
+
+def _own_detections(run_dir: Path, band: str) -> Table:
+    """The run's ``detections_<band>.fits`` as ra, dec, mag (NaN mag kept: flux <= 0)."""
+    t = Table.read(_need(run_dir / f"detections_{band}.fits"), hdu="DETECTIONS")
+    res = Table({"ra": np.asarray(t["ra"], float), "dec": np.asarray(t["dec"], float),
+                 "mag": np.asarray(t["mag"], float), "row": np.arange(len(t))})
+    res.meta["source"] = str(run_dir / f"detections_{band}.fits")
+    return res
+
+
+def _edges(lo, hi, step):
+    n = int(np.floor((hi - lo) / step + 1e-9))
+    return lo + step * np.arange(n + 1)
+
+
+def _write_table(path: Path, t: Table) -> None:
+    from ..io import atomic_path
+
+    with atomic_path(path) as tmp:
+        t.write(tmp, format="ascii.ecsv", overwrite=True)
+
+
+def score_run(run_dir, catalog, band: str, cfg: ScoreConfig | None = None, out_dir=None,
+              columns: dict | None = None, skip_invalid: bool = False, prov=None) -> dict:
+    """Score a detection catalogue against the truth of one band of a run.
+
+    Parameters
+    ----------
+    run_dir : str or Path
+        Run directory (mosaic, truth, PSF files).
+    catalog : str, Path or Table or None
+        Catalogue file (read with :func:`load_catalog`), or a Table with ``ra``, ``dec`` (deg)
+        and ``mag`` (AB), or None for the run's own ``detections_<band>.fits``.
+    band : str
+        Band name.
+    cfg : ScoreConfig, optional
+    out_dir : str or Path, optional
+        Default ``<run_dir>/score``.
+    columns, skip_invalid :
+        Passed to :func:`load_catalog`.
+    prov : simfield.io.Provenance, optional
+        Recorded in the summary.
+
+    Returns
+    -------
+    dict
+        The summary also written to ``summary.json``.
+    """
+    from ..io import write_json
+
+    cfg = cfg or ScoreConfig()
+    _validate_score(cfg)
+    truth = load_truth(run_dir, band)
+    run_dir = Path(run_dir)
+    out = Path(out_dir) if out_dir is not None else run_dir / "score"
+    wcs, shape = truth["wcs"], truth["shape"]
+    if catalog is None:
+        catalog = _own_detections(run_dir, band)
+    if isinstance(catalog, Table):
+        det = catalog
+        for c in ("ra", "dec", "mag"):
+            if c not in det.colnames:
+                raise CatalogError(f"catalogue table lacks column {c!r}; available: "
+                                   f"{', '.join(det.colnames)}")
+        cat_name = det.meta.get("source", "<table>")
+    else:
+        det = load_catalog(catalog, columns, skip_invalid, truth["zeropoint"], (wcs, shape))
+        cat_name = str(catalog)
+    radius = match_radius(cfg.match_radius_arcsec, cfg.match_radius_fwhm, truth["psf_fwhm"])
+    if not radius > 0:
+        raise ConfigError("score.match_radius_arcsec", radius, "must be > 0")
+
+    # ---- truth images on the mosaic
+    images = truth["images"]
+    sources = truth["sources"]
+    ix, iy = np.asarray(images["x"], float), np.asarray(images["y"], float)
+    ny, nx = shape
+    on = (ix >= -0.5) & (ix <= nx - 0.5) & (iy >= -0.5) & (iy <= ny - 0.5)
+    images = images[on]
+    ix, iy = ix[on], iy[on]
+    ra0, dec0 = wcs.wcs.crval
+    m = match_sky(images["ra"], images["dec"], det["ra"], det["dec"], radius,
+                  float(ra0), float(dec0))
+    img_src = np.asarray(images["source_id"], np.int64)
+    mag_img = np.asarray(images[f"mag_{band}"], float)
+
+    # ---- per source: recovered if any image matched; observed quantities of the brightest image
+    sid = np.asarray(sources["id"], np.int64)
+    pos = {int(s): i for i, s in enumerate(sid)}
+    row = np.array([pos.get(int(s), -1) for s in img_src], np.int64)
+    ns = len(sources)
+    recovered = np.zeros(ns, bool)
+    recovered[row[(m.truth_to_det >= 0) & (row >= 0)]] = True
+    best_mag = np.full(ns, np.nan)
+    best_img = np.full(ns, -1, np.int64)
+    order = np.argsort(mag_img)[::-1]  # faintest first, so the brightest is written last
+    ok = row[order] >= 0
+    best_mag[row[order][ok]] = mag_img[order][ok]
+    best_img[row[order][ok]] = order[ok]
+    has_img = best_img >= 0
+    kind = np.asarray(sources["kind"]).astype(str)
+    gal = has_img & (kind != "star")
+    mu_img = np.abs(np.asarray(images["magnification"], float))
+    mu_best = np.where(has_img, mu_img[np.maximum(best_img, 0)], np.nan)
+    r_half = np.asarray(sources["r_half"], float) if "r_half" in sources.colnames else \
+        np.full(ns, np.nan)
+    r_obs = r_half * np.sqrt(mu_best)  # lensing stretches sizes by ~sqrt(|mu|) on average
+    sb = metrics.mean_surface_brightness(best_mag, r_obs)
+    z = np.asarray(sources["redshift"], float) if "redshift" in sources.colnames else \
+        np.full(ns, np.nan)
+    det_for_src = np.full(ns, -1, np.int64)
+    mi = m.truth_index
+    det_for_src[row[mi][row[mi] >= 0]] = m.det_index[row[mi] >= 0]
+
+    lvl = cfg.interval
+    mag_edges = _edges(cfg.mag_min, cfg.mag_max, cfg.mag_step)
+    tables = {
+        "completeness_mag": metrics.binned_fraction(best_mag[gal], recovered[gal], mag_edges,
+                                                    lvl, "mag"),
+        "completeness_size": metrics.binned_fraction(r_obs[gal], recovered[gal],
+                                                     cfg.size_bins_arcsec, lvl, "r_half"),
+        "completeness_sb": metrics.binned_fraction(sb[gal], recovered[gal],
+                                                   _edges(16.0, 32.0, 0.5), lvl, "sb"),
+        "completeness_z": metrics.binned_fraction(z[gal], recovered[gal], cfg.z_bins, lvl, "z"),
+        "completeness_mu": metrics.binned_fraction(mu_best[gal], recovered[gal],
+                                                   [0.0, 0.9, 1.1, 1.5, 2, 3, 5, 10, 20, 1e4],
+                                                   lvl, "mu"),
+        "completeness_mag_size": metrics.binned_fraction_2d(
+            best_mag[gal], r_obs[gal], recovered[gal], _edges(cfg.mag_min, cfg.mag_max, 1.0),
+            cfg.size_bins_arcsec, lvl, ("mag", "r_half")),
+    }
+    det_mag = np.asarray(det["mag"], float)
+    matched = m.det_to_truth >= 0
+    tables["purity_mag"] = metrics.binned_fraction(det_mag, matched, mag_edges, lvl, "mag")
+
+    # ---- causes of false detections
+    dx, dy = wcs.all_world2pix(np.asarray(det["ra"], float), np.asarray(det["dec"], float), 0)
+    angles = list(cfg.spike_angles_deg)
+    if not angles and truth["psf"] is not None:
+        angles = list(metrics.measure_spike_angles(truth["psf"]))
+    rec_by_id = {int(s): bool(r) for s, r in zip(sid, recovered)}
+    star_img = np.isin(img_src, sid[kind == "star"])
+    cause = metrics.classify_false_detections(
+        dx, dy, m.det_to_truth, ix, iy, img_src, mag_img, star_img, rec_by_id,
+        truth["pixel_scale"], truth_segm=truth["segm"], dq=truth["dq"], spike_angles_deg=angles,
+        bright_star_mag=cfg.bright_star_mag, spike_ref_mag=cfg.spike_ref_mag,
+        spike_length_arcsec=cfg.spike_length_arcsec, halo_radius_arcsec=cfg.halo_radius_arcsec,
+        spike_half_width_deg=cfg.spike_half_width_deg,
+        blend_radius_arcsec=cfg.blend_radius_arcsec)
+    un = ~matched
+    false_t = Table({"row": np.flatnonzero(un), "ra": np.asarray(det["ra"], float)[un],
+                     "dec": np.asarray(det["dec"], float)[un], "x": dx[un], "y": dy[un],
+                     "mag": det_mag[un], "cause": cause[un]})
+    tables["false_detections"] = false_t
+
+    # ---- photometry of matched pairs (true = observed magnitude of the matched image)
+    tables["photometry"] = metrics.photometric_bias(mag_img[m.truth_index],
+                                                    det_mag[m.det_index], mag_edges)
+
+    # ---- effective volume per (M_UV, z) bin: recovered fraction x comoving volume over the field
+    from .. import cosmo as _cosmo
+
+    area = float(nx * ny) * truth["pixel_scale"] ** 2
+    if "abs_mag_uv" in sources.colnames:
+        from astropy.cosmology import FlatLambdaCDM  # noqa: F401  (type of default cosmology)
+
+        M_edges = _edges(-24.0, -14.0, 1.0)
+        zb = np.asarray(cfg.z_bins, float)
+        c = _cosmo.default_cosmology()
+        vol = (c.comoving_volume(zb[1:]).value - c.comoving_volume(zb[:-1]).value) \
+            * area / (4 * np.pi * _cosmo.ARCSEC2_PER_SR)
+        absm = np.asarray(sources["abs_mag_uv"], float)
+        sel = kind == "galaxy"
+        veff = metrics.binned_fraction_2d(absm[sel], z[sel], recovered[sel], M_edges, zb, lvl,
+                                          ("abs_mag_uv", "z"))
+        zi = np.searchsorted(zb, np.asarray(veff["z_lo"]), side="right") - 1
+        veff["volume_mpc3"] = vol[zi]
+        veff["v_eff_mpc3"] = np.nan_to_num(np.asarray(veff["fraction"], float)) * vol[zi]
+        veff.meta["note"] = ("V_eff = recovered fraction x comoving volume of the z bin over the "
+                             "mosaic area; lensed fields: the fraction already includes "
+                             "magnification, the area is the image-plane area")
+        tables["effective_volume"] = veff
+
+    rec_t = Table({"id": sid, "kind": kind, "mag_obs": best_mag, "r_half_obs": r_obs,
+                   "redshift": z, "magnification": mu_best, "recovered": recovered,
+                   "det_row": np.where(det_for_src >= 0,
+                                       np.asarray(det["row"] if "row" in det.colnames else
+                                                  np.arange(len(det)))[np.maximum(det_for_src,
+                                                                                  0)], -1)})
+    tables["recovered"] = rec_t[has_img]
+
+    # ---- fits and headline numbers
+    fits_ = {}
+    for model in ("logistic", "erf"):
+        try:
+            fits_[model] = metrics.fit_completeness(best_mag[gal], recovered[gal], model)
+        except ValueError as exc:
+            fits_[model] = str(exc)
+    pm = tables["purity_mag"]
+    ref = np.flatnonzero((pm["mag_lo"] <= cfg.reference_mag) & (pm["mag_hi"] > cfg.reference_mag))
+    counts = {c_: int(np.sum(cause == c_)) for c_ in metrics.FALSE_CAUSES}
+    n_det = len(det)
+    summary = {
+        "band": band, "catalog": cat_name, "match_radius_arcsec": radius,
+        "n_truth_galaxies": int(gal.sum()), "n_truth_images_on_mosaic": int(len(images)),
+        "n_detections": int(n_det), "n_matched": int(m.truth_index.size),
+        "completeness_all": float(recovered[gal].mean()) if gal.any() else None,
+        "purity_all": float(matched.mean()) if n_det else None,
+        "purity_at_reference_mag": (float(pm["fraction"][ref[0]]) if ref.size else None),
+        "reference_mag": cfg.reference_mag,
+        "false_detections": counts,
+        "completeness_fit": {k: (v.as_dict() if isinstance(v, metrics.CompletenessFit) else
+                                 {"error": v}) for k, v in fits_.items()},
+        "headline_fit": cfg.fit_model,
+        "spike_angles_deg": [float(a) for a in angles],
+        "catalog_rows_skipped": int(det.meta.get("n_skipped", 0)),
+    }
+    head = fits_.get(cfg.fit_model)
+    if isinstance(head, metrics.CompletenessFit):
+        summary["m50"], summary["m50_err"] = head.m50, head.m50_err
+        summary["m90"], summary["m90_err"] = head.m90, head.m90_err
+
+    # ---- write (all inputs are read and checked by now)
+    out.mkdir(parents=True, exist_ok=True)
+    for name, t in tables.items():
+        t.meta["band"] = band
+        _write_table(out / f"{name}.ecsv", t)
+    if cfg.report:
+        from .report import make_report
+
+        summary["report"] = str(make_report(out, truth, det, tables, fits_, summary, band))
+    write_json(out / "summary.json", summary, prov)
+    return summary
+
+
+def score_pipeline_run(run_dir, sc, prov) -> dict:
+    """Score the run's own detections in every detected band (called by the pipeline).
+
+    Returns
+    -------
+    dict
+        Per band, the summary of :func:`score_run`; written under ``<run_dir>/score/<band>/``.
+    """
+    bands = list(sc.detection.bands) or list(sc.band_names)
+    res = {}
+    for b in bands:
+        res[b] = score_run(run_dir, None, b, sc.score, Path(run_dir) / "score" / b, prov=prov)
+        res[b].pop("completeness_fit", None)
+    return res
+
+
+# --------------------------------------------------------------------------------------------
+class _ArgError(Exception):
+    pass
+
+
+class _Parser(argparse.ArgumentParser):
+    def error(self, message):  # one line, no usage dump
+        raise _ArgError(message)
+
+
+def _parser() -> argparse.ArgumentParser:
+    p = _Parser(prog="simfield-score",
+                description="Score a detection catalogue against a simfield run's truth.")
+    p.add_argument("run_dir", help="run directory written by simfield")
+    p.add_argument("--catalog", help="catalogue file (.fits, .ecsv, .csv); default the run's "
+                                     "own detections_<band>.fits")
+    p.add_argument("--band", help="band name (default: the only or first mosaic in the run)")
+    p.add_argument("--ra-col", default="ra", help="RA column (deg)")
+    p.add_argument("--dec-col", default="dec", help="Dec column (deg)")
+    g = p.add_mutually_exclusive_group()
+    g.add_argument("--mag-col", help="AB magnitude column (default 'mag')")
+    g.add_argument("--flux-col", help="flux column (see --flux-unit)")
+    p.add_argument("--flux-unit", default="nJy", choices=list(FLUX_UNITS),
+                   help="unit of --flux-col")
+    p.add_argument("--radius", type=float, help="match radius (arcsec)")
+    p.add_argument("--skip-invalid", action="store_true",
+                   help="drop rows with NaN/inf or outside the mosaic instead of refusing")
+    p.add_argument("--out", help="output directory (default <run_dir>/score)")
+    p.add_argument("--no-report", action="store_true", help="skip report.html and plots")
+    return p
+
+
+def score_main_args(argv: list[str]) -> int:
+    """Command-line scorer; returns the exit status (0 ok, 2 bad input, nothing written)."""
+    import sys
+
+    try:
+        a = _parser().parse_args(argv)
+        run_dir = Path(a.run_dir)
+        if not run_dir.is_dir():
+            raise CatalogError(f"run directory {a.run_dir!r} does not exist")
+        band = a.band
+        if band is None:
+            found = sorted(p.name[len("mosaic_"):-len(".fits")]
+                           for p in run_dir.glob("mosaic_*.fits"))
+            if not found:
+                raise CatalogError(f"run directory {a.run_dir!r} holds no mosaic_<band>.fits")
+            band = found[0]
+        cfg = ScoreConfig()
+        if a.radius is not None:
+            cfg.match_radius_arcsec = a.radius
+        cfg.report = not a.no_report
+        _validate_score(cfg)
+        cols = {"ra": a.ra_col, "dec": a.dec_col}
+        if a.flux_col:
+            cols.update(flux=a.flux_col, flux_unit=a.flux_unit)
+        else:
+            cols["mag"] = a.mag_col or "mag"
+        summ = score_run(run_dir, a.catalog, band, cfg, a.out, cols, a.skip_invalid)
+    except (_ArgError, CatalogError, ConfigError) as exc:
+        print(f"simfield-score: error: {exc}", file=sys.stderr)
+        return 2
+    out = Path(a.out) if a.out else run_dir / "score"
+    print(f"simfield-score: {summ['n_matched']} of {summ['n_detections']} detections matched; "
+          f"results in {os.fspath(out)}")
+    return 0
