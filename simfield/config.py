@@ -72,7 +72,7 @@ class PupilConfig:
     strut_offset_m: float = 0.0  #: lateral offset of each strut from the centre line (m)
     segment_wfe_rms_nm: float = 0.0  #: per-segment piston/tip/tilt rms (nm)
     zernike_rms_nm: list[float] = field(default_factory=list)  #: global Zernike rms, Noll 4...
-    grid_size: int = 512  #: samples across the pupil raster (raised per PSF when needed)
+    grid_size: int = 256  #: least cells across the pupil raster (raised per PSF when needed)
     supersample: int = 4  #: point samples per raster cell side (anti-aliased edges)
 
 
@@ -80,7 +80,7 @@ class PupilConfig:
 class PSFConfig:
     """How PSFs are computed and used (see :mod:`simfield.optics.psf`)."""
 
-    oversample: int = 2  #: PSF samples per scene pixel
+    oversample: int = 1  #: least PSF samples per scene pixel (raised to Nyquist-sample)
     core_radius_arcsec: float = 1.5  #: half-size of the PSF used for every source (arcsec)
     spike_radius_arcsec: float = 8.0  #: half-size of the large PSF for bright sources (arcsec)
     bright_mag: float = 21.0  #: sources brighter than this (AB) get the large PSF
