@@ -161,12 +161,13 @@ def make_fixed_pattern(shape: tuple[int, int], det: DetectorConfig,
         exposure of that detector shares the pattern.
     """
     require(len(shape) == 2 and min(shape) > 0, "shape", shape, "must be (ny, nx) with ny, nx > 0")
-    flat = np.clip(1.0 + det.flat_rms * rng.standard_normal(shape), 0.05, None)
-    flat_cal = flat * (1.0 + det.flat_error_rms * rng.standard_normal(shape))
+    flat = np.clip(1.0 + det.flat_rms * rng.standard_normal(shape, dtype=np.float32), 0.05, None)
+    flat_cal = flat * (1.0 + det.flat_error_rms * rng.standard_normal(shape, dtype=np.float32))
     u = rng.random(shape)
     hot = u < det.hot_pixel_fraction
     dead = (u >= det.hot_pixel_fraction) & (u < det.hot_pixel_fraction + det.dead_pixel_fraction)
-    hot_dark = np.where(hot, det.hot_dark_e_s * 10.0 ** (2.0 * rng.random(shape)), 0.0)
+    hot_dark = np.where(hot, det.hot_dark_e_s * 10.0 ** (2.0 * rng.random(shape, np.float32)),
+                        0.0).astype(np.float32)
     return FixedPattern(flat=flat, flat_cal=flat_cal, hot=hot, hot_dark=hot_dark, dead=dead)
 
 
@@ -222,13 +223,26 @@ def apply_ipc(img: np.ndarray, alpha: float) -> np.ndarray:
     return out
 
 
+def _ipc_at(img: np.ndarray, alpha: float, idx) -> np.ndarray:
+    """:func:`apply_ipc` of ``img`` evaluated only at the pixels ``idx`` (row, col arrays)."""
+    if alpha == 0:
+        return img[idx]
+    pad = np.pad(img, 1) if img.size < 4e6 else None
+    r, c = idx[0] + 1, idx[1] + 1
+    if pad is None:
+        pad = np.zeros((img.shape[0] + 2, img.shape[1] + 2))
+        pad[1:-1, 1:-1] = img
+    return ((1.0 - 4.0 * alpha) * pad[r, c]
+            + alpha * (pad[r - 1, c] + pad[r + 1, c] + pad[r, c - 1] + pad[r, c + 1]))
+
+
 def _cosmic_rays(shape, det: DetectorConfig, pixel_size_um: float, duration_s: float,
                  n_intervals: int, rng: np.random.Generator):
     """Charge image (e-) and arrival frame-interval index image of cosmic-ray events."""
     ny, nx = shape
     area_cm2 = ny * nx * (pixel_size_um * 1e-4) ** 2
     n = int(rng.poisson(det.cosmic_ray_rate_cm2_s * area_cm2 * duration_s))
-    charge = np.zeros(ny * nx)
+    charge = np.zeros(ny * nx)  # replaced below when there are events
     when = np.full(ny * nx, -1, dtype=np.int64)
     if n == 0:
         return charge.reshape(shape), when.reshape(shape), 0
@@ -245,13 +259,13 @@ def _cosmic_rays(shape, det: DetectorConfig, pixel_size_um: float, duration_s: f
     pe = np.repeat(interval, _CR_POINTS)
     x0, y0 = np.floor(px).astype(np.int64), np.floor(py).astype(np.int64)
     fx, fy = px - x0, py - y0
-    for dx, dy, wgt in ((0, 0, (1 - fx) * (1 - fy)), (1, 0, fx * (1 - fy)),
-                        (0, 1, (1 - fx) * fy), (1, 1, fx * fy)):
-        xx, yy = x0 + dx, y0 + dy
-        ok = (xx >= 0) & (xx < nx) & (yy >= 0) & (yy < ny) & (wgt > 1e-3)
-        idx = yy[ok] * nx + xx[ok]
-        charge += np.bincount(idx, weights=(pq * wgt)[ok], minlength=ny * nx)
-        when[idx] = pe[ok]
+    xx = np.concatenate([x0, x0 + 1, x0, x0 + 1])
+    yy = np.concatenate([y0, y0, y0 + 1, y0 + 1])
+    wgt = np.concatenate([(1 - fx) * (1 - fy), fx * (1 - fy), (1 - fx) * fy, fx * fy])
+    ok = (xx >= 0) & (xx < nx) & (yy >= 0) & (yy < ny) & (wgt > 1e-3)
+    idx = yy[ok] * nx + xx[ok]
+    charge = np.bincount(idx, weights=(np.tile(pq, 4) * wgt)[ok], minlength=ny * nx)
+    when[idx] = np.tile(pe, 4)[ok]
     return charge.reshape(shape), when.reshape(shape), n
 
 
@@ -301,7 +315,7 @@ def expose(rate: np.ndarray, sky_rate, dark, det: DetectorConfig, exptime_s: flo
     -------
     Exposure
     """
-    rate = np.asarray(rate, dtype=float)
+    rate = np.asarray(rate, dtype=np.float32)  # images are float32 from here on
     require(rate.ndim == 2, "rate", rate.shape, "must be a 2-D image (e-/s per pixel)")
     require(fixed.flat.shape == rate.shape, "fixed", fixed.flat.shape,
             f"must have the image's shape {rate.shape}")
@@ -319,14 +333,14 @@ def expose(rate: np.ndarray, sky_rate, dark, det: DetectorConfig, exptime_s: flo
     alpha = det.ipc_alpha if det.ipc else 0.0
     ipc_var = (1.0 - 4.0 * alpha) ** 2 + 4.0 * alpha ** 2  # variance kept by IPC (uncorrelated)
 
-    resp = fixed.flat if det.flat else np.ones(rate.shape)
-    cal = fixed.flat_cal if det.flat else np.ones(rate.shape)
+    resp = fixed.flat if det.flat else np.ones(rate.shape, np.float32)
+    cal = fixed.flat_cal if det.flat else np.ones(rate.shape, np.float32)
     if det.bad_pixels:
         resp = np.where(fixed.dead, 0.0, resp)
     dark_nom = det.dark_e_s if dark is None else dark
-    dark_nom = np.asarray(dark_nom, dtype=float) if det.dark_current else np.zeros(1)
+    dark_nom = np.asarray(dark_nom, np.float32) if det.dark_current else np.zeros(1, np.float32)
     dark_true = dark_nom + (fixed.hot_dark if det.bad_pixels else 0.0)
-    sky = np.asarray(sky_rate, dtype=float)
+    sky = np.asarray(sky_rate, dtype=np.float32)
     f_sky = sky * resp + dark_true  # expected e-/s without sources
     f = rate * resp + f_sky  # expected e-/s
 
@@ -334,8 +348,9 @@ def expose(rate: np.ndarray, sky_rate, dark, det: DetectorConfig, exptime_s: flo
     d_int = _interval_weights(c)
     a_full, b_full = float((c * c).sum()), float(tf * (d_int * d_int).sum())
     if det.poisson:
-        total = rng.poisson(f * duration).astype(float)
-        slope = total * d_int.mean() + np.sqrt(total * d_int.var()) * rng.standard_normal(f.shape)
+        total = rng.poisson(f * duration).astype(np.float32)
+        z = rng.standard_normal(f.shape, dtype=np.float32)
+        slope = total * float(d_int.mean()) + np.sqrt(total * float(d_int.var())) * z
     else:
         slope = f.copy()
     dq = np.zeros(rate.shape, np.int32)
@@ -357,24 +372,23 @@ def expose(rate: np.ndarray, sky_rate, dark, det: DetectorConfig, exptime_s: flo
         jump = hit & (cr_q > det.jump_threshold_sigma * sig_diff)
         faint = hit & ~jump
         # an undetected deposit in interval i adds charge x D_i to the fitted slope
-        slope[faint] += cr_q[faint] * d_int[when[faint]]
+        slope[faint] += (cr_q[faint] * d_int[when[faint]]).astype(np.float32)
     if alpha > 0:
         slope = apply_ipc(slope, alpha)
     if sig_f2 > 0:
-        slope += math.sqrt(a_full * sig_f2) * rng.standard_normal(f.shape)
+        slope += math.sqrt(a_full * sig_f2) * rng.standard_normal(f.shape, dtype=np.float32)
 
-    n_ok = np.full(rate.shape, n, np.int64)
-    if det.saturation:
-        with np.errstate(divide="ignore"):
-            q = np.where(f > 0, det.full_well_e / (np.where(f > 0, f, 1.0) * tg), np.inf)
-        n_ok = np.clip(np.ceil(np.minimum(q, n + 1)) - 1, 0, n).astype(np.int64)
-    special = (n_ok < n) | jump
-    var_a = np.full(rate.shape, a_full)
-    var_b = np.full(rate.shape, b_full)
+    # group k is usable while the charge at its last read, f (k + 1) t_g, is below full well
+    sat = f * (n * tg) >= det.full_well_e if det.saturation else np.zeros(rate.shape, bool)
+    special = sat | jump
     if special.any():
         idx = np.nonzero(special)
+        n_ok = np.full(idx[0].size, n, np.int64)
+        s_idx = sat[idx]
+        q = det.full_well_e / (f[idx][s_idx] * tg)
+        n_ok[s_idx] = np.clip(np.ceil(np.minimum(q, n + 1)) - 1, 0, n).astype(np.int64)
         k = np.arange(n)
-        usable = k[None, :] < n_ok[idx][:, None]
+        usable = k[None, :] < n_ok[:, None]
         brk = np.zeros_like(usable)
         if when is not None:
             w = when[idx]
@@ -391,21 +405,23 @@ def expose(rate: np.ndarray, sky_rate, dark, det: DetectorConfig, exptime_s: flo
         for cnt in range(2, n + 1):
             table_a[cnt], table_b[cnt] = slope_variance_factors(n, m, tf, cnt)
         fa, fb = table_a[length], table_b[length]
-        f_ipc = apply_ipc(f, alpha) if alpha > 0 else f
         sd = np.sqrt(fa * sig_f2 + (fb * f[idx] * ipc_var if det.poisson else 0.0))
-        new = f_ipc[idx] + sd * rng.standard_normal(sd.shape)
+        new = _ipc_at(f, alpha, idx) + sd * rng.standard_normal(sd.shape)
         new[length < 2] = 0.0
         slope[idx] = new
-        var_a[idx], var_b[idx] = fa, fb
-        sat = n_ok[idx] < n
-        flags = np.where(sat, DQ_SATURATED, 0) | np.where(jump[idx], DQ_COSMIC_RAY, 0) | \
+        flags = np.where(n_ok < n, DQ_SATURATED, 0) | np.where(jump[idx], DQ_COSMIC_RAY, 0) | \
             np.where(length < 2, DQ_NO_SLOPE, 0)
         dq[idx] |= flags.astype(np.int32)
 
-    sci = (slope - dark_nom) / cal
-    sci[(dq & DQ_NO_SLOPE) != 0] = 0.0
+    inv_cal = np.float32(1.0) / cal
+    sci = (slope - dark_nom) * inv_cal
+    if special.any():
+        sci[idx] = np.where(length < 2, 0.0, sci[idx])
+    inv_cal2 = inv_cal * inv_cal
     pois = ipc_var if det.poisson else 0.0
-    var = (var_a * sig_f2 + var_b * pois * f) / cal ** 2
-    var_sky = (a_full * sig_f2 + b_full * pois * f_sky) / cal ** 2
-    return Exposure(sci=sci, var=var, var_sky=np.broadcast_to(var_sky, rate.shape).copy(),
+    var_sky = (a_full * sig_f2 + b_full * pois * f_sky) * inv_cal2
+    var = var_sky + (b_full * pois * rate * resp) * inv_cal2
+    if special.any():
+        var[idx] = (fa * sig_f2 + fb * pois * f[idx]) * inv_cal2[idx]
+    return Exposure(sci=sci, var=var, var_sky=np.broadcast_to(var_sky, rate.shape).astype(np.float32),
                     dq=dq, exptime=float(exptime_s), sky=float(np.mean(sky)), n_cr=int(n_cr))

@@ -246,7 +246,7 @@ def sample_scene(scene: np.ndarray, scene_grid: Grid, exp_grid: Grid) -> np.ndar
 
     Returns
     -------
-    ndarray (e-/s per detector pixel), shape ``exp_grid.shape``
+    ndarray of float32 (e-/s per detector pixel), shape ``exp_grid.shape``
 
     Notes
     -----
@@ -263,15 +263,15 @@ def sample_scene(scene: np.ndarray, scene_grid: Grid, exp_grid: Grid) -> np.ndar
     a, b = _affine(exp_grid, scene_grid)
     ratio = exp_grid.scale / scene_grid.scale
     o = round(ratio)
-    aligned = abs(a[0, 1]) < 1e-9 and abs(a[1, 0]) < 1e-9 and a[0, 0] > 0 and a[1, 1] > 0
-    if aligned and abs(ratio - o) < 1e-9:
+    if _is_aligned(a) and abs(ratio - o) < 1e-9:
         # detector pixel x covers scene edge coordinates [o x + b - o/2 + 1/2, ... + o]
         ex = b[0] - o / 2 + 0.5
         ey = b[1] - o / 2 + 0.5
         x0, y0 = math.floor(ex), math.floor(ey)
         fx, fy = ex - x0, ey - y0
         rows = _box_sum_rows(scene, y0, exp_grid.ny, o, fy)
-        return np.ascontiguousarray(_box_sum_rows(rows.T, x0, exp_grid.nx, o, fx).T)
+        return np.ascontiguousarray(_box_sum_rows(rows.T, x0, exp_grid.nx, o, fx).T,
+                                    dtype=np.float32)
     return _sample_general(scene, a, b, exp_grid, ratio)
 
 
@@ -293,7 +293,7 @@ def _sample_general(scene, a, b, exp_grid: Grid, ratio: float, chunk: int = 256)
                                                cval=0.0, prefilter=False)
         out[y_lo:y_lo + ys.size] = acc
     # surface brightness (per scene pixel) x detector pixel area (in scene pixels) / samples
-    return out * (ratio * ratio) / (k * k)
+    return (out * (ratio * ratio) / (k * k)).astype(np.float32)
 
 
 # --------------------------------------------------------------------------------------------
@@ -322,10 +322,16 @@ class Mosaic:
     dq: np.ndarray
 
 
+def _is_aligned(a: np.ndarray) -> bool:
+    """True for an affine matrix that only scales each axis (positive, no rotation)."""
+    return abs(a[0, 1]) < 1e-9 and abs(a[1, 0]) < 1e-9 and a[0, 0] > 0 and a[1, 1] > 0
+
+
 def _pixmap(src: Grid, dst: Grid) -> np.ndarray:
     """(ny, nx, 2) map of src pixel centres to dst pixel coordinates (0-based)."""
     a, b = _affine(src, dst)
-    y, x = np.indices(src.shape, dtype=float)
+    x = np.arange(src.nx, dtype=float)[None, :]
+    y = np.arange(src.ny, dtype=float)[:, None]
     pm = np.empty(src.shape + (2,))
     pm[..., 0] = a[0, 0] * x + a[0, 1] * y + b[0]
     pm[..., 1] = a[1, 0] * x + a[1, 1] * y + b[1]
@@ -371,32 +377,36 @@ def drizzle_mosaic(exposures, exp_grids: list[Grid], mosaic_grid: Grid, kernel: 
     check_range("survey.pixfrac", pixfrac, 0, 1, lo_open=True)
     require(len(exposures) == len(exp_grids) and len(exposures) > 0, "exposures", len(exposures),
             f"must be a non-empty list as long as exp_grids ({len(exp_grids)})")
-    driz = Drizzle(kernel=kernel, out_shape=mosaic_grid.shape, fillval=0.0, fillval2=0.0,
+    aligned = all(_is_aligned(_affine(g, mosaic_grid)[0]) for g in exp_grids)
+    # with the exposure axes along the mosaic axes the square drop is an axis-aligned square,
+    # which the turbo kernel computes exactly and ~3x faster (checked in the tests)
+    driz = Drizzle(kernel="turbo" if kernel == "square" and aligned else kernel,
+                   out_shape=mosaic_grid.shape, fillval=0.0, fillval2=0.0,
                    max_ctx_id=len(exposures) - 1)
     for e, g in zip(exposures, exp_grids):
         require(e.sci.shape == g.shape, "exposure.sci", e.sci.shape,
                 f"must have its grid's shape {g.shape}")
         ratio = mosaic_grid.scale / g.scale
-        var_sky = np.asarray(getattr(e, "var_sky", e.var), dtype=float)
-        good = (e.dq & DQ_EXCLUDE) == 0
+        var_sky = np.asarray(getattr(e, "var_sky", e.var), dtype=np.float32)
+        good = ((e.dq & DQ_EXCLUDE) == 0) & (var_sky > 0)
         with np.errstate(divide="ignore"):
-            w = np.where(good & (var_sky > 0), 1.0 / np.where(var_sky > 0, var_sky, 1.0), 0.0)
-        sci = e.sci - getattr(e, "sky", 0.0) if subtract_sky else e.sci
-        driz.add_image(sci.astype(np.float32), exptime=float(e.exptime),
-                       pixmap=_pixmap(g, mosaic_grid), data2=e.var.astype(np.float32),
-                       dq=e.dq.astype(np.uint32), iscale=ratio * ratio,
-                       pixel_scale_ratio=ratio, weight_map=w.astype(np.float32),
-                       pixfrac=pixfrac, in_units="cps")
-    sci = np.asarray(driz.out_img, dtype=float)
+            w = np.where(good, np.float32(1.0) / var_sky, np.float32(0.0))
+        sci = e.sci - np.float32(getattr(e, "sky", 0.0)) if subtract_sky else e.sci
+        driz.add_image(np.asarray(sci, np.float32), exptime=float(e.exptime),
+                       pixmap=_pixmap(g, mosaic_grid), data2=np.asarray(e.var, np.float32),
+                       dq=np.asarray(e.dq, np.uint32), iscale=ratio * ratio,
+                       pixel_scale_ratio=ratio, weight_map=w, pixfrac=pixfrac, in_units="cps")
+    sci = np.asarray(driz.out_img, dtype=np.float32)
     var = np.asarray(driz.out_img2[0] if isinstance(driz.out_img2, list) else driz.out_img2,
-                     dtype=float)
+                     dtype=np.float32)
     covered = np.asarray(driz.out_wht) > 0
-    wht = np.where(covered & (var > 0), 1.0 / np.where(var > 0, var, 1.0), 0.0)
+    with np.errstate(divide="ignore"):
+        wht = np.where(covered & (var > 0), np.float32(1.0) / var, np.float32(0.0))
     ctx = np.asarray(driz.out_ctx)
     ctx = ctx.reshape((-1,) + mosaic_grid.shape).astype(np.uint32)
-    exp = np.zeros(mosaic_grid.shape)
+    exp = np.zeros(mosaic_grid.shape, np.float32)
     for i, e in enumerate(exposures):
-        exp += ((ctx[i // 32] >> np.uint32(i % 32)) & np.uint32(1)) * float(e.exptime)
+        exp += ((ctx[i // 32] >> np.uint32(i % 32)) & np.uint32(1)) * np.float32(e.exptime)
     dq = np.zeros(mosaic_grid.shape, np.int32) if driz.out_dq is None else \
         np.asarray(driz.out_dq).astype(np.int32)
     dq[~covered] |= DQ_NO_COVERAGE
