@@ -73,3 +73,330 @@ def test_match_is_deterministic_under_permutation():
     b = match_sky(ra, de, rd[p], dd[p], 0.5, 10.0, -5.0)
     assert_array_equal(a.truth_index, b.truth_index)
     assert_array_equal(p[b.det_index], a.det_index)
+
+
+# ------------------------------------------------------------------------------ intervals, fits
+def test_beta_interval_matches_astropy_flat_and_scipy_beta():
+    """Cameron 2011 (PASA 28, 128) intervals equal scipy.stats.beta quantiles of
+    Beta(k+1, n-k+1) and astropy binom_conf_interval(interval='flat')."""
+    k = np.array([0, 1, 5, 9, 10, 37])
+    n = np.array([10, 10, 10, 10, 10, 50])
+    lo, hi = metrics.beta_interval(k, n, 0.683)
+    assert_allclose(lo, stats.beta.ppf(0.1585, k + 1, n - k + 1), rtol=1e-12)
+    assert_allclose(hi, stats.beta.ppf(0.8415, k + 1, n - k + 1), rtol=1e-12)
+    ref = binom_conf_interval(k, n, confidence_level=0.683, interval="flat")
+    # astropy's 'flat' is the same posterior; agreement to its root-finding precision
+    assert_allclose(lo[(k > 0) & (k < n)], ref[0][(k > 0) & (k < n)], rtol=0, atol=2e-3)
+    assert_allclose(hi[(k > 0) & (k < n)], ref[1][(k > 0) & (k < n)], rtol=0, atol=2e-3)
+
+
+@pytest.mark.parametrize("model", ["logistic", "erf"])
+def test_completeness_fit_recovers_simulated_bernoulli_parameters(model):
+    """ML fit of simulated Bernoulli data (Fleming et al. 1995, AJ 109, 1044 forms) recovers
+    the input plateau, transition and width within 4 sigma of its own errors."""
+    rng = np.random.default_rng(11)
+    mag = rng.uniform(24, 31, 6000)
+    c0, mt, w = 0.95, 28.3, 0.35
+    u_ = (mag - mt) / w
+    p = c0 / (1 + np.exp(u_)) if model == "logistic" else 0.5 * c0 * \
+        stats.norm.sf(u_) * 2
+    det = rng.random(mag.size) < p
+    f = metrics.fit_completeness(mag, det, model)
+    err = np.sqrt(np.diag(f.cov))
+    assert abs(f.c0 - c0) < 4 * err[0]
+    assert abs(f.m_t - mt) < 4 * err[1]
+    assert abs(f.width - w) < 4 * err[2]
+    # 50% limit: solve C(m) = 0.5 of the input curve with scipy's root finder
+    from scipy.optimize import brentq
+    curve = (lambda m: c0 / (1 + np.exp((m - mt) / w)) - 0.5) if model == "logistic" else \
+        (lambda m: c0 * stats.norm.sf((m - mt) / w) - 0.5)
+    assert abs(f.m50 - brentq(curve, 24, 31)) < 4 * f.m50_err
+    assert 0 < f.m50_err < 0.1
+
+
+def test_completeness_fit_errors_scale_with_sample_size():
+    """Fit errors shrink roughly as 1/sqrt(N) (Fisher information of Bernoulli trials)."""
+    rng = np.random.default_rng(2)
+    errs = []
+    for n in (1000, 16000):
+        mag = rng.uniform(24, 31, n)
+        det = rng.random(n) < 1 / (1 + np.exp((mag - 28) / 0.3))
+        errs.append(metrics.fit_completeness(mag, det).m50_err)
+    assert_allclose(errs[0] / errs[1], 4.0, rtol=0.35)
+
+
+# ------------------------------------------------------------------------------ volumes
+def test_veff_of_perfect_detector_equals_astropy_comoving_volume():
+    """p = 1: V_eff = [V_c(z2) - V_c(z1)] x area / (4 pi sr) (Hogg 1999 eq. 29, astropy)."""
+    area = 3600.0 * 4  # 4 arcmin^2 in arcsec^2
+    z = np.linspace(6.0, 8.0, 801)
+    v = volume.effective_volume([-20.0, -18.0], z, lambda m, zz: np.ones_like(m), area)
+    c = default_cosmology()
+    sr = area * (np.pi / 180 / 3600) ** 2
+    ref = (c.comoving_volume(8.0) - c.comoving_volume(6.0)).value * sr / (4 * np.pi)
+    assert_allclose(v, ref, rtol=1e-5)
+
+
+def test_veff_behind_uniform_lens_shrinks_area_and_deepens():
+    """Uniform |mu| = 4 (Bouwens et al. 2015 sec. 3 / source-plane area = image area / mu):
+    a step detector at m < 28 behaves like area/4 with a limit 2.5 log10(4) mag deeper."""
+    z = np.linspace(5.0, 9.0, 401)
+    step = (lambda m, zz: (m < 28.0).astype(float))
+    deeper = (lambda m, zz: (m < 28.0 + 2.5 * np.log10(4.0)).astype(float))
+    M = np.array([-21.0, -19.0, -17.5])
+    v_lens = volume.effective_volume(M, z, step, magnification=np.full(100, 4.0),
+                                     pixel_area_arcsec2=1.0)
+    v_ref = volume.effective_volume(M, z, deeper, area_arcsec2=25.0)
+    assert_allclose(v_lens, v_ref, rtol=1e-9)
+
+
+def test_expected_number_matches_quad_of_schechter_and_astropy_volume():
+    """N(z > 7) for p = 1 equals the Schechter (1976, ApJ 203, 297) integral by scipy quad
+    times the astropy comoving volume."""
+    ms, ps, al = -20.9, 4.7e-4, -1.9
+    M = np.linspace(-23.0, -17.0, 2001)
+    z = np.linspace(6.0, 9.0, 601)
+    area = 3600.0
+    n = volume.expected_number(M, z, lambda m, zz: np.ones_like(m), ms, ps, al,
+                               area_arcsec2=area, z_min=7.0)
+    phi = (lambda x: 0.4 * np.log(10) * ps * 10 ** (-0.4 * (x - ms) * (al + 1))
+           * np.exp(-10 ** (-0.4 * (x - ms))))
+    dens = integrate.quad(phi, -23.0, -17.0)[0]
+    c = default_cosmology()
+    vol = (c.comoving_volume(9.0) - c.comoving_volume(7.0)).value * \
+        area * (np.pi / 180 / 3600) ** 2 / (4 * np.pi)
+    assert_allclose(n, dens * vol, rtol=1e-4)
+
+
+def test_poisson_probabilities_match_scipy():
+    """P(N <= n) and P(N >= n) equal scipy.stats.poisson cdf / sf."""
+    lam = np.array([0.5, 3.2, 12.0])
+    assert_allclose(volume.poisson_at_most(0, lam), np.exp(-lam), rtol=1e-12)
+    assert_allclose(volume.poisson_at_most(4, lam), stats.poisson.cdf(4, lam), rtol=1e-12)
+    assert_allclose(volume.poisson_at_least(4, lam), 1 - stats.poisson.cdf(3, lam), rtol=1e-10)
+
+
+# ------------------------------------------------------------------------------ a synthetic run
+ZP = 28.0
+BAND = "b17"
+
+
+def _make_run(path, seed=5):
+    """Small run directory: Gaussian galaxies, one bright star with four spikes, noise."""
+    rng = np.random.default_rng(seed)
+    g = Grid(nx=300, ny=300, scale=0.03, ra0=150.0, dec0=2.0)
+    n = 80
+    x = rng.uniform(15, 285, n)
+    y = rng.uniform(15, 285, n)
+    mag = rng.uniform(24.0, 31.0, n)
+    rh = rng.uniform(0.04, 0.15, n)
+    kind = np.array(["galaxy"] * n)
+    x[0], y[0], mag[0], rh[0], kind[0] = 150.0, 150.0, 19.5, 0.0, "star"
+    yy, xx = np.mgrid[0:300, 0:300]
+    img = np.zeros((300, 300))
+    segm = np.zeros((300, 300), np.int32)
+    best = np.zeros((300, 300))
+    psf_sig = 0.06 / 0.03 / 2.3548
+    noise = 0.002
+    for i in range(n):
+        # Gaussian: r_half = 1.1774 sigma; observed sigma^2 = intrinsic^2 + PSF^2
+        s2 = (rh[i] / 1.1774 / 0.03) ** 2 + psf_sig**2
+        f = 10 ** (-0.4 * (mag[i] - ZP))
+        prof = f / (2 * np.pi * s2) * np.exp(-((xx - x[i]) ** 2 + (yy - y[i]) ** 2) / (2 * s2))
+        img += prof
+        own = (prof > noise) & (prof > best)
+        segm[own] = i + 1
+        best = np.maximum(best, prof)
+    # spikes of the star along the x and y axes
+    f0 = 10 ** (-0.4 * (mag[0] - ZP))
+    for ax_ in (np.abs(yy - 150) < 1, np.abs(xx - 150) < 1):
+        r = np.hypot(xx - 150, yy - 150) + 3
+        img += np.where(ax_ & (r < 40), 0.02 * f0 / r**2, 0)
+    sci = img + rng.normal(0, noise, img.shape)
+    wht = np.full(img.shape, noise**-2)
+    dq = np.zeros(img.shape, np.int32)
+    dq[20:23, 250:253] = 4
+    sci[20:23, 250:253] += 1.0  # an artefact, flagged
+    hdr = g.wcs.to_header()
+    hdr["ZP_AB"], hdr["EXPTIME"], hdr["BUNIT"] = ZP, 1e4, "electron/s"
+    fits.HDUList([fits.PrimaryHDU(), fits.ImageHDU(sci.astype(np.float32), hdr, "SCI"),
+                  fits.ImageHDU(wht.astype(np.float32), hdr, "WHT"),
+                  fits.ImageHDU(dq, hdr, "DQ")]).writeto(path / f"mosaic_{BAND}.fits")
+    fits.HDUList([fits.PrimaryHDU(), fits.ImageHDU(img.astype(np.float32), hdr, "SCI"),
+                  fits.ImageHDU(segm, hdr, "SEGM")]).writeto(path / f"truth_image_{BAND}.fits")
+    py, px = np.mgrid[-40:41, -40:41]
+    # Gaussian core, r^-3 diffraction halo (Born & Wolf sec. 8.5 envelope), spikes on the axes
+    psf = np.exp(-(px**2 + py**2) / (2 * psf_sig**2)) + 1e-3 / (np.hypot(px, py) + 3) ** 3 + \
+        np.where((np.abs(px) < 1) | (np.abs(py) < 1), 1e-2 / (np.hypot(px, py) + 3) ** 2, 0)
+    ph = fits.ImageHDU(psf / psf.sum(), name="PSF_WIDE")
+    ph.header["PIXSCALE"], ph.header["FWHM"] = 0.03, 0.06
+    pd = fits.ImageHDU(psf / psf.sum(), name="PSF_DET")
+    pd.header["PIXSCALE"], pd.header["FWHM"] = 0.03, 0.06
+    fits.HDUList([fits.PrimaryHDU(), ph, pd]).writeto(path / f"psf_{BAND}.fits")
+    ra, dec = g.pixel_to_sky(x, y)
+    src = Table({"id": np.arange(1, n + 1), "kind": kind, "ra": ra, "dec": dec, "x": x, "y": y,
+                 "redshift": rng.uniform(1, 9, n), "abs_mag_uv": rng.uniform(-22, -16, n),
+                 f"mag_{BAND}": mag, "r_half": rh, "sersic_n": np.full(n, 0.5),
+                 "axis_ratio": np.ones(n), "position_angle": np.zeros(n),
+                 "magnification": np.ones(n), "n_images": np.ones(n, int)})
+    ims = Table({"image_id": np.arange(1, n + 1), "source_id": src["id"], "ra": ra, "dec": dec,
+                 "x": x, "y": y, "magnification": np.ones(n), f"mag_{BAND}": mag})
+    fits.HDUList([fits.PrimaryHDU(), fits.table_to_hdu(src), fits.table_to_hdu(ims)]) \
+        .writeto(path / "truth.fits")
+    with fits.open(path / "truth.fits", mode="update") as hl:
+        hl[1].name, hl[2].name = "SOURCES", "IMAGES"
+    return g, sci, wht, src
+
+
+@pytest.fixture(scope="module")
+def run_dir(tmp_path_factory):
+    """A synthetic run directory and a detection catalogue from the baseline detector."""
+    from simfield.config import DetectionConfig
+    from simfield.detect import detect_sources
+
+    path = tmp_path_factory.mktemp("run")
+    g, sci, wht, src = _make_run(path)
+    d = detect_sources(sci, wht, g.wcs, DetectionConfig(), 0.06, ZP, 0.03)
+    cat = d.catalog
+    # a fake detection far from any source: must be classified as noise
+    extra = Table({"ra": [g.pixel_to_sky(5.0, 290.0)[0]], "dec": [g.pixel_to_sky(5.0, 290.0)[1]],
+                   "mag": [29.5]})
+    t = Table({"ra": np.concatenate([cat["ra"], extra["ra"]]),
+               "dec": np.concatenate([cat["dec"], extra["dec"]]),
+               "mag": np.concatenate([cat["mag"], extra["mag"]])})
+    t = t[np.isfinite(t["mag"])]
+    t.write(path / "cat.ecsv", format="ascii.ecsv")
+    return path, g
+
+
+def test_score_run_writes_tables_summary_and_report(run_dir):
+    """A full scoring writes every table, a JSON summary and a self-contained HTML report;
+    bright galaxies are recovered and the isolated fake detection is a noise peak."""
+    path, g = run_dir
+    out = path / "score_a"
+    s = score_run(path, path / "cat.ecsv", BAND, ScoreConfig(mag_min=22, mag_max=32), out)
+    for name in ("completeness_mag", "purity_mag", "false_detections", "photometry",
+                 "completeness_mag_size", "effective_volume", "summary"):
+        assert (out / (name + (".json" if name == "summary" else ".ecsv"))).is_file()
+    js = json.loads((out / "summary.json").read_text())
+    assert js["n_detections"] == s["n_detections"]
+    cm = Table.read(out / "completeness_mag.ecsv")
+    bright = (cm["mag_hi"] <= 26) & (cm["n"] > 0)
+    # crowded fixture (80 sources in 9 arcsec): allow a few blended losses
+    assert np.sum(cm["k"][bright]) >= 0.9 * np.sum(cm["n"][bright])
+    assert s["m50"] > 26.5
+    ft = Table.read(out / "false_detections.ecsv")
+    x, y = g.sky_to_pixel(ft["ra"], ft["dec"])
+    far = np.hypot(x - 5, y - 290) < 1
+    assert list(ft["cause"][far]) == ["noise"]
+    page = (out / "report.html").read_text()
+    assert page.count("data:image/png;base64,") >= 5 and "<img src=\"http" not in page
+
+
+def test_spike_angles_are_measured_on_the_psf(run_dir):
+    """The synthetic PSF's spikes along the pixel axes are found at 0, 90, 180, 270 deg."""
+    path, _ = run_dir
+    psf = fits.getdata(path / f"psf_{BAND}.fits", "PSF_WIDE")
+    ang = metrics.measure_spike_angles(psf)
+    d = np.abs((ang[:, None] - np.array([0, 90, 180, 270])[None, :] + 180) % 360 - 180)
+    assert ang.size >= 4 and d.min(axis=1).max() <= 2.0
+
+
+def test_false_detection_causes_follow_their_rules():
+    """Artefact (DQ), spike (along a spike of a bright star), shred (inside the footprint of a
+    recovered source), blend (two truth images close), noise (nothing near)."""
+    segm = np.zeros((100, 100), int)
+    segm[40:60, 40:60] = 2
+    dq = np.zeros((100, 100), int)
+    dq[5, 5] = 1
+    det_x = np.array([5.0, 20.0 + 150, 55.0, 80.0, 95.0, 50.0])
+    det_y = np.array([5.0, 10.0, 55.0, 80.0, 95.0, 50.0])
+    det_truth = np.array([-1, -1, -1, -1, -1, 1])
+    img_x = np.array([10.0 + 150, 50.0, 80.0, 81.0])
+    img_y = np.array([10.0, 50.0, 80.5, 79.5])
+    cause = metrics.classify_false_detections(
+        det_x, det_y, det_truth, img_x, img_y, [1, 2, 3, 4], [17.0, 25.0, 27.0, 27.0],
+        [True, False, False, False], {1: True, 2: True, 3: False, 4: False}, 0.03,
+        truth_segm=np.pad(segm, ((0, 0), (0, 200))), dq=np.pad(dq, ((0, 0), (0, 200))),
+        spike_angles_deg=[0, 90, 180, 270])
+    assert list(cause) == ["artefact", "spike", "shred", "blend", "noise", ""]
+
+
+# ------------------------------------------------------------------------------ bad catalogues
+def _write(path, t, name):
+    p = path / name
+    t.write(p, overwrite=True, format="ascii.csv" if name.endswith(".csv") else None)
+    return p
+
+
+@pytest.mark.parametrize("case, columns, match", [
+    ("missing", {"mag": "MAG_AUTO"}, r"lacks column\(s\) mag='MAG_AUTO'; available: ra, dec"),
+    ("nan", {}, r"1 row\(s\) with NaN/inf values \(mag: 1\)"),
+    ("dec_range", {}, r"outside \[-90, 90\]"),
+    ("ra_range", {}, r"outside \[0, 360\)"),
+    ("flux_as_mag", {}, r"outside the plausible AB range"),
+    ("outside", {}, r"1 position\(s\) .* fall outside the mosaic"),
+    ("empty", {}, r"is empty"),
+    ("flux_unit", {"flux": "mag", "flux_unit": "nJy"}, r"median AB magnitude"),
+    ("text", {}, r"is not numeric"),
+])
+def test_load_catalog_refuses_each_bad_input(tmp_path, case, columns, match):
+    """Each kind of bad catalogue is refused with its own message."""
+    g = Grid(nx=100, ny=100, scale=0.03, ra0=150.0, dec0=2.0)
+    ra, dec = g.pixel_to_sky(np.array([10.0, 50.0, 90.0]), np.array([10.0, 50.0, 90.0]))
+    t = Table({"ra": ra, "dec": dec, "mag": [25.0, 26.0, 27.0]})
+    if case == "nan":
+        t["mag"][1] = np.nan
+    elif case == "dec_range":
+        t["dec"] = t["dec"] * 100
+    elif case == "ra_range":
+        t["ra"] = t["ra"] + 360
+    elif case == "flux_as_mag":
+        t["mag"] = [120.0, 300.0, 80.0]
+    elif case == "outside":
+        t["ra"][2] += 1.0 / 60
+    elif case == "empty":
+        t = t[:0]
+    elif case == "flux_unit":
+        t["mag"] = [1e-30, 2e-30, 3e-30]  # cgs flux densities labelled as nJy
+    elif case == "text":
+        t["mag"] = ["a", "b", "c"]
+    p = _write(tmp_path, t, "c.csv" if case != "empty" else "c.ecsv")
+    with pytest.raises(CatalogError, match=match):
+        load_catalog(p, columns, zeropoint=ZP, field=(g.wcs, (100, 100)))
+
+
+def test_load_catalog_skips_invalid_rows_on_request(tmp_path):
+    """With skip_invalid, NaN rows and positions off the mosaic are dropped and counted."""
+    g = Grid(nx=100, ny=100, scale=0.03, ra0=150.0, dec0=2.0)
+    ra, dec = g.pixel_to_sky(np.array([10.0, 50.0, 90.0]), np.array([10.0, 50.0, 90.0]))
+    t = Table({"RA": ra, "DEC": dec, "FLUX": [100.0, np.nan, 30.0]})
+    t["RA"][2] += 1.0 / 60
+    p = _write(tmp_path, t, "c.fits")
+    res = load_catalog(p, {"ra": "RA", "dec": "DEC", "flux": "FLUX", "flux_unit": "nJy"},
+                       skip_invalid=True, field=(g.wcs, (100, 100)))
+    assert len(res) == 1 and res.meta["n_skipped"] == 2
+    # AB: m = 31.4 - 2.5 log10(f / nJy) (Oke & Gunn 1983, ApJ 266, 713)
+    assert_allclose(res["mag"], 31.4 - 2.5 * np.log10(100.0), rtol=0, atol=1e-9)
+
+
+def test_cli_error_is_one_line_exit_2_and_writes_nothing(run_dir, tmp_path, capsys):
+    """A bad column gives one 'simfield-score: error:' line, status 2, no output directory."""
+    path, _ = run_dir
+    out = tmp_path / "o"
+    rc = score_main_args([str(path), "--catalog", str(path / "cat.ecsv"), "--band", BAND,
+                          "--mag-col", "nope", "--out", str(out)])
+    err = capsys.readouterr().err.strip().splitlines()
+    assert rc == 2 and len(err) == 1 and err[0].startswith("simfield-score: error: ")
+    assert "available: ra, dec, mag" in err[0] and not out.exists()
+    rc = score_main_args([str(path), "--bogus"])
+    assert rc == 2 and capsys.readouterr().err.startswith("simfield-score: error: ")
+
+
+def test_cli_scores_a_catalogue(run_dir, tmp_path):
+    """The command-line scorer runs end to end and writes summary.json."""
+    path, _ = run_dir
+    out = tmp_path / "o"
+    rc = score_main_args([str(path), "--catalog", str(path / "cat.ecsv"), "--band", BAND,
+                          "--radius", "0.1", "--out", str(out), "--no-report"])
+    assert rc == 0 and json.loads((out / "summary.json").read_text())["match_radius_arcsec"] == 0.1

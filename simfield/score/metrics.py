@@ -247,6 +247,10 @@ class CompletenessFit:
                 "m90_err": self.m90_err, "n": self.n}
 
 
+# plateau c0 = expit(12) = 1 - 6e-6: closer to 1 counts as "at the boundary"
+_LOGIT_PLATEAU_MAX = 12.0
+
+
 def _unpack(theta):
     # c0 in (0, 1) through a logistic, width > 0 through a log
     return special.expit(theta[0]), theta[1], np.exp(theta[2])
@@ -309,13 +313,26 @@ def fit_completeness(mag, detected, model: str = "logistic") -> CompletenessFit:
                 best = r
     r = optimize.minimize(nll, best.x, method="BFGS")
     theta = r.x if r.fun <= best.fun else best.x
+    h = np.array([1e-3, 1e-3 * max(np.exp(theta[2]), 0.05), 1e-3])
+    # a plateau at the boundary (c0 -> 1) has no curvature: fix it there, and give the other
+    # two parameters their conditional errors
+    free = np.arange(3)
+    if theta[0] > _LOGIT_PLATEAU_MAX:
+        theta[0] = _LOGIT_PLATEAU_MAX
+        free = np.arange(1, 3)
     c0, m_t, width = _unpack(theta)
-    h = np.array([1e-3, 1e-3 * max(width, 0.05), 1e-3])
-    hess = _hessian(nll, theta, h)
+    cov_t = np.zeros((3, 3))
+    sub = free[:, None], free[None, :]
+
+    def nll_free(x):
+        th = theta.copy()
+        th[free] = x
+        return nll(th)
+
     try:
-        cov_t = np.linalg.inv(hess)
+        cov_t[sub] = np.linalg.inv(_hessian(nll_free, theta[free], h[free]))
     except np.linalg.LinAlgError:
-        cov_t = np.full((3, 3), np.nan)
+        cov_t[sub] = np.nan
 
     # Jacobian of (c0, m_t, width) and of the limits with respect to theta
     jac = np.diag([c0 * (1 - c0), 1.0, width])
@@ -324,8 +341,8 @@ def fit_completeness(mag, detected, model: str = "logistic") -> CompletenessFit:
     for p in (0.5, 0.9):
         val = _limit(model, c0, m_t, width, p)
         if np.isfinite(val):
-            g = np.empty(3)
-            for i in range(3):
+            g = np.zeros(3)
+            for i in free:
                 d = np.zeros(3)
                 d[i] = h[i]
                 g[i] = (_limit(model, *_unpack(theta + d), p)

@@ -43,6 +43,13 @@ def _stretch(img, lo, hi):
     return np.clip(np.arcsinh(10 * x) / np.arcsinh(10), 0, 1)
 
 
+def _plot_fraction(ax, x, t, ok, colour, label):
+    # the Beta interval need not contain k/n (e.g. k = n), so draw it as a bar, not as errors
+    ax.vlines(x, np.asarray(t["fraction_lo"])[ok], np.asarray(t["fraction_hi"])[ok],
+              color=colour, lw=1.2, alpha=0.6)
+    ax.plot(x, np.asarray(t["fraction"])[ok], "o", ms=3, color=colour, label=label)
+
+
 def _band_order(run_dir: Path) -> list[str]:
     names = sorted(p.name[len("mosaic_"):-len(".fits")] for p in run_dir.glob("mosaic_*.fits"))
     bpath = run_dir / "bands.ecsv"
@@ -150,10 +157,7 @@ def make_report(out_dir, truth: dict, det, tables: dict, fits_: dict, summary: d
                         (pm, "purity (measured mag)", "tab:red")):
         ok = np.asarray(t["n"]) > 0
         x = np.asarray(t["mag_mid"])[ok]
-        ax.errorbar(x, np.asarray(t["fraction"])[ok],
-                    yerr=[np.asarray(t["fraction"])[ok] - np.asarray(t["fraction_lo"])[ok],
-                          np.asarray(t["fraction_hi"])[ok] - np.asarray(t["fraction"])[ok]],
-                    fmt="o", ms=3, color=col, label=lab, capsize=2)
+        _plot_fraction(ax, x, t, ok, col, lab)
     mm = np.linspace(float(cm["mag_lo"][0]), float(cm["mag_hi"][-1]), 300)
     for model, ls in (("logistic", "-"), ("erf", "--")):
         f = fits_.get(model)
@@ -179,10 +183,7 @@ def make_report(out_dir, truth: dict, det, tables: dict, fits_: dict, summary: d
         ok = np.asarray(t["n"]) > 0
         lo, hi = np.asarray(t[f"{col}_lo"])[ok], np.asarray(t[f"{col}_hi"])[ok]
         x = np.sqrt(np.clip(lo, 1e-3, None) * hi) if logx else 0.5 * (lo + hi)
-        fr = np.asarray(t["fraction"])[ok]
-        ax.errorbar(x, fr, yerr=[fr - np.asarray(t["fraction_lo"])[ok],
-                                 np.asarray(t["fraction_hi"])[ok] - fr], fmt="o", ms=3,
-                    capsize=2)
+        _plot_fraction(ax, x, t, ok, "k", None)
         if logx:
             ax.set_xscale("log")
         ax.set_xlabel(lab)
