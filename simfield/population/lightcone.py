@@ -17,10 +17,11 @@ from typing import Sequence
 
 import numpy as np
 from astropy.table import Column, Table
+from scipy.interpolate import CubicSpline
 
 from ..bands import Band
 from ..config import PopulationConfig
-from ..cosmo import default_cosmology, distance_modulus
+from ..cosmo import angular_diameter_distance, default_cosmology
 from ..errors import ConfigError, require
 from .luminosity import draw_redshift_magnitude, uv_lf_parameters
 from .morphology import Morphology, draw_morphology
@@ -38,7 +39,7 @@ COLUMN_UNITS = {
 }
 _CHUNK = 4096  # galaxies per spectrum batch (4096 x ~400 wavelengths ~ 13 MB)
 _MARGIN_MAG = 0.05  # safety margin of the pre-selection envelope (mag)
-_ENVELOPE_BETAS = np.linspace(-3.2, 0.5, 38)
+_ENVELOPE_BETAS = np.linspace(-3.2, 0.5, 16)
 
 
 def selection_band_index(pop: PopulationConfig, bands: Sequence[Band]) -> int:
@@ -51,24 +52,46 @@ def selection_band_index(pop: PopulationConfig, bands: Sequence[Band]) -> int:
     return int(np.argmax([b.pivot_nm for b in bands]))
 
 
-class _Photometry:
-    """Wavelength grid and band weights shared by every spectrum of one call."""
+class _Distances:
+    """Angular-diameter distance and distance modulus by a cubic spline of ln D_A in ln(1+z),
+    tabulated once per call from the astropy cosmology (300 nodes: < 1e-5 mag)."""
 
-    def __init__(self, bands, sel, cosmo):
+    def __init__(self, z_lo, z_hi, cosmo):
+        u = np.linspace(np.log1p(0.9 * z_lo), np.log1p(1.01 * z_hi), 300)
+        self._spline = CubicSpline(u, np.log(angular_diameter_distance(np.expm1(u), cosmo)))
+
+    def d_a(self, z):
+        """D_A (Mpc)."""
+        return np.exp(self._spline(np.log1p(z)))
+
+    def dm(self, z):
+        """DM = 5 log10(D_A (1+z)^2 / 10 pc) (mag)."""
+        return 5.0 * np.log10(self.d_a(z) * (1.0 + z) ** 2) + 25.0
+
+
+class _Photometry:
+    """Wavelength grid, band weights and distances shared by every spectrum of one call."""
+
+    def __init__(self, bands, sel, dist):
         self.wave = wave_grid(bands)
         self.weights = band_weight_matrix(self.wave, bands)
         self.sel = sel
-        self.cosmo = cosmo
+        self.dist = dist
+        used = self.weights[:, sel] > 0
+        self.sel_wave = self.wave[used]
+        self.sel_weights = self.weights[used][:, [sel]]
 
-    def mags(self, z, m_uv, beta, brk, beta_opt, columns=None):
-        """Band magnitudes (n, n_band), computed in batches."""
-        w = self.weights if columns is None else self.weights[:, columns]
+    def mags(self, z, m_uv, beta, brk, beta_opt, selection_only=False):
+        """Band magnitudes (n, n_band), or (n, 1) in the selection band only; in batches."""
+        wave, w = (self.sel_wave, self.sel_weights) if selection_only else \
+            (self.wave, self.weights)
         out = np.empty((len(z), w.shape[1]))
+        dm = self.dist.dm(z)
         for s in range(0, len(z), _CHUNK):
             sl = slice(s, s + _CHUNK)
-            f = galaxy_fnu(self.wave, z[sl], m_uv[sl], beta[sl], brk[sl], beta_opt[sl],
-                           cosmo=self.cosmo)
-            out[sl] = band_magnitudes(self.wave, f, [], weights=w)
+            f = galaxy_fnu(wave, z[sl], m_uv[sl], beta[sl], brk[sl], beta_opt[sl],
+                           dist_mod=dm[sl])
+            out[sl] = band_magnitudes(wave, f, [], weights=w)
         return out
 
 
@@ -76,21 +99,21 @@ class _Envelope:
     """Faintest colour (m_sel - m_1500) each template can have, on a redshift grid."""
 
     def __init__(self, phot: _Photometry, z_min, z_max, mag_limit):
-        self.z = np.linspace(z_min, z_max, max(60, int(np.ceil((z_max - z_min) / 0.04)) + 1))
+        self.z = np.linspace(z_min, z_max, max(60, int(np.ceil((z_max - z_min) / 0.05)) + 1))
         self.mag_limit = mag_limit
         nz, nb = self.z.size, _ENVELOPE_BETAS.size
-        m_flat = distance_modulus(self.z, phot.cosmo) - 2.5 * np.log10(1.0 + self.z)
+        m_flat = phot.dist.dm(self.z) - 2.5 * np.log10(1.0 + self.z)
         # star-forming: every beta of the grid with beta_opt and break at their +4 sigma values
         zz = np.repeat(self.z, nb)
         bb = np.tile(_ENVELOPE_BETAS, nz)
         bo = np.clip(bb + 0.8, -2.2, 0.5) + 0.15 * 4.0
         br = np.full(zz.size, 10.0 ** (np.log10(1.25) + 0.08 * 4.0))
-        k_sf = phot.mags(zz, np.zeros(zz.size), bb, br, bo, [phot.sel])[:, 0].reshape(nz, nb)
+        k_sf = phot.mags(zz, np.zeros(zz.size), bb, br, bo, True)[:, 0].reshape(nz, nb)
         k_sf -= m_flat[:, None]
         # redder-or-equal betas could all occur: running minimum along beta
         self.k_sf = np.minimum.accumulate(k_sf, axis=1)
         ones = np.ones(nz)
-        k_ev = phot.mags(self.z, 0 * ones, 2.0 * ones, 2.6 * ones, 0.1 * ones, [phot.sel])[:, 0]
+        k_ev = phot.mags(self.z, 0 * ones, 2.0 * ones, 2.6 * ones, 0.1 * ones, True)[:, 0]
         self.k_ev = k_ev - m_flat
         self.m_flat = m_flat
 
@@ -142,9 +165,11 @@ def _galaxies_from_lf(pop, phot, area, rng, cosmo):
     p_ev = np.divide(p * ok_ev, w, out=np.zeros_like(w), where=w > 0)
     evolved = rng.random(z.size) < p_ev
     sed = sed_parameters_from_deviates(z, m, evolved, rng.standard_normal((3, z.size)))
-    mags = phot.mags(z, m, sed.beta, sed.break_strength, sed.beta_opt)
-    keep = (w > 0) & (mags[:, phot.sel] < pop.mag_limit)
-    return z[keep], m[keep], evolved[keep], sed, keep, mags[keep], draw.expected
+    m_sel = phot.mags(z, m, sed.beta, sed.break_strength, sed.beta_opt, True)[:, 0]
+    keep = (w > 0) & (m_sel < pop.mag_limit)
+    z, m = z[keep], m[keep]
+    mags = phot.mags(z, m, sed.beta[keep], sed.break_strength[keep], sed.beta_opt[keep])
+    return z, m, evolved[keep], sed, keep, mags, draw.expected
 
 
 def _galaxies_uniform(pop, phot, area, rng, cosmo, bands):
@@ -161,15 +186,14 @@ def _galaxies_uniform(pop, phot, area, rng, cosmo, bands):
     n = int(rng.poisson(expected))
     mag = pop.uniform_mag_min + (pop.uniform_mag_max - pop.uniform_mag_min) * rng.random(n)
     z = pop.z_min + (pop.z_max - pop.z_min) * rng.random(n)
-    m_flat = distance_modulus(z, cosmo) - 2.5 * np.log10(1.0 + z)
-    m = mag - m_flat
+    m = mag - phot.dist.dm(z) + 2.5 * np.log10(1.0 + z)
     evolved = rng.random(n) < evolved_probability(z, m, uv_lf_parameters(z).m_star)
     dev = rng.standard_normal((3, n))
     # M_UV such that the selection-band magnitude is the drawn one; beta depends weakly on M_UV
     # (d beta / d M ~ -0.2), so a few fixed-point steps converge to < 1e-4 mag
     for _ in range(4):
         sed = sed_parameters_from_deviates(z, m, evolved, dev)
-        m_sel = phot.mags(z, m, sed.beta, sed.break_strength, sed.beta_opt, [phot.sel])[:, 0]
+        m_sel = phot.mags(z, m, sed.beta, sed.break_strength, sed.beta_opt, True)[:, 0]
         m = m + (mag - m_sel)
     sed = sed_parameters_from_deviates(z, m, evolved, dev)
     mags = phot.mags(z, m, sed.beta, sed.break_strength, sed.beta_opt)
@@ -208,7 +232,7 @@ def make_population(pop: PopulationConfig, bands: list[Band], field_xi_arcsec: t
     sel = selection_band_index(pop, bands)
     (x0, x1), (y0, y1) = field_xi_arcsec, field_eta_arcsec
     area = (x1 - x0) * (y1 - y0)
-    phot = _Photometry(bands, sel, cosmo)
+    phot = _Photometry(bands, sel, _Distances(pop.z_min, pop.z_max, cosmo))
     if pop.mode == "uniform":
         z, m, evolved, sed, keep, mags, expected = _galaxies_uniform(pop, phot, area, rng, cosmo,
                                                                      bands)
@@ -217,7 +241,8 @@ def make_population(pop: PopulationConfig, bands: list[Band], field_xi_arcsec: t
     ng = z.size
     shape = rest_fnu_shape(550.0, sed.beta[keep], sed.break_strength[keep], sed.beta_opt[keep])
     morph: Morphology = draw_morphology(z, m, evolved, rng, clumpy=pop.clumpy,
-                                        abs_mag_opt=m - 2.5 * np.log10(shape), cosmo=cosmo)
+                                        abs_mag_opt=m - 2.5 * np.log10(shape),
+                                        d_a_mpc=phot.dist.d_a(z))
     stars = draw_stars(pop.star_density_arcmin2, pop.star_mag_min, pop.star_mag_max, area, rng,
                        slope_dex=pop.star_count_slope)
     ns = stars.mag.size

@@ -144,22 +144,28 @@ def upper_incomplete_gamma(s, x):
     x : float or array_like
         Second argument (> 0).
     """
-    s, x = np.broadcast_arrays(np.asarray(s, dtype=float), np.asarray(x, dtype=float))
-    n_steps = np.where(s < 0, np.ceil(-s), 0.0).astype(int)
+    # functions of s alone are evaluated on s's own shape, before broadcasting against x
+    s = np.asarray(s, dtype=float)
+    x = np.asarray(x, dtype=float)
+    n_steps = np.where(s < 0, np.ceil(-s), 0.0)
     base = s + n_steps  # in [0, 1)
     near0 = np.abs(base) < 1e-8
     safe = np.where(near0, 1.0, base)
-    out = np.where(near0, special.exp1(x), special.gamma(safe) * special.gammaincc(safe, x))
-    # walk down from base to s: Gamma(a-1, x) = (Gamma(a, x) - x^(a-1) e^-x) / (a-1)
-    a = base.copy()
-    for _ in range(int(n_steps.max()) if n_steps.size else 0):
-        step = n_steps > 0
-        am1 = a - 1.0
-        with np.errstate(divide="ignore", invalid="ignore"):
-            new = (out - x**am1 * np.exp(-x)) / am1
-        out = np.where(step, new, out)
-        a = np.where(step, am1, a)
-        n_steps = n_steps - step
+    out = special.gamma(safe) * special.gammaincc(safe, x)
+    if np.any(near0):
+        out = np.where(near0, special.exp1(x), out)
+    n_max = int(n_steps.max()) if n_steps.size else 0
+    if n_max:
+        ln_x, e_x = np.log(x), np.exp(-x)
+        # walk down from base to s: Gamma(a-1, x) = (Gamma(a, x) - x^(a-1) e^-x) / (a-1)
+        a = base
+        for _ in range(n_max):
+            step = n_steps > 0
+            am1 = np.where(step, a - 1.0, a)
+            new = (out - np.exp(am1 * ln_x) * e_x) / np.where(step, am1, 1.0)
+            out = np.where(step, new, out)
+            a = am1
+            n_steps = n_steps - step
     return out
 
 
@@ -215,7 +221,8 @@ class LightConeDraw:
 
 
 def _grid(z_min, z_max, abs_mag_faint, area_arcsec2, mag_cut, cosmo, nz, dmag, weight=None):
-    z_edges = np.linspace(z_min, z_max, nz + 1)
+    # cells uniform in ln(1 + z): narrow at low z where dV/dz changes fastest
+    z_edges = np.expm1(np.linspace(np.log1p(z_min), np.log1p(z_max), nz + 1))
     z_mid = 0.5 * (z_edges[1:] + z_edges[:-1])
     p = uv_lf_parameters(z_mid)
     m_faint = np.full(nz, float(abs_mag_faint))
@@ -241,8 +248,8 @@ def _grid(z_min, z_max, abs_mag_faint, area_arcsec2, mag_cut, cosmo, nz, dmag, w
 
 
 def expected_counts(z_min: float, z_max: float, abs_mag_faint: float, area_arcsec2: float,
-                    mag_cut: Optional[Callable] = None, cosmo=None, nz: int = 400,
-                    dmag: float = 0.02, weight: Optional[Callable] = None) -> float:
+                    mag_cut: Optional[Callable] = None, cosmo=None, nz: int = 300,
+                    dmag: float = 0.04, weight: Optional[Callable] = None) -> float:
     """Expected number of galaxies, int dz dV/dz/dOmega Omega int dM phi(M, z).
 
     Parameters
@@ -257,7 +264,7 @@ def expected_counts(z_min: float, z_max: float, abs_mag_faint: float, area_arcse
         ``mag_cut(z) -> M`` (AB mag): also no galaxy fainter than this at z.
     cosmo : astropy cosmology, optional
     nz : int
-        Redshift cells (midpoint rule in z, analytic in M).
+        Redshift cells, uniform in ln(1 + z) (midpoint rule in z, analytic in M).
     dmag : float (mag)
         Spacing of the magnitude nodes.
     weight : callable, optional
@@ -271,8 +278,8 @@ def expected_counts(z_min: float, z_max: float, abs_mag_faint: float, area_arcse
 
 def draw_redshift_magnitude(z_min: float, z_max: float, abs_mag_faint: float,
                             area_arcsec2: float, rng: np.random.Generator,
-                            mag_cut: Optional[Callable] = None, cosmo=None, nz: int = 400,
-                            dmag: float = 0.02, weight: Optional[Callable] = None,
+                            mag_cut: Optional[Callable] = None, cosmo=None, nz: int = 300,
+                            dmag: float = 0.04, weight: Optional[Callable] = None,
                             max_expected: float = np.inf) -> LightConeDraw:
     """Draw (z, M_UV) of the galaxies of a light cone.
 
@@ -295,7 +302,7 @@ def draw_redshift_magnitude(z_min: float, z_max: float, abs_mag_faint: float,
         whose apparent magnitude could pass a limit).
     cosmo : astropy cosmology, optional
     nz : int
-        Redshift cells.
+        Redshift cells, uniform in ln(1 + z).
     dmag : float (mag)
         Spacing of the magnitude nodes.
     weight : callable, optional

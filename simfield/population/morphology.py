@@ -111,7 +111,7 @@ def half_light_radius_kpc(z, abs_mag_uv, evolved, abs_mag_opt=None):
 
 
 def draw_morphology(z, abs_mag_uv, evolved, rng: np.random.Generator, clumpy: bool = True,
-                    abs_mag_opt=None, cosmo=None) -> Morphology:
+                    abs_mag_opt=None, cosmo=None, d_a_mpc=None) -> Morphology:
     """Draw shapes for galaxies.
 
     Parameters
@@ -125,6 +125,8 @@ def draw_morphology(z, abs_mag_uv, evolved, rng: np.random.Generator, clumpy: bo
     abs_mag_opt : array_like (AB mag), optional
         Rest-550 nm absolute magnitude, for the evolved size relation.
     cosmo : astropy cosmology, optional
+    d_a_mpc : array_like (Mpc), optional
+        Angular-diameter distances if already known (else computed with ``cosmo``).
     """
     z = np.atleast_1d(np.asarray(z, dtype=float))
     evolved = np.atleast_1d(np.asarray(evolved, dtype=bool))
@@ -133,7 +135,8 @@ def draw_morphology(z, abs_mag_uv, evolved, rng: np.random.Generator, clumpy: bo
     u = rng.random((4, n))
     r_kpc = half_light_radius_kpc(z, abs_mag_uv, evolved, abs_mag_opt) \
         * np.exp(np.where(evolved, 0.45, 0.6) * g[0])
-    d_a_kpc = angular_diameter_distance(z, cosmo) * 1e3
+    d_a = angular_diameter_distance(z, cosmo) if d_a_mpc is None else np.asarray(d_a_mpc)
+    d_a_kpc = d_a * 1e3
     r_arcsec = r_kpc / d_a_kpc * _RAD_TO_ARCSEC
     q = np.where(evolved, np.clip(0.75 + 0.15 * g[2], 0.3, 1.0),
                  np.clip(0.55 + 0.2 * g[2], 0.15, 1.0))

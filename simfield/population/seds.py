@@ -92,6 +92,12 @@ def igm_transmission(wave_obs_nm, z):
     ndarray (dimensionless)
         Transmission in [0, 1].
     """
+    return np.exp(-_igm_tau(wave_obs_nm, z))
+
+
+def _igm_tau(wave_obs_nm, z):
+    """Optical depth of :func:`igm_transmission`. Powers of lambda and of (1 + z) are taken on
+    their own 1-D arrays; only sums and products are done on the (n_gal, n_wave) grid."""
     lam = np.asarray(wave_obs_nm, dtype=float)
     zz = np.asarray(z, dtype=float)
     if zz.ndim == 1 and lam.ndim == 1:
@@ -103,11 +109,12 @@ def igm_transmission(wave_obs_nm, z):
         inside = (lam > lam_j) & (lam < lam_j * opz)
         tau += np.where(inside, a_j * (lam / lam_j) ** 3.46, 0.0)
     xc = np.maximum(lam / LYMAN_LIMIT_NM, 1.0)
-    xe = np.broadcast_to(opz, tau.shape)
-    tau_c = (0.25 * xc**3 * (xe**0.46 - xc**0.46) + 9.4 * xc**1.5 * (xe**0.18 - xc**0.18)
-             - 0.7 * xc**3 * (xc**-1.32 - xe**-1.32) - 0.023 * (xe**1.68 - xc**1.68))
+    xc3, xc15 = xc**3, xc**1.5
+    tau_c = (0.25 * xc3 * opz**0.46 - 0.25 * xc**3.46 + 9.4 * xc15 * opz**0.18
+             - 9.4 * xc**1.68 - 0.7 * xc**1.68 + 0.7 * xc3 * opz**-1.32
+             - 0.023 * opz**1.68 + 0.023 * xc**1.68)
     tau += np.where(lam < LYMAN_LIMIT_NM * opz, np.maximum(tau_c, 0.0), 0.0)
-    return np.exp(-tau)
+    return tau
 
 
 def rest_fnu_shape(wave_rest_nm, beta, break_strength, beta_opt, lyc_escape=0.0):
@@ -126,7 +133,12 @@ def rest_fnu_shape(wave_rest_nm, beta, break_strength, beta_opt, lyc_escape=0.0)
     lyc_escape : float or array_like
         Fraction of the continuum kept below 91.18 nm.
     """
-    lnl = np.log(np.asarray(wave_rest_nm, dtype=float))
+    return np.exp(_ln_rest_fnu_shape(np.log(np.asarray(wave_rest_nm, dtype=float)), beta,
+                                     break_strength, beta_opt, lyc_escape))
+
+
+def _ln_rest_fnu_shape(lnl, beta, break_strength, beta_opt, lyc_escape):
+    """ln of :func:`rest_fnu_shape` at ln(rest wavelength / nm) ``lnl``."""
     beta = np.asarray(beta, dtype=float)
     beta_opt = np.asarray(beta_opt, dtype=float)
     ln_ref, ln_b, ln_k = np.log(_UV_REF_NM), np.log(_BREAK_NM), np.log(_NIR_KNEE_NM)
@@ -134,16 +146,17 @@ def rest_fnu_shape(wave_rest_nm, beta, break_strength, beta_opt, lyc_escape=0.0)
     u = np.minimum(lnl, ln_b) - ln_ref
     o = np.clip(lnl, ln_b, ln_k) - ln_b
     r = np.maximum(lnl, ln_k) - ln_k
-    ln_flam = beta * u + beta_opt * o + _NIR_SLOPE * r
     step = 1.0 / (1.0 + np.exp(-(lnl - ln_b) / _BREAK_WIDTH))
-    step0 = 1.0 / (1.0 + np.exp(-(ln_ref - ln_b) / _BREAK_WIDTH))  # ~1e-40 at 150 nm
-    ln_fnu = ln_flam + 2.0 * (lnl - ln_ref) + np.log(break_strength) * (step - step0)
-    out = np.exp(ln_fnu)
-    return np.where(lnl < np.log(LYMAN_LIMIT_NM), out * lyc_escape, out)
+    # 2 (lnl - ln_ref): f_nu = f_lambda lambda^2 / c; the step is ~1e-40 at 150 nm
+    ln_fnu = (beta + 2.0) * u + (beta_opt + 2.0) * o + (_NIR_SLOPE + 2.0) * r \
+        + np.log(np.asarray(break_strength, dtype=float)) * step
+    with np.errstate(divide="ignore"):
+        ln_lyc = np.log(lyc_escape)
+    return np.where(lnl < np.log(LYMAN_LIMIT_NM), ln_fnu + ln_lyc, ln_fnu)
 
 
 def galaxy_fnu(wave_nm, z, abs_mag_uv, beta, break_strength, beta_opt, igm=True,
-               lyc_escape=0.0, cosmo=None):
+               lyc_escape=0.0, cosmo=None, dist_mod=None):
     """Observed f_nu of galaxies on an observed wavelength grid (nJy).
 
     Parameters
@@ -161,33 +174,39 @@ def galaxy_fnu(wave_nm, z, abs_mag_uv, beta, break_strength, beta_opt, igm=True,
     lyc_escape : float
         Fraction of the continuum kept below the rest Lyman limit.
     cosmo : astropy cosmology, optional
+    dist_mod : array_like (mag), shape (n_gal,), optional
+        Distance moduli DM(z) if already known (else computed with ``cosmo``).
 
     Returns
     -------
     ndarray (nJy), shape (n_gal, n_wave)
     """
-    wave = np.asarray(wave_nm, dtype=float)[None, :]
+    lnw = np.log(np.asarray(wave_nm, dtype=float))
     z = np.atleast_1d(np.asarray(z, dtype=float))
     col = lambda a: np.atleast_1d(np.asarray(a, dtype=float))[:, None]  # noqa: E731
-    m_1500 = np.asarray(abs_mag_uv, dtype=float) + distance_modulus(z, cosmo) \
-        - 2.5 * np.log10(1.0 + z)
-    f_1500 = 10.0 ** (-0.4 * (m_1500 - AB_NJY_ZERO))
-    shape = rest_fnu_shape(wave / (1.0 + z[:, None]), col(beta), col(break_strength),
-                           col(beta_opt), lyc_escape)
-    fnu = f_1500[:, None] * shape
+    dm = distance_modulus(z, cosmo) if dist_mod is None else np.asarray(dist_mod, dtype=float)
+    m_1500 = np.asarray(abs_mag_uv, dtype=float) + dm - 2.5 * np.log10(1.0 + z)
+    ln_f1500 = -0.4 * np.log(10.0) * (m_1500 - AB_NJY_ZERO)  # ln(f_nu / nJy) at 150 (1+z) nm
+    ln_f = _ln_rest_fnu_shape(lnw[None, :] - np.log1p(z)[:, None], col(beta),
+                              col(break_strength), col(beta_opt), lyc_escape)
+    ln_f += ln_f1500[:, None]
     if igm:
-        fnu *= igm_transmission(wave[0], z)
-    return fnu
+        # only sources whose Lyman alpha lands redward of the grid's blue end are absorbed
+        rows = np.flatnonzero(LYMAN_SERIES_NM[0] * (1.0 + z) > np.exp(lnw.min()))
+        if rows.size:
+            ln_f[rows] -= _igm_tau(np.exp(lnw), z[rows])
+    return np.exp(ln_f)
 
 
-def wave_grid(bands: Sequence[Band], dlnlam: float = 1.0 / 300.0) -> np.ndarray:
+def wave_grid(bands: Sequence[Band], dlnlam: float = 1.0 / 200.0) -> np.ndarray:
     """Observed wavelength grid covering every band, uniform in ln lambda (nm).
 
     Parameters
     ----------
     bands : sequence of Band
     dlnlam : float
-        Step in ln(lambda); 1/300 puts ~75 samples across a 25 % wide band.
+        Step in ln(lambda); 1/200 puts ~50 samples across a 25 % wide band (a break inside
+        the band is then placed to ~1 % of the band's flux).
     """
     parts = []
     for b in bands:
@@ -257,9 +276,11 @@ def uv_slope_relation(z, abs_mag_uv):
 def evolved_probability(z, abs_mag_uv, m_star):
     """Probability that a galaxy of the UV luminosity function has an evolved template.
 
-    p = 0.3 / (1 + ((1 + z) / 2.5)^4) / (1 + 10^(-0.4 (M_UV - M*))): 0.29 at z = 0, 0.15 at
-    z = 1.5, 0.04 at z = 3, < 0.01 beyond z = 4, halved at M_UV = M* and small for UV-luminous
-    sources (project choice shaped by the trends cited in the module docstring).
+    p = 0.25 / (1 + ((1 + z) / 2.5)^4) exp(-(M_UV - M* - 1.5)^2 / (2 1.5^2)): the redshift
+    factor is 0.24 at z = 0, 0.12 at z = 1.5, 0.03 at z = 3 and < 0.01 beyond z = 4; the
+    magnitude factor peaks 1.5 mag below M* (massive quiescent galaxies are faint in the UV but
+    not dwarfs, whose UV light is mostly from star formation) and is 0.14 at M* - 1.5 and at
+    M* + 4.5 (project choice shaped by the trends cited in the module docstring).
 
     Parameters
     ----------
@@ -268,8 +289,9 @@ def evolved_probability(z, abs_mag_uv, m_star):
         Rest-UV magnitude and the luminosity function's M* at z.
     """
     z = np.asarray(z, dtype=float)
-    pz = 0.3 / (1.0 + ((1.0 + z) / 2.5) ** 4)
-    return pz / (1.0 + 10.0 ** (-0.4 * (np.asarray(abs_mag_uv, dtype=float) - m_star)))
+    pz = 0.25 / (1.0 + ((1.0 + z) / 2.5) ** 4)
+    dm = np.asarray(abs_mag_uv, dtype=float) - m_star - 1.5
+    return pz * np.exp(-0.5 * (dm / 1.5) ** 2)
 
 
 @dataclass(frozen=True)
