@@ -12,6 +12,7 @@ magnitudes AB, pixel positions 0-based (pixel centre at integers, see :mod:`simf
 
 from __future__ import annotations
 
+import warnings
 from dataclasses import dataclass
 
 import numpy as np
@@ -98,7 +99,7 @@ def detect_sources(sci, wht, wcs: WCS, cfg: DetectionConfig, psf_fwhm_arcsec: fl
     from photutils.background import Background2D, MedianBackground
     from photutils.segmentation import (SourceCatalog, deblend_sources, make_2dgaussian_kernel)
     from photutils.segmentation import detect_sources as _segment
-    from photutils.utils import calc_total_error
+    from photutils.utils import NoDetectionsWarning, calc_total_error
 
     sci = np.asarray(sci, dtype=float)
     wht = np.asarray(wht, dtype=float)
@@ -137,7 +138,9 @@ def detect_sources(sci, wht, wcs: WCS, cfg: DetectionConfig, psf_fwhm_arcsec: fl
     conv[bad] = 0.0
 
     threshold = cfg.threshold_sigma * np.where(bad, np.inf, rms)
-    segm = _segment(conv, threshold, n_pixels=int(cfg.npixels), mask=bad)
+    with warnings.catch_warnings():  # "no sources found" is an answer here, not a warning
+        warnings.simplefilter("ignore", NoDetectionsWarning)
+        segm = _segment(conv, threshold, n_pixels=int(cfg.npixels), mask=bad)
     if segm is None:
         return Detections(_columns_empty(meta), np.zeros(sci.shape, int), back)
     if cfg.deblend and segm.n_labels > 0:
@@ -184,10 +187,10 @@ def detect_sources(sci, wht, wcs: WCS, cfg: DetectionConfig, psf_fwhm_arcsec: fl
     t["b_arcsec"] = np.asarray(cat.semiminor_axis.value, float) * pixel_scale_arcsec
     t["theta_deg"] = np.asarray(cat.orientation.value, float)
     t["kron_radius"] = np.asarray(cat.kron_radius.value, float)
-    units = {"x": "pix", "y": "pix", "ra": "deg", "dec": "deg", "flux": "electron/s",
-             "flux_err": "electron/s", "flux_njy": "nJy", "mag": "mag", "mag_err": "mag",
-             "flux_aper": "electron/s", "flux_aper_err": "electron/s", "mag_aper": "mag",
-             "flux_iso": "electron/s", "flux_iso_err": "electron/s", "area": "pix2",
+    # e-/s columns carry no astropy unit (FITS has no "electron"); FLUXUNIT in meta says it
+    units = {"x": "pix", "y": "pix", "ra": "deg", "dec": "deg",
+             "flux_njy": "nJy", "mag": "mag", "mag_err": "mag", "mag_aper": "mag",
+             "area": "pix2",
              "a_arcsec": "arcsec", "b_arcsec": "arcsec", "theta_deg": "deg"}
     for k, u in units.items():
         t[k].unit = u
