@@ -479,7 +479,7 @@ def ramp_variance_rauscher(rate, read_noise_frame_e: float, n_groups: int, n_fra
     total counts over the slope baseline (n - 1) t_g, divided by ((n - 1) t_g)^2::
 
         s^2 = 12 (n-1) / (m n (n+1)) sr^2 + 6 (n^2+1) / (5 n (n+1)) (n-1) t_g f
-              - 2 (2m-1) (n-1) / (m n (n+1)) (m-1) t_f f
+              - 2 (m^2-1) (n-1) / (m n (n+1)) t_f f
 
     Parameters
     ----------
@@ -495,7 +495,7 @@ def ramp_variance_rauscher(rate, read_noise_frame_e: float, n_groups: int, n_fra
     f = np.asarray(rate, dtype=float)
     s2 = (12.0 * (n - 1) / (m * n * (n + 1)) * read_noise_frame_e**2
           + 6.0 * (n * n + 1) / (5.0 * n * (n + 1)) * (n - 1) * tg * f
-          - 2.0 * (2 * m - 1) * (n - 1) / (m * n * (n + 1)) * (m - 1) * t_frame_s * f)
+          - 2.0 * (m * m - 1) * (n - 1) / (m * n * (n + 1)) * t_frame_s * f)
     return s2 / ((n - 1) * tg) ** 2
 
 
