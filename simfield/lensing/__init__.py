@@ -9,6 +9,7 @@ D_ls/D_s = 1 ("reduced"), scaled per source redshift.
 from .images import CriticalCurves, critical_curves, find_images, write_lens_png
 from .profiles import NFW, SIE, ExternalShear, PointMass, TruncatedSIS
 from .raytrace import Lens, LensField, build_lens
+from .render import lens_sources, render_lensed
 
 __all__ = [
     "Lens",
@@ -23,4 +24,6 @@ __all__ = [
     "find_images",
     "critical_curves",
     "write_lens_png",
+    "render_lensed",
+    "lens_sources",
 ]

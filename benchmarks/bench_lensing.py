@@ -1,0 +1,84 @@
+"""Benchmark of the lensing stage: image finding and lensed rendering of ~5000 sources.
+
+Sources: uniform over 100 x 100 arcsec, redshifts uniform in 0.5-10, small Sersic profiles
+(r_half 0.03-0.3 arcsec, n 0.8-4, truncated at 5 r_half); lens: conf/lens/cluster.yaml with
+its member galaxies; scene grid 5000 x 5000 pixels of 0.02 arcsec. Prints wall times (s).
+
+Run: /tmp/venv/bin/python benchmarks/bench_lensing.py [n_sources]
+"""
+
+from __future__ import annotations
+
+import sys
+import time
+from pathlib import Path
+
+import galsim
+import numpy as np
+from astropy.table import Table
+from omegaconf import OmegaConf
+
+from simfield.bands import make_band
+from simfield.config import LensConfig
+from simfield.grid import Grid
+from simfield.lensing import build_lens, lens_sources, render_lensed
+from simfield.lensing.render import render_cache
+from simfield.population.members import make_members
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def main(n: int = 5000) -> None:
+    cfg = OmegaConf.to_object(OmegaConf.merge(OmegaConf.structured(LensConfig),
+                                              OmegaConf.load(ROOT / "conf/lens/cluster.yaml")))
+    tel = OmegaConf.load(ROOT / "conf/telescope/lantern.yaml")
+    bands = [make_band(b.name, b.center_nm, b.width_nm, b.throughput) for b in tel.bands]
+    rng = np.random.default_rng(12)
+    t0 = time.perf_counter()
+    members = make_members(cfg, bands, rng, (-50, 50), (-50, 50))
+    lens = build_lens(cfg, members)
+    t_build = time.perf_counter() - t0
+
+    src = Table({"x_arcsec": rng.uniform(-50, 50, n), "y_arcsec": rng.uniform(-50, 50, n),
+                 "redshift": rng.uniform(0.5, 10.0, n)})
+    r_half = rng.uniform(0.03, 0.3, n)
+    sersic = rng.uniform(0.8, 4.0, n)
+    t0 = time.perf_counter()
+    images, mag, nim = lens_sources(lens, src, cfg, (-50, 50), (-50, 50))
+    t_images = time.perf_counter() - t0
+
+    grid = Grid(5000, 5000, 0.02, 150.0, 2.0)
+    t0 = time.perf_counter()
+    render_cache(lens, grid)
+    t_cache = time.perf_counter() - t0
+
+    t0 = time.perf_counter()
+    t_unlensed = 0.0
+    n_stamps = 0
+    for i in range(n):
+        prof = galsim.Sersic(sersic[i], half_light_radius=r_half[i], trunc=5 * r_half[i])
+        st = render_lensed(lens, prof, src["x_arcsec"][i], src["y_arcsec"][i],
+                           src["redshift"][i], grid)
+        n_stamps += len(st)
+    t_render = time.perf_counter() - t0
+    # the same sources drawn unlensed, the way the scene renderer draws them
+    t0 = time.perf_counter()
+    for i in range(n):
+        prof = galsim.Sersic(sersic[i], half_light_radius=r_half[i], trunc=5 * r_half[i])
+        half = int(np.clip(prof.getGoodImageSize(0.02) // 2 + 1, 3, 256))
+        prof.drawImage(nx=3 * (2 * half + 1), ny=3 * (2 * half + 1), scale=0.02 / 3,
+                       method="no_pixel")
+    t_unlensed = time.perf_counter() - t0
+
+    print(f"lens components                      : {len(lens.components)}")
+    print(f"build lens + {len(members)} members        (s) : {t_build:.2f}")
+    print(f"find images of {n} sources        (s) : {t_images:.2f}")
+    print(f"  images {len(images)}, sources with >1 image {int((nim > 1).sum())}, "
+          f"with 0 in field {int((nim == 0).sum())}")
+    print(f"render cache on 5000x5000 grid     (s) : {t_cache:.2f}")
+    print(f"render {n} lensed sources         (s) : {t_render:.2f}  ({n_stamps} stamps)")
+    print(f"draw the same {n} sources unlensed (s) : {t_unlensed:.2f}")
+
+
+if __name__ == "__main__":
+    main(int(sys.argv[1]) if len(sys.argv) > 1 else 5000)
