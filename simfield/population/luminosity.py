@@ -140,16 +140,19 @@ def upper_incomplete_gamma(s, x):
     Parameters
     ----------
     s : float or array_like
-        First argument; values within 1e-8 of a non-positive integer's neighbourhood of 0 use E1.
+        First argument; values within 1e-8 of an integer are rounded to it.
     x : float or array_like
         Second argument (> 0).
     """
     # functions of s alone are evaluated on s's own shape, before broadcasting against x
     s = np.asarray(s, dtype=float)
     x = np.asarray(x, dtype=float)
+    # within 1e-8 of an integer, use the integer: the recurrence would divide by ~0 (the
+    # relative change of Gamma(s, x) over 1e-8 in s is ~1e-8 |ln x|)
+    s = np.where(np.abs(s - np.round(s)) < 1e-8, np.round(s), s)
     n_steps = np.where(s < 0, np.ceil(-s), 0.0)
     base = s + n_steps  # in [0, 1)
-    near0 = np.abs(base) < 1e-8
+    near0 = base == 0.0
     safe = np.where(near0, 1.0, base)
     out = special.gamma(safe) * special.gammaincc(safe, x)
     if np.any(near0):
