@@ -315,6 +315,8 @@ def test_profile_orientation_and_knots():
     im1 = p1.drawImage(nx=128, ny=128, scale=0.02, method="no_pixel")
     im2 = p2.drawImage(nx=128, ny=128, scale=0.02, method="no_pixel")
     assert_allclose(im1.array, im2.array, rtol=0, atol=0)  # same seed, same knots
+    im3 = make_profile(row, 5).drawImage(nx=128, ny=128, scale=0.02, method="no_pixel")
+    assert np.abs(im3.array - im1.array).max() > 1e-3 * im1.array.max()  # run seed mixed in
     assert_allclose(im1.array.sum(), 1.0, atol=0.02)  # light beyond the stamp
     star = make_profile({"kind": "star"})
     assert isinstance(star, galsim.DeltaFunction) and star.flux == 1.0

@@ -284,7 +284,7 @@ def make_population(pop: PopulationConfig, bands: list[Band], field_xi_arcsec: t
         "population_mode": pop.mode,
         "selection_band": sel_name,
         "mag_limit": pop.mag_limit,
-        "expected_galaxies": float(expected),
+        "expected_candidates": float(expected),  # drawn before the exact magnitude cut
         "cosmology": repr(cosmo),
         "positions": "x_arcsec, y_arcsec: tangent-plane offsets xi (east), eta (north) from "
                      "the field centre (arcsec)",

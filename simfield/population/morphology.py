@@ -164,18 +164,22 @@ def make_profile(row: Mapping[str, Any], rng_seed: Optional[int] = None) -> gals
         Needs ``kind``; galaxies also ``r_half`` (arcsec), ``sersic_n``, ``axis_ratio``,
         ``position_angle`` (deg), ``knot_fraction``, ``n_knots``.
     rng_seed : int, optional
-        Seed of the knot positions; default the row's ``knot_seed``.
+        Extra seed (e.g. the scenario's) mixed with the row's ``knot_seed`` for the knot
+        positions; by default ``knot_seed`` alone.
     """
     if row["kind"] == "star":
         return galsim.DeltaFunction(flux=1.0)
     r = float(row["r_half"])
     n = float(np.clip(row["sersic_n"], *SERSIC_N_RANGE))
-    frac = float(row["knot_fraction"]) if "knot_fraction" in row.keys() else 0.0
-    n_knots = int(row["n_knots"]) if "n_knots" in row.keys() else 0
+    keys = row.colnames if hasattr(row, "colnames") else row.keys()
+    frac = float(row["knot_fraction"]) if "knot_fraction" in keys else 0.0
+    n_knots = int(row["n_knots"]) if "n_knots" in keys else 0
     prof = galsim.Sersic(n, half_light_radius=r, trunc=TRUNCATION_RADII * r,
                          flux=1.0 - frac if n_knots > 0 else 1.0)
     if frac > 0 and n_knots > 0:
-        seed = int(row["knot_seed"]) if rng_seed is None else int(rng_seed)
+        seed = int(row["knot_seed"])
+        if rng_seed is not None:  # a run seed mixed with the galaxy's own: still per galaxy
+            seed = int(np.random.SeedSequence([int(rng_seed), seed]).generate_state(1)[0])
         knots = galsim.RandomKnots(n_knots, half_light_radius=r, flux=frac,
                                    rng=galsim.BaseDeviate(seed))
         blob = galsim.Gaussian(fwhm=max(_KNOT_SIZE_FRACTION * r, _MIN_KNOT_FWHM_ARCSEC))
