@@ -73,7 +73,6 @@ class PupilConfig:
     segment_wfe_rms_nm: float = 0.0  #: per-segment piston/tip/tilt rms (nm)
     zernike_rms_nm: list[float] = field(default_factory=list)  #: global Zernike rms, Noll 4...
     grid_size: int = 256  #: least cells across the pupil raster (raised per PSF when needed)
-    supersample: int = 4  #: point samples per raster cell side (anti-aliased edges)
 
 
 @dataclass
@@ -330,7 +329,6 @@ def _validate_telescope(t: TelescopeConfig) -> None:
     for j, z in enumerate(p.zernike_rms_nm):
         check_range(f"telescope.pupil.zernike_rms_nm.{j}", z, 0, 1000)
     check_range("telescope.pupil.grid_size", p.grid_size, 64, 4096)
-    check_range("telescope.pupil.supersample", p.supersample, 1, 16)
     s = t.psf
     check_range("telescope.psf.oversample", s.oversample, 1, 8)
     check_range("telescope.psf.core_radius_arcsec", s.core_radius_arcsec, 0, 60, lo_open=True)

@@ -14,9 +14,9 @@ optical axis):
   ``strut_angles_deg[k]`` (counter-clockwise from ``+x``; equally spaced from 90 deg when the
   list is empty), its centre line shifted sideways by ``strut_offset_m``.
 
-Each raster cell holds the fraction of its area that is clear (anti-aliasing by
-``supersample`` x ``supersample`` point samples per cell), so gaps narrower than a cell still
-remove the right area and the raster is a cell average of the true pupil.
+Each raster cell holds the fraction of its area that is clear (analytic anti-aliasing, see
+:func:`_amplitude`), so gaps and struts narrower than a cell still remove the right area and the
+raster approximates the cell average of the true pupil.
 
 Wavefront error (optical path difference, nm): per-segment piston, tip and tilt, each term
 normalised to unit rms over a hexagon and drawn with rms ``segment_wfe_rms_nm / sqrt(3)`` (so the
@@ -42,7 +42,6 @@ _HEX_NORMALS = np.array([[np.cos(np.deg2rad(a)), np.sin(np.deg2rad(a))] for a in
 #: rms of x (or y) over a regular hexagon of flat-to-flat f, in units of f:
 #: <x^2> = 5 R^2 / 24 with circumradius R = f / sqrt(3), so rms = f sqrt(5/72).
 _HEX_RMS_PER_FLAT = np.sqrt(5.0 / 72.0)
-_ROW_CHUNK_SAMPLES = 1 << 20  # fine samples evaluated at once (memory bound)
 
 
 @dataclass(frozen=True, eq=False)
@@ -146,52 +145,96 @@ def _strut_angles(tel: TelescopeConfig) -> np.ndarray:
     return np.deg2rad(90.0 + 360.0 * np.arange(p.strut_count) / max(p.strut_count, 1))
 
 
-def _clear(tel: TelescopeConfig, x: np.ndarray, y: np.ndarray) -> np.ndarray:
-    """Boolean: is the pupil point (x, y) (m) clear?"""
+def _overlap(u: np.ndarray, h: np.ndarray | float, lo: float, hi: float) -> np.ndarray:
+    """Fraction of the interval [u - h, u + h] inside [lo, hi] (h > 0)."""
+    return np.clip(np.minimum(u + h, hi) - np.maximum(u - h, lo), 0.0, None) / (2.0 * h)
+
+
+def _half_width(nx: float, ny: float, scale: float) -> float:
+    """Half-width of a square cell of side ``scale`` projected on the unit direction (nx, ny)."""
+    return 0.5 * scale * (abs(nx) + abs(ny))
+
+
+def _hexagon_cover(x, y, cx, cy, flat: float, scale: float) -> np.ndarray:
+    """Clear fraction of cells at (x, y) from a flat-topped hexagon centred at (cx, cy)."""
+    cov = np.ones(np.broadcast(x, y, cx, cy).shape)
+    for nx, ny in _HEX_NORMALS:
+        cov = cov * _overlap(nx * (x - cx) + ny * (y - cy), _half_width(nx, ny, scale),
+                             -flat / 2.0, flat / 2.0)
+    return cov
+
+
+#: axial offsets of the lattice neighbour across the edge with normal _HEX_NORMALS[k]
+_ACROSS = np.array([[1, 0], [0, 1], [-1, 1]])
+
+
+def _segments_cover(tel: TelescopeConfig, x: np.ndarray, y: np.ndarray, scale: float):
+    """Clear fraction of cells (centres x, y) from the mirror segments.
+
+    A cell (smaller than a segment) can only overlap the segment of its own lattice cell and
+    the two neighbours across the two nearest edges of that cell.
+    """
     p = tel.pupil
-    if p.kind == "circular":
-        clear = x * x + y * y <= (tel.diameter_m / 2.0) ** 2
-    else:
-        pitch = p.segment_flat_m + p.gap_m
-        q, r = _hex_round(x / (pitch * _SQRT3 / 2.0), y / pitch - x / (pitch * _SQRT3))
+    pitch = p.segment_flat_m + p.gap_m
+    q0, r0 = _hex_round(x / (pitch * _SQRT3 / 2.0), y / pitch - x / (pitch * _SQRT3))
+    cx, cy = _lattice_centres(q0, r0, pitch)
+    proj = np.stack([nx * (x - cx) + ny * (y - cy) for nx, ny in _HEX_NORMALS])
+    order = np.argsort(-np.abs(proj), axis=0)
+    sign = np.sign(np.take_along_axis(proj, order, axis=0))
+    cov = np.zeros(np.broadcast(x, y).shape)
+    for j in range(3):
+        if j == 0:
+            q, r = q0, r0
+        else:
+            step = _ACROSS[order[j - 1]] * sign[j - 1][..., None]
+            q, r = q0 + step[..., 0], r0 + step[..., 1]
         ring = np.maximum(np.maximum(np.abs(q), np.abs(r)), np.abs(q + r))
-        cx, cy = _lattice_centres(q, r, pitch)
-        dx, dy = x - cx, y - cy
-        half = p.segment_flat_m / 2.0
-        clear = ring <= p.segment_rings
+        exists = ring <= p.segment_rings
         if p.central_hole:
-            clear &= ring > 0
-        for nx, ny in _HEX_NORMALS:
-            clear &= np.abs(nx * dx + ny * dy) <= half
+            exists &= ring > 0
+        hx, hy = _lattice_centres(q, r, pitch)
+        cov += np.where(exists, _hexagon_cover(x, y, hx, hy, p.segment_flat_m, scale), 0.0)
+    return np.minimum(cov, 1.0)
+
+
+def _amplitude(tel: TelescopeConfig, coords: np.ndarray, scale: float) -> np.ndarray:
+    """Clear fraction of each cell.
+
+    Each edge is treated locally as straight: the fraction of the cell on the clear side is the
+    overlap of the cell's projection on the edge normal (an interval of half-width
+    scale (|nx| + |ny|) / 2) with the clear side. That is exact for edges along the raster axes
+    and keeps the area of every edge and of gaps narrower than a cell; shapes are combined as
+    products of these fractions (exact away from corners).
+    """
+    p = tel.pupil
+    x, y = np.meshgrid(coords, coords)
+    if p.kind == "circular":
+        rho = np.hypot(x, y)
+        phi = np.arctan2(y, x)
+        h = 0.5 * scale * (np.abs(np.cos(phi)) + np.abs(np.sin(phi)))
+        amp = _overlap(rho, h, -np.inf, tel.diameter_m / 2.0)
+    else:
+        amp = _segments_cover(tel, x, y, scale)
     if p.obstruction_diameter_m > 0:
         half = p.obstruction_diameter_m / 2.0
         if p.obstruction_shape == "circle":
-            clear &= x * x + y * y > half * half
+            rho = np.hypot(x, y)
+            phi = np.arctan2(y, x)
+            h = 0.5 * scale * (np.abs(np.cos(phi)) + np.abs(np.sin(phi)))
+            blocked = _overlap(rho, h, -np.inf, half)
         else:
-            inside = np.ones_like(clear)
-            for nx, ny in _HEX_NORMALS:
-                inside &= np.abs(nx * x + ny * y) <= half
-            clear &= ~inside
+            blocked = _hexagon_cover(x, y, 0.0, 0.0, p.obstruction_diameter_m, scale)
+        amp = amp * (1.0 - blocked)
     for a in _strut_angles(tel)[: p.strut_count]:
-        along = x * np.cos(a) + y * np.sin(a)
-        across = -x * np.sin(a) + y * np.cos(a) - p.strut_offset_m
-        clear &= ~((along >= 0) & (np.abs(across) <= p.strut_width_m / 2.0))
-    return clear
-
-
-def _amplitude(tel: TelescopeConfig, coords: np.ndarray, scale: float, ss: int) -> np.ndarray:
-    """Clear fraction of each cell, by ss x ss point samples per cell."""
-    n = coords.size
-    sub = ((np.arange(ss) + 0.5) / ss - 0.5) * scale
-    xf = (coords[:, None] + sub[None, :]).ravel()  # fine sample positions along x (n*ss)
-    out = np.empty((n, n))
-    rows = max(1, _ROW_CHUNK_SAMPLES // (xf.size * ss))
-    for r0 in range(0, n, rows):
-        r1 = min(n, r0 + rows)
-        yf = (coords[r0:r1, None] + sub[None, :]).ravel()
-        c = _clear(tel, xf[None, :], yf[:, None])
-        out[r0:r1] = c.reshape(r1 - r0, ss, n, ss).mean(axis=(1, 3))
-    return out
+        ca, sa = np.cos(a), np.sin(a)
+        along = x * ca + y * sa
+        across = -x * sa + y * ca
+        h = _half_width(ca, sa, scale)
+        blocked = (_overlap(across, h, p.strut_offset_m - p.strut_width_m / 2.0,
+                            p.strut_offset_m + p.strut_width_m / 2.0)
+                   * _overlap(along, h, 0.0, np.inf))
+        amp = amp * (1.0 - blocked)
+    return amp
 
 
 def _opd(tel: TelescopeConfig, coords: np.ndarray, rng: np.random.Generator | None) -> np.ndarray:
@@ -253,7 +296,7 @@ def make_pupil(tel: TelescopeConfig, rng: np.random.Generator | None = None,
     extent = pupil_extent_m(tel)
     scale = extent / (n - 2)
     coords = (np.arange(n) - (n - 1) / 2.0) * scale
-    amp = _amplitude(tel, coords, scale, int(tel.pupil.supersample))
+    amp = _amplitude(tel, coords, scale)
     opd = _opd(tel, coords, rng) * (amp > 0)
     amp.setflags(write=False)
     opd.setflags(write=False)
