@@ -6,9 +6,11 @@ magnitude from :mod:`.luminosity`, or the uniform injection mode), their templat
 uniform over the given tangent-plane ranges.
 
 Only galaxies whose apparent magnitude in the selection band could pass ``mag_limit`` are drawn:
-for every redshift the reddest colour each template can have (its parameters at their extreme
-deviates, which are clipped at 4 sigma) gives the faintest M_UV that can still pass; galaxies
-beyond that are never drawn, the rest are cut exactly on their synthetic magnitude.
+for every redshift the brightest selection-band colour each template can have (its parameters at
+their extreme deviates, which are clipped at 4 sigma; the band flux grows with the optical slope
+and the break and is convex in beta, so the ends of each range bound it) gives the faintest
+M_UV that can still pass, with a 0.05 mag margin; galaxies beyond that are never drawn, the rest
+are cut exactly on their synthetic magnitude.
 """
 
 from __future__ import annotations
@@ -112,9 +114,12 @@ class _Envelope:
         k_sf -= m_flat[:, None]
         # redder-or-equal betas could all occur: running minimum along beta
         self.k_sf = np.minimum.accumulate(k_sf, axis=1)
+        # evolved: band flux rises with beta_opt and the break but is convex in beta (a sum of
+        # exponentials in beta), so its largest value is at an end of beta's range [0, 2]
         ones = np.ones(nz)
-        k_ev = phot.mags(self.z, 0 * ones, 2.0 * ones, 2.6 * ones, 0.1 * ones, True)[:, 0]
-        self.k_ev = k_ev - m_flat
+        k_ev = [phot.mags(self.z, 0 * ones, b * ones, 2.6 * ones, 0.1 * ones, True)[:, 0]
+                for b in (0.0, 2.0)]
+        self.k_ev = np.minimum(*k_ev) - m_flat
         self.m_flat = m_flat
 
     def _cell(self, z):
