@@ -47,6 +47,7 @@ __all__ = [
     "band_weight_matrix",
     "wave_grid",
     "uv_slope_relation",
+    "BETA_SCATTER",
     "evolved_probability",
     "sed_parameters_from_deviates",
     "draw_sed_parameters",
