@@ -26,7 +26,7 @@ __all__ = [
     "field_for_extent",
 ]
 
-_RATIO_BIN = 0.02  # width of D_ls/D_s bins sharing one set of mapped triangles (dimensionless)
+_RATIO_BIN = 0.04  # width of D_ls/D_s bins sharing one set of mapped triangles (dimensionless)
 _NEWTON_STEPS = 10
 
 
@@ -220,7 +220,9 @@ def find_images(lens: Lens, beta_x, beta_y, z_s, extent_arcsec, resolution_arcse
         for b in np.unique(which):
             src = bg[which == b]
             r_lo, r_hi = edges[b], edges[b] + _RATIO_BIN
-            c_pair, s_loc = _candidate_pairs(fld, r_lo, r_hi, bx[src], by[src], h)
+            # source-plane bins about as large as a cell's box over the ratio bin
+            pad = _RATIO_BIN * float(np.sqrt(fld.ax**2 + fld.ay**2).max())
+            c_pair, s_loc = _candidate_pairs(fld, r_lo, r_hi, bx[src], by[src], h + pad)
             if c_pair.size == 0:
                 continue
             s_pair = np.tile(src[s_loc], 2)
@@ -301,7 +303,9 @@ def critical_curves(lens: Lens, z_s: float, extent_arcsec, resolution_arcsec: fl
     det = (1 - r * fld.kappa) ** 2 - (r * fld.gamma1) ** 2 - (r * fld.gamma2) ** 2
     xs, ys = fld.node_positions()
     gen = contourpy.contour_generator(xs, ys, det, line_type=contourpy.LineType.Separate)
-    crit = [np.asarray(c, float) for c in gen.lines(0.0) if len(c) > 2]
+    # curves no larger than two samples are artefacts of sampling a singular centre
+    crit = [np.asarray(c, float) for c in gen.lines(0.0)
+            if len(c) > 2 and np.ptp(c, axis=0).max() > 2 * fld.step]
     caus = []
     for c in crit:
         sx, sy = lens.source_position(c[:, 0], c[:, 1], z_s)

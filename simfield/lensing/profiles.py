@@ -120,6 +120,8 @@ def _radial_hessian(alpha, kappa, x, y, q):
     q = 1 this is the circular lens; q < 1 gives an elliptical potential (e.g. Golse & Kneib
     2002, A&A 390, 821).
     """
+    if q == 1.0:
+        return _circular(alpha, kappa, x, y)
     a, b = q, 1.0 / q
     r = np.sqrt(a * x * x + b * y * y)
     r = np.maximum(r, _TINY)
@@ -133,6 +135,19 @@ def _radial_hessian(alpha, kappa, x, y, q):
     pyy = d2 * ry * ry + al * ryy
     pxy = d2 * rx * ry + al * rxy
     return al * rx, al * ry, 0.5 * (pxx + pyy), 0.5 * (pxx - pyy), pxy
+
+
+def _circular(alpha, kappa, x, y):
+    """Round lens: alpha along theta, |gamma| = mean kappa - kappa, tangential (SEF 1992).
+
+    gamma1 = -|gamma| cos 2 phi, gamma2 = -|gamma| sin 2 phi.
+    """
+    r2 = np.maximum(x * x + y * y, _TINY * _TINY)
+    r = np.sqrt(r2)
+    a_over_r = alpha(r) / r
+    kap = kappa(r)
+    g = (kap - a_over_r) / r2  # -|gamma| / r^2
+    return (a_over_r * x, a_over_r * y, kap, g * (x * x - y * y), 2.0 * g * x * y)
 
 
 # --------------------------------------------------------------------------------------------

@@ -26,6 +26,7 @@ __all__ = ["Lens", "LensField", "build_lens", "member_truncation_arcsec"]
 # clusters finds truncation radii of a few tens of kpc for L* members [mem]. Scaling with sigma^2
 # keeps M/L roughly constant for Faber-Jackson L ~ sigma^4 (common practice).
 _MEMBER_TRUNC_KPC = 40.0
+_Z_TABLE_MAX = 30.0  # source redshifts up to this use the tabulated distance ratio
 _MEMBER_SIGMA_REF = 200.0
 
 
@@ -102,10 +103,26 @@ class Lens:
         out = np.zeros_like(z)
         bg = z > self.redshift
         if bg.any():
-            d_ls = self.cosmo.angular_diameter_distance(self.redshift, z[bg]).to_value(u.Mpc)
-            d_s = self.cosmo.angular_diameter_distance(z[bg]).to_value(u.Mpc)
-            out[bg] = d_ls / d_s
+            lz, ratio = self._ratio_table()
+            inside = bg & (z <= _Z_TABLE_MAX)
+            out[inside] = np.interp(np.log1p(z[inside]), lz, ratio)
+            far = bg & ~inside
+            if far.any():
+                out[far] = self._exact_ratio(z[far])
         return out if np.ndim(z_s) else float(out[0])
+
+    def _exact_ratio(self, z):
+        d_ls = self.cosmo.angular_diameter_distance(self.redshift, z).to_value(u.Mpc)
+        return d_ls / self.cosmo.angular_diameter_distance(z).to_value(u.Mpc)
+
+    def _ratio_table(self):
+        """D_ls/D_s tabulated on a fine grid of ln(1+z) (linear interpolation error < 1e-6)."""
+        if "ratio" not in self._cache:
+            lz = np.linspace(np.log1p(self.redshift), np.log1p(_Z_TABLE_MAX), 4000)
+            ratio = np.zeros_like(lz)
+            ratio[1:] = self._exact_ratio(np.expm1(lz[1:]))
+            self._cache["ratio"] = (lz, ratio)
+        return self._cache["ratio"]
 
     # ---- fields ----------------------------------------------------------------------------
     def reduced(self, x, y):

@@ -100,7 +100,11 @@ def source_radius(profile) -> float:
 
 
 def _candidate_blocks(cache: RenderCache, r: float, bx: float, by: float, radius: float):
-    """Node-grid cells (i, j) whose source-plane bounding box meets the disc (bx, by, radius)."""
+    """Node-grid cells whose source-plane bounding box meets the disc (bx, by, radius).
+
+    Returns the cells' row and column indices and their corners' source-plane positions
+    (each (4, n), corners ordered [i, j], [i+1, j], [i, j+1], [i+1, j+1]; arcsec).
+    """
     s = cache.sup
     lo_x = s["xi"][0] - r * s["ax"][1]
     hi_x = s["xi"][1] - r * s["ax"][0]
@@ -110,7 +114,8 @@ def _candidate_blocks(cache: RenderCache, r: float, bx: float, by: float, radius
     dy = np.maximum(np.maximum(lo_y - by, by - hi_y), 0.0)
     si, sj = np.nonzero(dx * dx + dy * dy <= radius * radius)
     if si.size == 0:
-        return np.zeros(0, np.int64), np.zeros(0, np.int64)
+        e = np.zeros(0, np.int64)
+        return e, e, np.zeros((4, 0)), np.zeros((4, 0))
     # every cell of the candidate superblocks, tested with its own four corners
     oi, oj = np.mgrid[0:_SUPER, 0:_SUPER]
     ci = (si[:, None, None] * _SUPER + oi).ravel()
@@ -121,7 +126,7 @@ def _candidate_blocks(cache: RenderCache, r: float, bx: float, by: float, radius
     dx = np.maximum(np.maximum(sx.min(0) - bx, bx - sx.max(0)), 0.0)
     dy = np.maximum(np.maximum(sy.min(0) - by, by - sy.max(0)), 0.0)
     ok = dx * dx + dy * dy <= radius * radius
-    return ci[ok], cj[ok]
+    return ci[ok], cj[ok], sx[:, ok], sy[:, ok]
 
 
 def _pixel_frame(grid: Grid):
@@ -131,26 +136,32 @@ def _pixel_frame(grid: Grid):
     return np.array([[-c, s], [s, c]])
 
 
-def _bilinear(cache: RenderCache, names, fi, fj):
-    """Bilinear interpolation of node fields at fractional node indices (fi, fj)."""
-    coords = np.array([fi, fj])
-    return [ndimage.map_coordinates(getattr(cache, n), coords, order=1, mode="nearest")
-            for n in names]
+def _interp_point(cache: RenderCache, x: float, y: float):
+    """Bilinear (ax, ay, kappa, gamma1, gamma2) (reduced) at (x, y) (arcsec)."""
+    px, py = cache.grid.offsets_to_pixel(x, y)
+    fi = (float(py) + 0.5) / cache.block
+    fj = (float(px) + 0.5) / cache.block
+    ny, nx = cache.ax.shape
+    i0 = int(np.clip(np.floor(fi), 0, ny - 2))
+    j0 = int(np.clip(np.floor(fj), 0, nx - 2))
+    wy, wx = min(max(fi - i0, 0.0), 1.0), min(max(fj - j0, 0.0), 1.0)
+    out = []
+    for f in (cache.ax, cache.ay, cache.kappa, cache.gamma1, cache.gamma2):
+        q = f[i0:i0 + 2, j0:j0 + 2]
+        out.append((q[0, 0] * (1 - wx) + q[0, 1] * wx) * (1 - wy)
+                   + (q[1, 0] * (1 - wx) + q[1, 1] * wx) * wy)
+    return out
 
 
-def _weak_image(cache, r, bx, by, ci, cj):
+def _weak_image(cache, r, bx, by, ci, cj, sx, sy):
     """Single-image position (arcsec) and Jacobian A by Newton steps on interpolated fields."""
-    g = cache.grid
     # start from the candidate cell whose centre maps closest to the source
-    fi, fj = ci + 0.5, cj + 0.5
-    xi, eta, ax, ay = _bilinear(cache, ("xi", "eta", "ax", "ay"), fi, fj)
-    k = int(np.argmin((xi - r * ax - bx) ** 2 + (eta - r * ay - by) ** 2))
-    x, y = float(xi[k]), float(eta[k])
-    for _ in range(8):
-        px, py = g.offsets_to_pixel(x, y)
-        fi, fj = (py + 0.5) / cache.block, (px + 0.5) / cache.block
-        ax, ay, kap, g1, g2 = (float(v[0]) for v in _bilinear(
-            cache, ("ax", "ay", "kappa", "gamma1", "gamma2"), [fi], [fj]))
+    k = int(np.argmin((sx.mean(0) - bx) ** 2 + (sy.mean(0) - by) ** 2))
+    corners = [(ci[k], cj[k]), (ci[k] + 1, cj[k]), (ci[k], cj[k] + 1), (ci[k] + 1, cj[k] + 1)]
+    x = float(np.mean([cache.xi[c] for c in corners]))
+    y = float(np.mean([cache.eta[c] for c in corners]))
+    for _ in range(10):
+        ax, ay, kap, g1, g2 = _interp_point(cache, x, y)
         fx, fy = x - r * ax - bx, y - r * ay - by
         a = np.array([[1 - r * (kap + g1), -r * g2], [-r * g2, 1 - r * (kap - g1)]])
         dx, dy = np.linalg.solve(a, [fx, fy])
@@ -163,7 +174,10 @@ def _weak_image(cache, r, bx, by, ci, cj):
 def _draw_weak(profile, grid: Grid, x: float, y: float, a: np.ndarray, supersample: int):
     """Stamp of ``profile`` transformed by A^-1 (flux |mu|) centred at (x, y) (arcsec)."""
     jac = np.linalg.inv(a)
-    lensed = profile.transform(jac[0, 0], jac[0, 1], jac[1, 0], jac[1, 1])
+    # image-plane brightness S(A theta): transform by A^-1 (GalSim keeps surface brightness)
+    # then map (xi, eta) onto scene (column, row) axes
+    full = _pixel_frame(grid) @ jac
+    lensed = profile.transform(full[0, 0], full[0, 1], full[1, 0], full[1, 1])
     mu = abs(np.linalg.det(jac))
     px, py = grid.offsets_to_pixel(x, y)
     px, py = float(px), float(py)
@@ -171,11 +185,8 @@ def _draw_weak(profile, grid: Grid, x: float, y: float, a: np.ndarray, supersamp
     ix, iy = int(round(px)), int(round(py))
     n = 2 * half + 1
     m = supersample
-    # galsim draws in the profile's (xi, eta) frame; flip/rotate onto scene rows and columns
-    mp = _pixel_frame(grid)
-    on_grid = lensed.transform(*mp.ravel())
-    img = on_grid.drawImage(nx=n * m, ny=n * m, scale=grid.scale / m, method="no_pixel",
-                            offset=((px - ix) * m, (py - iy) * m)).array
+    img = lensed.drawImage(nx=n * m, ny=n * m, scale=grid.scale / m, method="no_pixel",
+                           offset=((px - ix) * m, (py - iy) * m)).array
     stamp = img.reshape(n, m, n, m).sum(axis=(1, 3))
     tot = stamp.sum()
     if tot > 0:
@@ -191,53 +202,55 @@ def _source_image(profile, radius: float, scale: float):
     return img / scale**2, (n - 1) / 2.0  # galsim centres odd images on the central pixel
 
 
-def _ray_trace(cache, profile, r, bx, by, radius, ci, cj, supersample, source_scale):
-    """Stamps by ray tracing the scene pixels of the candidate node cells."""
+def _sample_weights(block: int, m: int) -> np.ndarray:
+    """Bilinear weights (4, (block m)^2) of a cell's corners at its pixels' subsamples."""
+    u = (np.arange(block * m) + 0.5) / (block * m)  # fractional node coordinate in the cell
+    uy, ux = np.meshgrid(u, u, indexing="ij")
+    w = np.stack([(1 - uy) * (1 - ux), uy * (1 - ux), (1 - uy) * ux, uy * ux])
+    return w.reshape(4, -1)
+
+
+def _ray_trace(cache, profile, bx, by, radius, ci, cj, sx, sy, supersample, source_scale):
+    """Stamps by ray tracing the scene pixels of the candidate node cells.
+
+    Inside a cell the deflection is bilinear, so the source-plane position of every subsample
+    is a fixed linear combination of the cell's four mapped corners.
+    """
     g = cache.grid
+    # subsamples per pixel side: enough for about 20 samples across the source radius, with
+    # source-plane spacing up to ~1.5 x the image-plane one (common practice)
     b = cache.block
+    m = int(np.clip(np.ceil(30.0 * g.scale / radius), 1, supersample))
     sb, c0 = _source_image(profile, radius, source_scale)
-    mask_i0, mask_j0 = ci.min(), cj.min()
-    mask = np.zeros((ci.max() - mask_i0 + 1, cj.max() - mask_j0 + 1), bool)
-    mask[ci - mask_i0, cj - mask_j0] = True
-    labels, n_lab = ndimage.label(ndimage.binary_dilation(mask, np.ones((3, 3), bool)),
-                                  np.ones((3, 3), int))
-    labels = np.where(mask, labels, 0)
-    m = supersample
-    sub = (np.arange(m) + 0.5) / m - 0.5
+    w = _sample_weights(b, m)
+    u = (sx.T @ w - bx) / source_scale + c0
+    v = (sy.T @ w - by) / source_scale + c0
+    val = ndimage.map_coordinates(sb, np.array([v.ravel(), u.ravel()]), order=1,
+                                  mode="constant", cval=0.0)
+    flux = val.reshape(len(ci), b, m, b, m).mean(axis=(2, 4)) * g.scale**2
+    # one stamp per connected group of cells
+    i0, j0 = ci.min(), cj.min()
+    mask = np.zeros((ci.max() - i0 + 1, cj.max() - j0 + 1), bool)
+    mask[ci - i0, cj - j0] = True
+    labels, _ = ndimage.label(ndimage.binary_dilation(mask, np.ones((3, 3), bool)),
+                              np.ones((3, 3), int))
+    lab = labels[ci - i0, cj - j0]
     stamps = []
-    for sl, lab in zip(ndimage.find_objects(labels), range(1, n_lab + 1)):
-        if sl is None:
-            continue
-        li, lj = np.nonzero(labels[sl] == lab)
-        li, lj = li + sl[0].start + mask_i0, lj + sl[1].start + mask_j0
-        iy0, ix0 = li.min() * b, lj.min() * b
-        ny = (li.max() + 1) * b - iy0
-        nx = (lj.max() + 1) * b - ix0
-        # pixel centres of the candidate cells, supersampled m x m
-        oy, ox = np.mgrid[0:b, 0:b]
-        py = (li[:, None, None] * b + oy).ravel()
-        px = (lj[:, None, None] * b + ox).ravel()
-        inside = (px < g.nx) & (py < g.ny)
-        py, px = py[inside], px[inside]
-        sy, sx = np.broadcast_arrays(py[:, None] + np.repeat(sub, m)[None, :],
-                                     px[:, None] + np.tile(sub, m)[None, :])
-        fi, fj = (sy + 0.5) / b, (sx + 0.5) / b
-        xi, eta, ax, ay = _bilinear(cache, ("xi", "eta", "ax", "ay"), fi.ravel(), fj.ravel())
-        dxi = (xi - r * ax - bx) / source_scale + c0
-        deta = (eta - r * ay - by) / source_scale + c0
-        val = ndimage.map_coordinates(sb, np.array([deta, dxi]), order=1, mode="constant",
-                                      cval=0.0)
-        flux = val.reshape(len(py), m * m).mean(axis=1) * g.scale**2
-        stamp = np.zeros((ny, nx), np.float32)
-        stamp[py - iy0, px - ix0] = flux
-        if stamp.any():
-            stamps.append((stamp, int(iy0), int(ix0)))
+    for k in np.unique(lab):
+        sel = lab == k
+        li, lj = ci[sel], cj[sel]
+        a0, b0 = li.min(), lj.min()
+        st = np.zeros((li.max() - a0 + 1, b, lj.max() - b0 + 1, b), np.float32)
+        st[li - a0, :, lj - b0, :] = flux[sel]
+        st = st.reshape((li.max() - a0 + 1) * b, (lj.max() - b0 + 1) * b)
+        if st.any():
+            stamps.append((st, int(a0 * b), int(b0 * b)))
     return stamps
 
 
 def render_lensed(lens: Lens, profile, beta_x: float, beta_y: float, z_s: float, grid: Grid,
                   *, supersample: int = 3, mu_max: float = 4.0, jacobian_tol: float = 0.05,
-                  force_ray_trace: bool = False):
+                  force_ray_trace: bool = False, block: int = _BLOCK):
     """Lensed stamps of one source on the scene grid.
 
     Parameters
@@ -259,6 +272,9 @@ def render_lensed(lens: Lens, profile, beta_x: float, beta_y: float, z_s: float,
         Single images over which A changes by more than this (any element) are ray traced.
     force_ray_trace : bool
         Ray trace whatever the source.
+    block : int
+        Scene pixels per side of the node-grid cells on which the deflection is computed
+        exactly (bilinear in between).
 
     Returns
     -------
@@ -272,8 +288,8 @@ def render_lensed(lens: Lens, profile, beta_x: float, beta_y: float, z_s: float,
     if r <= 0:
         a = np.eye(2)
         return _draw_weak(profile, grid, beta_x, beta_y, a, supersample)
-    cache = render_cache(lens, grid)
-    ci, cj = _candidate_blocks(cache, r, beta_x, beta_y, radius)
+    cache = render_cache(lens, grid, block)
+    ci, cj, sx, sy = _candidate_blocks(cache, r, beta_x, beta_y, radius)
     if ci.size == 0:
         return []
     source_scale = min(0.5 * grid.scale, radius / 8.0)
@@ -288,9 +304,9 @@ def render_lensed(lens: Lens, profile, beta_x: float, beta_y: float, z_s: float,
         lab, n_groups = ndimage.label(_cell_mask(ci, cj), np.ones((3, 3), int))
         weak = (n_groups == 1 and det.min() > 1.0 / mu_max and spread < jacobian_tol)
         if weak:
-            x, y, a = _weak_image(cache, r, beta_x, beta_y, ci, cj)
+            x, y, a = _weak_image(cache, r, beta_x, beta_y, ci, cj, sx, sy)
             return _draw_weak(profile, grid, x, y, a, supersample)
-    return _ray_trace(cache, profile, r, beta_x, beta_y, radius, ci, cj, supersample,
+    return _ray_trace(cache, profile, beta_x, beta_y, radius, ci, cj, sx, sy, supersample,
                       source_scale)
 
 
