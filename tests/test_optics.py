@@ -187,16 +187,16 @@ def test_obstruction_lowers_peak_by_one_minus_eps_squared():
 # any pupil: Parseval, lambda scaling, wavefront error
 # --------------------------------------------------------------------------------------------
 def test_segmented_area_and_peak_over_flux():
-    """Clear area = 19 hexagons (sqrt3/2) f^2 to 1e-3 (geometry), and peak intensity / total
-    flux = A / lambda^2 per steradian to 1e-3 with A from geometry (Fraunhofer theory)."""
+    """Clear area = 19 hexagons (sqrt3/2) f^2 to 5e-4 (geometry), and peak intensity / total
+    flux = A / lambda^2 per steradian to 5e-4 with A from geometry (Fraunhofer theory)."""
     pupil = make_pupil(segmented(rings=2, hole=False, grid=200))
     area = 19 * np.sqrt(3) / 2 * 0.85**2
-    assert_allclose(pupil.area_m2, area, rtol=1e-3)
+    assert_allclose(pupil.area_m2, area, rtol=5e-4)
     lam = 1500.0
     scale = 0.002  # arcsec: the central sample ~ the peak
     img = monochromatic_psf(pupil, lam, scale, 3)
     peak_per_sr = img[1, 1] / (scale * RAD_PER_ARCSEC) ** 2
-    assert_allclose(peak_per_sr, area / (lam * 1e-9) ** 2, rtol=1e-3)
+    assert_allclose(peak_per_sr, area / (lam * 1e-9) ** 2, rtol=5e-4)
 
 
 def test_psf_width_scales_with_wavelength():
@@ -286,7 +286,7 @@ def narrow_band(center=LAM):
 @pytest.mark.parametrize("scale_lod", [0.25, 0.8])
 def test_band_psf_pixel_integration_matches_galsim(scale_lod):
     """Nearly monochromatic band PSF with jitter = galsim.Convolve(Airy, Gaussian) drawn with
-    its pixel (reference library), to 1e-3 of the peak (GalSim's FFT accuracy); covers oversample raised to Nyquist."""
+    its pixel (reference library), to 5e-4 of the peak (GalSim's FFT accuracy); covers oversample raised to Nyquist."""
     ld = lam_over_d_arcsec(LAM, D)
     scale = scale_lod * ld
     tel = circular(D, grid=128, n_wavelengths=1, jitter_mas=0.3 * ld * 1000)
@@ -295,7 +295,7 @@ def test_band_psf_pixel_integration_matches_galsim(scale_lod):
     ref = galsim.Convolve(galsim.Airy(lam_over_diam=ld), galsim.Gaussian(sigma=0.3 * ld))
     expect = ref.drawImage(nx=n, ny=n, scale=scale, method="auto").array
     expect /= expect.sum()
-    assert_allclose(p.image, expect, rtol=0, atol=1e-3 * expect.max())
+    assert_allclose(p.image, expect, rtol=0, atol=5e-4 * expect.max())
 
 
 def test_band_psf_stamp_properties():
@@ -321,7 +321,7 @@ def test_band_psf_stamp_properties():
 
 def test_effective_psf_matches_galsim_box():
     """Scene PSF convolved with a 2-scene-pixel detector pixel = galsim.Airy convolved with
-    that box and drawn with the scene pixel (reference library), to 1e-3 of the peak; FWHM
+    that box and drawn with the scene pixel (reference library), to 5e-4 of the peak; FWHM
     grows."""
     ld = lam_over_d_arcsec(LAM, D)
     scale = 0.25 * ld
@@ -333,7 +333,7 @@ def test_effective_psf_matches_galsim_box():
     # method "fft" adds galsim's own scene-pixel convolution on top of the detector box
     expect = ref.drawImage(nx=n, ny=n, scale=scale, method="fft").array
     expect /= expect.sum()
-    assert_allclose(e.image, expect, rtol=0, atol=1e-3 * expect.max())
+    assert_allclose(e.image, expect, rtol=0, atol=5e-4 * expect.max())
     assert e.fwhm_arcsec > p.fwhm_arcsec
 
 

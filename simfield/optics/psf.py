@@ -15,10 +15,11 @@ bins spanning the band. A source with f_lambda ~ lambda^beta (``reference_beta``
 photon counts per unit wavelength ~ T(lambda) f_lambda lambda / (h c) ~ T(lambda) lambda^(beta+1);
 the weight of a bin is the integral of that over the bin. The sum is convolved with Gaussian
 pointing jitter (rms ``jitter_mas`` per axis) and integrated over square pixels of side
-``scale_arcsec``: the intensity is computed on a grid ``oversample`` times finer (raised until
-it Nyquist-samples the shortest wavelength, lambda / (2 D)), where it is band-limited, so both
-convolutions are done exactly by multiplying its discrete Fourier transform by
-exp(-2 pi^2 sigma^2 f^2) and sinc(f * scale); the image is that result at the pixel centres.
+``scale_arcsec``: the intensity is computed on a grid at least ``oversample`` times finer and
+fine enough to Nyquist-sample the shortest wavelength (step <= lambda / (2 D)), where it is
+band-limited, so both convolutions are exact: its discrete Fourier transform is multiplied by
+exp(-2 pi^2 sigma^2 f^2) sinc(f * scale) per axis and summed back at the pixel centres (a
+matrix transform, so the fine step need not divide the pixel).
 Within one bin the PSF is taken as monochromatic, so far-wing speckle is smoothed only by the
 sum over bins.
 """
@@ -56,10 +57,12 @@ __all__ = [
 
 _RAD_PER_ARCSEC = np.pi / 180.0 / 3600.0
 #: pupil raster period lambda / dx in units of the PSF stamp width: the nearest periodic copy of
-#: the PSF core then sits two half-widths beyond the stamp edge, where (after the sinc taper of
-#: the cell average) it adds about 1-5 % to the outermost wing pixels and much less inside.
+#: the PSF core then sits two half-widths beyond the stamp edge. Measured on the 8" b10 Lantern
+#: PSF against a 3x finer raster (benchmarks/bench_psf.py --convergence): the summed |error| is
+#: 3e-5 inside 1", 1 % at 3-5", 2 % at 5-7" and 4 % at the stamp edge.
 _PERIOD_FACTOR = 1.5
 _CACHE_VERSION = 1  # bump when the computation changes
+_EE_INNER_PIX = 30  # encircled energy: pixels within this many of the centre are subsampled
 
 
 @dataclass(frozen=True, eq=False)
@@ -132,19 +135,39 @@ def _transform_matrix(theta_rad: np.ndarray, pupil: Pupil, wavelength_m: float) 
 
 
 def _intensity(pupil: Pupil, wavelength_nm: float, theta_rad: np.ndarray) -> np.ndarray:
-    """PSF on the grid theta_rad x theta_rad (rad), per steradian per unit total flux (sr^-1)."""
+    """PSF on the grid theta_rad x theta_rad (rad), per steradian per unit total flux (sr^-1).
+
+    ``theta_rad`` must be symmetric about 0. For a pupil without wavefront error the field is
+    real, so E(-theta) = conj(E(theta)) and only half of the rows are transformed.
+    """
     lam = wavelength_nm * 1e-9
-    field = (pupil.amplitude * np.exp(2j * np.pi * pupil.opd_nm / wavelength_nm)).astype(
-        np.complex64)
     a = _transform_matrix(theta_rad, pupil, lam)
-    e = a @ (field @ a.T)  # e[ky, kx]: rows = y, columns = x
+    m = theta_rad.size
+    if np.any(pupil.opd_nm):
+        field = (pupil.amplitude * np.exp(2j * np.pi * pupil.opd_nm / wavelength_nm)).astype(
+            np.complex64)
+        e = a @ (field @ a.T)  # e[ky, kx]: rows = y, columns = x
+    else:
+        amp = pupil.amplitude.astype(np.float32)
+        inner = np.empty((pupil.size, m), dtype=np.complex64)
+        inner.real = amp @ np.ascontiguousarray(a.real.T)
+        inner.imag = amp @ np.ascontiguousarray(a.imag.T)
+        e = a[: (m + 1) // 2] @ inner
     # |E|^2 with E = sum a exp(.) dx^2, over the true total flux lambda^2 * area
     norm = pupil.scale_m**4 / (lam**2 * pupil.area_m2)
-    return (e.real.astype(np.float64) ** 2 + e.imag.astype(np.float64) ** 2) * norm
+    half = (e.real.astype(np.float64) ** 2 + e.imag.astype(np.float64) ** 2) * norm
+    if half.shape[0] == m:
+        return half
+    out = np.empty((m, m))
+    out[: half.shape[0]] = half
+    out[half.shape[0]:] = half[: m - half.shape[0]][::-1, ::-1]
+    return out
 
 
 def _on_axis_strehl(pupil: Pupil, wavelength_nm: float) -> float:
     """|sum a exp(i phi)|^2 / |sum a|^2 (dimensionless)."""
+    if not np.any(pupil.opd_nm):
+        return 1.0
     a = pupil.amplitude
     s = (a * np.exp(2j * np.pi * pupil.opd_nm / wavelength_nm)).sum()
     return float(abs(s) ** 2 / a.sum() ** 2)
@@ -215,16 +238,30 @@ def _band_pupil(tel: TelescopeConfig, seed: int, n: int) -> Pupil:
     return _PUPILS[key]
 
 
-def _pixel_integrate(fine: np.ndarray, oversample: int, sigma_samples: float) -> np.ndarray:
-    """Convolve a band-limited sampled image with a Gaussian (rms ``sigma_samples``) and a
-    box of ``oversample`` samples, exactly in the Fourier domain."""
-    ny, nx = fine.shape
-    fy = np.fft.fftfreq(ny)[:, None]
-    fx = np.fft.rfftfreq(nx)[None, :]
-    # Gaussian of rms s: transfer exp(-2 pi^2 s^2 f^2); unit box of width w: sinc(w f)
-    transfer = (np.exp(-2.0 * np.pi**2 * sigma_samples**2 * (fx**2 + fy**2))
-                * np.sinc(oversample * fx) * np.sinc(oversample * fy))
-    return np.fft.irfft2(np.fft.rfft2(fine) * transfer, s=fine.shape)
+def _resample_pixels(fine: np.ndarray, step: float, scale: float, npix: int,
+                     sigma: float) -> np.ndarray:
+    """Band-limited ``fine`` (odd size, sample spacing ``step``, centre sample at 0) convolved
+    with a Gaussian of rms ``sigma`` and a box of side ``scale``, at npix x npix pixel centres
+    spaced ``scale`` (same angular unit throughout); exact by Fourier series for a
+    Nyquist-sampled image, via a matrix transform so ``scale / step`` need not be an integer."""
+    m = fine.shape[0]
+    spec = np.fft.rfft2(np.fft.ifftshift(fine))  # sample 0 at angle 0; half spectrum along x
+    f = np.fft.fftfreq(m, d=step)  # cycles per unit angle
+    fx = np.abs(f[: spec.shape[1]])
+    # Gaussian of rms s: transfer exp(-2 pi^2 s^2 f^2); unit box of side w: sinc(w f)
+    t_y = np.exp(-2.0 * np.pi**2 * sigma**2 * f**2) * np.sinc(scale * f)
+    t_x = np.exp(-2.0 * np.pi**2 * sigma**2 * fx**2) * np.sinc(scale * fx)
+    spec *= t_y[:, None] * t_x[None, :]
+    centres = (np.arange(npix) - (npix - 1) / 2.0) * scale
+    g = np.exp(2j * np.pi * np.outer(centres, f)) @ spec  # inverse along y, complex
+    # inverse along x of a Hermitian spectrum: real part, the half-spectrum terms other than
+    # f = 0 (m odd: no Nyquist term) counted twice
+    wgt = np.full(fx.size, 2.0)
+    wgt[0] = 1.0
+    phase = 2.0 * np.pi * np.outer(fx, centres)
+    img = g.real @ (wgt[:, None] * np.cos(phase)) - g.imag @ (wgt[:, None] * np.sin(phase))
+    # 1 / m^2 of the inverse DFT; density per fine sample -> fraction per pixel: (scale/step)^2
+    return img * (scale / step) ** 2 / m**2
 
 
 def band_psf(tel: TelescopeConfig, band: Band, scale_arcsec: float, radius_arcsec: float,
@@ -258,12 +295,12 @@ def band_psf(tel: TelescopeConfig, band: Band, scale_arcsec: float, radius_arcse
     lam, w = band_wavelengths(band, int(ps.n_wavelengths), float(ps.reference_beta))
     extent = pupil_extent_m(tel)
     half = int(np.ceil(radius_arcsec / scale_arcsec - 1e-9))
-    # Nyquist sampling of the intensity: dtheta <= lambda_min / (2 D)
+    # the intensity is band-limited (cut-off D / lambda): sampling at
+    # step <= lambda_min / (2 D) represents it exactly (Nyquist)
     nyquist_arcsec = lam.min() * 1e-9 / (2.0 * extent) / _RAD_PER_ARCSEC
-    os_ = max(int(ps.oversample), int(np.ceil(scale_arcsec / nyquist_arcsec - 1e-9)))
-    pad = 2 * os_  # fine samples computed beyond the stamp and dropped after the convolutions
-    nhalf = half * os_ + pad
-    step = scale_arcsec / os_
+    step = min(scale_arcsec / int(ps.oversample), nyquist_arcsec)
+    # fine samples reach two pixels beyond the stamp, dropped after the convolutions
+    nhalf = int(np.ceil((half + 2) * scale_arcsec / step))
     theta = np.arange(-nhalf, nhalf + 1) * (step * _RAD_PER_ARCSEC)
     width_rad = theta.size * step * _RAD_PER_ARCSEC
     n_pupil = max(int(tel.pupil.grid_size),
@@ -276,8 +313,7 @@ def band_psf(tel: TelescopeConfig, band: Band, scale_arcsec: float, radius_arcse
         fine += w_i * _intensity(pupil, lam_i, theta)
         strehl += w_i * _on_axis_strehl(pupil, lam_i)
     fine *= (step * _RAD_PER_ARCSEC) ** 2  # fraction of the total flux per fine sample
-    conv = _pixel_integrate(fine, os_, ps.jitter_mas / 1000.0 / step)
-    image = conv[pad::os_, pad::os_][: 2 * half + 1, : 2 * half + 1] * os_**2
+    image = _resample_pixels(fine, step, scale_arcsec, 2 * half + 1, ps.jitter_mas / 1000.0)
     total = float(image.sum())
     image = image / total
     radii, ee = encircled_energy(image, scale_arcsec)
@@ -312,7 +348,8 @@ def encircled_energy(image: np.ndarray, scale_arcsec: float,
                      ) -> tuple[np.ndarray, np.ndarray]:
     """Encircled energy about the central pixel's centre.
 
-    Each pixel's value is spread uniformly over ``subsample`` x ``subsample`` points.
+    Within ``_EE_INNER_PIX`` pixels of the centre each pixel's value is spread uniformly over
+    ``subsample`` x ``subsample`` points; farther out it sits at the pixel centre.
 
     Parameters
     ----------
@@ -329,15 +366,23 @@ def encircled_energy(image: np.ndarray, scale_arcsec: float,
     if radii_arcsec is None:
         radii_arcsec = scale_arcsec * 0.5 * np.arange(1, n + 1)
     radii_arcsec = np.asarray(radii_arcsec, dtype=float)
+    c = (n - 1) // 2
+    k = min(c, _EE_INNER_PIX)
+    # inner (2k+1)^2 pixels: subsample^2 points each; outer pixels: one point at the centre
     sub = (np.arange(subsample) + 0.5) / subsample - 0.5
-    c = (np.arange(n) - (n - 1) / 2.0)
-    pos = (c[:, None] + sub[None, :]).ravel() * scale_arcsec
-    r = np.hypot(pos[:, None], pos[None, :])
-    v = np.repeat(np.repeat(image, subsample, axis=0), subsample, axis=1)
+    pos = ((np.arange(-k, k + 1)[:, None] + sub[None, :]).ravel()) * scale_arcsec
+    r_in = np.hypot(pos[:, None], pos[None, :]).ravel()
+    inner = image[c - k:c + k + 1, c - k:c + k + 1]
+    v_in = np.repeat(np.repeat(inner, subsample, axis=0), subsample, axis=1).ravel() / subsample**2
+    yy, xx = np.mgrid[0:n, 0:n] - c
+    outer = (np.abs(yy) > k) | (np.abs(xx) > k)
+    r_out = np.hypot(xx[outer], yy[outer]) * scale_arcsec
+    r = np.concatenate([r_in, r_out])
+    v = np.concatenate([v_in, image[outer]])
     # a point at r counts towards every radius >= r
-    idx = np.searchsorted(radii_arcsec, r.ravel(), side="left")
-    inside = np.bincount(idx, weights=v.ravel(), minlength=radii_arcsec.size + 1)
-    ee = np.cumsum(inside)[: radii_arcsec.size] / v.sum()
+    idx = np.searchsorted(radii_arcsec, r, side="left")
+    ring = np.bincount(idx, weights=v, minlength=radii_arcsec.size + 1)
+    ee = np.cumsum(ring)[: radii_arcsec.size] / image.sum()
     return radii_arcsec, ee
 
 

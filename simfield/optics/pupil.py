@@ -145,21 +145,39 @@ def _strut_angles(tel: TelescopeConfig) -> np.ndarray:
     return np.deg2rad(90.0 + 360.0 * np.arange(p.strut_count) / max(p.strut_count, 1))
 
 
-def _overlap(u: np.ndarray, h: np.ndarray | float, lo: float, hi: float) -> np.ndarray:
-    """Fraction of the interval [u - h, u + h] inside [lo, hi] (h > 0)."""
-    return np.clip(np.minimum(u + h, hi) - np.maximum(u - h, lo), 0.0, None) / (2.0 * h)
+def _cell_cdf(t: np.ndarray, nx: float, ny: float, scale: float) -> np.ndarray:
+    """Fraction of a square cell (side ``scale``, axes x, y) lying where n.(p - centre) <= t.
+
+    The cell's area projected on the unit normal n is the distribution of U(-a, a) + U(-b, b),
+    a = scale |nx| / 2, b = scale |ny| / 2 (a trapezoid); this is its cumulative distribution,
+    so the fraction is exact for a straight edge.
+    """
+    a, b = 0.5 * scale * abs(nx), 0.5 * scale * abs(ny)
+    a, b = max(a, b), min(a, b)
+    t = np.asarray(t, dtype=float)
+    lin = np.clip((t + a) / (2.0 * a), 0.0, 1.0)
+    if b < 1e-9 * a:
+        return lin
+    lo = np.clip(t + a + b, 0.0, 2.0 * b) ** 2 / (8.0 * a * b)  # rising corner
+    hi = np.clip(a + b - t, 0.0, 2.0 * b) ** 2 / (8.0 * a * b)  # falling corner
+    return np.where(t < b - a, lo, np.where(t > a - b, 1.0 - hi, lin))
 
 
-def _half_width(nx: float, ny: float, scale: float) -> float:
-    """Half-width of a square cell of side ``scale`` projected on the unit direction (nx, ny)."""
-    return 0.5 * scale * (abs(nx) + abs(ny))
+def _overlap(u: np.ndarray, n: tuple[float, float], scale: float, lo: float,
+             hi: float) -> np.ndarray:
+    """Fraction of the cell centred at normal coordinate ``u`` inside lo <= n.p <= hi."""
+    nx, ny = n
+    out = _cell_cdf(hi - u, nx, ny, scale) if np.isfinite(hi) else 1.0
+    if np.isfinite(lo):
+        out = out - _cell_cdf(lo - u, nx, ny, scale)
+    return out
 
 
 def _hexagon_cover(x, y, cx, cy, flat: float, scale: float) -> np.ndarray:
     """Clear fraction of cells at (x, y) from a flat-topped hexagon centred at (cx, cy)."""
     cov = np.ones(np.broadcast(x, y, cx, cy).shape)
     for nx, ny in _HEX_NORMALS:
-        cov = cov * _overlap(nx * (x - cx) + ny * (y - cy), _half_width(nx, ny, scale),
+        cov = cov * _overlap(nx * (x - cx) + ny * (y - cy), (nx, ny), scale,
                              -flat / 2.0, flat / 2.0)
     return cov
 
@@ -200,28 +218,22 @@ def _segments_cover(tel: TelescopeConfig, x: np.ndarray, y: np.ndarray, scale: f
 def _amplitude(tel: TelescopeConfig, coords: np.ndarray, scale: float) -> np.ndarray:
     """Clear fraction of each cell.
 
-    Each edge is treated locally as straight: the fraction of the cell on the clear side is the
-    overlap of the cell's projection on the edge normal (an interval of half-width
-    scale (|nx| + |ny|) / 2) with the clear side. That is exact for edges along the raster axes
-    and keeps the area of every edge and of gaps narrower than a cell; shapes are combined as
-    products of these fractions (exact away from corners).
+    Each edge is treated locally as straight, and the fraction of the cell on its clear side
+    is computed exactly (:func:`_cell_cdf`), so the area of every edge, gap and strut is kept
+    even when narrower than a cell; polygons and bars are products of such fractions (exact
+    away from corners), obstructions and struts multiply the clear fraction.
     """
     p = tel.pupil
     x, y = np.meshgrid(coords, coords)
+    rho = np.hypot(x, y)
     if p.kind == "circular":
-        rho = np.hypot(x, y)
-        phi = np.arctan2(y, x)
-        h = 0.5 * scale * (np.abs(np.cos(phi)) + np.abs(np.sin(phi)))
-        amp = _overlap(rho, h, -np.inf, tel.diameter_m / 2.0)
+        amp = _disc_cover(x, y, rho, tel.diameter_m / 2.0, scale)
     else:
         amp = _segments_cover(tel, x, y, scale)
     if p.obstruction_diameter_m > 0:
         half = p.obstruction_diameter_m / 2.0
         if p.obstruction_shape == "circle":
-            rho = np.hypot(x, y)
-            phi = np.arctan2(y, x)
-            h = 0.5 * scale * (np.abs(np.cos(phi)) + np.abs(np.sin(phi)))
-            blocked = _overlap(rho, h, -np.inf, half)
+            blocked = _disc_cover(x, y, rho, half, scale)
         else:
             blocked = _hexagon_cover(x, y, 0.0, 0.0, p.obstruction_diameter_m, scale)
         amp = amp * (1.0 - blocked)
@@ -229,12 +241,31 @@ def _amplitude(tel: TelescopeConfig, coords: np.ndarray, scale: float) -> np.nda
         ca, sa = np.cos(a), np.sin(a)
         along = x * ca + y * sa
         across = -x * sa + y * ca
-        h = _half_width(ca, sa, scale)
-        blocked = (_overlap(across, h, p.strut_offset_m - p.strut_width_m / 2.0,
+        blocked = (_overlap(across, (-sa, ca), scale, p.strut_offset_m - p.strut_width_m / 2.0,
                             p.strut_offset_m + p.strut_width_m / 2.0)
-                   * _overlap(along, h, 0.0, np.inf))
+                   * _overlap(along, (ca, sa), scale, 0.0, np.inf))
         amp = amp * (1.0 - blocked)
     return amp
+
+
+def _disc_cover(x, y, rho, radius: float, scale: float) -> np.ndarray:
+    """Clear fraction of cells from a disc of ``radius`` (m), its edge taken as locally straight."""
+    cov = (rho <= radius).astype(float)
+    near = np.abs(rho - radius) < scale
+    nx, ny = x[near] / np.maximum(rho[near], 1e-300), y[near] / np.maximum(rho[near], 1e-300)
+    a = 0.5 * scale * np.maximum(np.abs(nx), np.abs(ny))
+    b = 0.5 * scale * np.minimum(np.abs(nx), np.abs(ny))
+    cov[near] = _trapezoid_cdf(radius - rho[near], a, b)
+    return cov
+
+
+def _trapezoid_cdf(t: np.ndarray, a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Cumulative distribution of U(-a, a) + U(-b, b) at t, arrays with a >= b >= 0."""
+    b = np.maximum(b, 1e-12 * a)
+    lin = np.clip((t + a) / (2.0 * a), 0.0, 1.0)
+    lo = np.clip(t + a + b, 0.0, 2.0 * b) ** 2 / (8.0 * a * b)
+    hi = np.clip(a + b - t, 0.0, 2.0 * b) ** 2 / (8.0 * a * b)
+    return np.where(t < b - a, lo, np.where(t > a - b, 1.0 - hi, lin))
 
 
 def _opd(tel: TelescopeConfig, coords: np.ndarray, rng: np.random.Generator | None) -> np.ndarray:
