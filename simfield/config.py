@@ -336,6 +336,11 @@ def _validate_telescope(t: TelescopeConfig) -> None:
                 s.core_radius_arcsec, 120)
     check_range("telescope.psf.n_wavelengths", s.n_wavelengths, 1, 100)
     check_range("telescope.psf.jitter_mas", s.jitter_mas, 0, 1000)
+    check_range("telescope.psf.reference_beta", s.reference_beta, -10, 10)
+    check_range("telescope.psf.bright_mag", s.bright_mag, 0, 40)
+    require(bool(s.cache_dir), "telescope.psf.cache_dir", s.cache_dir, "must be a directory path")
+    check_range("telescope.pupil.strut_offset_m", p.strut_offset_m, -t.diameter_m / 2,
+                t.diameter_m / 2)
 
 
 def _validate_population(p: PopulationConfig, bands: list[str]) -> None:

@@ -343,10 +343,13 @@ def test_band_psf_rejects_bad_radius():
         band_psf(circular(grid=64), narrow_band(), 0.02, 0.01)
 
 
-def test_pupil_grid_size_validated(scenario_factory):
-    """telescope.pupil.grid_size=10 is refused by the config validation (RULES)."""
-    with pytest.raises(ConfigError, match="telescope.pupil.grid_size"):
-        scenario_factory("telescope.pupil.grid_size=10")
+@pytest.mark.parametrize("key, value", [("telescope.pupil.grid_size", "10"),
+                                        ("telescope.psf.reference_beta", "50"),
+                                        ("telescope.pupil.strut_offset_m", "9")])
+def test_optics_config_validated(scenario_factory, key, value):
+    """Out-of-range pupil / PSF settings are refused naming the key (RULES)."""
+    with pytest.raises(ConfigError, match=key.replace(".", r"\.")):
+        scenario_factory(f"{key}={value}")
 
 
 def test_cache_second_call_is_a_hit(tmp_path, monkeypatch):

@@ -61,7 +61,7 @@ _RAD_PER_ARCSEC = np.pi / 180.0 / 3600.0
 #: PSF against a 3x finer raster (benchmarks/bench_psf.py --convergence): the summed |error| is
 #: 3e-5 inside 1", 1 % at 3-5", 2 % at 5-7" and 4 % at the stamp edge.
 _PERIOD_FACTOR = 1.5
-_CACHE_VERSION = 1  # bump when the computation changes
+_CACHE_VERSION = 2  # bump when the computation changes
 _EE_INNER_PIX = 30  # encircled energy: pixels within this many of the centre are subsampled
 
 
@@ -490,7 +490,7 @@ def cached_band_psf(tel: TelescopeConfig, band: Band, scale_arcsec: float,
 # --------------------------------------------------------------------------------------------
 def write_psf_png(psfs: Sequence[PSFImage], pupil: Pupil, path: str | os.PathLike,
                   dynamic_range: float = 1e7) -> Path:
-    """PNG of the pupil amplitude and each PSF on a log stretch.
+    """PNG of the pupil amplitude (and wavefront error, if any) and each PSF on a log stretch.
 
     Parameters
     ----------
@@ -504,7 +504,9 @@ def write_psf_png(psfs: Sequence[PSFImage], pupil: Pupil, path: str | os.PathLik
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
 
-    n = len(psfs) + 1
+    with_opd = bool(np.any(pupil.opd_nm))
+    first = 2 if with_opd else 1
+    n = len(psfs) + first
     ncol = min(n, 3)
     nrow = int(np.ceil(n / ncol))
     fig = Figure(figsize=(4.2 * ncol, 4.0 * nrow))
@@ -516,8 +518,15 @@ def write_psf_png(psfs: Sequence[PSFImage], pupil: Pupil, path: str | os.PathLik
     ax.set_title(f"pupil, clear area {pupil.area_m2:.2f} m$^2$")
     ax.set_xlabel("x (m)")
     ax.set_ylabel("y (m)")
+    if with_opd:
+        ax = fig.add_subplot(nrow, ncol, 2)
+        opd = np.where(pupil.amplitude > 0.5, pupil.opd_nm, np.nan)
+        im = ax.imshow(opd, origin="lower", cmap="RdBu_r", extent=(-h, h, -h, h))
+        ax.set_title(f"wavefront error, rms {pupil.rms_wfe_nm:.1f} nm")
+        ax.set_xlabel("x (m)")
+        fig.colorbar(im, ax=ax, label="OPD (nm)", shrink=0.8)
     for i, p in enumerate(psfs):
-        ax = fig.add_subplot(nrow, ncol, i + 2)
+        ax = fig.add_subplot(nrow, ncol, i + 1 + first)
         r = p.radius_arcsec
         peak = p.image.max()
         im = ax.imshow(np.log10(np.maximum(p.image, peak / dynamic_range * 1e-3) / peak),
