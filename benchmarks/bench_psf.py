@@ -60,7 +60,8 @@ def main() -> None:
         print(f"{band.name:>5} {t1 - t0:7.2f} {t2 - t1:8.2f} {core.fwhm_arcsec:7.4f} "
               f"{eff.fwhm_arcsec:9.4f} {core.strehl:6.3f} {core.flux_fraction:9.4f} "
               f"{spike.flux_fraction:10.4f}")
-    print(f"all {len(bands)} bands, core + spike: {total:.2f} s wall, {cpu:.2f} s CPU (all threads)")
+    print(f"all {len(bands)} bands, core + spike: {total:.2f} s wall, "
+          f"{cpu:.2f} s CPU (all threads)")
     if args.convergence:
         convergence(tel, bands[0], scale)
     if args.png:

@@ -14,11 +14,12 @@ from .psf import (
     monochromatic_psf,
     write_psf_png,
 )
-from .pupil import Pupil, make_pupil, pupil_extent_m, segment_centers
+from .pupil import Pupil, make_pupil, pupil_extent_m, scenario_pupil, segment_centers
 
 __all__ = [
     "Pupil",
     "make_pupil",
+    "scenario_pupil",
     "pupil_extent_m",
     "segment_centers",
     "PSFImage",

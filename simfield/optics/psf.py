@@ -1,6 +1,6 @@
 """Polychromatic point-spread functions of a rastered pupil.
 
-Monochromatic PSF (Fraunhofer diffraction, Born & Wolf, Principles of Optics, sec. 8.3):
+Monochromatic PSF (Fraunhofer diffraction, Born & Wolf, Principles of Optics, ch. 8):
 the field at sky angle theta (rad) is E(theta) = int P(x) exp(-2 pi i x.theta / lambda) d^2x with
 P = amplitude * exp(2 pi i OPD / lambda). It is evaluated by a matrix Fourier transform
 (E = A P A^T, A[k, j] = exp(-2 pi i theta_k x_j / lambda)), so any output sampling is exact, with
@@ -40,8 +40,7 @@ import numpy as np
 from ..bands import Band
 from ..config import TelescopeConfig
 from ..errors import check_range, require
-from ..random import stream
-from .pupil import Pupil, make_pupil, pupil_extent_m
+from .pupil import Pupil, pupil_extent_m, scenario_pupil
 
 __all__ = [
     "PSFImage",
@@ -234,7 +233,7 @@ def _band_pupil(tel: TelescopeConfig, seed: int, n: int) -> Pupil:
     if key not in _PUPILS:
         if len(_PUPILS) >= 8:
             _PUPILS.pop(next(iter(_PUPILS)))
-        _PUPILS[key] = make_pupil(tel, stream(seed, "optics", "pupil"), grid_size=n)
+        _PUPILS[key] = scenario_pupil(tel, seed, grid_size=n)
     return _PUPILS[key]
 
 

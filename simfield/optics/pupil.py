@@ -33,8 +33,9 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..config import TelescopeConfig
+from ..random import stream
 
-__all__ = ["Pupil", "make_pupil", "pupil_extent_m", "segment_centers"]
+__all__ = ["Pupil", "make_pupil", "scenario_pupil", "pupil_extent_m", "segment_centers"]
 
 _SQRT3 = np.sqrt(3.0)
 #: unit normals of the three edge pairs of a flat-topped hexagon (30, 90, 150 deg)
@@ -98,7 +99,8 @@ def _hex_round(qf: np.ndarray, rf: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 
 
 def _lattice_centres(q, r, pitch: float):
-    """Centre (m) of axial lattice node (q, r); basis a1 = pitch (sqrt3/2, 1/2), a2 = pitch (0, 1)."""
+    """Centre (m) of axial lattice node (q, r): q a1 + r a2, a1 = pitch (sqrt3/2, 1/2),
+    a2 = pitch (0, 1)."""
     return q * pitch * _SQRT3 / 2.0, pitch * (r + q / 2.0)
 
 
@@ -333,3 +335,20 @@ def make_pupil(tel: TelescopeConfig, rng: np.random.Generator | None = None,
     opd.setflags(write=False)
     return Pupil(amplitude=amp, opd_nm=opd, scale_m=float(scale),
                  area_m2=float(amp.sum() * scale * scale))
+
+
+def scenario_pupil(tel: TelescopeConfig, seed: int, grid_size: int | None = None) -> Pupil:
+    """The scenario's pupil: wavefront error drawn from ``stream(seed, "optics", "pupil")``.
+
+    This is the pupil every band PSF of the scenario uses (at the raster size each PSF needs);
+    use it for pictures and reports so they show the same wavefront error.
+
+    Parameters
+    ----------
+    tel : TelescopeConfig
+    seed : int
+        The scenario's seed.
+    grid_size : int, optional
+        Raster cells across; default ``tel.pupil.grid_size``.
+    """
+    return make_pupil(tel, stream(int(seed), "optics", "pupil"), grid_size=grid_size)
