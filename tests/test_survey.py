@@ -261,9 +261,11 @@ def test_measured_depth_follows_noise_model():
         mosaic = sv.drizzle_mosaic(exps, grids, mg, "square", 0.8)
         depths[n] = sv.measured_depth(mosaic, mg, zp, r, np.random.default_rng(9))
         pred = sv.predicted_depth(det, 1000.0, n, zp, sky, TEL.pixel_scale_arcsec, r)
-        # ~600 independent apertures: sigma known to ~4% (0.05 mag) with MAD
-        assert_allclose(depths[n], pred, atol=0.12)
-    assert_allclose(depths[4] - depths[1], 1.25 * math.log10(4), atol=0.12)
+        # ~600 independent apertures: sigma known to ~4% (0.05 mag) with MAD. Drizzle's partial
+        # overlaps at the aperture edge lower the aperture noise (sum a^2 < sum a), which makes
+        # the measured depth ~0.1 mag deeper at r = 5 detector pixels (measured: +0.09, +0.10)
+        assert -0.05 < depths[n] - pred < 0.2
+    assert_allclose(depths[4] - depths[1], 1.25 * math.log10(4), atol=0.08)
 
 
 def test_mosaic_hdus_verify():
