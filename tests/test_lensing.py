@@ -3,7 +3,7 @@
 Comparison to other sources
 ---------------------------
 - SIS and point-mass lenses: Schneider, Ehlers & Falco 1992, "Gravitational Lenses" (SEF),
-  sections 8.1.2 and 8.1.4; total point-mass magnification: Paczynski 1986, ApJ 304, 1, eq. 2.
+  chapter 8 [mem for the chapter]; total point-mass magnification: Paczynski 1986, ApJ 304, 1.
 - NFW convergence and shear: Wright & Brainerd 2000, ApJ 534, 34, eqs. 11-16 (written out
   below, independently of simfield's implementation), and galsim.NFWHalo (reference library).
 - Distances and constants: astropy.cosmology and astropy.constants (reference library).
@@ -49,7 +49,7 @@ def _lens(*components, z_l=Z_L, ref=9.0):
 
 
 def _sis_theta_e(sigma_kms):
-    """SEF 1992 eq. 8.36: theta_E = 4 pi (sigma/c)^2 D_ls/D_s (arcsec)."""
+    """SEF 1992: theta_E = 4 pi (sigma/c)^2 D_ls/D_s (arcsec)."""
     _, d_s, d_ls = _distances()
     return float(4 * np.pi * (sigma_kms * u.km / u.s / const.c).decompose() ** 2
                  * (d_ls / d_s).decompose()) * ARCSEC
@@ -71,7 +71,7 @@ def _wb_nfw(x_arcsec, m200, conc, z_l=Z_L, z_s=Z_S):
     rho_c = COSMO.critical_density(z_l).to(u.Msun / u.Mpc**3).value
     r200 = (3 * m200 / (800 * np.pi * rho_c)) ** (1 / 3)
     r_s = r200 / conc
-    delta_c = 200 / 3 * conc**3 / (np.log(1 + conc) - conc / (1 + conc))  # WB eq. 2
+    delta_c = 200 / 3 * conc**3 / (np.log(1 + conc) - conc / (1 + conc))  # WB 2000
     d_l, d_s, d_ls = _distances(z_l, z_s)
     sig_cr = (const.c**2 / (4 * np.pi * const.G) * d_s / (d_l * d_ls)).to(u.Msun / u.Mpc**2).value
     x = np.asarray(x_arcsec, float) / ARCSEC * d_l.to(u.Mpc).value / r_s
@@ -92,7 +92,7 @@ def _wb_nfw(x_arcsec, m200, conc, z_l=Z_L, z_s=Z_S):
 
 # ---------------------------------------------------------------- profiles
 def test_sis_einstein_radius_from_velocity_dispersion():
-    """SIS deflection = theta_E and kappa(theta_E) = 1/2 (SEF 1992 eq. 8.36), astropy distances."""
+    """SIS deflection = theta_E and kappa(theta_E) = 1/2 (SEF 1992), astropy distances."""
     lens = _lens(LensComponentConfig(kind="sis", sigma_kms=250.0))
     te = _sis_theta_e(250.0)
     x = np.array([0.3, 1.0, 4.0]) * te
@@ -106,7 +106,7 @@ def test_sis_einstein_radius_from_velocity_dispersion():
 
 
 def test_point_mass_einstein_radius_and_magnification():
-    """Point mass theta_E (SEF 1992 eq. 8.34) and total mu = (u^2+2)/(u sqrt(u^2+4)) (Paczynski 1986)."""
+    """Point mass theta_E (SEF 1992); total mu = (u^2+2)/(u sqrt(u^2+4)) (Paczynski 1986)."""
     m = 1e12
     lens = _lens(LensComponentConfig(kind="point", mass_msun=m))
     d_l, d_s, d_ls = _distances()
@@ -134,7 +134,7 @@ def test_nfw_matches_wright_brainerd():
     assert_allclose(lens.convergence(x, y, Z_S), kap_ref, rtol=1e-6)
     g1, g2 = lens.shear(x, y, Z_S)
     assert_allclose(np.hypot(g1, g2), gam_ref, rtol=1e-6)
-    # tangential: gamma1 + i gamma2 = -|gamma| exp(2 i phi) (SEF 1992 eq. 8.12 convention)
+    # tangential: gamma1 + i gamma2 = -|gamma| exp(2 i phi) (SEF 1992 sign convention)
     assert_allclose(g1, -gam_ref * np.cos(2 * phi), rtol=1e-6, atol=1e-12)
     ax, ay = lens.deflection(x, y, Z_S)
     assert_allclose(np.hypot(ax, ay), alp_ref, rtol=1e-6)
@@ -162,7 +162,7 @@ def test_nfw_matches_galsim():
 
 
 def test_elliptical_profiles_obey_poisson_equation():
-    """SIE and elliptical NFW: kappa = div(alpha)/2, gamma from alpha's derivatives (SEF eq. 5.9)."""
+    """SIE, elliptical NFW: kappa = div(alpha)/2, gamma from alpha's derivatives (SEF 1992)."""
     lens = _lens(LensComponentConfig(kind="sie", sigma_kms=300.0, axis_ratio=0.6,
                                      position_angle_deg=30.0),
                  LensComponentConfig(kind="nfw", mass_msun=5e14, concentration=6.0,
@@ -185,7 +185,7 @@ def test_elliptical_profiles_obey_poisson_equation():
 
 # ---------------------------------------------------------------- images
 def test_sis_images_and_magnifications():
-    """SIS images at beta +/- theta_E with mu = |theta|/(|theta| - theta_E) (SEF 1992 eq. 8.37)."""
+    """SIS images at beta +/- theta_E with mu = |theta|/(|theta| - theta_E) (SEF 1992)."""
     lens = _lens(LensComponentConfig(kind="sis", sigma_kms=250.0))
     te = _sis_theta_e(250.0)
     beta = np.array([0.1, 0.45, 0.8, 1.6]) * te
@@ -222,7 +222,7 @@ def _reference_fields(x, y):
 
 
 def test_images_solve_lens_equation_and_mu_formula():
-    """Images of NFW + shear satisfy beta = theta - alpha and mu = 1/((1-k)^2-|g|^2) (WB 2000 + SEF)."""
+    """NFW + shear images solve beta = theta - alpha; mu = 1/((1-k)^2-|g|^2) (WB 2000, SEF)."""
     lens = _nfw_shear_lens()
     rng = np.random.default_rng(5)
     bx, by = rng.uniform(-2.5, 2.5, 40), rng.uniform(-2.5, 2.5, 40)
@@ -240,7 +240,7 @@ def test_images_solve_lens_equation_and_mu_formula():
 
 
 def test_critical_curve_of_sis_is_einstein_circle():
-    """SIS tangential critical curve is the circle theta_E; its caustic is the point 0 (SEF 8.1.4)."""
+    """SIS tangential critical curve: the circle theta_E; its caustic: the point 0 (SEF 1992)."""
     lens = _lens(LensComponentConfig(kind="sis", sigma_kms=250.0))
     te = _sis_theta_e(250.0)
     cc = critical_curves(lens, Z_S, 4 * te, te / 50)
@@ -262,7 +262,7 @@ GRID = Grid(500, 500, 0.02, 150.0, 2.0)
 
 
 def test_small_source_flux_is_magnification():
-    """A small source's lensed flux = sum |mu| (SEF eq. 8.37), weak-lensing and ray-traced paths."""
+    """A small source's lensed flux = sum |mu| (SEF 1992), weak-lensing and ray-traced paths."""
     lens = _lens(LensComponentConfig(kind="sis", sigma_kms=250.0))
     te = _sis_theta_e(250.0)
     prof = galsim.Gaussian(sigma=0.01)
@@ -294,7 +294,7 @@ def test_surface_brightness_is_conserved():
 
 
 def test_source_behind_round_lens_forms_ring():
-    """A source exactly behind an SIS forms an Einstein ring of radius theta_E (SEF 8.1.4)."""
+    """A source exactly behind an SIS forms an Einstein ring of radius theta_E (SEF 1992)."""
     lens = _lens(LensComponentConfig(kind="sis", sigma_kms=250.0))
     te = _sis_theta_e(250.0)
     img = _paint(render_lensed(lens, galsim.Gaussian(sigma=0.02), 0.0, 0.0, Z_S, GRID), GRID)
@@ -308,7 +308,7 @@ def test_source_behind_round_lens_forms_ring():
 
 
 def test_rendered_image_fluxes_match_mu_formula():
-    """Per-image flux of a small multiply imaged source = |mu| from WB 2000 + shear at the images."""
+    """Per-image flux of a small multiply imaged source = |mu| (WB 2000 + shear) at its images."""
     lens = _nfw_shear_lens()
     grid = Grid(2000, 2000, 0.02, 150.0, 2.0)
     bx, by = 0.247, -1.342  # three images, |mu| ~ 6-16
@@ -354,7 +354,7 @@ def _bands():
 
 
 def test_members_follow_faber_jackson_and_config():
-    """Members: n, kind, magnitude range, sigma ~ L^(1/4) (Faber & Jackson 1976), seed-reproducible."""
+    """Members: count, kind, magnitudes, sigma ~ L^(1/4) (Faber & Jackson 1976), reproducible."""
     cfg = LensConfig(kind="cluster", redshift=0.35, n_members=60, member_mag_bright=19.0,
                      member_mag_faint=24.0,
                      components=[LensComponentConfig(kind="nfw", mass_msun=8e14,
@@ -376,7 +376,7 @@ def test_members_follow_faber_jackson_and_config():
 
 
 def test_members_become_lenses():
-    """A member is a truncated SIS: alpha = theta_E (SEF eq. 8.36) near it, finite mass far out."""
+    """A member is a truncated SIS: alpha = theta_E (SEF 1992) near it, finite mass far out."""
     cfg = LensConfig(kind="cluster", redshift=Z_L, n_members=1, components=[])
     m = Table({"x_arcsec": [10.0], "y_arcsec": [-4.0], "sigma_kms": [180.0]})
     lens = build_lens(cfg, m, cosmo=COSMO)
@@ -413,7 +413,7 @@ def test_lens_config_validation_names_key():
 
 
 def test_default_cluster_makes_multiple_images():
-    """conf/lens/cluster.yaml with its members: many multiple-image systems at z_s = 1-10 (brief)."""
+    """conf/lens/cluster.yaml with members: many multiple-image systems at z_s = 1-10 (brief)."""
     from omegaconf import OmegaConf
 
     cfg = OmegaConf.to_object(OmegaConf.merge(OmegaConf.structured(LensConfig),

@@ -1,8 +1,8 @@
 """Solving the lens equation: multiple images, critical curves and caustics, a lens map.
 
-Images are found by the triangle-mapping method (Schneider, Ehlers & Falco 1992, section 11;
-Keeton 2001, astro-ph/0102340): the image plane is tiled with triangles whose vertices are
-mapped to the source plane with the cached reduced deflection; a triangle that contains the
+Images are found by the triangle-mapping method (Schneider, Ehlers & Falco 1992; Keeton 2001,
+astro-ph/0102340 [mem]): the image plane is tiled with triangles whose vertices are mapped to
+the source plane with the cached reduced deflection; a triangle that contains the
 source holds an image, whose position is then refined by Newton iteration on the exact lens
 equation. Many sources are handled at once: sources are grouped in bins of D_ls/D_s, and within
 a bin a summed-area table of source counts in the source plane picks out the few triangles that
@@ -341,9 +341,9 @@ def write_lens_png(lens: Lens, path, extent_arcsec=100.0, resolution_arcsec: flo
     fig, ax = plt.subplots(figsize=(7, 6))
     pos = kappa[kappa > 0]
     vmin = max(np.percentile(pos, 1), 1e-3) if pos.size else 1e-3
-    im = ax.imshow(np.clip(kappa, vmin, None), origin="lower", cmap="Greys",
-                   extent=(xmin, xmax, ymin, ymax), norm=LogNorm(vmin=vmin, vmax=max(kappa.max(),
-                                                                                  2 * vmin)))
+    vmax = max(min(np.percentile(kappa, 99.9), 10.0), 2 * vmin)  # singular centres aside
+    im = ax.imshow(np.clip(kappa, vmin, vmax), origin="lower", cmap="Greys",
+                   extent=(xmin, xmax, ymin, ymax), norm=LogNorm(vmin=vmin, vmax=vmax))
     for i, c in enumerate(cc.critical):
         ax.plot(c[:, 0], c[:, 1], color="tab:red", lw=0.8,
                 label="critical curve" if i == 0 else None)
@@ -354,8 +354,8 @@ def write_lens_png(lens: Lens, path, extent_arcsec=100.0, resolution_arcsec: flo
     ax.set_ylim(ymin, ymax)
     ax.set_xlabel("xi (arcsec, east)")
     ax.set_ylabel("eta (arcsec, north)")
-    ax.set_title(f"convergence, critical curves and caustics, z_s = {z_s:g} (z_l = "
-                 f"{lens.redshift:g})")
+    ax.set_title(f"convergence, critical curves, caustics\nz_l = {lens.redshift:g}, "
+                 f"z_s = {z_s:g}", fontsize=10)
     fig.colorbar(im, ax=ax, label="kappa")
     if cc.critical:
         ax.legend(loc="upper right", fontsize=8)

@@ -81,7 +81,7 @@ def nfw_parameters(m200_msun: float, concentration: float, z_l: float, cosmo):
     theta_s : float (arcsec)
         Angular scale radius r_s / D_l.
     kappa_s : float
-        rho_s r_s / Sigma_cr for D_ls/D_s = 1 (Wright & Brainerd 2000, ApJ 534, 34, eq. 2-4:
+        rho_s r_s / Sigma_cr for D_ls/D_s = 1 (Wright & Brainerd 2000, ApJ 534, 34 [mem]:
         rho_s = delta_c rho_crit, delta_c = (200/3) c^3 / (ln(1+c) - c/(1+c))).
     """
     rho_c = cosmo.critical_density(z_l).to_value(u.Msun / u.Mpc**3)
@@ -118,7 +118,7 @@ def _radial_hessian(alpha, kappa, x, y, q):
     ``alpha(r)`` = psi'(r) and ``kappa(r)`` are the circular profile's deflection and
     convergence; psi''(r) = 2 kappa - alpha/r follows from the 2D Poisson equation. With
     q = 1 this is the circular lens; q < 1 gives an elliptical potential (e.g. Golse & Kneib
-    2002, A&A 390, 821).
+    2002, A&A 390, 821 [mem]).
     """
     if q == 1.0:
         return _circular(alpha, kappa, x, y)
@@ -219,8 +219,8 @@ class TruncatedSIS:
     """Singular isothermal sphere, optionally truncated (pseudo-Jaffe form).
 
     kappa = theta_E/2 (1/r - 1/sqrt(r^2 + a^2)): an SIS minus a cored isothermal of core a,
-    so the mass is finite, M(<inf) = pi Sigma_cr theta_E a (Keeton 2001, astro-ph/0102341,
-    "pseudo-Jaffe"). ``a = inf`` is the plain SIS with alpha = theta_E (SEF 1992).
+    so the mass is finite, M(<inf) = pi Sigma_cr theta_E a ("pseudo-Jaffe"; Keeton 2001,
+    astro-ph/0102341 [mem]). ``a = inf`` is the plain SIS with alpha = theta_E (SEF 1992).
 
     Attributes
     ----------
@@ -260,8 +260,8 @@ class SIE:
     """Singular isothermal ellipsoid, kappa = theta_E / (2 sqrt(q x'^2 + y'^2/q)).
 
     theta_E is the reduced Einstein radius of the SIS of the same velocity dispersion
-    (intermediate-axis normalisation, Kormann, Schneider & Bartelmann 1994, A&A 284, 285).
-    Deflection in closed form (Keeton 2001, astro-ph/0102341, eq. for the SIE with zero core):
+    (intermediate-axis normalisation, Kormann, Schneider & Bartelmann 1994, A&A 284, 285 [mem]).
+    Deflection in closed form (Keeton 2001, astro-ph/0102341 [mem], SIE with zero core):
     alpha_x' = b q/e atan(e x'/psi), alpha_y' = b q/e atanh(e y'/psi), psi = sqrt(q^2 x'^2 + y'^2),
     e = sqrt(1 - q^2), b = theta_E / sqrt(q). The Hessian follows by differentiation.
     """
