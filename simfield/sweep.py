@@ -78,9 +78,8 @@ HEADLINE_METRICS = (
     "n_images", "n_multiply_imaged",
 )
 
-# summary.json entries that are not results (strings, lists, file paths, provenance)
-_SKIP_SUMMARY = {"provenance", "report", "spike_angles_deg", "simfield_version", "catalog",
-                 "band", "headline_fit"}
+# summary.json entries that are not results (strings and lists are left out anyway)
+_SKIP_SUMMARY = {"provenance"}
 
 
 # --------------------------------------------------------------------------------------------
@@ -389,7 +388,10 @@ def _flatten(d: dict, prefix: tuple[str, ...] = ()) -> dict[tuple[str, ...], flo
 
 
 def _read_summary(job_dir: Path) -> dict:
-    path = job_dir / "summary.json"
+    return _read_json(job_dir / "summary.json")
+
+
+def _read_json(path: Path) -> dict:
     try:
         data = json.loads(path.read_text())
     except (OSError, ValueError):
@@ -436,7 +438,8 @@ def collect(sweep_dir, include_incomplete: bool = False) -> Table:
     Returns
     -------
     astropy.table.Table
-        Columns: ``job`` (directory relative to ``sweep_dir``), ``complete``, one column per
+        Columns: ``job`` (directory relative to ``sweep_dir``), ``complete``, ``rerun`` (the
+        job's re-run command from ``job.json``, when recorded), one column per
         override key (e.g. ``survey.n_exposures``, ``lens``; the configured ``seed`` when it was
         overridden), ``job_seed`` (the seed the job actually used, from its summary) and one
         column per numeric summary entry, named by its path joined with dots
@@ -462,7 +465,8 @@ def collect(sweep_dir, include_incomplete: bool = False) -> Table:
             if not include_incomplete:
                 continue
         summary = _read_summary(job) if done else {}
-        rows.append({"job": rel, "complete": done,
+        record = _read_json(job / JOB_RECORD)
+        rows.append({"job": rel, "complete": done, "rerun": record.get("rerun"),
                      "overrides": _override_items(_read_overrides(job)),
                      "metrics": _flatten(summary),
                      "bands": list((summary.get("depth_ab") or {}).keys())})
@@ -478,6 +482,8 @@ def collect(sweep_dir, include_incomplete: bool = False) -> Table:
     t = Table()
     t["job"] = [r["job"] for r in rows] if rows else np.array([], dtype=str)
     t["complete"] = np.array([r["complete"] for r in rows], dtype=bool)
+    if any(r["rerun"] for r in rows):
+        t["rerun"] = _column([r["rerun"] for r in rows], "rerun")
     for k in override_keys:
         t[k] = _column([r["overrides"].get(k) for r in rows], k)
     metric_cols = []
@@ -548,13 +554,13 @@ def plot_sweep(t: Table, out_dir) -> list[Path]:
     for param in params:
         col = done[param]
         numeric = col.dtype.kind in "iuf"
-        raw = np.asarray(col.filled(np.nan) if numeric and hasattr(col, "filled") else col)
         if numeric:
-            x = raw.astype(float)
+            x = np.ma.filled(np.ma.asarray(col, dtype=float), np.nan)
             labels = None
         else:
-            cats = sorted(set(str(v) for v in raw))
-            x = np.array([cats.index(str(v)) for v in raw], float)
+            raw = [str(v) for v in col]
+            cats = sorted(set(raw))
+            x = np.array([cats.index(v) for v in raw], float)
             labels = cats
         for group, cols in _metric_groups(done).items():
             fig, ax = plt.subplots(figsize=(6, 4))

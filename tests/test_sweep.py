@@ -224,6 +224,22 @@ def test_collect_main_writes_table_and_plots(fake_sweep, tmp_path, capsys):
     assert "1 incomplete" in capsys.readouterr().err
 
 
+def test_collect_rerun_column_and_missing_override(tmp_path):
+    """The re-run line of job.json becomes a column; a job lacking a swept key is masked in
+    that column and the plots are still drawn."""
+    root = tmp_path / "s"
+    for num, n in enumerate((1, 4)):
+        d = _fake_job(root, num, [f"survey.n_exposures={n}"], _summary(num, n, 28.0 + n))
+        (d / sweep.JOB_RECORD).write_text(json.dumps({"rerun": f"simfield seed={num}"}))
+    _fake_job(root, 2, [], _summary(5, 0, 27.0))
+    t = sweep.collect(root)
+    assert list(t["rerun"][:2]) == ["simfield seed=0", "simfield seed=1"]
+    assert list(np.ma.getmaskarray(t["survey.n_exposures"])) == [False, False, True]
+    assert list(np.ma.getmaskarray(t["rerun"])) == [False, False, True]
+    files = sweep.plot_sweep(t, tmp_path / "plots")
+    assert tmp_path / "plots" / "depth_ab.measured_5sigma_vs_survey.n_exposures.png" in files
+
+
 def test_collect_main_default_out_and_categorical(tmp_path):
     """A categorical sweep (lens=none,cluster) is plotted; default output SWEEP_DIR/collected."""
     root = tmp_path / "s"
