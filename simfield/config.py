@@ -223,7 +223,7 @@ class DetectionConfig:
     """Baseline detector run on each mosaic."""
 
     enabled: bool = True
-    bands: list[str] = field(default_factory=list)  #: empty: every band
+    bands: list[str] = field(default_factory=list)  #: empty: the selection band (Scenario.detection_bands)
     threshold_sigma: float = 1.5
     npixels: int = 9
     kernel_fwhm_arcsec: float = 0.0  #: matched filter; 0: the band's PSF FWHM
@@ -270,6 +270,7 @@ class Scenario:
     """One complete scenario: what simfield needs to make a field and score it."""
 
     seed: int = 0
+    workers: int = 0  #: processes for the per-band stages; 0: one per core (at most one per band)
     telescope: TelescopeConfig = MISSING
     population: PopulationConfig = MISSING
     lens: LensConfig = MISSING
@@ -281,6 +282,18 @@ class Scenario:
     @property
     def band_names(self) -> list[str]:
         return [b.name for b in self.telescope.bands]
+
+    @property
+    def selection_band(self) -> str:
+        """``population.selection_band``, or else the reddest band (largest centre)."""
+        if self.population.selection_band:
+            return self.population.selection_band
+        return max(self.telescope.bands, key=lambda b: b.center_nm).name
+
+    @property
+    def detection_bands(self) -> list[str]:
+        """Bands detected and scored: ``detection.bands``, or else the selection band."""
+        return list(self.detection.bands) or [self.selection_band]
 
 
 def register_configs() -> None:
@@ -295,10 +308,11 @@ def register_configs() -> None:
 # validation
 # --------------------------------------------------------------------------------------------
 def _validate_telescope(t: TelescopeConfig) -> None:
-    check_range("telescope.diameter_m", t.diameter_m, 0, None, lo_open=True)
+    check_range("telescope.diameter_m", t.diameter_m, 0.01, 100)
     check_range("telescope.collecting_area_m2", t.collecting_area_m2, 0,
                 3.1416 / 4 * t.diameter_m**2 * 1.0001, lo_open=True)
     check_range("telescope.pixel_scale_arcsec", t.pixel_scale_arcsec, 0, 10, lo_open=True)
+    check_range("telescope.pixel_size_um", t.pixel_size_um, 0.1, 1000)
     require(len(t.bands) > 0, "telescope.bands", t.bands, "must list at least one band")
     names = [b.name for b in t.bands]
     require(len(set(names)) == len(names), "telescope.bands", names, "band names must be unique")
@@ -316,7 +330,7 @@ def _validate_telescope(t: TelescopeConfig) -> None:
     require(p.obstruction_shape in ("circle", "hexagon"), "telescope.pupil.obstruction_shape",
             p.obstruction_shape, "must be one of: circle, hexagon")
     check_range("telescope.pupil.segment_rings", p.segment_rings, 0, 20)
-    check_range("telescope.pupil.segment_flat_m", p.segment_flat_m, 0, None, lo_open=True)
+    check_range("telescope.pupil.segment_flat_m", p.segment_flat_m, 0.01, 100)
     check_range("telescope.pupil.gap_m", p.gap_m, 0, p.segment_flat_m, hi_open=True)
     check_range("telescope.pupil.obstruction_diameter_m", p.obstruction_diameter_m, 0,
                 t.diameter_m, hi_open=True)
@@ -379,6 +393,8 @@ def _validate_lens(lens: LensConfig, z_max: float) -> None:
         k = f"lens.components.{i}"
         require(c.kind in ("nfw", "sis", "sie", "point", "shear"), f"{k}.kind", c.kind,
                 "must be one of: nfw, sis, sie, point, shear")
+        check_range(f"{k}.x_arcsec", c.x_arcsec, -3600, 3600)
+        check_range(f"{k}.y_arcsec", c.y_arcsec, -3600, 3600)
         check_range(f"{k}.mass_msun", c.mass_msun, 0, 1e17)
         check_range(f"{k}.concentration", c.concentration, 0, 100, lo_open=True)
         check_range(f"{k}.sigma_kms", c.sigma_kms, 0, 3000)
@@ -456,7 +472,9 @@ def _validate_detection(d: DetectionConfig, bands: list[str]) -> None:
 
 def _validate_score(s: ScoreConfig) -> None:
     check_range("score.match_radius_arcsec", s.match_radius_arcsec, 0, 10, lo_open=True)
+    check_range("score.mag_min", s.mag_min, 0, 50)
     check_range("score.mag_max", s.mag_max, s.mag_min, 50, lo_open=True)
+    check_range("score.reference_mag", s.reference_mag, 0, 50)
     check_range("score.mag_step", s.mag_step, 0, s.mag_max - s.mag_min, lo_open=True)
     check_range("score.interval", s.interval, 0, 1, lo_open=True, hi_open=True)
     check_range("score.match_radius_fwhm", s.match_radius_fwhm, 0, 20)
@@ -480,6 +498,7 @@ def validate(sc: Scenario) -> Scenario:
     """Check every value of ``sc``; raise :class:`ConfigError` on the first bad one."""
     require(isinstance(sc.seed, int) and sc.seed >= 0, "seed", sc.seed,
             "must be a non-negative integer")
+    check_range("workers", sc.workers, 0, 256)
     _validate_telescope(sc.telescope)
     bands = sc.band_names
     _validate_population(sc.population, bands)

@@ -208,7 +208,7 @@ def run_detection(run_dir, sc, bands, prov) -> dict:
     run_dir : path
         Run directory holding ``mosaic_<band>.fits`` and ``psf_<band>.fits``.
     sc : simfield.config.Scenario
-        The scenario (``sc.detection`` is used; ``detection.bands`` empty means every band).
+        The scenario (``sc.detection`` is used; bands from ``sc.detection_bands``).
     bands : list of simfield.bands.Band
         The scenario's bands.
     prov : simfield.io.Provenance
@@ -227,7 +227,7 @@ def run_detection(run_dir, sc, bands, prov) -> dict:
 
     run_dir = Path(run_dir)
     cfg = sc.detection
-    wanted = list(cfg.bands) or [b.name for b in bands]
+    wanted = sc.detection_bands
     counts = {}
     for name in wanted:
         with fits.open(run_dir / f"mosaic_{name}.fits") as hl:

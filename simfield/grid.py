@@ -62,6 +62,15 @@ class Grid:
         t = np.deg2rad(self.roll_deg)
         return np.cos(t), np.sin(t)
 
+    def pixel_frame(self) -> np.ndarray:
+        """2x2 matrix M with (column, row) directions = M (xi, eta); M is its own inverse.
+
+        ``profile.transform(*M.ravel())`` turns a GalSim profile drawn in (xi, eta) into one
+        drawn along the grid's columns and rows (a reflection, flux unchanged).
+        """
+        c, s = self._rot()
+        return np.array([[-c, s], [s, c]])
+
     def offsets_to_pixel(self, xi, eta):
         """Tangent-plane offsets (arcsec) -> 0-based pixel (x, y)."""
         c, s = self._rot()

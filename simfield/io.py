@@ -32,6 +32,9 @@ __all__ = [
     "COMPLETE_MARKER",
 ]
 
+_UMASK = os.umask(0)
+os.umask(_UMASK)
+
 #: Written last into a run directory; its presence means every output is complete.
 COMPLETE_MARKER = "COMPLETE"
 
@@ -71,6 +74,7 @@ def atomic_path(path: str | os.PathLike) -> Iterator[Path]:
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=path.parent)
     os.close(fd)
     tmp = Path(tmp)
+    os.chmod(tmp, 0o666 & ~_UMASK)  # mkstemp makes 0600; give the usual permissions
     try:
         yield tmp
         os.replace(tmp, path)

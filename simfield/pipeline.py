@@ -11,12 +11,16 @@ written last.
 from __future__ import annotations
 
 import logging
+import multiprocessing
+import os
 import time
+from concurrent.futures import ProcessPoolExecutor
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
+from scipy import ndimage
 from astropy.io import fits
 from astropy.table import Table
 
@@ -26,7 +30,8 @@ from .config import Scenario, config_hash, to_yaml
 from .grid import Grid
 from .io import COMPLETE_MARKER, Provenance, write_fits, write_json, write_table, write_text
 from .random import stream
-from .scene import Stamp, accumulate, add_bright, convolve_tiled, dominant_source, draw_stamps
+from .scene import (Stamp, accumulate, add_bright, convolve_tiled, dominant_source, draw_stamps,
+                    supersampling)
 
 __all__ = ["RunResult", "run_scenario", "make_bands", "SEGMENTATION_NSIGMA"]
 
@@ -109,13 +114,12 @@ def run_scenario(sc: Scenario, out_dir: str | Path, progress: bool = False) -> R
         Log stage progress.
     """
     # stage modules are imported here so that ``import simfield.pipeline`` stays light
-    from .detector import expose, make_fixed_pattern
+    from .detector import make_fixed_pattern
     from .optics.psf import cached_band_psf, effective_psf, write_psf_png
-    from .optics.pupil import make_pupil
+    from .optics.pupil import scenario_pupil
     from .population.lightcone import make_population
     from .population.morphology import make_profile
-    from .survey import (drizzle_mosaic, exposure_grids, measured_depth, mosaic_grid,
-                         predicted_depth, sample_scene, scene_grid)
+    from .survey import exposure_grids, mosaic_grid, scene_grid
 
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
@@ -173,7 +177,7 @@ def run_scenario(sc: Scenario, out_dir: str | Path, progress: bool = False) -> R
                                     psf_wide[b.name],
                                     effective_psf(psf_core[b.name], tel.pixel_scale_arcsec),
                                     b, prov))
-        pupil = make_pupil(tel, stream(sc.seed, "pupil"))
+        pupil = scenario_pupil(tel, sc.seed, grid_size=512)
         write_psf_png([psf_wide[b.name] for b in bands], pupil, out / "psf.png")
 
     # ---------------------------------------------------------------- stamps (once)
@@ -181,62 +185,19 @@ def run_scenario(sc: Scenario, out_dir: str | Path, progress: bool = False) -> R
         stamps = _draw_all(sources, sgrid, sc, lens, make_profile)
 
     # ---------------------------------------------------------------- bands
-    fixed = None
+    egrids = exposure_grids(srv, tel, stream(sc.seed, "dither"))
+    fixed = make_fixed_pattern((egrids[0].ny, egrids[0].nx), sc.detector,
+                               stream(sc.seed, "detector_fixed"))
+    ctx = _BandContext(sc=sc, out=out, prov=prov, sources=sources, stamps=stamps,
+                       sgrid=sgrid, mgrid=mgrid, egrids=egrids, fixed=fixed,
+                       psf_core=psf_core, psf_wide=psf_wide)
     depths = {}
-    obs_mag = {}
-    for bi, b in enumerate(bands):
-        zp = b.zeropoint(area)
-        rate = ab_to_njy(np.asarray(sources[f"mag_{b.name}"], float)) * b.rate_per_njy(area)
-        rate = np.nan_to_num(rate, nan=0.0)
-        mobs = np.asarray(sources[f"mag_{b.name}"], float) - 2.5 * np.log10(
-            np.maximum(np.asarray(sources["magnification"], float), 1e-6))
-        bright = mobs < tel.psf.bright_mag
-        obs_mag[b.name] = mobs
-        with timer("scene"):
-            core = psf_core[b.name].image
-            scene = convolve_tiled(accumulate(stamps, rate, sgrid.shape, select=~bright), core)
-            add_bright(scene, stamps, rate, bright, psf_wide[b.name].image)
-        with timer("truth_image"):
-            truth_img = sample_scene(scene, sgrid, mgrid)
-            t_total = srv.exposure_time_s * srv.n_exposures
-            sky_mosaic = b.sky_rate(area, mgrid.scale)
-            sigma_pix = np.sqrt(sky_mosaic * t_total) / t_total  # e-/s per mosaic pixel
-            thr_scene = SEGMENTATION_NSIGMA * sigma_pix * (sgrid.scale / mgrid.scale) ** 2
-            small = _crop_center(core, 0.4 / sgrid.scale)
-            seg_scene = dominant_source(stamps, rate, np.asarray(sources["id"]), sgrid.shape,
-                                        small / small.sum(), thr_scene)
-            seg = _resample_ids(seg_scene, sgrid, mgrid)
-            files.append(_write_truth_image(out / f"truth_image_{b.name}.fits", truth_img, seg,
-                                            mgrid, b, zp, sigma_pix, prov))
-        with timer("exposures"):
-            egrids = exposure_grids(srv, tel, stream(sc.seed, "dither"))
-            if fixed is None:
-                fixed = make_fixed_pattern((egrids[0].ny, egrids[0].nx), sc.detector,
-                                           stream(sc.seed, "detector_fixed"))
-            sky = b.sky_rate(area, tel.pixel_scale_arcsec)
-            exposures = []
-            for k, eg in enumerate(egrids):
-                r = sample_scene(scene, sgrid, eg)
-                exposures.append(expose(r, sky, sc.detector.dark_e_s, sc.detector,
-                                        srv.exposure_time_s, tel.pixel_size_um,
-                                        stream(sc.seed, "exposure", b.name, k), fixed))
-                if srv.write_exposures:
-                    files.append(_write_exposure(out / "exposures" / f"exp_{b.name}_{k:02d}.fits",
-                                                 exposures[-1], eg, b, zp, prov))
-        with timer("mosaic"):
-            mosaic = drizzle_mosaic(exposures, egrids, mgrid, srv.drizzle_kernel, srv.pixfrac)
-            files.append(_write_mosaic(out / f"mosaic_{b.name}.fits", mosaic, mgrid, b, zp,
-                                       srv, prov))
-        with timer("depth"):
-            ee = effective_psf(psf_core[b.name], tel.pixel_scale_arcsec)
-            depths[b.name] = {
-                "predicted_5sigma": float(predicted_depth(sc, b, ee)),
-                "measured_5sigma": float(measured_depth(mosaic, mgrid, zp,
-                                                        sc.detection.aperture_radius_arcsec,
-                                                        stream(sc.seed, "depth", b.name),
-                                                        mask=seg > 0)),
-            }
-        del scene, exposures
+    for name, band_files, depth, band_times in _map_bands(ctx, bands, sc.workers):
+        files.extend(band_files)
+        depths[name] = depth
+        for k, v in band_times.items():
+            res.timings[k] = res.timings.get(k, 0.0) + v
+    del ctx, stamps
 
     # ---------------------------------------------------------------- truth tables
     with timer("truth"):
@@ -275,6 +236,121 @@ def run_scenario(sc: Scenario, out_dir: str | Path, progress: bool = False) -> R
     return res
 
 
+# ---------------------------------------------------------------------------- bands
+@dataclass
+class _BandContext:
+    """Everything a band's rendering needs; shared with worker processes by fork."""
+
+    sc: Scenario
+    out: Path
+    prov: Provenance
+    sources: Table
+    stamps: list
+    sgrid: Grid
+    mgrid: Grid
+    egrids: list
+    fixed: object
+    psf_core: dict
+    psf_wide: dict
+
+
+_CTX: _BandContext | None = None  # set in the parent before forking band workers
+
+
+def _band_worker(band: Band):
+    return _render_band(_CTX, band)
+
+
+def _map_bands(ctx: _BandContext, bands: list[Band], workers: int):
+    """Render every band, in ``workers`` processes (0: one per core, at most one per band).
+
+    Each band draws only from its own named random streams, so the files do not depend on
+    the number of workers.
+    """
+    n = min(len(bands), os.cpu_count() or 1) if workers == 0 else min(workers, len(bands))
+    if n <= 1:
+        return [_render_band(ctx, b) for b in bands]
+    global _CTX
+    _CTX = ctx
+    try:
+        with ProcessPoolExecutor(n, mp_context=multiprocessing.get_context("fork")) as pool:
+            return list(pool.map(_band_worker, bands))
+    finally:
+        _CTX = None
+
+
+def _render_band(ctx: _BandContext, b: Band):
+    """Scene, truth image, exposures, mosaic and depths of one band.
+
+    Returns (band name, files written, depth dict, stage timings in s).
+    """
+    from .detector import expose
+    from .optics.psf import effective_psf
+    from .survey import drizzle_mosaic, measured_depth, predicted_depth, sample_scene
+
+    sc, sources, stamps, sgrid, mgrid = ctx.sc, ctx.sources, ctx.stamps, ctx.sgrid, ctx.mgrid
+    tel, srv = sc.telescope, sc.survey
+    area = tel.collecting_area_m2
+    out, prov = ctx.out, ctx.prov
+    timings: dict[str, float] = {}
+    timer = _Timer(timings, False)
+    files = []
+    zp = b.zeropoint(area)
+    mag = np.asarray(sources[f"mag_{b.name}"], float)
+    rate = np.nan_to_num(ab_to_njy(mag) * b.rate_per_njy(area), nan=0.0)
+    mobs = mag - 2.5 * np.log10(np.maximum(np.asarray(sources["magnification"], float), 1e-6))
+    bright = mobs < tel.psf.bright_mag
+    with timer("scene"):
+        core = ctx.psf_core[b.name].image
+        scene = convolve_tiled(accumulate(stamps, rate, sgrid.shape, select=~bright), core)
+        add_bright(scene, stamps, rate, bright, ctx.psf_wide[b.name].image)
+        np.maximum(scene, 0.0, out=scene)  # FFT round-off leaves ~1e-7 negatives
+    with timer("truth_image"):
+        truth_img = sample_scene(scene, sgrid, mgrid)
+        t_total = srv.exposure_time_s * srv.n_exposures
+        sky_mosaic = b.sky_rate(area, mgrid.scale)
+        sigma_pix = np.sqrt(sky_mosaic * t_total) / t_total  # e-/s per mosaic pixel
+        thr_scene = SEGMENTATION_NSIGMA * sigma_pix * (sgrid.scale / mgrid.scale) ** 2
+        small = _crop_center(core, 0.4 / sgrid.scale)
+        seg_scene = dominant_source(stamps, rate, np.asarray(sources["id"]), sgrid.shape,
+                                    small / small.sum(), thr_scene)
+        seg = _resample_ids(seg_scene, sgrid, mgrid)
+        files.append(_write_truth_image(out / f"truth_image_{b.name}.fits", truth_img, seg,
+                                        mgrid, b, zp, sigma_pix, prov))
+    with timer("exposures"):
+        sky = b.sky_rate(area, tel.pixel_scale_arcsec)
+        exposures = []
+        for k, eg in enumerate(ctx.egrids):
+            r = sample_scene(scene, sgrid, eg)
+            exposures.append(expose(r, sky, None, sc.detector, srv.exposure_time_s,
+                                    tel.pixel_size_um, stream(sc.seed, "exposure", b.name, k),
+                                    ctx.fixed))
+            if srv.write_exposures:
+                files.append(_write_exposure(out / "exposures" / f"exp_{b.name}_{k:02d}.fits",
+                                             exposures[-1], eg, b, zp, prov))
+    del scene
+    with timer("mosaic"):
+        mosaic = drizzle_mosaic(exposures, ctx.egrids, mgrid, srv.drizzle_kernel, srv.pixfrac)
+        del exposures
+        files.append(_write_mosaic(out / f"mosaic_{b.name}.fits", mosaic, mgrid, b, zp, srv,
+                                   prov))
+    with timer("depth"):
+        r_ap = sc.detection.aperture_radius_arcsec
+        eff = effective_psf(ctx.psf_core[b.name], tel.pixel_scale_arcsec)
+        ee = float(np.interp(r_ap, eff.ee_radii_arcsec, eff.ee_values))
+        depth = {
+            "aperture_radius_arcsec": r_ap,
+            "encircled_energy": ee,
+            "predicted_5sigma": predicted_depth(
+                sc.detector, srv.exposure_time_s, srv.n_exposures, zp, sky,
+                tel.pixel_scale_arcsec, r_ap, encircled_energy=ee),
+            "measured_5sigma": measured_depth(
+                mosaic, mgrid, zp, r_ap, stream(sc.seed, "depth", b.name),
+                mask=ndimage.binary_dilation(seg > 0, iterations=3), encircled_energy=ee),
+        }
+    return b.name, files, depth, timings
+
+
 # ---------------------------------------------------------------------------- helpers
 def _stack_sources(a: Table, b: Table) -> Table:
     from astropy.table import vstack
@@ -306,23 +382,27 @@ def _draw_all(sources: Table, sgrid: Grid, sc: Scenario, lens, make_profile) -> 
     xpix, ypix = sgrid.offsets_to_pixel(np.asarray(sources["x_arcsec"], float),
                                         np.asarray(sources["y_arcsec"], float))
     kinds = np.asarray(sources["kind"]).astype(str)
-    profiles = {}
+    frame = sgrid.pixel_frame().ravel()  # (xi, eta) -> (column, row) directions
+    rhalf = np.asarray(sources["r_half"], float)
 
     def items():
         for i in range(len(sources)):
             if kinds[i] == "star":
-                yield i, None, xpix[i], ypix[i], 0
+                yield i, None, xpix[i], ypix[i], 0, 1
                 continue
             prof = make_profile(sources[i], sc.seed)
-            profiles[i] = prof
-            yield i, prof, xpix[i], ypix[i], _stamp_half_size(prof, sgrid.scale)
+            if lensed is not None and z[i] > zl and kinds[i] != "member":
+                yield i, prof, xpix[i], ypix[i], 0, 1  # the lensing stage draws it
+                continue
+            on_grid = prof.transform(*frame)
+            yield (i, on_grid, xpix[i], ypix[i], _stamp_half_size(on_grid, sgrid.scale),
+                   supersampling(float(rhalf[i]) / sgrid.scale))
 
     lensed = None
+    z = np.asarray(sources["redshift"], float)
+    zl = sc.lens.redshift
     if lens is not None:
         from .lensing import render_lensed
-
-        z = np.asarray(sources["redshift"], float)
-        zl = sc.lens.redshift
 
         def lensed(i, prof):
             if z[i] <= zl or kinds[i] == "member":
@@ -364,7 +444,7 @@ def _image_mags(images: Table, sources: Table, band: str) -> np.ndarray:
 def _band_cards(b: Band, zp: float):
     return [("BAND", b.name, "simfield band name"),
             ("PIVOT", round(b.pivot_nm, 4), "[nm] pivot wavelength"),
-            ("ZP_AB", round(zp, 5), "[mag] AB mag giving 1 e-/s: m = ZP_AB - 2.5 log10(e-/s)"),
+            ("ZP_AB", round(zp, 5), "[mag] AB magnitude of 1 e-/s"),
             ("PHOTFNJY", float(ab_to_njy(zp)), "[nJy] flux density giving 1 e-/s")]
 
 
@@ -381,10 +461,11 @@ def _write_mosaic(path, mosaic, grid: Grid, b: Band, zp: float, srv, prov) -> Pa
     t_total = srv.exposure_time_s * srv.n_exposures
     cards = _band_cards(b, zp) + [("EXPTIME", t_total, "[s] total exposure time at full depth"),
                                   ("NEXP", srv.n_exposures, "exposures combined")]
-    from .survey import DQ_BITS
+    from . import survey
 
-    dq_cards = [(f"DQBIT{i}", name, f"DQ value {1 << i}") for i, name in
-                enumerate(DQ_BITS)]
+    dq_cards = [(("DQ" + name[3:].replace("_", ""))[:8], getattr(survey, name),
+                 f"DQ bit value of {name}")
+                for name in survey.__all__ if name.startswith("DQ_") and name != "DQ_EXCLUDE"]
     hdus = [_image_hdu(mosaic.sci.astype(np.float32), "SCI", grid, "electron/s", cards),
             _image_hdu(mosaic.wht.astype(np.float32), "WHT", grid, "s2/electron2", cards),
             _image_hdu(mosaic.exp.astype(np.float32), "EXP", grid, "s"),
@@ -461,7 +542,13 @@ def _write_truth(path, sources: Table, images: Table, grid: Grid, prov) -> Path:
     for c in s.colnames:
         if s[c].dtype.kind == "U":
             s[c] = s[c].astype("S")
+    notes = {**sources.meta, **images.meta}
+    s.meta, im.meta = {}, {}
     hdus = [fits.BinTableHDU(s, name="SOURCES"), fits.BinTableHDU(im, name="IMAGES")]
     for h in hdus:
-        h.header["PIXCONV"] = ("0-based", "x, y: 0-based mosaic pixels")
+        h.header["PIXCONV"] = ("0-based", "x, y: 0-based mosaic pixels, first pixel (0, 0)")
+        h.header["OFFSETS"] = ("xi east, eta north", "x_arcsec, y_arcsec: tangent plane")
+        for k, v in notes.items():
+            if isinstance(v, (str, int, float)):
+                h.header.add_comment(f"{k}: {v}")
     return write_fits(path, hdus, prov)

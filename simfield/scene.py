@@ -27,6 +27,7 @@ __all__ = [
     "Stamp",
     "point_stamp",
     "draw_profile_stamp",
+    "supersampling",
     "draw_stamps",
     "accumulate",
     "convolve_tiled",
@@ -79,6 +80,13 @@ def point_stamp(x: float, y: float, index: int) -> Stamp:
     return Stamp(img, iy, ix, index)
 
 
+def supersampling(r_half_pix: float) -> int:
+    """Sub-samples per pixel side needed to integrate a profile of half-light radius
+    ``r_half_pix`` (pixels) over pixels: 3 below 2 pixels, 2 below 5, else 1 (the change of a
+    smooth profile across one pixel is then small; the stamp is renormalised anyway)."""
+    return 3 if r_half_pix < 2 else (2 if r_half_pix < 5 else 1)
+
+
 def draw_profile_stamp(profile, x: float, y: float, scale: float, half_size: int,
                        index: int, supersample: int = 3) -> Stamp:
     """Draw a unit-flux galsim profile centred at 0-based scene pixel (x, y).
@@ -112,22 +120,23 @@ def draw_profile_stamp(profile, x: float, y: float, scale: float, half_size: int
     return Stamp(a, iy - half_size, ix - half_size, index)
 
 
-def draw_stamps(items: Iterable[tuple[int, object, float, float, int]], scale: float,
-                supersample: int = 3, lensed: Callable[[int, object], list[Stamp] | None]
-                | None = None) -> list[Stamp]:
+def draw_stamps(items: Iterable[tuple[int, object, float, float, int, int]], scale: float,
+                lensed: Callable[[int, object], list[Stamp] | None] | None = None
+                ) -> list[Stamp]:
     """Draw every source once.
 
     Parameters
     ----------
-    items : iterable of (index, profile or None, x, y, half_size)
-        ``profile`` None means a point source; (x, y) in scene pixels, half_size in pixels.
+    items : iterable of (index, profile or None, x, y, half_size, supersample)
+        ``profile`` None means a point source; (x, y) in scene pixels, half_size in pixels,
+        supersample the sub-samples per pixel side (see :func:`draw_profile_stamp`).
     scale : float (arcsec/pixel)
     lensed : callable, optional
         ``lensed(index, profile)`` returns the source's lensed stamps, or None when the source
         is not lensed (in front of the lens, or no lens).
     """
     stamps: list[Stamp] = []
-    for index, profile, x, y, half in items:
+    for index, profile, x, y, half, supersample in items:
         if lensed is not None:
             got = lensed(index, profile)
             if got is not None:
@@ -223,12 +232,15 @@ def dominant_source(stamps: Sequence[Stamp], flux: np.ndarray, source_id: np.nda
     ids = np.zeros(shape, dtype=np.int32)
     ky, kx = kernel.shape
     hy, hx = ky // 2, kx // 2
+    kmax, ksum = float(kernel.max()), float(kernel.sum())
     for st in stamps:
         f = flux[st.index]
         if f <= 0:
             continue
-        # conv <= f * sum(stamp) * max(kernel): skip sources that cannot reach the threshold
-        if f * st.image.sum() * kernel.max() < threshold:
+        # conv <= f * min(sum(stamp) max(kernel), max(stamp) sum(kernel)): skip sources
+        # that cannot reach the threshold anywhere
+        bound = f * min(st.image.sum() * kmax, st.image.max() * ksum)
+        if bound < threshold:
             continue
         conv = f * signal.fftconvolve(st.image, kernel, mode="full")
         big = Stamp(conv.astype(np.float32), st.iy0 - hy, st.ix0 - hx, st.index)

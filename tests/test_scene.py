@@ -54,9 +54,9 @@ def test_profile_stamp_matches_galsim_pixel_integration():
 
 def test_accumulate_and_bright_path_conserve_flux():
     """Faint stamps + bright stamps convolved separately keep each source's flux (0.5%)."""
-    items = [(0, None, 40.2, 50.9, 0),
-             (1, galsim.Exponential(half_light_radius=0.1), 120.0, 80.0, 20),
-             (2, None, 100.5, 100.5, 0)]
+    items = [(0, None, 40.2, 50.9, 0, 1),
+             (1, galsim.Exponential(half_light_radius=0.1), 120.0, 80.0, 20, 3),
+             (2, None, 100.5, 100.5, 0, 1)]
     stamps = draw_stamps(items, 0.02)
     flux = np.array([10.0, 5.0, 1000.0])
     bright = np.array([False, False, True])

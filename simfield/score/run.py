@@ -512,7 +512,7 @@ def score_pipeline_run(run_dir, sc, prov) -> dict:
     dict
         Per band, the summary of :func:`score_run`; written under ``<run_dir>/score/<band>/``.
     """
-    bands = list(sc.detection.bands) or list(sc.band_names)
+    bands = sc.detection_bands
     res = {}
     for b in bands:
         res[b] = score_run(run_dir, None, b, sc.score, Path(run_dir) / "score" / b, prov=prov)
