@@ -37,6 +37,7 @@ __all__ = ["RenderCache", "render_cache", "render_lensed", "lens_sources", "sour
 _BLOCK = 4  # scene pixels per node-grid cell (deflection interpolated in between)
 _SUPER = 8  # node-grid cells per side of a search superblock
 _MAX_SOURCE_RADIUS = 5.0  # arcsec; profiles are cut at this radius
+_CORE_CELLS = 3  # cells this close to a singular centre are ray traced exactly
 
 
 @dataclass(frozen=True, eq=False)
@@ -57,6 +58,8 @@ class RenderCache:
     gamma1: np.ndarray  #: reduced shear, (xi, eta) frame
     gamma2: np.ndarray
     sup: dict  #: superblock min/max of xi, eta, ax, ay (arrays per key)
+    lens: Lens  #: the lens, for exact deflections next to singular centres
+    cores: np.ndarray  #: (n, 2) centres (arcsec) of singular components (SIS, SIE, point)
 
 
 def render_cache(lens: Lens, grid: Grid, block: int = _BLOCK) -> RenderCache:
@@ -86,7 +89,9 @@ def render_cache(lens: Lens, grid: Grid, block: int = _BLOCK) -> RenderCache:
         hi = np.maximum(arr[:-1], arr[1:])
         hi = np.maximum(hi[:, :-1], hi[:, 1:]).reshape(nsy, _SUPER, nsx, _SUPER)
         sup[name] = (lo.min(axis=(1, 3)), hi.max(axis=(1, 3)))
-    cache = RenderCache(grid, block, xi, eta, ax, ay, kap, g1, g2, sup)
+    cores = np.array([(c.x0, c.y0) for c in lens.components
+                      if hasattr(c, "theta_e") or hasattr(c, "theta_e_sq")]).reshape(-1, 2)
+    cache = RenderCache(grid, block, xi, eta, ax, ay, kap, g1, g2, sup, lens, cores)
     lens._cache[key] = cache
     return cache
 
@@ -127,6 +132,12 @@ def _candidate_blocks(cache: RenderCache, r: float, bx: float, by: float, radius
     dy = np.maximum(np.maximum(sy.min(0) - by, by - sy.max(0)), 0.0)
     ok = dx * dx + dy * dy <= radius * radius
     return ci[ok], cj[ok], sx[:, ok], sy[:, ok]
+
+
+def _subsamples(size: float, scale: float, most: int) -> int:
+    """Samples per pixel side for an image whose smallest radius is ``size`` (arcsec): about
+    20 samples across it, at most ``most`` (common practice)."""
+    return int(np.clip(np.ceil(20.0 * scale / max(size, 1e-6)), 1, most))
 
 
 def _pixel_frame(grid: Grid):
@@ -171,8 +182,13 @@ def _weak_image(cache, r, bx, by, ci, cj, sx, sy):
     return x, y, a
 
 
-def _draw_weak(profile, grid: Grid, x: float, y: float, a: np.ndarray, supersample: int):
-    """Stamp of ``profile`` transformed by A^-1 (flux |mu|) centred at (x, y) (arcsec)."""
+def _draw_weak(profile, grid: Grid, x: float, y: float, a: np.ndarray, supersample: int,
+               radius: float):
+    """Stamp of ``profile`` transformed by A^-1 (flux |mu|) centred at (x, y) (arcsec).
+
+    The stamp holds the image of the source disc of ``radius`` (arcsec): its half-size is
+    ``radius`` times the largest singular value of A^-1.
+    """
     jac = np.linalg.inv(a)
     # image-plane brightness S(A theta): transform by A^-1 (GalSim keeps surface brightness)
     # then map (xi, eta) onto scene (column, row) axes
@@ -181,10 +197,11 @@ def _draw_weak(profile, grid: Grid, x: float, y: float, a: np.ndarray, supersamp
     mu = abs(np.linalg.det(jac))
     px, py = grid.offsets_to_pixel(x, y)
     px, py = float(px), float(py)
-    half = int(np.clip(lensed.getGoodImageSize(grid.scale) // 2 + 1, 3, 256))
+    s_max, s_min = np.linalg.svd(jac, compute_uv=False)
+    half = int(np.clip(np.ceil(radius * s_max / grid.scale) + 1, 3, 256))
     ix, iy = int(round(px)), int(round(py))
     n = 2 * half + 1
-    m = supersample
+    m = _subsamples(radius * s_min, grid.scale, supersample)
     img = lensed.drawImage(nx=n * m, ny=n * m, scale=grid.scale / m, method="no_pixel",
                            offset=((px - ix) * m, (py - iy) * m)).array
     stamp = img.reshape(n, m, n, m).sum(axis=(1, 3))
@@ -210,21 +227,44 @@ def _sample_weights(block: int, m: int) -> np.ndarray:
     return w.reshape(4, -1)
 
 
-def _ray_trace(cache, profile, bx, by, radius, ci, cj, sx, sy, supersample, source_scale):
+def _near_cores(cache, ci, cj, r, w, sx, sy):
+    """Exact source-plane positions of subsamples in cells next to singular centres.
+
+    Bilinear interpolation fails where the deflection turns direction around an isothermal
+    or point-mass centre, so cells within ``_CORE_CELLS`` cells of one are traced exactly.
+    """
+    if cache.cores.size == 0:
+        return sx.T @ w, sy.T @ w
+    corners = [(ci, cj), (ci + 1, cj), (ci, cj + 1), (ci + 1, cj + 1)]
+    cx = np.stack([cache.xi[c] for c in corners])
+    cy = np.stack([cache.eta[c] for c in corners])
+    mx, my = cx.mean(0), cy.mean(0)
+    reach = _CORE_CELLS * cache.block * cache.grid.scale
+    d2 = (mx[:, None] - cache.cores[:, 0]) ** 2 + (my[:, None] - cache.cores[:, 1]) ** 2
+    near = np.nonzero((d2 < reach * reach).any(axis=1))[0]
+    u, v = sx.T @ w, sy.T @ w
+    if near.size:
+        tx, ty = cx[:, near].T @ w, cy[:, near].T @ w
+        ax, ay, *_ = cache.lens.reduced(tx, ty)
+        u[near], v[near] = tx - r * ax, ty - r * ay
+    return u, v
+
+
+def _ray_trace(cache, profile, r, bx, by, radius, ci, cj, sx, sy, supersample, source_scale):
     """Stamps by ray tracing the scene pixels of the candidate node cells.
 
     Inside a cell the deflection is bilinear, so the source-plane position of every subsample
     is a fixed linear combination of the cell's four mapped corners.
     """
     g = cache.grid
-    # subsamples per pixel side: enough for about 20 samples across the source radius, with
-    # source-plane spacing up to ~1.5 x the image-plane one (common practice)
+    # source-plane sample spacing can reach ~1.5 x the image-plane one
     b = cache.block
-    m = int(np.clip(np.ceil(30.0 * g.scale / radius), 1, supersample))
+    m = _subsamples(radius / 1.5, g.scale, supersample)
     sb, c0 = _source_image(profile, radius, source_scale)
     w = _sample_weights(b, m)
-    u = (sx.T @ w - bx) / source_scale + c0
-    v = (sy.T @ w - by) / source_scale + c0
+    u, v = _near_cores(cache, ci, cj, r, w, sx, sy)
+    u = (u - bx) / source_scale + c0
+    v = (v - by) / source_scale + c0
     val = ndimage.map_coordinates(sb, np.array([v.ravel(), u.ravel()]), order=1,
                                   mode="constant", cval=0.0)
     flux = val.reshape(len(ci), b, m, b, m).mean(axis=(2, 4)) * g.scale**2
@@ -249,7 +289,7 @@ def _ray_trace(cache, profile, bx, by, radius, ci, cj, sx, sy, supersample, sour
 
 
 def render_lensed(lens: Lens, profile, beta_x: float, beta_y: float, z_s: float, grid: Grid,
-                  *, supersample: int = 3, mu_max: float = 4.0, jacobian_tol: float = 0.05,
+                  *, supersample: int = 3, mu_max: float = 4.0, jacobian_tol: float = 0.1,
                   force_ray_trace: bool = False, block: int = _BLOCK):
     """Lensed stamps of one source on the scene grid.
 
@@ -287,7 +327,7 @@ def render_lensed(lens: Lens, profile, beta_x: float, beta_y: float, z_s: float,
     radius = max(source_radius(profile), 0.5 * grid.scale)
     if r <= 0:
         a = np.eye(2)
-        return _draw_weak(profile, grid, beta_x, beta_y, a, supersample)
+        return _draw_weak(profile, grid, beta_x, beta_y, a, supersample, radius)
     cache = render_cache(lens, grid, block)
     ci, cj, sx, sy = _candidate_blocks(cache, r, beta_x, beta_y, radius)
     if ci.size == 0:
@@ -305,8 +345,8 @@ def render_lensed(lens: Lens, profile, beta_x: float, beta_y: float, z_s: float,
         weak = (n_groups == 1 and det.min() > 1.0 / mu_max and spread < jacobian_tol)
         if weak:
             x, y, a = _weak_image(cache, r, beta_x, beta_y, ci, cj, sx, sy)
-            return _draw_weak(profile, grid, x, y, a, supersample)
-    return _ray_trace(cache, profile, beta_x, beta_y, radius, ci, cj, sx, sy, supersample,
+            return _draw_weak(profile, grid, x, y, a, supersample, radius)
+    return _ray_trace(cache, profile, r, beta_x, beta_y, radius, ci, cj, sx, sy, supersample,
                       source_scale)
 
 
