@@ -235,13 +235,16 @@ def run_detection(run_dir, sc, bands, prov) -> dict:
             wht = hl["WHT"].data.astype(float)
             hdr = hl["SCI"].header
             dq = hl["DQ"].data if "DQ" in hl else None
+            # cosmic-ray and saturation bits mark repaired pixels (their slopes were refitted):
+            # only pixels that no exposure covers are left out of detection
+            no_cov = int(hl["DQ"].header.get("DQNOCOVE", 16)) if dq is not None else 0
         wcs = WCS(hdr)
         scale = float(np.sqrt(abs(np.linalg.det(wcs.pixel_scale_matrix))) * 3600.0)
         with fits.open(run_dir / f"psf_{name}.fits") as hl:
             fwhm = float(hl["PSF_DET" if "PSF_DET" in hl else 1].header["FWHM"])
         det = detect_sources(sci, wht, wcs, cfg, fwhm, float(hdr["ZP_AB"]), scale,
                              exptime=float(hdr.get("EXPTIME", 0)) or None,
-                             mask=None if dq is None else dq != 0)
+                             mask=None if dq is None else (dq & no_cov) != 0)
         cat = det.catalog
         cat.meta.update({"BAND": name})
         seg = fits.ImageHDU(det.segmentation, header=wcs.to_header(), name="SEGM")

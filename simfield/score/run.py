@@ -230,7 +230,11 @@ def load_truth(run_dir, band: str) -> dict:
     with fits.open(mpath) as hl:
         hdr = hl["SCI"].header
         sci = np.asarray(hl["SCI"].data, float)
-        dq = np.asarray(hl["DQ"].data) if "DQ" in hl else None
+        dq = None
+        if "DQ" in hl:  # artefact bits: saturated or uncovered (cosmic-ray hits are repaired)
+            h = hl["DQ"].header
+            bits = int(h.get("DQSATURA", 8)) | int(h.get("DQNOCOVE", 16))
+            dq = np.asarray(hl["DQ"].data) & bits
     if "ZP_AB" not in hdr:
         raise CatalogError(f"{mpath.name} has no ZP_AB keyword in its SCI header")
     wcs = WCS(hdr).celestial
