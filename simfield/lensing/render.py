@@ -11,9 +11,9 @@ beta = theta - alpha(theta) (Schneider, Ehlers & Falco 1992, section 5.1). Two p
   transformed by the inverse Jacobian A^-1 at the image position (GalSim ``transform``, which
   keeps surface brightness, so the flux becomes |mu|) and drawn like an unlensed source.
 
-Which path a source takes is decided from the image-plane blocks that can see it: any negative
-parity there, more than one connected group, |mu| above ``mu_max`` or a Jacobian that changes
-by more than ``jacobian_tol`` across them send it to ray tracing.
+Which path a source takes is decided from the image-plane cells that can see it: any negative
+parity there (so more than one image), |mu| above ``mu_max`` or a Jacobian that changes by more
+than ``jacobian_tol`` across them send it to ray tracing.
 
 GalSim profiles are in arcsec with x along xi (east) and y along eta (north), the convention of
 :func:`simfield.population.morphology.make_profile`; stamps are on the scene grid (see
@@ -341,20 +341,15 @@ def render_lensed(lens: Lens, profile, beta_x: float, beta_y: float, z_s: float,
         g2 = r * cache.gamma2[nodes]
         det = (1 - kap) ** 2 - g1**2 - g2**2
         spread = max(np.ptp(kap + g1), np.ptp(kap - g1), np.ptp(g2))
-        lab, n_groups = ndimage.label(_cell_mask(ci, cj), np.ones((3, 3), int))
-        weak = (n_groups == 1 and det.min() > 1.0 / mu_max and spread < jacobian_tol)
+        # positive parity wherever the source could be seen: no negative-parity image, hence a
+        # single image (odd-number theorem, SEF 1992; an isothermal centre removes the central
+        # one but its counter-image has negative parity)
+        weak = det.min() > 1.0 / mu_max and spread < jacobian_tol
         if weak:
             x, y, a = _weak_image(cache, r, beta_x, beta_y, ci, cj, sx, sy)
             return _draw_weak(profile, grid, x, y, a, supersample, radius)
     return _ray_trace(cache, profile, r, beta_x, beta_y, radius, ci, cj, sx, sy, supersample,
                       source_scale)
-
-
-def _cell_mask(ci, cj):
-    """Boolean mask of the cells (ci, cj) on their bounding box, dilated by one cell."""
-    mask = np.zeros((ci.max() - ci.min() + 3, cj.max() - cj.min() + 3), bool)
-    mask[ci - ci.min() + 1, cj - cj.min() + 1] = True
-    return ndimage.binary_dilation(mask, np.ones((3, 3), bool))
 
 
 def lens_sources(lens: Lens, sources: Table, lens_cfg=None, x_range=(-50.0, 50.0),
