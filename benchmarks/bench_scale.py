@@ -6,6 +6,7 @@ convolution, and time / peak memory against field size and number of sources.
     python benchmarks/bench_scale.py scene --n 400    # ... with 400 galaxies
     python benchmarks/bench_scale.py default          # the default scenario in a subprocess
     python benchmarks/bench_scale.py sizes            # field size and source count series
+    python benchmarks/bench_scale.py sizes --sizes 20 160 --densities 1000
 
 Each scenario runs in its own subprocess so that its peak memory (max RSS, from
 ``resource.getrusage(RUSAGE_CHILDREN)`` after it exits) is its own. Not a test: it prints
@@ -91,11 +92,12 @@ def bench_default() -> None:
         print(f"    {k:12s} {v:8.2f} s")
 
 
-def bench_sizes(sizes=(10, 20, 40, 80), densities=(100, 400, 1600, 6400)) -> None:
+def bench_sizes(sizes=(10, 20, 40, 80), densities=(500, 2000, 8000, 32000)) -> None:
     print("== time and peak memory vs field size (survey=quick, square field)")
     print(f"  {'side':>6s} {'arcmin2':>8s} {'sources':>8s} {'run s':>8s} {'scene s':>8s} "
           f"{'peak MB':>8s}")
     for side in sizes:
+        side = float(side)
         r = run_child(["survey=quick", f"survey.width_arcsec={side}",
                           f"survey.height_arcsec={side}"])
         print(f"  {side:6.0f} {r['field_arcmin2']:8.3f} {r['n_sources']:8d} {r['wall_s']:8.1f} "
@@ -236,6 +238,10 @@ def main(argv: list[str]) -> None:
     p.add_argument("what", nargs="*", default=["default", "scene", "sizes"],
                    choices=["default", "scene", "sizes"])
     p.add_argument("--n", type=int, default=200, help="galaxies in the scene comparison")
+    p.add_argument("--sizes", type=float, nargs="+", default=[10, 20, 40, 80],
+                   help="field sides (arcsec) of the size series")
+    p.add_argument("--densities", type=float, nargs="+", default=[500, 2000, 8000, 32000],
+                   help="sources per arcmin^2 of the source-count series (20x20 arcsec field)")
     a = p.parse_args(argv)
     for what in a.what:
         if what == "default":
@@ -243,7 +249,7 @@ def main(argv: list[str]) -> None:
         elif what == "scene":
             bench_scene(a.n)
         else:
-            bench_sizes()
+            bench_sizes(a.sizes, a.densities)
 
 
 if __name__ == "__main__":
