@@ -161,6 +161,8 @@ def run_scenario(sc: Scenario, out_dir: str | Path, progress: bool = False) -> R
         images, mag_total, n_images = _truth_images(sources, lens, sc, hx, hy)
         sources["magnification"] = mag_total
         sources["n_images"] = n_images
+        if lens is not None:
+            files.extend(_write_lens_maps(out, lens, sc, mgrid, hx, hy, prov))
 
     # ---------------------------------------------------------------- optics
     with timer("optics"):
@@ -416,6 +418,48 @@ def _draw_all(sources: Table, sgrid: Grid, sc: Scenario, lens, make_profile) -> 
                     for im, iy0, ix0 in got]
 
     return draw_stamps(items(), sgrid.scale, lensed=lensed)
+
+
+#: Pixel of the convergence map written beside a lensed run (arcsec).
+CONVERGENCE_PIXEL_ARCSEC = 0.2
+
+
+def _write_lens_maps(out: Path, lens, sc: Scenario, mgrid: Grid, hx: float, hy: float,
+                     prov) -> list[Path]:
+    """Convergence map (FITS), critical curves and caustics (ECSV) and a picture (PNG), all
+    for sources at ``lens.reference_redshift``."""
+    from .lensing import critical_curves, write_lens_png
+
+    z_ref = sc.lens.reference_redshift
+    files = []
+    step = CONVERGENCE_PIXEL_ARCSEC
+    kgrid = Grid(int(np.ceil(2 * hx / step)), int(np.ceil(2 * hy / step)), step, mgrid.ra0,
+                 mgrid.dec0)
+    xi, eta = kgrid.pixel_offsets()
+    kappa = lens.convergence(xi, eta, z_ref).reshape(kgrid.shape)
+    cards = [("ZSOURCE", z_ref, "source redshift of the map"),
+             ("ZLENS", sc.lens.redshift, "lens redshift")]
+    files.append(write_fits(out / "convergence.fits",
+                            [_image_hdu(kappa.astype(np.float32), "KAPPA", kgrid, "", cards)],
+                            prov, cards))
+    cc = critical_curves(lens, z_ref, (-hx, hx, -hy, hy), 0.1)
+    rows = []
+    for kind, curves in (("critical", cc.critical), ("caustic", cc.caustic)):
+        for i, c in enumerate(curves):
+            for x, y in c:
+                rows.append((kind, i, x, y))
+    t = Table(rows=rows or None, names=("kind", "curve", "xi", "eta"),
+              dtype=("U8", "i4", "f8", "f8"))
+    ra, dec = mgrid.offsets_to_sky(np.asarray(t["xi"], float), np.asarray(t["eta"], float))
+    t["ra"], t["dec"] = ra, dec
+    t["xi"].unit = t["eta"].unit = "arcsec"
+    t["ra"].unit = t["dec"].unit = "deg"
+    t.meta["description"] = (f"critical curves (image plane) and caustics (source plane) for "
+                             f"sources at z = {z_ref}; xi east, eta north")
+    files.append(write_table(out / "critical_curves.ecsv", t, prov))
+    write_lens_png(lens, out / "lens.png", (-hx, hx, -hy, hy), 0.1, z_ref)
+    files.append(out / "lens.png")
+    return files
 
 
 def _crop_center(img: np.ndarray, half: float) -> np.ndarray:
