@@ -44,6 +44,7 @@ from .io import COMPLETE_MARKER, atomic_path, write_json
 
 __all__ = [
     "SEED_MODULUS",
+    "EXECUTION_KEYS",
     "JOB_RECORD",
     "HEADLINE_METRICS",
     "JobPlan",
@@ -66,6 +67,10 @@ log = logging.getLogger("simfield")
 #: Effective seeds lie in [0, SEED_MODULUS): non-negative and representable as a signed 32-bit
 #: integer (FITS ``J`` cards, any downstream tool).
 SEED_MODULUS = 2**31
+
+#: Overrides that change how a job runs, not what it simulates: left out of the job seed, so
+#: e.g. re-running a sweep with ``workers=1`` on another machine gives the same fields.
+EXECUTION_KEYS = ("workers", "telescope.psf.cache_dir")
 
 #: Per-job record written into each multirun job directory.
 JOB_RECORD = "job.json"
@@ -107,13 +112,13 @@ def _is_hydra_key(key: str) -> bool:
 
 
 def _seed_overrides(overrides: Iterable[str]) -> list[str]:
-    """Overrides that define a job for seeding: no ``hydra*`` and no ``seed``, canonical text,
-    sorted."""
+    """Overrides that define a job for seeding: no ``hydra*``, ``seed`` or
+    :data:`EXECUTION_KEYS`; canonical text, sorted."""
     out = []
     for s in overrides:
         o = _parse(s)
         key = o.key_or_group if o is not None else _override_key(s)
-        if _is_hydra_key(key) or key == "seed":
+        if _is_hydra_key(key) or key == "seed" or key in EXECUTION_KEYS:
             continue
         if o is not None and not o.is_delete():
             s = f"{o.get_key_element()}={o.get_value_element_as_str()}"
@@ -130,7 +135,8 @@ def job_seed(base_seed: int, overrides: list[str]) -> int:
         The configured ``seed`` of the job (itself possibly swept: ``seed=1,2,3``).
     overrides : list of str
         The job's task overrides (Hydra's ``hydra.overrides.task``). ``hydra.*`` / ``hydra/*``
-        overrides (launcher, sweep directory ...) and ``seed`` itself are ignored; the rest are
+        overrides (launcher, sweep directory ...), :data:`EXECUTION_KEYS` and ``seed`` itself
+        are ignored; the rest are
         put in canonical form (``key=value`` as Hydra's parser prints it) and sorted, so their
         order and spelling do not matter.
 

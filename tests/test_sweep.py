@@ -43,10 +43,11 @@ def test_job_seed_matches_sha256_rule():
 
 
 def test_job_seed_order_independent_and_ignores_hydra_and_seed():
-    """Override order, hydra.* / hydra/ overrides and the seed override do not change it."""
+    """Override order, hydra.* / hydra/ overrides, execution-only keys (workers) and the seed
+    override do not change it."""
     a = sweep.job_seed(3, ["survey=quick", "detector.read_noise_e=5", "seed=3"])
     b = sweep.job_seed(3, ["hydra/launcher=joblib", "detector.read_noise_e=5",
-                           "hydra.sweep.dir=/x", "survey=quick"])
+                           "hydra.sweep.dir=/x", "survey=quick", "workers=1"])
     assert a == b
 
 
