@@ -51,9 +51,19 @@ def _task(cfg) -> None:
     except ConfigError as exc:
         _discard_empty_run_dir(run_dir)
         _fail("simfield", str(exc))
-    from .pipeline import run_scenario
+    from hydra.types import RunMode
 
-    res = run_scenario(sc, run_dir, progress=True)
+    from .pipeline import run_scenario
+    from .sweep import plan_job, remove_partial_files, write_job_record
+
+    hc = HydraConfig.get()
+    plan = plan_job(sc, list(hc.overrides.task), run_dir, hc.mode == RunMode.MULTIRUN)
+    if plan.skip:
+        print(f"simfield: {run_dir} is complete, skipped (resume)")
+        return
+    remove_partial_files(run_dir)  # left by a killed earlier attempt of this job
+    write_job_record(run_dir, plan)
+    res = run_scenario(plan.scenario, run_dir, progress=True)
     depth = res.summary.get("depth_ab", {})
     print(f"simfield: wrote {len(res.files)} files to {run_dir}")
     for band, d in depth.items():

@@ -323,7 +323,7 @@ def _validate_telescope(t: TelescopeConfig) -> None:
         check_range(f"{k}.center_nm", b.center_nm, 100, 30000)
         check_range(f"{k}.width_nm", b.width_nm, 0, b.center_nm, lo_open=True, hi_open=True)
         check_range(f"{k}.throughput", b.throughput, 0, 1, lo_open=True)
-        check_range(f"{k}.sky_mjy_sr", b.sky_mjy_sr, 0, None)
+        check_range(f"{k}.sky_mjy_sr", b.sky_mjy_sr, 0, 1e4)
     p = t.pupil
     require(p.kind in ("segmented", "circular"), "telescope.pupil.kind", p.kind,
             "must be one of: segmented, circular")
@@ -336,6 +336,8 @@ def _validate_telescope(t: TelescopeConfig) -> None:
                 t.diameter_m, hi_open=True)
     check_range("telescope.pupil.strut_count", p.strut_count, 0, 12)
     check_range("telescope.pupil.strut_width_m", p.strut_width_m, 0, t.diameter_m / 4)
+    for j, a in enumerate(p.strut_angles_deg):
+        check_range(f"telescope.pupil.strut_angles_deg.{j}", a, -360, 360)
     require(not p.strut_angles_deg or len(p.strut_angles_deg) == p.strut_count,
             "telescope.pupil.strut_angles_deg", list(p.strut_angles_deg),
             f"must be empty or list telescope.pupil.strut_count={p.strut_count} angles")
@@ -533,6 +535,9 @@ def to_scenario(cfg: DictConfig | dict[str, Any]) -> Scenario:
                           f"{', '.join(_known_keys(parent))}") from None
     except (ValidationError, MissingMandatoryValue) as exc:  # wrong type, missing value
         key = str(exc.full_key or exc.key or "?")
+        if "." not in key and key not in _known_keys(""):
+            # omegaconf names only the field inside a list of records: find its full path
+            key = next(iter(_paths_ending(data, key, getattr(exc, "value", None))), key)
         msg = str(exc).splitlines()[0]
         raise ConfigError(key, getattr(exc, "value", None), f"is not accepted: {msg}") from None
     return validate(sc)
@@ -548,6 +553,17 @@ def _lookup(data: dict, key: str) -> Any:
         else:
             return None
     return node
+
+
+def _paths_ending(data: Any, key: str, value: Any, prefix: str = ""):
+    """Dotted paths in ``data`` whose last part is ``key`` and whose value is ``value``."""
+    items = (data.items() if isinstance(data, dict) else
+             enumerate(data) if isinstance(data, list) else ())
+    for k, v in items:
+        path = f"{prefix}.{k}" if prefix else str(k)
+        if str(k) == key and v == value:
+            yield path
+        yield from _paths_ending(v, key, value, path)
 
 
 def _known_keys(parent: str) -> list[str]:

@@ -234,7 +234,9 @@ def run_scenario(sc: Scenario, out_dir: str | Path, progress: bool = False) -> R
     summary["timings_s"] = dict(res.timings)
     files.append(write_json(out / "summary.json", summary, prov))
     res.summary = summary
-    write_text(marker, f"simfield {__version__} seed {sc.seed} config {prov.config_hash}\n")
+    listed = sorted({str(Path(f).relative_to(out)) for f in files if Path(f).is_relative_to(out)})
+    write_text(marker, f"simfield {__version__} seed {sc.seed} config {prov.config_hash}\n"
+               + "".join(f"{f}\n" for f in listed))
     return res
 
 
