@@ -34,6 +34,9 @@ class ConfigError(SimfieldError, ValueError):
         self.allowed = allowed
         super().__init__(f"invalid configuration: {key}={value!r} {allowed}")
 
+    def __reduce__(self):  # picklable, so an error raised in a worker process reaches the user
+        return (type(self), (self.key, self.value, self.allowed))
+
 
 class CatalogError(SimfieldError, ValueError):
     """A user catalogue (detections, truth) cannot be used as given."""

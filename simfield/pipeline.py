@@ -184,7 +184,7 @@ def run_scenario(sc: Scenario, out_dir: str | Path, progress: bool = False) -> R
 
     # ---------------------------------------------------------------- stamps (once)
     with timer("stamps"):
-        stamps = _draw_all(sources, sgrid, sc, lens, make_profile)
+        stamps = _draw_all(sources, sgrid, sc, lens, make_profile, progress)
 
     # ---------------------------------------------------------------- bands
     egrids = exposure_grids(srv, tel, stream(sc.seed, "dither"))
@@ -194,7 +194,7 @@ def run_scenario(sc: Scenario, out_dir: str | Path, progress: bool = False) -> R
                        sgrid=sgrid, mgrid=mgrid, egrids=egrids, fixed=fixed,
                        psf_core=psf_core, psf_wide=psf_wide)
     depths = {}
-    for name, band_files, depth, band_times in _map_bands(ctx, bands, sc.workers):
+    for name, band_files, depth, band_times in _map_bands(ctx, bands, sc.workers, progress):
         files.extend(band_files)
         depths[name] = depth
         for k, v in band_times.items():
@@ -265,20 +265,23 @@ def _band_worker(band: Band):
     return _render_band(_CTX, band)
 
 
-def _map_bands(ctx: _BandContext, bands: list[Band], workers: int):
+def _map_bands(ctx: _BandContext, bands: list[Band], workers: int, progress: bool = False):
     """Render every band, in ``workers`` processes (0: one per core, at most one per band).
 
     Each band draws only from its own named random streams, so the files do not depend on
     the number of workers.
     """
+    from tqdm import tqdm
+
     n = min(len(bands), os.cpu_count() or 1) if workers == 0 else min(workers, len(bands))
+    bar = dict(total=len(bands), desc="bands", unit="band", disable=not progress, leave=False)
     if n <= 1:
-        return [_render_band(ctx, b) for b in bands]
+        return [_render_band(ctx, b) for b in tqdm(bands, **bar)]
     global _CTX
     _CTX = ctx
     try:
         with ProcessPoolExecutor(n, mp_context=multiprocessing.get_context("fork")) as pool:
-            return list(pool.map(_band_worker, bands))
+            return list(tqdm(pool.map(_band_worker, bands), **bar))
     finally:
         _CTX = None
 
@@ -381,8 +384,12 @@ def _truth_images(sources: Table, lens, sc: Scenario, hx: float, hy: float):
     return images, np.asarray(mag_total, float), np.asarray(n_images, np.int32)
 
 
-def _draw_all(sources: Table, sgrid: Grid, sc: Scenario, lens, make_profile) -> list[Stamp]:
-    """Unit-flux stamps of every source (lensed ones by ray tracing)."""
+def _draw_all(sources: Table, sgrid: Grid, sc: Scenario, lens, make_profile,
+              progress: bool = False) -> list[Stamp]:
+    """Unit-flux stamps of every source (lensed ones by ray tracing); a progress bar if
+    ``progress``."""
+    from tqdm import tqdm
+
     xpix, ypix = sgrid.offsets_to_pixel(np.asarray(sources["x_arcsec"], float),
                                         np.asarray(sources["y_arcsec"], float))
     kinds = np.asarray(sources["kind"]).astype(str)
@@ -419,7 +426,9 @@ def _draw_all(sources: Table, sgrid: Grid, sc: Scenario, lens, make_profile) -> 
             return [Stamp(np.asarray(im, np.float32), int(iy0), int(ix0), i)
                     for im, iy0, ix0 in got]
 
-    return draw_stamps(items(), sgrid.scale, lensed=lensed)
+    bar = tqdm(items(), total=len(sources), desc="stamps", unit="src", disable=not progress,
+               leave=False)
+    return draw_stamps(bar, sgrid.scale, lensed=lensed)
 
 
 #: Pixel of the convergence map written beside a lensed run (arcsec).
