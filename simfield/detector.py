@@ -370,6 +370,9 @@ def expose(rate: np.ndarray, sky_rate, dark, det: DetectorConfig, exptime_s: flo
         hit = (cr_q > 0) & (when >= 0)
         sig_diff = np.sqrt(2.0 * sig_f2 / m + f * tg)
         jump = hit & (cr_q > det.jump_threshold_sigma * sig_diff)
+        # the neighbours of a detected jump are refitted too, at the same time (common
+        # practice in ramp fitting: the faint fringe of a track would otherwise stay in)
+        jump |= hit & ndimage.binary_dilation(jump, structure=np.ones((3, 3), bool))
         faint = hit & ~jump
         # an undetected deposit in interval i adds charge x D_i to the fitted slope
         slope[faint] += (cr_q[faint] * d_int[when[faint]]).astype(np.float32)
