@@ -158,6 +158,8 @@ class LensConfig:
     member_mag_bright: float = 19.0
     member_mag_faint: float = 25.0
     icl_fraction: float = 0.0  #: diffuse intracluster light, fraction of member light
+    icl_r_half_arcsec: float = 12.0  #: half-light radius of the intracluster light (arcsec)
+    icl_sersic_n: float = 1.5  #: Sersic index of the intracluster light
     reference_redshift: float = 9.0  #: critical curves / caustics are drawn for this z_s
 
 
@@ -391,6 +393,8 @@ def _validate_lens(lens: LensConfig, z_max: float) -> None:
                 lo_open=True)
     check_range("lens.n_members", lens.n_members, 0, 10000)
     check_range("lens.icl_fraction", lens.icl_fraction, 0, 1)
+    check_range("lens.icl_r_half_arcsec", lens.icl_r_half_arcsec, 0.1, 600)
+    check_range("lens.icl_sersic_n", lens.icl_sersic_n, 0.3, 6.2)
     for i, c in enumerate(lens.components):
         k = f"lens.components.{i}"
         require(c.kind in ("nfw", "sis", "sie", "point", "shear"), f"{k}.kind", c.kind,

@@ -153,8 +153,10 @@ def run_scenario(sc: Scenario, out_dir: str | Path, progress: bool = False) -> R
 
             members = make_members(sc.lens, bands, stream(sc.seed, "members"), (-hx, hx),
                                    (-hy, hy))
-            sources = _stack_sources(sources, members)
             lens = build_lens(sc.lens, members)
+            if sc.lens.icl_fraction > 0 and len(members):
+                members = _stack_sources(members, _icl_source(sc.lens, members, bands))
+            sources = _stack_sources(sources, members)
         sources["id"] = np.arange(1, len(sources) + 1)
 
     with timer("lensing"):
@@ -365,6 +367,27 @@ def _stack_sources(a: Table, b: Table) -> Table:
     return vstack([a, b], join_type="outer", metadata_conflicts="silent")
 
 
+def _icl_source(lens_cfg, members: Table, bands: list[Band]) -> Table:
+    """One SOURCES row (kind ``icl``) for the diffuse intracluster light.
+
+    A Sersic envelope (``icl_sersic_n``, ``icl_r_half_arcsec``) centred on the first NFW
+    component (else the field centre), elongated like the halo, at the lens redshift, holding
+    ``icl_fraction`` of the members' summed flux in every band (the members' colours). It is
+    light only: the lens model already holds the cluster's mass.
+    """
+    nfw = [c for c in lens_cfg.components if c.kind == "nfw"]
+    c = nfw[0] if nfw else None
+    row = {"kind": ["icl"], "x_arcsec": [c.x_arcsec if c else 0.0],
+           "y_arcsec": [c.y_arcsec if c else 0.0], "redshift": [lens_cfg.redshift],
+           "abs_mag_uv": [np.nan], "r_half": [lens_cfg.icl_r_half_arcsec],
+           "sersic_n": [lens_cfg.icl_sersic_n], "axis_ratio": [c.axis_ratio if c else 1.0],
+           "position_angle": [c.position_angle_deg if c else 0.0]}
+    for b in bands:
+        total = np.nansum(ab_to_njy(np.asarray(members[f"mag_{b.name}"], float)))
+        row[f"mag_{b.name}"] = [float(njy_to_ab(lens_cfg.icl_fraction * total))]
+    return Table(row)
+
+
 def _truth_images(sources: Table, lens, sc: Scenario, hx: float, hy: float):
     """IMAGES rows for every source, with total magnification and image count per source."""
     n = len(sources)
@@ -401,6 +424,18 @@ def _draw_all(sources: Table, sgrid: Grid, sc: Scenario, lens, make_profile,
             if kinds[i] == "star":
                 yield i, None, xpix[i], ypix[i], 0, 1
                 continue
+            if kinds[i] == "icl":
+                import galsim
+
+                prof = galsim.Sersic(float(sources["sersic_n"][i]),
+                                     half_light_radius=float(rhalf[i]))
+                q = float(sources["axis_ratio"][i])
+                if q < 1:
+                    beta = (90.0 - float(sources["position_angle"][i])) * galsim.degrees
+                    prof = prof.shear(q=q, beta=beta)
+                yield (i, prof.transform(*frame), xpix[i], ypix[i],
+                       max(sgrid.nx, sgrid.ny) // 2, 1)  # the envelope spans the field
+                continue
             prof = make_profile(sources[i], sc.seed)
             if lensed is not None and z[i] > zl and kinds[i] != "member":
                 yield i, prof, xpix[i], ypix[i], 0, 1  # the lensing stage draws it
@@ -416,7 +451,7 @@ def _draw_all(sources: Table, sgrid: Grid, sc: Scenario, lens, make_profile,
         from .lensing import render_lensed
 
         def lensed(i, prof):
-            if z[i] <= zl or kinds[i] == "member":
+            if z[i] <= zl or kinds[i] in ("member", "icl"):
                 return None
             import galsim
 

@@ -154,8 +154,16 @@ def test_lensed_run_lists_every_image_with_magnification(tmp_path):
     src = Table.read(res.out_dir / "truth.fits", hdu="SOURCES")
     img = Table.read(res.out_dir / "truth.fits", hdu="IMAGES")
     assert np.any(src["n_images"] > 1)
-    members = src[np.char.decode(src["kind"].astype("S")) == "member"]
+    kind = np.char.decode(src["kind"].astype("S"))
+    members = src[kind == "member"]
     assert len(members) == sc.lens.n_members
+    # the intracluster light holds icl_fraction of the members' flux in every band
+    icl = src[kind == "icl"]
+    assert len(icl) == 1
+    for b in ("b13", "b23"):
+        f_members = np.sum(10 ** (-0.4 * np.asarray(members[f"mag_{b}"])))
+        assert_allclose(10 ** (-0.4 * icl[f"mag_{b}"][0]), sc.lens.icl_fraction * f_members,
+                        rtol=1e-9)
     lens = build_lens(sc.lens, members)  # the same lens rebuilt from the truth table
     bg = img[np.isin(img["source_id"], src["id"][src["redshift"] > sc.lens.redshift])]
     z = src["redshift"][bg["source_id"] - 1]
