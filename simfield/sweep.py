@@ -40,6 +40,7 @@ from typing import Any, Iterable
 import numpy as np
 from astropy.table import Column, MaskedColumn, Table
 
+from ._argparse import ArgError, OneLineParser
 from .io import COMPLETE_MARKER, atomic_path, write_json
 
 __all__ = [
@@ -607,17 +608,8 @@ def plot_sweep(t: Table, out_dir) -> list[Path]:
 # --------------------------------------------------------------------------------------------
 # command line
 # --------------------------------------------------------------------------------------------
-class _ArgError(Exception):
-    pass
-
-
-class _Parser(argparse.ArgumentParser):
-    def error(self, message):  # one line, no usage dump
-        raise _ArgError(message)
-
-
 def _parser() -> argparse.ArgumentParser:
-    p = _Parser(prog="simfield-collect",
+    p = OneLineParser(prog="simfield-collect",
                 description="Gather a simfield sweep (Hydra multirun directory) into one "
                             "table (sweep.ecsv) and plots of its headline metrics.")
     p.add_argument("sweep_dir", metavar="SWEEP_DIR", help="the sweep's hydra.sweep.dir")
@@ -633,14 +625,14 @@ def collect_main_args(argv: list[str]) -> int:
         a = _parser().parse_args(argv)
         root = Path(a.sweep_dir)
         if not root.is_dir():
-            raise _ArgError(f"sweep directory {a.sweep_dir!r} does not exist")
+            raise ArgError(f"sweep directory {a.sweep_dir!r} does not exist")
         t = collect(root)
         inc = t.meta["incomplete_jobs"]
         if len(t) == 0:
             n = len(inc)
-            raise _ArgError(f"no completed jobs in {a.sweep_dir!r} ({n} job director"
+            raise ArgError(f"no completed jobs in {a.sweep_dir!r} ({n} job director"
                             f"{'y' if n == 1 else 'ies'} without a {COMPLETE_MARKER} marker)")
-    except _ArgError as exc:
+    except ArgError as exc:
         print(f"{prog}: error: {exc}", file=sys.stderr)
         return 2
     out = Path(a.out) if a.out else root / "collected"

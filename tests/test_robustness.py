@@ -149,14 +149,7 @@ def test_every_numeric_key_with_each_bad_number(base):
     bad = []
     for path in NUMERIC[base]:
         for value in (-1e300, -1, 0, 1e-300, 1e300, math.nan, math.inf, -math.inf):
-            sc = copy.deepcopy(sc0)
-            node = sc
-            for p in path[:-1]:
-                node = node[p] if isinstance(p, int) else getattr(node, p)
-            if isinstance(path[-1], int):
-                node[path[-1]] = value
-            else:
-                setattr(node, path[-1], value)
+            sc = _with_value(sc0, path, value)
             try:
                 validate(sc)
             except ConfigError as exc:
@@ -165,6 +158,19 @@ def test_every_numeric_key_with_each_bad_number(base):
             except Exception as exc:  # anything but ConfigError is a failure of validation
                 bad.append(f"{_key(path)}={value!r}: {type(exc).__name__}: {exc}")
     assert not bad, "\n".join(bad)
+
+
+def _with_value(sc0, path, value):
+    """A deep copy of scenario ``sc0`` with the leaf at ``path`` set to ``value``."""
+    sc = copy.deepcopy(sc0)
+    node = sc
+    for p in path[:-1]:
+        node = node[p] if isinstance(p, int) else getattr(node, p)
+    if isinstance(path[-1], int):
+        node[path[-1]] = value
+    else:
+        setattr(node, path[-1], value)
+    return sc
 
 
 def test_non_finite_numbers_always_refused():
@@ -179,14 +185,7 @@ def test_non_finite_numbers_always_refused():
             if value == math.inf and path[-2:-1] in (("size_bins_arcsec",), ("z_bins",)) \
                     and path[-1] == len(getattr(sc0.score, path[-2])) - 1:
                 continue  # +inf as the last bin edge is an open top bin
-            sc = copy.deepcopy(sc0)
-            node = sc
-            for p in path[:-1]:
-                node = node[p] if isinstance(p, int) else getattr(node, p)
-            if isinstance(path[-1], int):
-                node[path[-1]] = value
-            else:
-                setattr(node, path[-1], value)
+            sc = _with_value(sc0, path, value)
             try:
                 validate(sc)
                 accepted.append(f"{_key(path)}={value}")

@@ -29,6 +29,7 @@ from astropy.io import fits
 from astropy.table import Table
 from astropy.wcs import WCS
 
+from .._argparse import ArgError, OneLineParser
 from ..bands import AB_NJY_ZERO
 from ..config import ScoreConfig, _validate_score
 from ..errors import CatalogError, ConfigError
@@ -525,17 +526,8 @@ def score_pipeline_run(run_dir, sc, prov) -> dict:
 
 
 # --------------------------------------------------------------------------------------------
-class _ArgError(Exception):
-    pass
-
-
-class _Parser(argparse.ArgumentParser):
-    def error(self, message):  # one line, no usage dump
-        raise _ArgError(message)
-
-
 def _parser() -> argparse.ArgumentParser:
-    p = _Parser(prog="simfield-score",
+    p = OneLineParser(prog="simfield-score",
                 description="Score a detection catalogue against a simfield run's truth.")
     p.add_argument("run_dir", help="run directory written by simfield")
     p.add_argument("--catalog", help="catalogue file (.fits, .ecsv, .csv); default the run's "
@@ -583,7 +575,7 @@ def score_main_args(argv: list[str]) -> int:
         else:
             cols["mag"] = a.mag_col or "mag"
         summ = score_run(run_dir, a.catalog, band, cfg, a.out, cols, a.skip_invalid)
-    except (_ArgError, CatalogError, ConfigError) as exc:
+    except (ArgError, CatalogError, ConfigError) as exc:
         print(f"simfield-score: error: {exc}", file=sys.stderr)
         return 2
     out = Path(a.out) if a.out else run_dir / "score"
