@@ -140,13 +140,6 @@ def _subsamples(size: float, scale: float, most: int) -> int:
     return int(np.clip(np.ceil(20.0 * scale / max(size, 1e-6)), 1, most))
 
 
-def _pixel_frame(grid: Grid):
-    """M with (u, v) = M (xi, eta): u along scene columns, v along rows (M = M^-1)."""
-    t = np.deg2rad(grid.roll_deg)
-    c, s = np.cos(t), np.sin(t)
-    return np.array([[-c, s], [s, c]])
-
-
 def _interp_point(cache: RenderCache, x: float, y: float):
     """Bilinear (ax, ay, kappa, gamma1, gamma2) (reduced) at (x, y) (arcsec)."""
     px, py = cache.grid.offsets_to_pixel(x, y)
@@ -192,7 +185,7 @@ def _draw_weak(profile, grid: Grid, x: float, y: float, a: np.ndarray, supersamp
     jac = np.linalg.inv(a)
     # image-plane brightness S(A theta): transform by A^-1 (GalSim keeps surface brightness)
     # then map (xi, eta) onto scene (column, row) axes
-    full = _pixel_frame(grid) @ jac
+    full = grid.pixel_frame() @ jac
     lensed = profile.transform(full[0, 0], full[0, 1], full[1, 0], full[1, 1])
     mu = abs(np.linalg.det(jac))
     px, py = grid.offsets_to_pixel(x, y)
