@@ -326,21 +326,26 @@ def _render_band(ctx: _BandContext, b: Band):
         seg = _resample_ids(seg_scene, sgrid, mgrid)
         files.append(_write_truth_image(out / f"truth_image_{b.name}.fits", truth_img, seg,
                                         mgrid, b, zp, sigma_pix, prov))
-    with timer("exposures"):
-        sky = b.sky_rate(area, tel.pixel_scale_arcsec)
-        exposures = []
+    sky = b.sky_rate(area, tel.pixel_scale_arcsec)
+
+    def exposures():
+        """Each exposure in turn, so only one is in memory while the mosaic is drizzled."""
         for k, eg in enumerate(ctx.egrids):
-            r = sample_scene(scene, sgrid, eg)
-            exposures.append(expose(r, sky, None, sc.detector, srv.exposure_time_s,
-                                    tel.pixel_size_um, stream(sc.seed, "exposure", b.name, k),
-                                    ctx.fixed))
-            if srv.write_exposures:
-                files.append(_write_exposure(out / "exposures" / f"exp_{b.name}_{k:02d}.fits",
-                                             exposures[-1], eg, b, zp, prov))
+            with timer("exposures"):
+                r = sample_scene(scene, sgrid, eg)
+                e = expose(r, sky, None, sc.detector, srv.exposure_time_s, tel.pixel_size_um,
+                           stream(sc.seed, "exposure", b.name, k), ctx.fixed)
+                del r
+                if srv.write_exposures:
+                    files.append(_write_exposure(
+                        out / "exposures" / f"exp_{b.name}_{k:02d}.fits", e, eg, b, zp, prov))
+            yield e
+
+    t0 = time.perf_counter()
+    mosaic = drizzle_mosaic(exposures(), ctx.egrids, mgrid, srv.drizzle_kernel, srv.pixfrac)
+    timings["mosaic"] = time.perf_counter() - t0 - timings.get("exposures", 0.0)
     del scene
     with timer("mosaic"):
-        mosaic = drizzle_mosaic(exposures, ctx.egrids, mgrid, srv.drizzle_kernel, srv.pixfrac)
-        del exposures
         files.append(_write_mosaic(out / f"mosaic_{b.name}.fits", mosaic, mgrid, b, zp, srv,
                                    prov))
     with timer("depth"):

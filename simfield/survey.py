@@ -344,8 +344,8 @@ def drizzle_mosaic(exposures, exp_grids: list[Grid], mosaic_grid: Grid, kernel: 
 
     Parameters
     ----------
-    exposures : sequence of simfield.detector.Exposure
-        Each with ``sci`` (e-/s), ``var`` ((e-/s)^2), ``var_sky`` ((e-/s)^2, variance of a
+    exposures : iterable of simfield.detector.Exposure
+        Consumed one at a time (a generator keeps only one exposure in memory). Each with ``sci`` (e-/s), ``var`` ((e-/s)^2), ``var_sky`` ((e-/s)^2, variance of a
         source-free pixel), ``dq``, ``exptime`` (s) and ``sky`` (e-/s per pixel).
     exp_grids : list of Grid
         The exposures' grids (same tangent point as ``mosaic_grid``).
@@ -375,15 +375,19 @@ def drizzle_mosaic(exposures, exp_grids: list[Grid], mosaic_grid: Grid, kernel: 
     require(kernel in ("square", "point", "turbo", "gaussian", "lanczos3"), "survey.drizzle_kernel",
             kernel, "must be one of: square, point, turbo, gaussian, lanczos3")
     check_range("survey.pixfrac", pixfrac, 0, 1, lo_open=True)
-    require(len(exposures) == len(exp_grids) and len(exposures) > 0, "exposures", len(exposures),
-            f"must be a non-empty list as long as exp_grids ({len(exp_grids)})")
+    require(len(exp_grids) > 0, "exp_grids", len(exp_grids), "must not be empty")
     aligned = all(_is_aligned(_affine(g, mosaic_grid)[0]) for g in exp_grids)
     # with the exposure axes along the mosaic axes the square drop is an axis-aligned square,
     # which the turbo kernel computes exactly and ~3x faster (checked in the tests)
     driz = Drizzle(kernel="turbo" if kernel == "square" and aligned else kernel,
                    out_shape=mosaic_grid.shape, fillval=0.0, fillval2=0.0,
-                   max_ctx_id=len(exposures) - 1)
-    for e, g in zip(exposures, exp_grids):
+                   max_ctx_id=len(exp_grids) - 1)
+    exptimes = []
+    for k, e in enumerate(exposures):
+        require(k < len(exp_grids), "exposures", k + 1,
+                f"must be as many as exp_grids ({len(exp_grids)})")
+        g = exp_grids[k]
+        exptimes.append(float(e.exptime))
         require(e.sci.shape == g.shape, "exposure.sci", e.sci.shape,
                 f"must have its grid's shape {g.shape}")
         ratio = mosaic_grid.scale / g.scale
@@ -396,6 +400,8 @@ def drizzle_mosaic(exposures, exp_grids: list[Grid], mosaic_grid: Grid, kernel: 
                        pixmap=_pixmap(g, mosaic_grid), data2=np.asarray(e.var, np.float32),
                        dq=np.asarray(e.dq, np.uint32), iscale=ratio * ratio,
                        pixel_scale_ratio=ratio, weight_map=w, pixfrac=pixfrac, in_units="cps")
+    require(len(exptimes) == len(exp_grids), "exposures", len(exptimes),
+            f"must be as many as exp_grids ({len(exp_grids)})")
     sci = np.asarray(driz.out_img, dtype=np.float32)
     var = np.asarray(driz.out_img2[0] if isinstance(driz.out_img2, list) else driz.out_img2,
                      dtype=np.float32)
@@ -405,8 +411,8 @@ def drizzle_mosaic(exposures, exp_grids: list[Grid], mosaic_grid: Grid, kernel: 
     ctx = np.asarray(driz.out_ctx)
     ctx = ctx.reshape((-1,) + mosaic_grid.shape).astype(np.uint32)
     exp = np.zeros(mosaic_grid.shape, np.float32)
-    for i, e in enumerate(exposures):
-        exp += ((ctx[i // 32] >> np.uint32(i % 32)) & np.uint32(1)) * np.float32(e.exptime)
+    for i, t in enumerate(exptimes):
+        exp += ((ctx[i // 32] >> np.uint32(i % 32)) & np.uint32(1)) * np.float32(t)
     dq = np.zeros(mosaic_grid.shape, np.int32) if driz.out_dq is None else \
         np.asarray(driz.out_dq).astype(np.int32)
     dq[~covered] |= DQ_NO_COVERAGE
