@@ -138,7 +138,7 @@ def run_scenario(sc: Scenario, out_dir: str | Path, progress: bool = False) -> R
         sgrid: Grid = scene_grid(srv, tel)
         mgrid: Grid = mosaic_grid(srv)
         files.append(write_table(out / "bands.ecsv", _bands_table(bands, area), prov))
-        write_text(out / "scenario.yaml", to_yaml(sc))
+        files.append(write_text(out / "scenario.yaml", to_yaml(sc)))
 
     # ---------------------------------------------------------------- population (+ lens)
     with timer("population"):
@@ -183,6 +183,7 @@ def run_scenario(sc: Scenario, out_dir: str | Path, progress: bool = False) -> R
                                     b, prov))
         pupil = scenario_pupil(tel, sc.seed, grid_size=512)
         write_psf_png([psf_wide[b.name] for b in bands], pupil, out / "psf.png")
+        files.append(out / "psf.png")
 
     # ---------------------------------------------------------------- stamps (once)
     with timer("stamps"):
@@ -227,11 +228,13 @@ def run_scenario(sc: Scenario, out_dir: str | Path, progress: bool = False) -> R
             from .detect import run_detection
 
             summary["detections"] = run_detection(out, sc, bands, prov)
+            files.extend(out / f"detections_{b}.fits" for b in summary["detections"])
     if sc.score.enabled and sc.detection.enabled:
         with timer("score"):
             from .score.run import score_pipeline_run
 
             summary["score"] = score_pipeline_run(out, sc, prov)
+            files.extend(out / "score" / b / "summary.json" for b in summary["score"])
 
     summary["timings_s"] = dict(res.timings)
     files.append(write_json(out / "summary.json", summary, prov))
