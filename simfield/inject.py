@@ -131,7 +131,9 @@ def inject_into_image(image_path, sc: Scenario, band: str, out_dir, psf_path=Non
     out_dir : path
         Output directory, laid out like a run directory.
     psf_path : path, optional
-        PSF image (FITS); default: the model PSF of ``band`` at the image's pixel scale.
+        PSF image (FITS), taken as an effective PSF (optics and pixel response); default: the
+        model PSF of ``band`` sampled at the image's pixel centres (the stamps of the sources
+        are integrated over the pixels, so the pixel box is applied once).
     hdu, zeropoint, weight_hdu :
         See :func:`read_image`.
 
@@ -158,7 +160,7 @@ def inject_into_image(image_path, sc: Scenario, band: str, out_dir, psf_path=Non
     scale = float(np.sqrt(abs(np.linalg.det(jac))))
     psf = (read_psf(psf_path, scale) if psf_path is not None else
            band_psf(sc.telescope, b, scale, sc.telescope.psf.core_radius_arcsec,
-                    sc.seed).image)
+                    sc.seed, pixel_integrated=False).image)
     fwhm = measure_fwhm(psf, scale)
 
     out = Path(out_dir)

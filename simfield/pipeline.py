@@ -171,11 +171,12 @@ def run_scenario(sc: Scenario, out_dir: str | Path, progress: bool = False) -> R
         scale = sgrid.scale
         cache = Path(tel.psf.cache_dir)
         psf_core, psf_wide = {}, {}
+        # sampled, not pixel-integrated: the stamps already carry the scene-pixel box
         for b in bands:
             psf_core[b.name] = cached_band_psf(tel, b, scale, tel.psf.core_radius_arcsec,
-                                               sc.seed, cache)
+                                               sc.seed, cache, pixel_integrated=False)
             psf_wide[b.name] = cached_band_psf(tel, b, scale, tel.psf.spike_radius_arcsec,
-                                               sc.seed, cache)
+                                               sc.seed, cache, pixel_integrated=False)
         for b in bands:
             files.append(_write_psf(out / f"psf_{b.name}.fits", psf_core[b.name],
                                     psf_wide[b.name],
@@ -605,7 +606,7 @@ def _write_psf(path, core, wide, eff, b: Band, prov) -> Path:
     ee["radius"].unit = "arcsec"
     ee_hdu = fits.BinTableHDU(ee, name="EE")
     ee_hdu.header["COMMENT"] = "encircled energy of the PSF including the detector pixel"
-    hdus = [hdu(core, "PSF", "optics+jitter, integrated over scene pixels"),
+    hdus = [hdu(core, "PSF", "optics+jitter sampled at scene-pixel centres"),
             hdu(wide, "PSF_WIDE", "large PSF used for bright sources"),
             hdu(eff, "PSF_DET", "PSF convolved with the detector pixel"), ee_hdu]
     return write_fits(path, hdus, prov, [("BAND", b.name, "simfield band name")])

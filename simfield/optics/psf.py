@@ -238,18 +238,20 @@ def _band_pupil(tel: TelescopeConfig, seed: int, n: int) -> Pupil:
 
 
 def _resample_pixels(fine: np.ndarray, step: float, scale: float, npix: int,
-                     sigma: float) -> np.ndarray:
+                     sigma: float, box: bool = True) -> np.ndarray:
     """Band-limited ``fine`` (odd size, sample spacing ``step``, centre sample at 0) convolved
-    with a Gaussian of rms ``sigma`` and a box of side ``scale``, at npix x npix pixel centres
-    spaced ``scale`` (same angular unit throughout); exact by Fourier series for a
-    Nyquist-sampled image, via a matrix transform so ``scale / step`` need not be an integer."""
+    with a Gaussian of rms ``sigma`` and (if ``box``) a box of side ``scale``, at npix x npix
+    pixel centres spaced ``scale`` (same angular unit throughout); exact by Fourier series for
+    a Nyquist-sampled image, via a matrix transform so ``scale / step`` need not be an
+    integer. Without the box the values are the density at the centres times scale^2."""
     m = fine.shape[0]
     spec = np.fft.rfft2(np.fft.ifftshift(fine))  # sample 0 at angle 0; half spectrum along x
     f = np.fft.fftfreq(m, d=step)  # cycles per unit angle
     fx = np.abs(f[: spec.shape[1]])
     # Gaussian of rms s: transfer exp(-2 pi^2 s^2 f^2); unit box of side w: sinc(w f)
-    t_y = np.exp(-2.0 * np.pi**2 * sigma**2 * f**2) * np.sinc(scale * f)
-    t_x = np.exp(-2.0 * np.pi**2 * sigma**2 * fx**2) * np.sinc(scale * fx)
+    w = scale if box else 0.0  # sinc(0) = 1: no pixel box
+    t_y = np.exp(-2.0 * np.pi**2 * sigma**2 * f**2) * np.sinc(w * f)
+    t_x = np.exp(-2.0 * np.pi**2 * sigma**2 * fx**2) * np.sinc(w * fx)
     spec *= t_y[:, None] * t_x[None, :]
     centres = (np.arange(npix) - (npix - 1) / 2.0) * scale
     g = np.exp(2j * np.pi * np.outer(centres, f)) @ spec  # inverse along y, complex
@@ -264,8 +266,8 @@ def _resample_pixels(fine: np.ndarray, step: float, scale: float, npix: int,
 
 
 def band_psf(tel: TelescopeConfig, band: Band, scale_arcsec: float, radius_arcsec: float,
-             seed: int = 0) -> PSFImage:
-    """Polychromatic, jittered, pixel-integrated PSF of ``tel`` in ``band``.
+             seed: int = 0, pixel_integrated: bool = True) -> PSFImage:
+    """Polychromatic, jittered PSF of ``tel`` in ``band``, pixel-integrated or sampled.
 
     Parameters
     ----------
@@ -280,6 +282,10 @@ def band_psf(tel: TelescopeConfig, band: Band, scale_arcsec: float, radius_arcse
     seed : int
         Scenario seed; the wavefront error is drawn from ``stream(seed, "optics", "pupil")``,
         the same for every band.
+    pixel_integrated : bool
+        True: each value is the PSF integrated over its pixel. False: the PSF density at the
+        pixel centre times the pixel area, the kernel to convolve a scene whose sources are
+        already integrated over its pixels (the pixel box is then applied once, not twice).
 
     Returns
     -------
@@ -312,7 +318,8 @@ def band_psf(tel: TelescopeConfig, band: Band, scale_arcsec: float, radius_arcse
         fine += w_i * _intensity(pupil, lam_i, theta)
         strehl += w_i * _on_axis_strehl(pupil, lam_i)
     fine *= (step * _RAD_PER_ARCSEC) ** 2  # fraction of the total flux per fine sample
-    image = _resample_pixels(fine, step, scale_arcsec, 2 * half + 1, ps.jitter_mas / 1000.0)
+    image = _resample_pixels(fine, step, scale_arcsec, 2 * half + 1, ps.jitter_mas / 1000.0,
+                             box=pixel_integrated)
     total = float(image.sum())
     image = image / total
     radii, ee = encircled_energy(image, scale_arcsec)
@@ -395,7 +402,8 @@ def effective_psf(psf: PSFImage, detector_pixel_arcsec: float) -> PSFImage:
     Parameters
     ----------
     psf : PSFImage
-        Scene-pixel PSF (already integrated over its own pixels of side ``scale_arcsec``).
+        Scene-pixel PSF (sampled, ``pixel_integrated=False``, for the effective PSF of the
+        detector pixel alone).
     detector_pixel_arcsec : float (arcsec)
         Detector pixel side.
 
@@ -423,7 +431,7 @@ def effective_psf(psf: PSFImage, detector_pixel_arcsec: float) -> PSFImage:
 # disk cache
 # --------------------------------------------------------------------------------------------
 def _cache_key(tel: TelescopeConfig, band: Band, scale_arcsec: float, radius_arcsec: float,
-               seed: int) -> str:
+               seed: int, pixel_integrated: bool = True) -> str:
     ps = tel.psf
     desc = {
         "version": _CACHE_VERSION,
@@ -438,13 +446,15 @@ def _cache_key(tel: TelescopeConfig, band: Band, scale_arcsec: float, radius_arc
         "scale_arcsec": float(scale_arcsec),
         "radius_arcsec": float(radius_arcsec),
         "seed": int(seed),
+        "pixel_integrated": bool(pixel_integrated),
     }
     return hashlib.sha256(json.dumps(desc, sort_keys=True).encode()).hexdigest()
 
 
 def cached_band_psf(tel: TelescopeConfig, band: Band, scale_arcsec: float,
                     radius_arcsec: float, seed: int = 0,
-                    cache_dir: str | os.PathLike | None = None) -> PSFImage:
+                    cache_dir: str | os.PathLike | None = None,
+                    pixel_integrated: bool = True) -> PSFImage:
     """:func:`band_psf`, read from / written to an ``.npz`` disk cache.
 
     The file name holds a SHA-256 of everything that changes the PSF (pupil and PSF settings,
@@ -457,7 +467,7 @@ def cached_band_psf(tel: TelescopeConfig, band: Band, scale_arcsec: float,
         Default ``tel.psf.cache_dir``.
     """
     folder = Path(cache_dir if cache_dir is not None else tel.psf.cache_dir)
-    key = _cache_key(tel, band, scale_arcsec, radius_arcsec, seed)
+    key = _cache_key(tel, band, scale_arcsec, radius_arcsec, seed, pixel_integrated)
     path = folder / f"psf_{band.name}_{key[:20]}.npz"
     if path.exists():
         with np.load(path) as d:
@@ -467,7 +477,7 @@ def cached_band_psf(tel: TelescopeConfig, band: Band, scale_arcsec: float,
                             ee_radii_arcsec=d["ee_radii_arcsec"], ee_values=d["ee_values"],
                             strehl=float(d["strehl"]), flux_fraction=float(d["flux_fraction"]),
                             from_cache=True)
-    psf = band_psf(tel, band, scale_arcsec, radius_arcsec, seed)
+    psf = band_psf(tel, band, scale_arcsec, radius_arcsec, seed, pixel_integrated)
     folder.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(dir=folder, suffix=".npz.tmp")
     try:
