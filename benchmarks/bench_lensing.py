@@ -27,6 +27,7 @@ from simfield.grid import Grid
 from simfield.lensing import build_lens, lens_sources, render_lensed
 from simfield.lensing import render as lensing_render
 from simfield.population.members import make_members
+from simfield.scene import stamp_half_size
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -60,7 +61,7 @@ def _one(lens, cfg, grid, n, half, rng):
 
     t0 = time.perf_counter()  # the same sources drawn unlensed, as the scene renderer does
     for prof in profiles:
-        half_px = int(np.clip(prof.getGoodImageSize(0.02) // 2 + 1, 3, 256))
+        half_px = stamp_half_size(prof, 0.02)
         prof.drawImage(nx=3 * (2 * half_px + 1), ny=3 * (2 * half_px + 1), scale=0.02 / 3,
                        method="no_pixel")
     t_unlensed = time.perf_counter() - t0

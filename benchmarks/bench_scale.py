@@ -145,7 +145,8 @@ def bench_scene(n: int = 200, side_arcsec: float = 16.0, seed: int = 11) -> None
     """draw_stamps + accumulate + convolve_tiled against per-object galsim.Convolve."""
     import galsim
 
-    from simfield.scene import accumulate, convolve_tiled, draw_stamps, supersampling
+    from simfield.scene import (accumulate, convolve_tiled, draw_stamps, stamp_half_size,
+                                supersampling)
 
     scale = 0.02  # arcsec per scene pixel (the default 0.04" detector pixel / 2)
     npix = int(round(side_arcsec / scale))
@@ -166,7 +167,7 @@ def bench_scene(n: int = 200, side_arcsec: float = 16.0, seed: int = 11) -> None
     # simfield: unit stamps once, one image per band, one tiled FFT with the PSF
     t0 = time.perf_counter()
     # stamp size and pixel sub-sampling chosen as the pipeline does
-    items = ((i, p, x[i], y[i], int(np.clip(p.getGoodImageSize(scale) // 2 + 1, 3, 256)),
+    items = ((i, p, x[i], y[i], stamp_half_size(p, scale),
               supersampling(hlr[i] / scale)) for i, p in enumerate(profiles))
     stamps = draw_stamps(items, scale)
     t_stamps = time.perf_counter() - t0

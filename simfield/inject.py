@@ -33,7 +33,7 @@ from .grid import Grid
 from .io import COMPLETE_MARKER, Provenance, write_fits, write_table, write_text
 from .random import stream
 from .scene import (accumulate, convolve_tiled, dominant_source, draw_profile_stamp, point_stamp,
-                    supersampling)
+                    stamp_half_size, supersampling)
 
 __all__ = ["read_image", "read_psf", "inject_into_image"]
 
@@ -198,7 +198,7 @@ def inject_into_image(image_path, sc: Scenario, band: str, out_dir, psf_path=Non
             stamps.append(point_stamp(float(row["x"]), float(row["y"]), i))
             continue
         prof = make_profile(row, sc.seed).transform(*frame)
-        half = int(np.clip(prof.getGoodImageSize(scale) // 2 + 1, 3, 256))
+        half = stamp_half_size(prof, scale)
         stamps.append(draw_profile_stamp(prof, float(row["x"]), float(row["y"]), scale, half,
                                          i, supersampling(float(row["r_half"]) / scale)))
     rate = np.nan_to_num(10 ** (-0.4 * (np.asarray(sources[f"mag_{band}"], float) - zp)))

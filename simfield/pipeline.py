@@ -31,7 +31,7 @@ from .grid import Grid
 from .io import COMPLETE_MARKER, Provenance, write_fits, write_json, write_table, write_text
 from .random import stream
 from .scene import (Stamp, accumulate, add_bright, convolve_tiled, dominant_source, draw_stamps,
-                    supersampling)
+                    stamp_half_size, supersampling)
 
 __all__ = ["RunResult", "run_scenario", "make_bands", "SEGMENTATION_NSIGMA"]
 
@@ -77,12 +77,6 @@ def make_bands(sc: Scenario) -> list[Band]:
     """The scenario's bands as :class:`~simfield.bands.Band` objects."""
     return [make_band(b.name, b.center_nm, b.width_nm, b.throughput, b.sky_mjy_sr)
             for b in sc.telescope.bands]
-
-
-def _stamp_half_size(profile, scale: float, cap: int = 256) -> int:
-    """Half-size (pixels) of the stamp for ``profile``: GalSim's good image size, capped."""
-    n = profile.getGoodImageSize(scale)
-    return int(np.clip(n // 2 + 1, 3, cap))
 
 
 def _bands_table(bands: list[Band], area: float) -> Table:
@@ -450,7 +444,7 @@ def _draw_all(sources: Table, sgrid: Grid, sc: Scenario, lens, make_profile,
                 yield i, prof, xpix[i], ypix[i], 0, 1  # the lensing stage draws it
                 continue
             on_grid = prof.transform(*frame)
-            yield (i, on_grid, xpix[i], ypix[i], _stamp_half_size(on_grid, sgrid.scale),
+            yield (i, on_grid, xpix[i], ypix[i], stamp_half_size(on_grid, sgrid.scale),
                    supersampling(float(rhalf[i]) / sgrid.scale))
 
     lensed = None

@@ -28,6 +28,7 @@ __all__ = [
     "point_stamp",
     "draw_profile_stamp",
     "supersampling",
+    "stamp_half_size",
     "draw_stamps",
     "accumulate",
     "convolve_tiled",
@@ -78,6 +79,12 @@ def point_stamp(x: float, y: float, index: int) -> Stamp:
     img = np.array([[(1 - fy) * (1 - fx), (1 - fy) * fx],
                     [fy * (1 - fx), fy * fx]], dtype=np.float32)
     return Stamp(img, iy, ix, index)
+
+
+def stamp_half_size(profile, scale: float, cap: int = 256) -> int:
+    """Half-size (pixels) of the stamp for a GalSim ``profile`` on pixels of ``scale``
+    (arcsec): GalSim's good image size, at least 3 and at most ``cap``."""
+    return int(np.clip(profile.getGoodImageSize(scale) // 2 + 1, 3, cap))
 
 
 def supersampling(r_half_pix: float) -> int:

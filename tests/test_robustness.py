@@ -130,13 +130,15 @@ def _check_refused_or_valid(data: dict, path) -> None:
 # --------------------------------------------------------------------------------------------
 # validation properties
 # --------------------------------------------------------------------------------------------
+@pytest.mark.parametrize("base", ["quick", "cluster"])
 @SETTINGS
 @given(data=st.data())
-def test_extreme_numbers_refused_naming_key_or_valid(data):
-    """Any number on any numeric key (no lens): validated, or ConfigError naming the key."""
-    path = data.draw(st.sampled_from(NUMERIC["quick"]), label="key")
+def test_extreme_numbers_refused_naming_key_or_valid(base, data):
+    """Any number on any numeric key, without and with the cluster lens (so the lens and
+    member checks are reached): validated, or ConfigError naming the key."""
+    path = data.draw(st.sampled_from(NUMERIC[base]), label="key")
     value = data.draw(EXTREME_NUMBERS, label="value")
-    _check_refused_or_valid(_set(BASE["quick"], path, value), path)
+    _check_refused_or_valid(_set(BASE[base], path, value), path)
 
 
 @pytest.mark.parametrize("base", ["quick", "cluster"])
@@ -192,15 +194,6 @@ def test_non_finite_numbers_always_refused():
             except (ConfigError, OverflowError):
                 pass
     assert not accepted, ", ".join(accepted)
-
-
-@SETTINGS
-@given(data=st.data())
-def test_extreme_numbers_with_cluster_lens(data):
-    """The same with the cluster lens on, so the lens and member checks are reached."""
-    path = data.draw(st.sampled_from(NUMERIC["cluster"]), label="key")
-    value = data.draw(EXTREME_NUMBERS, label="value")
-    _check_refused_or_valid(_set(BASE["cluster"], path, value), path)
 
 
 @SETTINGS

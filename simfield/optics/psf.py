@@ -30,7 +30,6 @@ import dataclasses
 import hashlib
 import json
 import os
-import tempfile
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Sequence
@@ -40,6 +39,7 @@ import numpy as np
 from ..bands import Band
 from ..config import TelescopeConfig
 from ..errors import check_range, require
+from ..io import atomic_path
 from .pupil import Pupil, pupil_extent_m, scenario_pupil
 
 __all__ = [
@@ -478,19 +478,11 @@ def cached_band_psf(tel: TelescopeConfig, band: Band, scale_arcsec: float,
                             strehl=float(d["strehl"]), flux_fraction=float(d["flux_fraction"]),
                             from_cache=True)
     psf = band_psf(tel, band, scale_arcsec, radius_arcsec, seed, pixel_integrated)
-    folder.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(dir=folder, suffix=".npz.tmp")
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            np.savez(fh, image=psf.image, scale_arcsec=psf.scale_arcsec, band=psf.band,
-                     pivot_nm=psf.pivot_nm, fwhm_arcsec=psf.fwhm_arcsec,
-                     ee_radii_arcsec=psf.ee_radii_arcsec, ee_values=psf.ee_values,
-                     strehl=psf.strehl, flux_fraction=psf.flux_fraction, key=key)
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
+    with atomic_path(path) as tmp, open(tmp, "wb") as fh:
+        np.savez(fh, image=psf.image, scale_arcsec=psf.scale_arcsec, band=psf.band,
+                 pivot_nm=psf.pivot_nm, fwhm_arcsec=psf.fwhm_arcsec,
+                 ee_radii_arcsec=psf.ee_radii_arcsec, ee_values=psf.ee_values,
+                 strehl=psf.strehl, flux_fraction=psf.flux_fraction, key=key)
     return psf
 
 
@@ -546,14 +538,6 @@ def write_psf_png(psfs: Sequence[PSFImage], pupil: Pupil, path: str | os.PathLik
         fig.colorbar(im, ax=ax, label="log10(pixel / peak)", shrink=0.8)
     fig.tight_layout()
     path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(dir=path.parent, suffix=".png.tmp")
-    os.close(fd)
-    try:
+    with atomic_path(path) as tmp:
         fig.savefig(tmp, dpi=100, format="png")
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
     return path
