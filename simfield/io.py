@@ -14,7 +14,8 @@ import json
 import os
 import tempfile
 from pathlib import Path
-from typing import Any, Iterator
+from dataclasses import dataclass, field
+from typing import Any, Iterator, Sequence
 
 import numpy as np
 from astropy.io import fits
@@ -29,6 +30,9 @@ __all__ = [
     "write_table",
     "write_json",
     "write_text",
+    "ImageSpec",
+    "SectionFile",
+    "section_files",
     "COMPLETE_MARKER",
 ]
 
@@ -151,3 +155,127 @@ def write_text(path, text: str) -> Path:
     with atomic_path(path) as tmp:
         tmp.write_text(text)
     return Path(path)
+
+
+# ---------------------------------------------------------------------------------------------
+# FITS images written by sections
+# ---------------------------------------------------------------------------------------------
+_BLOCK = 2880  # FITS logical record (bytes)
+_BITPIX = {np.dtype(np.float32): -32, np.dtype(np.float64): -64, np.dtype(np.int32): 32,
+           np.dtype(np.int16): 16, np.dtype(np.uint8): 8}
+
+
+@dataclass(frozen=True)
+class ImageSpec:
+    """One image extension of a :class:`SectionFile`: name, shape (ny, nx), dtype and header.
+
+    ``dtype`` is one of float32, float64, int32, int16, uint8 (no BZERO scaling); ``header``
+    (a :class:`astropy.io.fits.Header` or a sequence of (key, value, comment)) holds WCS, BUNIT
+    and other cards.
+    """
+
+    name: str
+    shape: tuple[int, int]
+    dtype: Any
+    header: Any = ()
+
+
+@dataclass(frozen=True)
+class SectionFile:
+    """A FITS file of image extensions laid out on disk, whose data are written by sections.
+
+    Built by :func:`section_files`. ``path`` is the temporary file being written (renamed to
+    ``final`` when complete); ``layout`` maps each extension name to (byte offset, shape,
+    dtype). It pickles, so worker processes can open the same file with :meth:`array` and
+    write disjoint sections through a shared memory map.
+    """
+
+    path: Path
+    final: Path
+    layout: dict = field(default_factory=dict)
+
+    def array(self, name: str, mode: str = "r+") -> np.memmap:
+        """Memory map of extension ``name`` (big-endian, FITS order); write sections into it."""
+        offset, shape, dtype = self.layout[name]
+        return np.memmap(self.path, dtype=np.dtype(dtype).newbyteorder(">"), mode=mode,
+                         offset=offset, shape=tuple(shape))
+
+
+def _extension_header(spec: ImageSpec, prov: Provenance) -> fits.Header:
+    dtype = np.dtype(spec.dtype)
+    if dtype not in _BITPIX:
+        raise ValueError(f"ImageSpec {spec.name}: dtype {dtype} not one of "
+                         f"{', '.join(str(d) for d in _BITPIX)}")
+    hdu = fits.ImageHDU(np.zeros((1, 1), dtype), name=spec.name)
+    h = hdu.header
+    h["NAXIS1"] = int(spec.shape[1])
+    h["NAXIS2"] = int(spec.shape[0])
+    extra = spec.header
+    if isinstance(extra, fits.Header):
+        for card in extra.cards:
+            if card.keyword not in h or card.keyword in ("COMMENT", "HISTORY"):
+                h.append(card)
+            else:
+                h[card.keyword] = (card.value, card.comment)
+    else:
+        _add_cards(h, extra)
+    _add_cards(h, prov.header_cards())
+    return h
+
+
+def _create(path: Path, specs: Sequence[ImageSpec], prov: Provenance, primary_cards) -> dict:
+    """Write headers and reserve (zero-filled, sparse) data blocks; return the layout."""
+    primary = fits.PrimaryHDU()
+    _add_cards(primary.header, prov.header_cards(full=True))
+    _add_cards(primary.header, primary_cards)
+    layout = {}
+    with open(path, "wb") as f:
+        f.write(primary.header.tostring().encode("ascii"))
+        for spec in specs:
+            f.write(_extension_header(spec, prov).tostring().encode("ascii"))
+            dtype = np.dtype(spec.dtype)
+            layout[spec.name] = (f.tell(), tuple(int(n) for n in spec.shape), dtype.str)
+            nbytes = int(np.prod(spec.shape)) * dtype.itemsize
+            f.seek(f.tell() + -(-nbytes // _BLOCK) * _BLOCK)
+        f.truncate()
+    return layout
+
+
+@contextlib.contextmanager
+def section_files(items: Sequence[tuple[str | os.PathLike, Sequence[ImageSpec],
+                                        list[tuple[str, Any, str]]]],
+                  prov: Provenance) -> Iterator[list[SectionFile]]:
+    """Create FITS image files whose data are then written section by section.
+
+    Parameters
+    ----------
+    items : sequence of (path, specs, primary_cards)
+        Each final path, its image extensions (:class:`ImageSpec`) and extra primary cards.
+    prov : Provenance
+        Written into the primary header (with the configuration) and every extension.
+
+    Yields
+    ------
+    list of SectionFile
+        One per item, in order; write with ``f.array(name)[rows, cols] = ...``.
+
+    Every file is laid out under a temporary name beside its final path, so memory never holds
+    a whole image; when the block succeeds all files are flushed and renamed into place, and if
+    it fails none is left (the temporary files are removed), as with :func:`atomic_path`.
+    """
+    files: list[SectionFile] = []
+    try:
+        for path, specs, cards in items:
+            path = Path(path)
+            path.parent.mkdir(parents=True, exist_ok=True)
+            fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=path.parent)
+            os.close(fd)
+            os.chmod(tmp, 0o666 & ~_UMASK)
+            files.append(SectionFile(Path(tmp), path, _create(Path(tmp), specs, prov, cards)))
+        yield files
+        for f in files:
+            os.replace(f.path, f.final)
+    finally:
+        for f in files:
+            if f.path.exists():
+                f.path.unlink()
