@@ -24,10 +24,22 @@ from .bands import AB_NJY_ZERO
 from .config import DetectionConfig
 from .errors import ConfigError, check_range, require
 
-__all__ = ["Detections", "detect_sources", "run_detection"]
+__all__ = ["Detections", "detect_sources", "detect_mosaic", "run_detection", "tile_bounds",
+           "TILE_CORE_PIX", "TILE_MARGIN_PIX", "SEAM_MATCH_PIX", "SEGM_MATCH_PIX"]
 
 # 2.5 / ln(10): magnitude error per unit fractional flux error
 _MAG_PER_FRAC = 2.5 / np.log(10.0)
+
+#: Largest tile core side (pixels). A tile of core + 2 margins, 3072 + 512 = 3584 pixels a side,
+#: holds 12.8 Mpix; detect_sources keeps ~15 float64 arrays of that size, ~1.5 GB at most.
+TILE_CORE_PIX = 3072
+#: Overlap on every side of a core (pixels): 256 px = 10.2" at 0.04"/pix, 3.4 background meshes
+#: of the default 3" and several times a typical footprint (~1" across).
+TILE_MARGIN_PIX = 256
+#: Two tiles' detections closer than this (pixels) are one object measured twice at a seam.
+SEAM_MATCH_PIX = 0.25
+#: A footprint owned by another tile takes the id of the kept detection within this (pixels).
+SEGM_MATCH_PIX = 1.0
 
 
 @dataclass(frozen=True)
@@ -200,8 +212,192 @@ def detect_sources(sci, wht, wcs: WCS, cfg: DetectionConfig, psf_fwhm_arcsec: fl
     return Detections(t, np.asarray(segm.data, dtype=np.int32), back)
 
 
+def tile_bounds(n: int, core: int, margin: int, align: int = 1) -> list[tuple[int, int, int, int]]:
+    """Split ``n`` pixels into equal cores with overlap margins (one axis).
+
+    Parameters
+    ----------
+    n : int (pixels)
+        Length of the mosaic axis.
+    core : int (pixels)
+        Largest core length; ``ceil(n / core)`` cores of (nearly) equal length are made, so a
+        mosaic not longer than ``core`` is one tile.
+    margin : int (pixels)
+        Overlap on each side of a core (clipped at the mosaic edges).
+    align : int (pixels)
+        The lower edge of each tile is moved down to a multiple of ``align`` (the background
+        mesh), so the background meshes of a tile coincide with those of the whole mosaic.
+
+    Returns
+    -------
+    list of (lo, c0, c1, hi)
+        Tile ``[lo, hi)`` holding the core ``[c0, c1)``; cores cover ``[0, n)`` exactly once.
+    """
+    n_tiles = max(1, -(-n // core))
+    edges = [(i * n) // n_tiles for i in range(n_tiles + 1)]
+    out = []
+    for c0, c1 in zip(edges[:-1], edges[1:]):
+        lo = max(0, ((c0 - margin) // align) * align)
+        out.append((lo, c0, c1, min(n, c1 + margin)))
+    return out
+
+
+def _stack(cats: list[Table]) -> Table:
+    from astropy.table import vstack
+
+    full = [c for c in cats if len(c)]
+    if not full:
+        return cats[0] if cats else _columns_empty({})
+    if len(full) == 1:
+        return full[0]
+    out = vstack(full, metadata_conflicts="silent")
+    out.meta = dict(full[0].meta)
+    return out
+
+
+def detect_mosaic(path, segm_out, cfg: DetectionConfig, psf_fwhm_arcsec: float,
+                  core: int | None = None, margin: int | None = None) -> Table:
+    """Detect sources on a mosaic file tile by tile, in memory bounded by the tile size.
+
+    The mosaic (``SCI``, ``WHT`` and, if present, ``DQ`` extensions) is opened as a memory map
+    and cut into square tiles: cores of at most ``core`` pixels a side covering the mosaic once
+    (:func:`tile_bounds`; a mosaic not larger than one core is one tile and gives exactly the
+    result of :func:`detect_sources` on the whole image, the reference implementation, which
+    is photutils underneath), each read with ``margin`` pixels more on every side. Each tile
+    is run through :func:`detect_sources`.
+
+    Seam rule (common practice for tiled source extraction): a detection belongs to the tile
+    whose core holds its centroid's pixel (``round(x)``, ``round(y)``, clipped to the mosaic),
+    so each object is kept by exactly one tile; a detection kept by two tiles with centroids
+    within :data:`SEAM_MATCH_PIX` of each other (the two tiles' measurements of one object
+    falling on either side of a pixel edge) is kept once, from the earlier tile. Kept
+    detections are numbered 1..N in tile order (rows of tiles from the bottom, then columns)
+    and, within a tile, by photutils label. The segmentation is written in each tile's core
+    only; a footprint there whose detection was kept by another tile takes the id of the kept
+    detection whose centroid lies within :data:`SEGM_MATCH_PIX` of the footprint's centroid as
+    measured in this tile (0 if there is none). Footprints larger than the margin are cut at
+    the tile edge and measured on the part inside it.
+
+    Parameters
+    ----------
+    path : path
+        Mosaic file (SCI in e-/s with a celestial WCS, ``ZP_AB`` and optionally ``EXPTIME`` in
+        its header; WHT in (e-/s)^-2; DQ int with ``DQNOCOVE``).
+    segm_out : numpy.memmap or ndarray of int32, shape (ny, nx), or None
+        Written with the segmentation labels (the catalogue ids); None skips it.
+    cfg : DetectionConfig
+        Detection settings.
+    psf_fwhm_arcsec : float (arcsec)
+        PSF FWHM for the matched filter.
+    core, margin : int (pixels), optional
+        Tile core side and overlap; default :data:`TILE_CORE_PIX`, :data:`TILE_MARGIN_PIX`.
+
+    Returns
+    -------
+    astropy.table.Table
+        The catalogue of :func:`detect_sources` with mosaic pixel positions and ids 1..N.
+    """
+    from astropy.io import fits
+    from scipy.spatial import cKDTree
+
+    core = int(core or TILE_CORE_PIX)
+    margin = int(TILE_MARGIN_PIX if margin is None else margin)
+    check_range("core", core, 16, 1 << 20)
+    check_range("margin", margin, 0, 1 << 20)
+    with fits.open(path, memmap=True) as hl:
+        hdr = hl["SCI"].header
+        sci_m, wht_m = hl["SCI"].data, hl["WHT"].data
+        dq_m = hl["DQ"].data if "DQ" in hl else None
+        # cosmic-ray and saturation bits mark repaired pixels (their slopes were refitted):
+        # only pixels that no exposure covers are left out of detection
+        no_cov = int(hl["DQ"].header.get("DQNOCOVE", 16)) if dq_m is not None else 0
+        wcs = WCS(hdr).celestial
+        scale = float(np.sqrt(abs(np.linalg.det(wcs.pixel_scale_matrix))) * 3600.0)
+        zp = float(hdr["ZP_AB"])
+        exptime = float(hdr.get("EXPTIME", 0)) or None
+        ny, nx = sci_m.shape
+        box = max(8, int(round(cfg.background_box_arcsec / scale)))
+        ty = tile_bounds(ny, core, margin, box)
+        tx = tile_bounds(nx, core, margin, box)
+        one = len(ty) == 1 and len(tx) == 1
+        kept, provisional = [], []  # per tile: kept catalogue; (offset, labels, x, y) of others
+        offset = 0
+        for ylo, y0, y1, yhi in ty:
+            for xlo, x0, x1, xhi in tx:
+                win = (slice(ylo, yhi), slice(xlo, xhi))
+                mask = None if dq_m is None else (np.asarray(dq_m[win]) & no_cov) != 0
+                twcs = wcs if one else wcs.slice(win)
+                det = detect_sources(np.asarray(sci_m[win], float), np.asarray(wht_m[win], float),
+                                     twcs, cfg, psf_fwhm_arcsec, zp, scale, exptime=exptime,
+                                     mask=mask)
+                cat = det.catalog
+                gx = np.asarray(cat["x"], float) + xlo
+                gy = np.asarray(cat["y"], float) + ylo
+                px = np.clip(np.floor(gx + 0.5), 0, nx - 1)
+                py = np.clip(np.floor(gy + 0.5), 0, ny - 1)
+                own = (px >= x0) & (px < x1) & (py >= y0) & (py < y1)
+                labels = np.asarray(cat["id"], np.int64)
+                cat["x"], cat["y"] = gx, gy
+                kept.append(cat[own])
+                provisional.append((offset, labels, own, gx, gy))
+                if segm_out is not None:
+                    seg = det.segmentation[y0 - ylo:y1 - ylo, x0 - xlo:x1 - xlo]
+                    segm_out[y0:y1, x0:x1] = np.where(seg > 0, seg + offset, 0)
+                offset += int(det.segmentation.max(initial=0))
+                del det, mask
+
+        # ---- seam duplicates, then global ids in tile order
+        tile_of = np.concatenate([np.full(len(c), i) for i, c in enumerate(kept)]) \
+            if kept else np.zeros(0, int)
+        cat = _stack(kept)
+        xy = np.column_stack([np.asarray(cat["x"], float), np.asarray(cat["y"], float)])
+        drop = np.zeros(len(cat), bool)
+        if not one and len(cat) > 1:
+            for i, j in sorted(cKDTree(xy).query_pairs(SEAM_MATCH_PIX)):
+                if tile_of[i] != tile_of[j]:
+                    drop[max(i, j)] = True  # rows are in tile order: the later tile's copy
+        keep_rows = np.flatnonzero(~drop)
+        cat = cat[keep_rows]
+        ids = np.arange(1, len(cat) + 1)
+        # provisional label -> global id
+        lut = np.zeros(offset + 1, np.int32)
+        start = 0
+        tree = cKDTree(xy[keep_rows]) if len(keep_rows) else None
+        gid_of_row = np.zeros(len(xy), np.int32)
+        gid_of_row[keep_rows] = ids
+        if drop.any():  # a dropped seam copy's footprint takes the id of the copy kept
+            k = tree.query(xy[drop])[1]
+            gid_of_row[drop] = ids[k]
+        for off, labels, own, gx, gy in provisional:
+            n_own = int(own.sum())
+            lut[off + labels[own]] = gid_of_row[start:start + n_own]
+            start += n_own
+            other = ~own
+            if tree is not None and other.any():
+                d, k = tree.query(np.column_stack([gx[other], gy[other]]),
+                                  distance_upper_bound=SEGM_MATCH_PIX)
+                lut[off + labels[other]] = np.where(np.isfinite(d),
+                                                    ids[np.minimum(k, len(ids) - 1)], 0)
+        cat["id"] = ids
+        ra, dec = wcs.all_pix2world(np.asarray(cat["x"], float), np.asarray(cat["y"], float), 0)
+        cat["ra"], cat["dec"] = np.asarray(ra, float) % 360.0, np.asarray(dec, float)
+        cat.meta.update({"PIXORIG": "0-based pixel coordinates (centre of first pixel = 0)",
+                         "ZP_AB": zp, "FLUXUNIT": "e-/s", "TILECORE": int(core),
+                         "TILEMARG": int(margin), "NTILES": len(ty) * len(tx)})
+        if segm_out is not None:
+            rows = max(1, (1 << 22) // max(nx, 1))  # ~16 MB of int32 per block
+            for r0 in range(0, ny, rows):
+                segm_out[r0:r0 + rows] = lut[np.asarray(segm_out[r0:r0 + rows])]
+    return cat
+
+
 def run_detection(run_dir, sc, bands, prov) -> dict:
-    """Run :func:`detect_sources` on each mosaic of a run directory; write ``detections_<band>.fits``.
+    """Run :func:`detect_mosaic` on each mosaic of a run directory; write ``detections_<band>.fits``.
+
+    The file holds the primary header (provenance, ``BAND``), the ``SEGM`` image (int32
+    labels = catalogue ids, with the mosaic WCS; written by sections through a memory map, see
+    :func:`simfield.io.section_files`) and the ``DETECTIONS`` table (appended last); read both
+    by name.
 
     Parameters
     ----------
@@ -223,33 +419,32 @@ def run_detection(run_dir, sc, bands, prov) -> dict:
 
     from astropy.io import fits
 
-    from .io import write_fits
+    from .io import ImageSpec, section_files
 
     run_dir = Path(run_dir)
     cfg = sc.detection
-    wanted = sc.detection_bands
     counts = {}
-    for name in wanted:
-        with fits.open(run_dir / f"mosaic_{name}.fits") as hl:
-            sci = hl["SCI"].data.astype(float)
-            wht = hl["WHT"].data.astype(float)
-            hdr = hl["SCI"].header
-            dq = hl["DQ"].data if "DQ" in hl else None
-            # cosmic-ray and saturation bits mark repaired pixels (their slopes were refitted):
-            # only pixels that no exposure covers are left out of detection
-            no_cov = int(hl["DQ"].header.get("DQNOCOVE", 16)) if dq is not None else 0
-        wcs = WCS(hdr)
-        scale = float(np.sqrt(abs(np.linalg.det(wcs.pixel_scale_matrix))) * 3600.0)
+    for name in sc.detection_bands:
+        mpath = run_dir / f"mosaic_{name}.fits"
+        with fits.open(mpath, memmap=True) as hl:
+            hdr = hl["SCI"].header.copy()
+            shape = hl["SCI"].data.shape
+        wcs = WCS(hdr).celestial
         with fits.open(run_dir / f"psf_{name}.fits") as hl:
             fwhm = float(hl["PSF_DET" if "PSF_DET" in hl else 1].header["FWHM"])
-        det = detect_sources(sci, wht, wcs, cfg, fwhm, float(hdr["ZP_AB"]), scale,
-                             exptime=float(hdr.get("EXPTIME", 0)) or None,
-                             mask=None if dq is None else (dq & no_cov) != 0)
-        cat = det.catalog
-        cat.meta.update({"BAND": name})
-        seg = fits.ImageHDU(det.segmentation, header=wcs.to_header(), name="SEGM")
-        write_fits(run_dir / f"detections_{name}.fits",
-                   [fits.BinTableHDU(cat, name="DETECTIONS"), seg], prov,
-                   [("BAND", name, "simfield band name")])
+        spec = ImageSpec("SEGM", shape, np.int32, wcs.to_header())
+        out = run_dir / f"detections_{name}.fits"
+        with section_files([(out, [spec], [("BAND", name, "simfield band name")])],
+                           prov) as (sf,):
+            segm = sf.array("SEGM")
+            cat = detect_mosaic(mpath, segm, cfg, fwhm)
+            segm.flush()
+            del segm
+            cat.meta.update({"BAND": name})
+            tab = fits.BinTableHDU(cat, name="DETECTIONS")
+            for key, value, comment in prov.header_cards():
+                tab.header[key] = (value, comment)
+            with fits.open(sf.path, mode="append") as hl:
+                hl.append(tab)
         counts[name] = int(len(cat))
     return counts
