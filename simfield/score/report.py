@@ -62,22 +62,26 @@ def _band_order(run_dir: Path) -> list[str]:
     return names
 
 
+def _sample_step(shape, max_pix: float) -> int:
+    """Stride (pixels) that leaves at most ``max_pix`` pixels of an image of ``shape``."""
+    return max(1, int(np.ceil(np.sqrt(float(np.prod(shape)) / max_pix))))
+
+
 def _colour_preview(run_dir: Path, max_side: int = 800):
-    from astropy.io import fits
+    """Three-band asinh preview from strided rows of the mosaics' memory maps (every
+    ``step``-th pixel; no mosaic is read whole)."""
+    from .run import image_map
 
     names = _band_order(run_dir)
     if not names:
         return None, []
     pick = [names[0], names[len(names) // 2], names[-1]] if len(names) >= 3 else \
         (names + names * 3)[:3]
-    chans = []
-    for n in pick:
-        with fits.open(run_dir / f"mosaic_{n}.fits") as hl:
-            chans.append(np.nan_to_num(np.asarray(hl["SCI"].data, float)))
+    chans = [image_map(run_dir / f"mosaic_{n}.fits", "SCI") for n in pick]
     step = max(1, int(np.ceil(max(chans[0].shape) / max_side)))
     rgb = []
     for c in chans[::-1]:  # reddest band as red
-        c = c[::step, ::step]
+        c = np.nan_to_num(np.asarray(c[::step, ::step], float))
         med = np.median(c)
         mad = 1.4826 * np.median(np.abs(c - med))
         rgb.append(_stretch(c, med - mad, med + 200 * mad))
@@ -219,8 +223,12 @@ def make_report(out_dir, truth: dict, det, tables: dict, fits_: dict, summary: d
         fig, axes = plt.subplots(len(ex), ncol, figsize=(1.8 * ncol, 1.9 * len(ex)),
                                  squeeze=False)
         half = int(round(1.5 / truth["pixel_scale"]))
-        med = np.median(sci)
-        mad = 1.4826 * np.median(np.abs(sci - med))
+        # display levels from a strided sample of ~1 Mpix of the memory-mapped mosaic
+        step = _sample_step(sci.shape, 1e6)
+        samp = np.asarray(sci[::step, ::step], float)
+        samp = samp[np.isfinite(samp)]
+        med = np.median(samp) if samp.size else 0.0
+        mad = 1.4826 * np.median(np.abs(samp - med)) if samp.size else 1.0
         for r, (n, idx) in enumerate(ex):
             for c in range(ncol):
                 ax = axes[r, c]
@@ -230,7 +238,8 @@ def make_report(out_dir, truth: dict, det, tables: dict, fits_: dict, summary: d
                     ax.axis("off")
                     continue
                 x0, y0 = int(round(ft["x"][idx[c]])), int(round(ft["y"][idx[c]]))
-                cut = sci[max(0, y0 - half):y0 + half + 1, max(0, x0 - half):x0 + half + 1]
+                cut = np.asarray(sci[max(0, y0 - half):y0 + half + 1,
+                                     max(0, x0 - half):x0 + half + 1], float)
                 ax.imshow(_stretch(cut, med - 2 * mad, med + 100 * mad), origin="lower",
                           cmap="gray")
                 ax.plot(min(half, x0), min(half, y0), "+", color=_CAUSE_COLOURS[n], ms=10)

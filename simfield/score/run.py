@@ -36,8 +36,8 @@ from ..errors import CatalogError, ConfigError
 from . import metrics
 from .match import match_radius, match_sky
 
-__all__ = ["FLUX_UNITS", "load_catalog", "load_truth", "score_run", "score_pipeline_run",
-           "score_main_args"]
+__all__ = ["FLUX_UNITS", "load_catalog", "load_truth", "image_map", "pixel_values", "score_run",
+           "score_pipeline_run", "score_main_args"]
 
 #: AB magnitude of unit flux in each accepted flux unit (m = ZP - 2.5 log10 f):
 #: nJy 31.4, uJy 23.9, mJy 16.4, Jy 8.9 (Oke & Gunn 1983, ApJ 266, 713); e-/s needs the
@@ -214,28 +214,90 @@ def _need(path: Path) -> Path:
     return path
 
 
+#: numpy dtype of each FITS BITPIX (FITS data are big-endian)
+_BITPIX_DTYPE = {8: "u1", 16: ">i2", 32: ">i4", 64: ">i8", -32: ">f4", -64: ">f8"}
+
+
+def image_map(path, name: str) -> np.ndarray:
+    """Read-only memory map of the image extension ``name`` of a FITS file.
+
+    Only the pages that are indexed are read, so a mosaic larger than memory can be sampled
+    (strided rows, cut-outs, values at a list of pixels). An image with BSCALE/BZERO scaling
+    cannot be mapped and is read whole.
+
+    Parameters
+    ----------
+    path : str or Path
+        FITS file.
+    name : str
+        Extension name (e.g. ``SCI``, ``SEGM``, ``DQ``).
+
+    Returns
+    -------
+    numpy.memmap or ndarray, shape (ny, nx)
+        The image in its stored type (big-endian), in the file's units.
+    """
+    with fits.open(path, memmap=True) as hl:
+        i = hl.index_of(name)
+        h = hl[i].header
+        loc = hl.fileinfo(i)["datLoc"]
+        scaled = float(h.get("BSCALE", 1)) != 1 or float(h.get("BZERO", 0)) != 0
+        if scaled or type(hl[i]) not in (fits.ImageHDU, fits.PrimaryHDU):  # e.g. compressed
+            return np.array(hl[i].data)
+    shape = tuple(int(h[f"NAXIS{k}"]) for k in range(int(h["NAXIS"]), 0, -1))
+    return np.memmap(path, dtype=_BITPIX_DTYPE[int(h["BITPIX"])], mode="r", offset=loc,
+                     shape=shape)
+
+
+def pixel_values(img, x, y) -> np.ndarray:
+    """Values of ``img`` at the pixels nearest to 0-based positions ``x``, ``y`` (clipped to
+    the image), reading only those pixels of a memory map.
+
+    Parameters
+    ----------
+    img : ndarray or numpy.memmap, shape (ny, nx)
+    x, y : array_like (0-based pixels)
+
+    Returns
+    -------
+    ndarray
+        One value per position, native byte order.
+    """
+    ny, nx = img.shape
+    ix = np.clip(np.round(np.asarray(x, float)).astype(int), 0, nx - 1)
+    iy = np.clip(np.round(np.asarray(y, float)).astype(int), 0, ny - 1)
+    v = np.asarray(img[iy, ix])
+    return v.astype(v.dtype.newbyteorder("="))
+
+
 def load_truth(run_dir, band: str) -> dict:
-    """Read what scoring needs from a run directory.
+    """Read what scoring needs from a run directory, in memory bounded by the tables.
+
+    The images are memory maps of the files (:func:`image_map`), not copies: index them for
+    the pixels needed (:func:`pixel_values`, cut-outs, strided samples).
 
     Returns
     -------
     dict
         ``sources``, ``images`` (Tables), ``wcs``, ``shape`` (ny, nx), ``zeropoint`` (AB),
-        ``pixel_scale`` (arcsec), ``segm`` and ``dq`` (int maps or None), ``psf`` (image or
-        None), ``psf_fwhm`` (arcsec or None), ``sci`` (mosaic image).
+        ``pixel_scale`` (arcsec), ``segm`` (truth source ids, int32 memory map, or None),
+        ``dq`` (the mosaic's data-quality map as stored, int32 memory map, or None) with
+        ``dq_bits`` (int: the artefact bits, saturated or uncovered; cosmic-ray hits are
+        repaired), ``psf`` (image or None), ``psf_fwhm`` (arcsec or None), ``sci`` (mosaic
+        image, float32 memory map, e-/s).
     """
     run_dir = Path(run_dir)
     if not run_dir.is_dir():
         raise CatalogError(f"run directory {str(run_dir)!r} does not exist")
     mpath = _need(run_dir / f"mosaic_{band}.fits")
-    with fits.open(mpath) as hl:
-        hdr = hl["SCI"].header
-        sci = np.asarray(hl["SCI"].data, float)
-        dq = None
+    with fits.open(mpath, memmap=True) as hl:
+        hdr = hl["SCI"].header.copy()
+        dq_bits = None
         if "DQ" in hl:  # artefact bits: saturated or uncovered (cosmic-ray hits are repaired)
             h = hl["DQ"].header
-            bits = int(h.get("DQSATURA", 8)) | int(h.get("DQNOCOVE", 16))
-            dq = np.asarray(hl["DQ"].data) & bits
+            dq_bits = int(h.get("DQSATURA", 8)) | int(h.get("DQNOCOVE", 16))
+    sci = image_map(mpath, "SCI")
+    dq = image_map(mpath, "DQ") if dq_bits is not None else None
     if "ZP_AB" not in hdr:
         raise CatalogError(f"{mpath.name} has no ZP_AB keyword in its SCI header")
     wcs = WCS(hdr).celestial
@@ -257,9 +319,10 @@ def load_truth(run_dir, band: str) -> dict:
     segm = None
     ti = run_dir / f"truth_image_{band}.fits"
     if ti.is_file():
-        with fits.open(ti) as hl:
-            if "SEGM" in hl:
-                segm = np.asarray(hl["SEGM"].data).astype(np.int64)
+        with fits.open(ti, memmap=True) as hl:
+            has_segm = "SEGM" in hl
+        if has_segm:
+            segm = image_map(ti, "SEGM")
     psf, fwhm = None, None
     pp = run_dir / f"psf_{band}.fits"
     if pp.is_file():
@@ -269,10 +332,11 @@ def load_truth(run_dir, band: str) -> dict:
             det = hl["PSF_DET"] if "PSF_DET" in hl else h
             fwhm = float(det.header["FWHM"]) if "FWHM" in det.header else None
             psf_scale = float(h.header.get("PIXSCALE", scale))
-    return {"sources": sources, "images": images, "wcs": wcs, "shape": sci.shape,
+    return {"sources": sources, "images": images, "wcs": wcs, "shape": tuple(sci.shape),
             "zeropoint": float(hdr["ZP_AB"]), "pixel_scale": scale, "segm": segm, "dq": dq,
-            "psf": psf, "psf_fwhm": fwhm, "psf_scale": psf_scale if psf is not None else None,
-            "sci": sci, "run_dir": run_dir}
+            "dq_bits": dq_bits, "psf": psf, "psf_fwhm": fwhm,
+            "psf_scale": psf_scale if psf is not None else None, "sci": sci,
+            "run_dir": run_dir}
 
 
 def _own_detections(run_dir: Path, band: str) -> Table:
@@ -416,13 +480,19 @@ def score_run(run_dir, catalog, band: str, cfg: ScoreConfig | None = None, out_d
         angles = list(metrics.measure_spike_angles(truth["psf"]))
     rec_by_id = {int(s): bool(r) for s, r in zip(sid, recovered)}
     star_img = np.isin(img_src, sid[kind == "star"])
+    # the truth segmentation is a memory map: only the detections' pixels are read. The DQ
+    # rule ("artefact") comes first and wins, so it is applied afterwards from the DQ values at
+    # those pixels alone, which gives the same causes as passing a masked DQ image.
     cause = metrics.classify_false_detections(
         dx, dy, m.det_to_truth, ix, iy, img_src, mag_img, star_img, rec_by_id,
-        truth["pixel_scale"], truth_segm=truth["segm"], dq=truth["dq"], spike_angles_deg=angles,
+        truth["pixel_scale"], truth_segm=truth["segm"], dq=None, spike_angles_deg=angles,
         bright_star_mag=cfg.bright_star_mag, spike_ref_mag=cfg.spike_ref_mag,
         spike_length_arcsec=cfg.spike_length_arcsec, halo_radius_arcsec=cfg.halo_radius_arcsec,
         spike_half_width_deg=cfg.spike_half_width_deg,
         blend_radius_arcsec=cfg.blend_radius_arcsec)
+    if truth["dq"] is not None and len(dx):
+        flagged = (pixel_values(truth["dq"], dx, dy) & truth["dq_bits"]) != 0
+        cause[flagged & (m.det_to_truth < 0)] = "artefact"
     un = ~matched
     false_t = Table({"row": np.flatnonzero(un), "ra": np.asarray(det["ra"], float)[un],
                      "dec": np.asarray(det["dec"], float)[un], "x": dx[un], "y": dy[un],
