@@ -215,6 +215,9 @@ class SurveyConfig:
     drizzle_kernel: str = "square"
     pixfrac: float = 0.8
     write_exposures: bool = False
+    #: the mosaic is made in tiles of at most this many mosaic pixels a side, each from its
+    #: own windows of the scene and the exposures (memory per tile, not per field)
+    tile_pixels: int = 1536
 
 
 # --------------------------------------------------------------------------------------------
@@ -455,6 +458,7 @@ def _validate_survey(s: SurveyConfig) -> None:
             "survey.drizzle_kernel", s.drizzle_kernel,
             "must be one of: square, point, turbo, gaussian, lanczos3")
     check_range("survey.pixfrac", s.pixfrac, 0, 1, lo_open=True)
+    check_range("survey.tile_pixels", s.tile_pixels, 64, 100_000)
 
 
 def _validate_detection(d: DetectionConfig, bands: list[str]) -> None:

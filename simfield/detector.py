@@ -69,6 +69,7 @@ __all__ = [
     "FixedPattern",
     "Exposure",
     "make_fixed_pattern",
+    "fixed_pattern_window",
     "frame_time",
     "slope_weights",
     "slope_variance_factors",
@@ -169,6 +170,49 @@ def make_fixed_pattern(shape: tuple[int, int], det: DetectorConfig,
     hot_dark = np.where(hot, det.hot_dark_e_s * 10.0 ** (2.0 * rng.random(shape, np.float32)),
                         0.0).astype(np.float32)
     return FixedPattern(flat=flat, flat_cal=flat_cal, hot=hot, hot_dark=hot_dark, dead=dead)
+
+
+#: Side (pixels) of the detector blocks from which :func:`fixed_pattern_window` is built.
+FIXED_BLOCK = 256
+
+
+def fixed_pattern_window(det: DetectorConfig, seed: int, y0: int, y1: int, x0: int,
+                         x1: int) -> FixedPattern:
+    """Rows ``y0:y1`` and columns ``x0:x1`` of a detector's fixed pattern.
+
+    The detector is cut into ``FIXED_BLOCK`` x ``FIXED_BLOCK`` pixel blocks, each made by
+    :func:`make_fixed_pattern` from its own stream ``(seed, "detector_fixed", row, column)``,
+    so a pixel's flat, hot and dead values do not depend on which window asks for them and a
+    large detector never has to be held whole.
+
+    Parameters
+    ----------
+    det : DetectorConfig
+    seed : int
+        Scenario seed.
+    y0, y1, x0, x1 : int (detector pixels, 0-based, end exclusive)
+        Window; must satisfy 0 <= y0 < y1 and 0 <= x0 < x1.
+    """
+    from .random import stream
+
+    require(0 <= y0 < y1 and 0 <= x0 < x1, "window", (y0, y1, x0, x1),
+            "must satisfy 0 <= y0 < y1 and 0 <= x0 < x1")
+    b = FIXED_BLOCK
+    shape = (y1 - y0, x1 - x0)
+    parts = {name: np.empty(shape, dtype) for name, dtype in
+             (("flat", np.float32), ("flat_cal", np.float32), ("hot", bool),
+              ("hot_dark", np.float32), ("dead", bool))}
+    for by in range(y0 // b, (y1 - 1) // b + 1):
+        for bx in range(x0 // b, (x1 - 1) // b + 1):
+            blk = make_fixed_pattern((b, b), det, stream(seed, "detector_fixed", by, bx))
+            ys = slice(max(y0, by * b), min(y1, (by + 1) * b))
+            xs = slice(max(x0, bx * b), min(x1, (bx + 1) * b))
+            src = (slice(ys.start - by * b, ys.stop - by * b),
+                   slice(xs.start - bx * b, xs.stop - bx * b))
+            dst = (slice(ys.start - y0, ys.stop - y0), slice(xs.start - x0, xs.stop - x0))
+            for name, arr in parts.items():
+                arr[dst] = getattr(blk, name)[src]
+    return FixedPattern(**parts)
 
 
 def frame_time(det: DetectorConfig, exptime_s: float) -> float:

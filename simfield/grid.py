@@ -62,6 +62,17 @@ class Grid:
         t = np.deg2rad(self.roll_deg)
         return np.cos(t), np.sin(t)
 
+    def window(self, x0: int, y0: int, nx: int, ny: int) -> "Grid":
+        """The sub-grid of ``nx`` x ``ny`` pixels whose pixel (0, 0) is this grid's (x0, y0).
+
+        Same scale, roll and tangent point; pixel (i, j) of the window is pixel
+        (x0 + i, y0 + j) of this grid (0-based integers), so images cut from this grid with
+        ``image[y0:y0 + ny, x0:x0 + nx]`` lie on the window exactly.
+        """
+        xi0, eta0 = self.pixel_to_offsets(x0 + (nx - 1) / 2.0, y0 + (ny - 1) / 2.0)
+        return Grid(nx=int(nx), ny=int(ny), scale=self.scale, ra0=self.ra0, dec0=self.dec0,
+                    roll_deg=self.roll_deg, xi0=float(xi0), eta0=float(eta0))
+
     def pixel_frame(self) -> np.ndarray:
         """2x2 matrix M with (column, row) directions = M (xi, eta); M is its own inverse.
 

@@ -28,10 +28,11 @@ from . import __version__
 from .bands import Band, ab_to_njy, make_band, njy_to_ab
 from .config import Scenario, config_hash, to_yaml
 from .grid import Grid
-from .io import COMPLETE_MARKER, Provenance, write_fits, write_json, write_table, write_text
+from .io import (COMPLETE_MARKER, Provenance, section_files, write_fits, write_json, write_table,
+                 write_text)
 from .random import stream
-from .scene import (Stamp, accumulate, add_bright, convolve_tiled, dominant_source, draw_stamps,
-                    stamp_half_size, supersampling)
+from .scene import (Stamp, accumulate, add_bright, convolve_tiled, dominant_source,
+                    draw_profile_stamp, draw_window, point_stamp, stamp_half_size, supersampling)
 
 __all__ = ["RunResult", "run_scenario", "make_bands", "SEGMENTATION_NSIGMA"]
 
@@ -108,11 +109,9 @@ def run_scenario(sc: Scenario, out_dir: str | Path, progress: bool = False) -> R
         Log stage progress.
     """
     # stage modules are imported here so that ``import simfield.pipeline`` stays light
-    from .detector import make_fixed_pattern
     from .optics.psf import cached_band_psf, effective_psf, write_psf_png
     from .optics.pupil import scenario_pupil
     from .population.lightcone import make_population
-    from .population.morphology import make_profile
     from .survey import exposure_grids, mosaic_grid, scene_grid
 
     out = Path(out_dir)
@@ -180,24 +179,34 @@ def run_scenario(sc: Scenario, out_dir: str | Path, progress: bool = False) -> R
         write_psf_png([psf_wide[b.name] for b in bands], pupil, out / "psf.png")
         files.append(out / "psf.png")
 
-    # ---------------------------------------------------------------- stamps (once)
-    with timer("stamps"):
-        stamps = _draw_all(sources, sgrid, sc, lens, make_profile, progress)
+    # ---------------------------------------------------------------- tiles
+    from .survey import plan_tiles
 
-    # ---------------------------------------------------------------- bands
     egrids = exposure_grids(srv, tel, stream(sc.seed, "dither"))
-    fixed = make_fixed_pattern((egrids[0].ny, egrids[0].nx), sc.detector,
-                               stream(sc.seed, "detector_fixed"))
-    ctx = _BandContext(sc=sc, out=out, prov=prov, sources=sources, stamps=stamps,
-                       sgrid=sgrid, mgrid=mgrid, egrids=egrids, fixed=fixed,
-                       psf_core=psf_core, psf_wide=psf_wide)
+    tiles = plan_tiles(mgrid, egrids, sgrid, srv.tile_pixels)
+    rates, bright = {}, {}
+    mu = np.maximum(np.asarray(sources["magnification"], float), 1e-6)
+    for b in bands:
+        mag = np.asarray(sources[f"mag_{b.name}"], float)
+        rates[b.name] = np.nan_to_num(ab_to_njy(mag) * b.rate_per_njy(area), nan=0.0)
+        bright[b.name] = (mag - 2.5 * np.log10(mu)) < tel.psf.bright_mag
+    ctx = _TileContext(sc=sc, bands=bands, sources=sources, lens=lens, sgrid=sgrid,
+                       mgrid=mgrid, egrids=egrids, tiles=tiles, psf_core=psf_core,
+                       psf_wide=psf_wide, rates=rates, bright=bright, files={})
+    with timer("tiles"), section_files(_image_files(out, sc, bands, mgrid, egrids),
+                                       prov) as sfiles:
+        ctx.files = {f.final.name: f for f in sfiles}
+        results = _map_tiles(ctx, sc.workers, progress)
+    files.extend(f.final for f in sfiles)
+    del ctx
     depths = {}
-    for name, band_files, depth, band_times in _map_bands(ctx, bands, sc.workers, progress):
-        files.extend(band_files)
-        depths[name] = depth
-        for k, v in band_times.items():
+    for b in bands:
+        sums = np.concatenate([r["sums"][b.name] for r in results])
+        depths[b.name] = _band_depth(sc, b, psf_core[b.name], sums)
+    for r in results:
+        for k, v in r["timings"].items():
             res.timings[k] = res.timings.get(k, 0.0) + v
-    del ctx, stamps
+    res.timings["tiles_cpu"] = sum(sum(r["timings"].values()) for r in results)
 
     # ---------------------------------------------------------------- truth tables
     with timer("truth"):
@@ -240,127 +249,252 @@ def run_scenario(sc: Scenario, out_dir: str | Path, progress: bool = False) -> R
     return res
 
 
-# ---------------------------------------------------------------------------- bands
+# ---------------------------------------------------------------------------- tiles
 @dataclass
-class _BandContext:
-    """Everything a band's rendering needs; shared with worker processes by fork."""
+class _TileContext:
+    """Everything a tile's rendering needs; shared with worker processes by fork."""
 
     sc: Scenario
-    out: Path
-    prov: Provenance
+    bands: list
     sources: Table
-    stamps: list
+    lens: object
     sgrid: Grid
     mgrid: Grid
     egrids: list
-    fixed: object
+    tiles: list
     psf_core: dict
     psf_wide: dict
+    rates: dict  #: band -> e-/s per source row
+    bright: dict  #: band -> bool per source row, drawn with the large PSF
+    files: dict  #: file name -> simfield.io.SectionFile being written
 
 
-_CTX: _BandContext | None = None  # set in the parent before forking band workers
+_CTX: _TileContext | None = None  # set in the parent before forking tile workers
 
 
-def _band_worker(band: Band):
-    return _render_band(_CTX, band)
+def _tile_worker(i: int):
+    return _render_tile(_CTX, i)
 
 
-def _map_bands(ctx: _BandContext, bands: list[Band], workers: int, progress: bool = False):
-    """Render every band, in ``workers`` processes (0: one per core, at most one per band).
+def _map_tiles(ctx: _TileContext, workers: int, progress: bool = False) -> list[dict]:
+    """Render every tile, in ``workers`` processes (0: one per core, at most one per tile).
 
-    Each band draws only from its own named random streams, so the files do not depend on
-    the number of workers.
+    Tiles draw only from their own named random streams and write disjoint sections of the
+    output files, so the files do not depend on the number of workers.
     """
     from tqdm import tqdm
 
-    n = min(len(bands), os.cpu_count() or 1) if workers == 0 else min(workers, len(bands))
-    bar = dict(total=len(bands), desc="bands", unit="band", disable=not progress, leave=False)
+    n_tiles = len(ctx.tiles)
+    n = min(n_tiles, os.cpu_count() or 1) if workers == 0 else min(workers, n_tiles)
+    bar = dict(total=n_tiles, desc="tiles", unit="tile", disable=not progress, leave=False)
     if n <= 1:
-        return [_render_band(ctx, b) for b in tqdm(bands, **bar)]
+        return [_render_tile(ctx, i) for i in tqdm(range(n_tiles), **bar)]
     global _CTX
     _CTX = ctx
     try:
         with ProcessPoolExecutor(n, mp_context=multiprocessing.get_context("fork")) as pool:
-            return list(tqdm(pool.map(_band_worker, bands), **bar))
+            return list(tqdm(pool.map(_tile_worker, range(n_tiles)), **bar))
     finally:
         _CTX = None
 
 
-def _render_band(ctx: _BandContext, b: Band):
-    """Scene, truth image, exposures, mosaic and depths of one band.
+def _grow(box, pad: int, shape) -> tuple[int, int, int, int]:
+    y0, y1, x0, x1 = box
+    return (max(0, y0 - pad), min(shape[0], y1 + pad), max(0, x0 - pad), min(shape[1], x1 + pad))
 
-    Returns (band name, files written, depth dict, stage timings in s).
-    """
-    from .detector import expose
-    from .optics.psf import effective_psf
-    from .survey import drizzle_mosaic, measured_depth, predicted_depth, sample_scene
 
-    sc, sources, stamps, sgrid, mgrid = ctx.sc, ctx.sources, ctx.stamps, ctx.sgrid, ctx.mgrid
+def _render_tile(ctx: _TileContext, i: int) -> dict:
+    """Stamps of the sources that reach tile ``i`` (drawn once), then per band its scene
+    window, truth image, exposure windows and drizzled mosaic section, written into the run's
+    files. Returns the empty-aperture sums per band (e-/s) and stage timings (s)."""
+    from .detector import expose, fixed_pattern_window
+    from .survey import aperture_sums, drizzle_mosaic, sample_scene
+
+    sc, tile, sgrid, mgrid = ctx.sc, ctx.tiles[i], ctx.sgrid, ctx.mgrid
     tel, srv = sc.telescope, sc.survey
     area = tel.collecting_area_m2
-    out, prov = ctx.out, ctx.prov
+    ty, tx = tile.index
     timings: dict[str, float] = {}
     timer = _Timer(timings, False)
-    files = []
-    zp = b.zeropoint(area)
-    mag = np.asarray(sources[f"mag_{b.name}"], float)
-    rate = np.nan_to_num(ab_to_njy(mag) * b.rate_per_njy(area), nan=0.0)
-    mobs = mag - 2.5 * np.log10(np.maximum(np.asarray(sources["magnification"], float), 1e-6))
-    bright = mobs < tel.psf.bright_mag
-    with timer("scene"):
-        core = ctx.psf_core[b.name].image
-        scene = convolve_tiled(accumulate(stamps, rate, sgrid.shape, select=~bright), core)
-        add_bright(scene, stamps, rate, bright, ctx.psf_wide[b.name].image)
-        np.maximum(scene, 0.0, out=scene)  # FFT round-off leaves ~1e-7 negatives
-    with timer("truth_image"):
-        truth_img = sample_scene(scene, sgrid, mgrid)
-        t_total = srv.exposure_time_s * srv.n_exposures
-        sky_mosaic = b.sky_rate(area, mgrid.scale)
-        sigma_pix = np.sqrt(sky_mosaic * t_total) / t_total  # e-/s per mosaic pixel
-        thr_scene = SEGMENTATION_NSIGMA * sigma_pix * (sgrid.scale / mgrid.scale) ** 2
-        small = _crop_center(core, 0.4 / sgrid.scale)
-        seg_scene = dominant_source(stamps, rate, np.asarray(sources["id"]), sgrid.shape,
-                                    small / small.sum(), thr_scene)
-        seg = _resample_ids(seg_scene, sgrid, mgrid)
-        files.append(_write_truth_image(out / f"truth_image_{b.name}.fits", truth_img, seg,
-                                        mgrid, b, zp, sigma_pix, prov))
-    sky = b.sky_rate(area, tel.pixel_scale_arcsec)
+    hk = max(p.image.shape[0] // 2 for p in ctx.psf_core.values())
+    hw = max(p.image.shape[0] // 2 for p in ctx.psf_wide.values())
+    acc_box = _grow(tile.scene, hk, sgrid.shape)
+    bright_any = np.logical_or.reduce([ctx.bright[b.name] for b in ctx.bands])
+    with timer("stamps"):
+        stamps = _draw_tile(ctx, acc_box, _grow(tile.scene, hw, sgrid.shape), bright_any)
+    ids = np.asarray(ctx.sources["id"])
+    fy0, fy1, fx0, fx1 = (min(w[0] for w in tile.exposures), max(w[1] for w in tile.exposures),
+                          min(w[2] for w in tile.exposures), max(w[3] for w in tile.exposures))
+    fixed_all = fixed_pattern_window(sc.detector, sc.seed, fy0, fy1, fx0, fx1)
+    fixed = []
+    for y0, y1, x0, x1 in tile.exposures:
+        cut = (slice(y0 - fy0, y1 - fy0), slice(x0 - fx0, x1 - fx0))
+        fixed.append(type(fixed_all)(**{k: getattr(fixed_all, k)[cut]
+                                       for k in ("flat", "flat_cal", "hot", "hot_dark", "dead")}))
+    del fixed_all
+    sy0, sy1, sx0, sx1 = tile.scene
+    my0, my1, mx0, mx1 = tile.mosaic
+    msec = (slice(my0, my1), slice(mx0, mx1))
+    t_total = srv.exposure_time_s * srv.n_exposures
+    r_ap = sc.detection.aperture_radius_arcsec
+    # empty apertures in proportion to the tile's share of the mosaic (2000 over the field)
+    n_ap = int(round(2000 * (my1 - my0) * (mx1 - mx0) / (mgrid.nx * mgrid.ny)))
+    grow = int(np.ceil(2 * tel.pixel_scale_arcsec / mgrid.scale)) + 1
+    dbox = _grow(tile.mosaic, grow, mgrid.shape)
+    dgrid = mgrid.window(dbox[2], dbox[0], dbox[3] - dbox[2], dbox[1] - dbox[0])
+    dcut = (slice(my0 - dbox[0], my1 - dbox[0]), slice(mx0 - dbox[2], mx1 - dbox[2]))
+    sums = {}
+    for b in ctx.bands:
+        rate, brt = ctx.rates[b.name], ctx.bright[b.name]
+        with timer("scene"):
+            core = ctx.psf_core[b.name].image
+            acc = accumulate(stamps, rate, (acc_box[1] - acc_box[0], acc_box[3] - acc_box[2]),
+                             select=~brt, origin=(acc_box[0], acc_box[2]))
+            conv = convolve_tiled(acc, core)
+            del acc
+            scene = np.ascontiguousarray(conv[sy0 - acc_box[0]:sy1 - acc_box[0],
+                                              sx0 - acc_box[2]:sx1 - acc_box[2]])
+            del conv
+            add_bright(scene, stamps, rate, brt, ctx.psf_wide[b.name].image, origin=(sy0, sx0))
+            np.maximum(scene, 0.0, out=scene)  # FFT round-off leaves ~1e-7 negatives
+        with timer("truth_image"):
+            sky_mosaic = b.sky_rate(area, mgrid.scale)
+            sigma_pix = np.sqrt(sky_mosaic * t_total) / t_total  # e-/s per mosaic pixel
+            thr_scene = SEGMENTATION_NSIGMA * sigma_pix * (sgrid.scale / mgrid.scale) ** 2
+            small = _crop_center(core, 0.4 / sgrid.scale)
+            seg_scene = dominant_source(stamps, rate, ids, scene.shape, small / small.sum(),
+                                        thr_scene, origin=(sy0, sx0))
+            seg = _resample_ids(seg_scene, tile.sgrid, tile.mgrid)
+            del seg_scene
+            f = ctx.files[f"truth_image_{b.name}.fits"]
+            f.array("SCI")[msec] = sample_scene(scene, tile.sgrid, tile.mgrid)
+            f.array("SEGM")[msec] = seg
+        sky = b.sky_rate(area, tel.pixel_scale_arcsec)
 
-    def exposures():
-        """Each exposure in turn, so only one is in memory while the mosaic is drizzled."""
-        for k, eg in enumerate(ctx.egrids):
-            with timer("exposures"):
-                r = sample_scene(scene, sgrid, eg)
-                e = expose(r, sky, None, sc.detector, srv.exposure_time_s, tel.pixel_size_um,
-                           stream(sc.seed, "exposure", b.name, k), ctx.fixed)
-                del r
-                if srv.write_exposures:
-                    files.append(_write_exposure(
-                        out / "exposures" / f"exp_{b.name}_{k:02d}.fits", e, eg, b, zp, prov))
-            yield e
+        def exposures():
+            """Each exposure window in turn, so only one is in memory while drizzling."""
+            for k, eg in enumerate(tile.egrids):
+                with timer("exposures"):
+                    r = sample_scene(scene, tile.sgrid, eg)
+                    e = expose(r, sky, None, sc.detector, srv.exposure_time_s,
+                               tel.pixel_size_um,
+                               stream(sc.seed, "exposure", b.name, k, "tile", ty, tx), fixed[k])
+                    del r
+                    if srv.write_exposures:
+                        _write_exposure_section(ctx.files[f"exp_{b.name}_{k:02d}.fits"],
+                                                e, tile, k, mgrid)
+                yield e
 
-    t0 = time.perf_counter()
-    mosaic = drizzle_mosaic(exposures(), ctx.egrids, mgrid, srv.drizzle_kernel, srv.pixfrac)
-    timings["mosaic"] = time.perf_counter() - t0 - timings.get("exposures", 0.0)
-    del scene
-    with timer("mosaic"):
-        files.append(_write_mosaic(out / f"mosaic_{b.name}.fits", mosaic, mgrid, b, zp, srv,
-                                   prov))
-    with timer("depth"):
-        r_ap = sc.detection.aperture_radius_arcsec
-        eff = effective_psf(ctx.psf_core[b.name], tel.pixel_scale_arcsec)
-        ee = float(np.interp(r_ap, eff.ee_radii_arcsec, eff.ee_values))
-        depth = {
-            "aperture_radius_arcsec": r_ap,
-            "encircled_energy": ee,
-            "predicted_5sigma": predicted_depth(
-                sc.detector, srv.exposure_time_s, srv.n_exposures, zp, sky,
-                tel.pixel_scale_arcsec, r_ap, encircled_energy=ee),
-            "measured_5sigma": measured_depth(
-                mosaic, mgrid, zp, r_ap, stream(sc.seed, "depth", b.name),
-                mask=ndimage.binary_dilation(seg > 0, iterations=3), encircled_energy=ee),
-        }
-    return b.name, files, depth, timings
+        t0 = time.perf_counter()
+        t_exp = timings.get("exposures", 0.0)
+        # drizzle onto the tile grown by a few pixels, then cut: drizzle leaves out drops of
+        # input pixels whose centres map outside its output, which would thin the tile's rim
+        mosaic = _crop_mosaic(drizzle_mosaic(exposures(), tile.egrids, dgrid, srv.drizzle_kernel,
+                                             srv.pixfrac), dcut)
+        timings["mosaic"] = timings.get("mosaic", 0.0) + (
+            time.perf_counter() - t0 - (timings.get("exposures", 0.0) - t_exp))
+        scene = None  # the closure above holds it until here
+        with timer("mosaic"):
+            f = ctx.files[f"mosaic_{b.name}.fits"]
+            for name in ("sci", "wht", "exp", "dq"):
+                f.array(name.upper())[msec] = getattr(mosaic, name)
+        with timer("depth"):
+            bad = (mosaic.wht <= 0) | ndimage.binary_dilation(seg > 0, iterations=3)
+            sums[b.name] = aperture_sums(mosaic.sci, bad, r_ap / mgrid.scale,
+                                         stream(sc.seed, "depth", b.name, ty, tx), n_ap)
+        del mosaic, seg
+    if ctx.lens is not None:
+        from .lensing import forget_grid
+
+        forget_grid(ctx.lens, sgrid.window(acc_box[2], acc_box[0], acc_box[3] - acc_box[2],
+                                           acc_box[1] - acc_box[0]))
+    return {"sums": sums, "timings": timings}
+
+
+def _crop_mosaic(m, cut):
+    from .survey import Mosaic
+
+    return Mosaic(*(np.ascontiguousarray(getattr(m, k)[cut]) for k in ("sci", "wht", "exp", "dq")))
+
+
+def _band_depth(sc: Scenario, b: Band, psf_core, sums: np.ndarray) -> dict:
+    """Predicted and measured (from the tiles' empty-aperture sums) 5-sigma depths (AB)."""
+    from .optics.psf import effective_psf
+    from .survey import depth_from_sums, predicted_depth
+
+    tel, srv = sc.telescope, sc.survey
+    zp = b.zeropoint(tel.collecting_area_m2)
+    r_ap = sc.detection.aperture_radius_arcsec
+    eff = effective_psf(psf_core, tel.pixel_scale_arcsec)
+    ee = float(np.interp(r_ap, eff.ee_radii_arcsec, eff.ee_values))
+    sky = b.sky_rate(tel.collecting_area_m2, tel.pixel_scale_arcsec)
+    return {
+        "aperture_radius_arcsec": r_ap,
+        "encircled_energy": ee,
+        "predicted_5sigma": predicted_depth(sc.detector, srv.exposure_time_s, srv.n_exposures,
+                                            zp, sky, tel.pixel_scale_arcsec, r_ap,
+                                            encircled_energy=ee),
+        "measured_5sigma": depth_from_sums(sums, zp, ee),
+    }
+
+
+def _write_exposure_section(f, e, tile, k: int, mgrid: Grid) -> None:
+    """The detector pixels tile ``tile`` owns (:func:`simfield.survey.owned_pixels`) of
+    exposure ``k``, into its file being written by sections."""
+    from .survey import owned_pixels
+
+    y0, y1, x0, x1 = tile.exposures[k]
+    own = owned_pixels(tile, k, mgrid)
+    for name, data in (("SCI", e.sci), ("VAR", e.var), ("DQ", e.dq)):
+        view = f.array(name)[y0:y1, x0:x1]
+        view[own] = data[own]
+
+
+def _image_files(out: Path, sc: Scenario, bands: list[Band], mgrid: Grid, egrids: list):
+    """(path, image specs, primary cards) of every image file the tiles write into."""
+    from . import survey
+    from .io import ImageSpec
+
+    srv, area = sc.survey, sc.telescope.collecting_area_m2
+    t_total = srv.exposure_time_s * srv.n_exposures
+    dq_cards = [(("DQ" + name[3:].replace("_", ""))[:8], getattr(survey, name),
+                 f"DQ bit value of {name}")
+                for name in survey.__all__ if name.startswith("DQ_") and name != "DQ_EXCLUDE"]
+    seg_note = ("SEGDEF", "id of the source contributing most light above SEGTHR", "")
+
+    def hdr(grid: Grid, bunit: str, cards=()):
+        h = grid.wcs.to_header()
+        h["BUNIT"] = bunit
+        for k, v, c in cards:
+            h[k] = (v, c)
+        return h
+
+    items = []
+    for b in bands:
+        zp = b.zeropoint(area)
+        cards = _band_cards(b, zp)
+        mcards = cards + [("EXPTIME", t_total, "[s] total exposure time at full depth"),
+                          ("NEXP", srv.n_exposures, "exposures combined")]
+        items.append((out / f"mosaic_{b.name}.fits", [
+            ImageSpec("SCI", mgrid.shape, np.float32, hdr(mgrid, "electron/s", mcards)),
+            ImageSpec("WHT", mgrid.shape, np.float32, hdr(mgrid, "s2/electron2", mcards)),
+            ImageSpec("EXP", mgrid.shape, np.float32, hdr(mgrid, "s")),
+            ImageSpec("DQ", mgrid.shape, np.int32, hdr(mgrid, "", dq_cards))], mcards))
+        sigma = np.sqrt(b.sky_rate(area, mgrid.scale) * t_total) / t_total
+        seg_cards = [("SEGNSIG", SEGMENTATION_NSIGMA, "threshold in sky-limited sigma per pixel"),
+                     ("SEGTHR", float(SEGMENTATION_NSIGMA * sigma), "[electron/s] threshold"),
+                     seg_note]
+        items.append((out / f"truth_image_{b.name}.fits", [
+            ImageSpec("SCI", mgrid.shape, np.float32, hdr(mgrid, "electron/s", cards)),
+            ImageSpec("SEGM", mgrid.shape, np.int32, hdr(mgrid, "", seg_cards))], cards))
+        if srv.write_exposures:
+            ecards = cards + [("EXPTIME", srv.exposure_time_s, "[s] exposure time")]
+            for k, g in enumerate(egrids):
+                items.append((out / "exposures" / f"exp_{b.name}_{k:02d}.fits", [
+                    ImageSpec("SCI", g.shape, np.float32, hdr(g, "electron/s", ecards)),
+                    ImageSpec("VAR", g.shape, np.float32, hdr(g, "electron2/s2")),
+                    ImageSpec("DQ", g.shape, np.int32, hdr(g, ""))], ecards))
+    return items
 
 
 # ---------------------------------------------------------------------------- helpers
@@ -410,63 +544,76 @@ def _truth_images(sources: Table, lens, sc: Scenario, hx: float, hy: float):
     return images, np.asarray(mag_total, float), np.asarray(n_images, np.int32)
 
 
-def _draw_all(sources: Table, sgrid: Grid, sc: Scenario, lens, make_profile,
-              progress: bool = False) -> list[Stamp]:
-    """Unit-flux stamps of every source (lensed ones by ray tracing); a progress bar if
-    ``progress``."""
-    from tqdm import tqdm
+def _draw_tile(ctx: _TileContext, acc_box, bright_box, bright_any: np.ndarray) -> list[Stamp]:
+    """Unit-flux stamps, in scene-grid indices, of every source whose light reaches a tile.
 
-    xpix, ypix = sgrid.offsets_to_pixel(np.asarray(sources["x_arcsec"], float),
-                                        np.asarray(sources["y_arcsec"], float))
+    ``acc_box`` is the tile's scene window grown by the core PSF (the light convolved there),
+    ``bright_box`` grown by the large PSF, which sources bright in some band (``bright_any``)
+    may reach. Lensed sources are ray traced on the window of ``acc_box``; they are found from
+    the box's source-plane bounds (:func:`simfield.lensing.source_plane_bounds`). The diffuse
+    intracluster light is drawn over the window only (:func:`simfield.scene.draw_window`).
+    """
+    import galsim
+
+    from .population.morphology import make_profile
+
+    sources, sgrid, sc, lens = ctx.sources, ctx.sgrid, ctx.sc, ctx.lens
+    xs = np.asarray(sources["x_arcsec"], float)
+    ys = np.asarray(sources["y_arcsec"], float)
+    xpix, ypix = sgrid.offsets_to_pixel(xs, ys)
     kinds = np.asarray(sources["kind"]).astype(str)
-    frame = sgrid.pixel_frame().ravel()  # (xi, eta) -> (column, row) directions
-    rhalf = np.asarray(sources["r_half"], float)
-
-    def items():
-        for i in range(len(sources)):
-            if kinds[i] == "star":
-                yield i, None, xpix[i], ypix[i], 0, 1
-                continue
-            if kinds[i] == "icl":
-                import galsim
-
-                prof = galsim.Sersic(float(sources["sersic_n"][i]),
-                                     half_light_radius=float(rhalf[i]))
-                q = float(sources["axis_ratio"][i])
-                if q < 1:
-                    beta = (90.0 - float(sources["position_angle"][i])) * galsim.degrees
-                    prof = prof.shear(q=q, beta=beta)
-                yield (i, prof.transform(*frame), xpix[i], ypix[i],
-                       max(sgrid.nx, sgrid.ny) // 2, 1)  # the envelope spans the field
-                continue
-            prof = make_profile(sources[i], sc.seed)
-            if lensed is not None and z[i] > zl and kinds[i] != "member":
-                yield i, prof, xpix[i], ypix[i], 0, 1  # the lensing stage draws it
-                continue
-            on_grid = prof.transform(*frame)
-            yield (i, on_grid, xpix[i], ypix[i], stamp_half_size(on_grid, sgrid.scale),
-                   supersampling(float(rhalf[i]) / sgrid.scale))
-
-    lensed = None
     z = np.asarray(sources["redshift"], float)
-    zl = sc.lens.redshift
+    rhalf = np.asarray(sources["r_half"], float)
+    frame = sgrid.pixel_frame().ravel()  # (xi, eta) -> (column, row) directions
+    cap = 256  # largest stamp half-size (scene pixels), see scene.stamp_half_size
+
+    def near(box, pad):
+        return ((ypix >= box[0] - pad) & (ypix < box[1] + pad)
+                & (xpix >= box[2] - pad) & (xpix < box[3] + pad))
+
+    def overlaps(box, iy0, ix0, n):
+        return iy0 < box[1] and iy0 + n > box[0] and ix0 < box[3] and ix0 + n > box[2]
+
+    lensed = np.zeros(len(sources), bool)
+    acc_grid = sgrid.window(acc_box[2], acc_box[0], acc_box[3] - acc_box[2],
+                            acc_box[1] - acc_box[0])
     if lens is not None:
-        from .lensing import render_lensed
+        from .lensing import render_lensed, source_plane_bounds
 
-        def lensed(i, prof):
-            if z[i] <= zl or kinds[i] in ("member", "icl"):
-                return None
-            import galsim
-
-            p = prof if prof is not None else galsim.Gaussian(sigma=1e-3)
-            got = render_lensed(lens, p, float(sources["x_arcsec"][i]),
-                                float(sources["y_arcsec"][i]), float(z[i]), sgrid)
-            return [Stamp(np.asarray(im, np.float32), int(iy0), int(ix0), i)
-                    for im, iy0, ix0 in got]
-
-    bar = tqdm(items(), total=len(sources), desc="stamps", unit="src", disable=not progress,
-               leave=False)
-    return draw_stamps(bar, sgrid.scale, lensed=lensed)
+        lensed = (z > sc.lens.redshift) & ~np.isin(kinds, ("member", "icl"))
+        xlo, xhi, ylo, yhi = source_plane_bounds(lens, acc_grid)
+        r_max = 5.0  # arcsec, largest source radius drawn (lensing.render.source_radius)
+        seen = (xs > xlo - r_max) & (xs < xhi + r_max) & (ys > ylo - r_max) & (ys < yhi + r_max)
+    box_of = lambda i: bright_box if bright_any[i] else acc_box  # noqa: E731
+    stamps: list[Stamp] = []
+    for i in np.nonzero(lensed & seen if lens is not None else lensed)[0]:
+        prof = make_profile(sources[i], sc.seed)
+        for im, iy0, ix0 in render_lensed(lens, prof, xs[i], ys[i], z[i], acc_grid):
+            stamps.append(Stamp(np.asarray(im, np.float32), int(iy0) + acc_box[0],
+                                int(ix0) + acc_box[2], int(i)))
+    for i in np.nonzero(~lensed & (near(acc_box, cap) | (bright_any & near(bright_box, cap))))[0]:
+        box = box_of(i)
+        if kinds[i] == "star":
+            st = point_stamp(xpix[i], ypix[i], int(i))
+            if overlaps(box, st.iy0, st.ix0, 2):
+                stamps.append(st)
+            continue
+        if kinds[i] == "icl":
+            prof = galsim.Sersic(float(sources["sersic_n"][i]), half_light_radius=float(rhalf[i]))
+            q = float(sources["axis_ratio"][i])
+            if q < 1:
+                beta = (90.0 - float(sources["position_angle"][i])) * galsim.degrees
+                prof = prof.shear(q=q, beta=beta)
+            stamps.append(draw_window(prof.transform(*frame), xpix[i], ypix[i], sgrid.scale,
+                                      box[0], box[2], box[1] - box[0], box[3] - box[2], int(i)))
+            continue
+        prof = make_profile(sources[i], sc.seed).transform(*frame)
+        half = stamp_half_size(prof, sgrid.scale)
+        if not overlaps(box, int(round(ypix[i])) - half, int(round(xpix[i])) - half, 2 * half + 1):
+            continue
+        stamps.append(draw_profile_stamp(prof, xpix[i], ypix[i], sgrid.scale, half, int(i),
+                                         supersampling(float(rhalf[i]) / sgrid.scale)))
+    return stamps
 
 
 #: Pixel of the convergence map written beside a lensed run (arcsec).
@@ -522,8 +669,10 @@ def _resample_ids(ids: np.ndarray, src: Grid, dst: Grid) -> np.ndarray:
     """Nearest-neighbour lookup of an id image on grid ``src`` at the pixel centres of ``dst``."""
     xi, eta = dst.pixel_offsets()
     x, y = src.offsets_to_pixel(xi, eta)
-    ix = np.clip(np.rint(x).astype(np.int64), 0, src.nx - 1)
-    iy = np.clip(np.rint(y).astype(np.int64), 0, src.ny - 1)
+    # dst centres often fall on src pixel edges (a scale ratio of 2): round those up, with a
+    # bias far above round-off, so every window of src gives the same answer
+    ix = np.clip(np.floor(x + 0.5 + 1e-6).astype(np.int64), 0, src.nx - 1)
+    iy = np.clip(np.floor(y + 0.5 + 1e-6).astype(np.int64), 0, src.ny - 1)
     return ids[iy, ix]
 
 
@@ -548,41 +697,6 @@ def _image_hdu(data, name, grid: Grid, bunit: str, cards=()) -> fits.ImageHDU:
     for k, v, c in cards:
         hdu.header[k] = (v, c)
     return hdu
-
-
-def _write_mosaic(path, mosaic, grid: Grid, b: Band, zp: float, srv, prov) -> Path:
-    t_total = srv.exposure_time_s * srv.n_exposures
-    cards = _band_cards(b, zp) + [("EXPTIME", t_total, "[s] total exposure time at full depth"),
-                                  ("NEXP", srv.n_exposures, "exposures combined")]
-    from . import survey
-
-    dq_cards = [(("DQ" + name[3:].replace("_", ""))[:8], getattr(survey, name),
-                 f"DQ bit value of {name}")
-                for name in survey.__all__ if name.startswith("DQ_") and name != "DQ_EXCLUDE"]
-    hdus = [_image_hdu(mosaic.sci.astype(np.float32), "SCI", grid, "electron/s", cards),
-            _image_hdu(mosaic.wht.astype(np.float32), "WHT", grid, "s2/electron2", cards),
-            _image_hdu(mosaic.exp.astype(np.float32), "EXP", grid, "s"),
-            _image_hdu(mosaic.dq.astype(np.int32), "DQ", grid, "", dq_cards)]
-    return write_fits(path, hdus, prov, cards)
-
-
-def _write_exposure(path, exp, grid: Grid, b: Band, zp: float, prov) -> Path:
-    cards = _band_cards(b, zp) + [("EXPTIME", exp.exptime, "[s] exposure time")]
-    hdus = [_image_hdu(exp.sci.astype(np.float32), "SCI", grid, "electron/s", cards),
-            _image_hdu(exp.var.astype(np.float32), "VAR", grid, "electron2/s2"),
-            _image_hdu(exp.dq.astype(np.int32), "DQ", grid, "")]
-    return write_fits(path, hdus, prov, cards)
-
-
-def _write_truth_image(path, img, seg, grid: Grid, b: Band, zp: float, sigma: float,
-                       prov) -> Path:
-    cards = _band_cards(b, zp)
-    seg_cards = [("SEGNSIG", SEGMENTATION_NSIGMA, "threshold in sky-limited sigma per pixel"),
-                 ("SEGTHR", float(SEGMENTATION_NSIGMA * sigma), "[electron/s] threshold"),
-                 ("SEGDEF", "id of the source contributing most light above SEGTHR", "")]
-    hdus = [_image_hdu(img.astype(np.float32), "SCI", grid, "electron/s", cards),
-            _image_hdu(seg.astype(np.int32), "SEGM", grid, "", seg_cards)]
-    return write_fits(path, hdus, prov, cards)
 
 
 def _write_psf(path, core, wide, eff, b: Band, prov) -> Path:

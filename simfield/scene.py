@@ -27,6 +27,7 @@ __all__ = [
     "Stamp",
     "point_stamp",
     "draw_profile_stamp",
+    "draw_window",
     "supersampling",
     "stamp_half_size",
     "draw_stamps",
@@ -57,15 +58,25 @@ class Stamp:
     ix0: int
     index: int
 
-    def clip(self, shape: tuple[int, int]):
-        """(grid slices, stamp slices) of the part inside a grid of ``shape``; None if none."""
+    def clip(self, shape: tuple[int, int], origin: tuple[int, int] = (0, 0)):
+        """(image slices, stamp slices) of the part inside an image of ``shape`` whose [0, 0]
+        pixel is scene pixel ``origin`` = (row, column); None if none."""
         ny, nx = self.image.shape
-        y0, x0 = max(self.iy0, 0), max(self.ix0, 0)
-        y1, x1 = min(self.iy0 + ny, shape[0]), min(self.ix0 + nx, shape[1])
+        iy0, ix0 = self.iy0 - origin[0], self.ix0 - origin[1]
+        y0, x0 = max(iy0, 0), max(ix0, 0)
+        y1, x1 = min(iy0 + ny, shape[0]), min(ix0 + nx, shape[1])
         if y0 >= y1 or x0 >= x1:
             return None
         return ((slice(y0, y1), slice(x0, x1)),
-                (slice(y0 - self.iy0, y1 - self.iy0), slice(x0 - self.ix0, x1 - self.ix0)))
+                (slice(y0 - iy0, y1 - iy0), slice(x0 - ix0, x1 - ix0)))
+
+
+def _reaches(st: Stamp, hy: int, hx: int, shape: tuple[int, int],
+             origin: tuple[int, int]) -> bool:
+    """True if ``st`` spread by a kernel of half-size (hy, hx) touches the image window."""
+    y0, x0 = st.iy0 - hy - origin[0], st.ix0 - hx - origin[1]
+    return (y0 < shape[0] and x0 < shape[1] and y0 + st.image.shape[0] + 2 * hy > 0
+            and x0 + st.image.shape[1] + 2 * hx > 0)
 
 
 def point_stamp(x: float, y: float, index: int) -> Stamp:
@@ -131,6 +142,33 @@ def draw_profile_stamp(profile, x: float, y: float, scale: float, half_size: int
     return Stamp(a, iy - half_size, ix - half_size, index)
 
 
+def draw_window(profile, x: float, y: float, scale: float, iy0: int, ix0: int, ny: int,
+                nx: int, index: int) -> Stamp:
+    """Draw a unit-flux galsim profile centred at scene pixel (x, y) over one window only.
+
+    For sources far larger than a tile (a cluster's diffuse light): the profile is sampled at
+    the centres of the ``ny`` x ``nx`` scene pixels starting at row ``iy0``, column ``ix0``
+    (surface brightness x pixel area, so each pixel holds its share of the unit flux) and not
+    renormalised, so windows cut from the same profile tile it seamlessly and light outside
+    every window is simply not drawn.
+
+    Parameters
+    ----------
+    profile : galsim.GSObject
+        Unit-flux profile in arcsec, already in the grid's (column, row) frame.
+    x, y : float (scene pixels)
+        Profile centre, 0-based scene-grid coordinates.
+    scale : float (arcsec/pixel)
+    iy0, ix0, ny, nx : int (scene pixels)
+        The window.
+    index : int
+        Source row.
+    """
+    off = (x - (ix0 + (nx - 1) / 2.0), y - (iy0 + (ny - 1) / 2.0))
+    img = profile.drawImage(nx=nx, ny=ny, scale=scale, method="no_pixel", offset=off).array
+    return Stamp(img.astype(np.float32), iy0, ix0, index)
+
+
 def draw_stamps(items: Iterable[tuple[int, object, float, float, int, int]], scale: float,
                 lensed: Callable[[int, object], list[Stamp] | None] | None = None
                 ) -> list[Stamp]:
@@ -161,17 +199,20 @@ def draw_stamps(items: Iterable[tuple[int, object, float, float, int, int]], sca
 
 
 def accumulate(stamps: Sequence[Stamp], flux: np.ndarray, shape: tuple[int, int],
-               select: np.ndarray | None = None, dtype=np.float32) -> np.ndarray:
+               select: np.ndarray | None = None, dtype=np.float32,
+               origin: tuple[int, int] = (0, 0)) -> np.ndarray:
     """Sum ``flux[stamp.index] * stamp.image`` into an image of ``shape``.
 
-    ``flux`` is indexed by source row (e-/s); ``select`` (bool per source row) keeps a subset.
+    ``flux`` is indexed by source row (e-/s); ``select`` (bool per source row) keeps a subset;
+    the image's [0, 0] pixel is scene pixel ``origin`` (row, column), so a window of the scene
+    can be built from stamps in scene-grid indices.
     """
     out = np.zeros(shape, dtype=dtype)
     for st in stamps:
         f = flux[st.index]
         if f == 0 or (select is not None and not select[st.index]):
             continue
-        cl = st.clip(shape)
+        cl = st.clip(shape, origin)
         if cl is None:
             continue
         g, s = cl
@@ -211,20 +252,24 @@ def convolve_tiled(image: np.ndarray, kernel: np.ndarray, tile: int = 1024,
 
 
 def add_bright(image: np.ndarray, stamps: Sequence[Stamp], flux: np.ndarray,
-               select: np.ndarray, kernel: np.ndarray) -> None:
+               select: np.ndarray, kernel: np.ndarray, origin: tuple[int, int] = (0, 0)) -> None:
     """Add sources ``select``-ed (bool per source row) convolved one by one with ``kernel``.
 
     For the few bright sources whose diffraction spikes reach far: the large PSF is applied to
-    each stamp (direct FFT of stamp x kernel), never to the whole image. In place.
+    each stamp (direct FFT of stamp x kernel), never to the whole image. In place; ``image[0,
+    0]`` is scene pixel ``origin`` (row, column). Stamps whose spread light misses the image
+    are skipped before the FFT.
     """
     ky, kx = kernel.shape
     hy, hx = ky // 2, kx // 2
     for st in stamps:
         if not select[st.index] or flux[st.index] == 0:
             continue
+        if not _reaches(st, hy, hx, image.shape, origin):
+            continue
         conv = signal.fftconvolve(st.image.astype(np.float64), kernel, mode="full")
         big = Stamp(conv.astype(np.float32), st.iy0 - hy, st.ix0 - hx, st.index)
-        cl = big.clip(image.shape)
+        cl = big.clip(image.shape, origin)
         if cl is None:
             continue
         g, s = cl
@@ -232,12 +277,14 @@ def add_bright(image: np.ndarray, stamps: Sequence[Stamp], flux: np.ndarray,
 
 
 def dominant_source(stamps: Sequence[Stamp], flux: np.ndarray, source_id: np.ndarray,
-                    shape: tuple[int, int], kernel: np.ndarray, threshold: float) -> np.ndarray:
+                    shape: tuple[int, int], kernel: np.ndarray, threshold: float,
+                    origin: tuple[int, int] = (0, 0)) -> np.ndarray:
     """Segmentation of the scene: id of the source contributing most light to each pixel.
 
     Each stamp times its flux is blurred with ``kernel`` (a small PSF core) and compared with
     the brightest contribution so far. Pixels where no source exceeds ``threshold`` (e-/s per
-    scene pixel) get 0. Returns an int32 image of ``shape``.
+    scene pixel) get 0. Returns an int32 image of ``shape`` whose [0, 0] pixel is scene pixel
+    ``origin`` (row, column).
     """
     best = np.zeros(shape, dtype=np.float32)
     ids = np.zeros(shape, dtype=np.int32)
@@ -253,9 +300,11 @@ def dominant_source(stamps: Sequence[Stamp], flux: np.ndarray, source_id: np.nda
         bound = f * min(st.image.sum() * kmax, st.image.max() * ksum)
         if bound < threshold:
             continue
+        if not _reaches(st, hy, hx, shape, origin):
+            continue
         conv = f * signal.fftconvolve(st.image, kernel, mode="full")
         big = Stamp(conv.astype(np.float32), st.iy0 - hy, st.ix0 - hx, st.index)
-        cl = big.clip(shape)
+        cl = big.clip(shape, origin)
         if cl is None:
             continue
         g, s = cl

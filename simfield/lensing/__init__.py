@@ -9,7 +9,7 @@ D_ls/D_s = 1 ("reduced"), scaled per source redshift.
 from .images import CriticalCurves, critical_curves, find_images, write_lens_png
 from .profiles import NFW, SIE, ExternalShear, PointMass, TruncatedSIS
 from .raytrace import Lens, LensField, build_lens
-from .render import lens_sources, render_lensed
+from .render import forget_grid, lens_sources, render_lensed, source_plane_bounds
 
 __all__ = [
     "Lens",
@@ -26,4 +26,6 @@ __all__ = [
     "write_lens_png",
     "render_lensed",
     "lens_sources",
+    "source_plane_bounds",
+    "forget_grid",
 ]

@@ -32,7 +32,8 @@ from ..grid import Grid
 from .images import find_images
 from .raytrace import Lens
 
-__all__ = ["RenderCache", "render_cache", "render_lensed", "lens_sources", "source_radius"]
+__all__ = ["RenderCache", "render_cache", "render_lensed", "lens_sources", "source_radius",
+           "source_plane_bounds", "forget_grid"]
 
 _BLOCK = 4  # scene pixels per node-grid cell (deflection interpolated in between)
 _SUPER = 8  # node-grid cells per side of a search superblock
@@ -94,6 +95,24 @@ def render_cache(lens: Lens, grid: Grid, block: int = _BLOCK) -> RenderCache:
     cache = RenderCache(grid, block, xi, eta, ax, ay, kap, g1, g2, sup, lens, cores)
     lens._cache[key] = cache
     return cache
+
+
+def source_plane_bounds(lens: Lens, grid: Grid, block: int = _BLOCK):
+    """(xi_lo, xi_hi, eta_lo, eta_hi) (arcsec) holding the source-plane position of every
+    scene-grid node for every source redshift: beta = theta - r alpha with 0 <= r <= 1, so the
+    extremes are at r = 0 or r = 1. A source farther than its radius outside this box has no
+    light on ``grid``."""
+    c = render_cache(lens, grid, block)
+    bx = (np.minimum(c.xi, c.xi - c.ax), np.maximum(c.xi, c.xi - c.ax))
+    by = (np.minimum(c.eta, c.eta - c.ay), np.maximum(c.eta, c.eta - c.ay))
+    return float(bx[0].min()), float(bx[1].max()), float(by[0].min()), float(by[1].max())
+
+
+def forget_grid(lens: Lens, grid: Grid) -> None:
+    """Drop the node fields cached on ``lens`` for ``grid`` (a finished tile's window)."""
+    for key in [k for k in lens._cache if isinstance(k, tuple) and len(k) > 1
+                and k[0] == "render" and k[1] == grid]:
+        del lens._cache[key]
 
 
 def source_radius(profile) -> float:
