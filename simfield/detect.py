@@ -30,6 +30,9 @@ __all__ = ["Detections", "detect_sources", "detect_mosaic", "run_detection", "ti
 # 2.5 / ln(10): magnitude error per unit fractional flux error
 _MAG_PER_FRAC = 2.5 / np.log(10.0)
 
+# numpy dtype of each FITS BITPIX (FITS data are big-endian)
+_FITS_DTYPE = {8: "u1", 16: ">i2", 32: ">i4", 64: ">i8", -32: ">f4", -64: ">f8"}
+
 #: Largest tile core side (pixels). A tile of core + 2 margins, 3072 + 512 = 3584 pixels a side,
 #: holds 12.8 Mpix; detect_sources keeps ~15 float64 arrays of that size, ~1.5 GB at most.
 TILE_CORE_PIX = 3072
@@ -255,6 +258,16 @@ def _stack(cats: list[Table]) -> Table:
     return out
 
 
+def _window(path, loc: int, shape, dtype, win) -> np.ndarray:
+    """Copy of ``win`` of an image stored at byte ``loc`` of ``path``, read through a memory
+    map opened for this window only (unmapped on return, so the file's pages do not stay in
+    the process's resident memory from tile to tile)."""
+    mm = np.memmap(path, dtype=dtype, mode="r", offset=loc, shape=shape)
+    out = np.array(mm[win])
+    del mm
+    return out
+
+
 def detect_mosaic(path, segm_out, cfg: DetectionConfig, psf_fwhm_arcsec: float,
                   core: int | None = None, margin: int | None = None) -> Table:
     """Detect sources on a mosaic file tile by tile, in memory bounded by the tile size.
@@ -283,8 +296,10 @@ def detect_mosaic(path, segm_out, cfg: DetectionConfig, psf_fwhm_arcsec: float,
     path : path
         Mosaic file (SCI in e-/s with a celestial WCS, ``ZP_AB`` and optionally ``EXPTIME`` in
         its header; WHT in (e-/s)^-2; DQ int with ``DQNOCOVE``).
-    segm_out : numpy.memmap or ndarray of int32, shape (ny, nx), or None
-        Written with the segmentation labels (the catalogue ids); None skips it.
+    segm_out : simfield.io.SectionFile, ndarray of int32, shape (ny, nx), or None
+        Written with the segmentation labels (the catalogue ids): a SectionFile with a ``SEGM``
+        extension is written through a fresh memory map per section (so written pages leave
+        the resident memory); None skips it.
     cfg : DetectionConfig
         Detection settings.
     psf_fwhm_arcsec : float (arcsec)
@@ -306,16 +321,26 @@ def detect_mosaic(path, segm_out, cfg: DetectionConfig, psf_fwhm_arcsec: float,
     check_range("margin", margin, 0, 1 << 20)
     with fits.open(path, memmap=True) as hl:
         hdr = hl["SCI"].header
-        sci_m, wht_m = hl["SCI"].data, hl["WHT"].data
-        dq_m = hl["DQ"].data if "DQ" in hl else None
+        maps = {}
+        for ext in ("SCI", "WHT", "DQ"):
+            if ext in hl:
+                h = hl[ext].header
+                plain = float(h.get("BSCALE", 1)) == 1 and float(h.get("BZERO", 0)) == 0
+                require(type(hl[ext]) is fits.ImageHDU and plain and h["BITPIX"] in _FITS_DTYPE,
+                        ext, type(hl[ext]).__name__,
+                        "must be an uncompressed image extension without BSCALE/BZERO")
+                maps[ext] = (hl.fileinfo(hl.index_of(ext))["datLoc"],
+                             (int(h["NAXIS2"]), int(h["NAXIS1"])), _FITS_DTYPE[h["BITPIX"]])
+        require("SCI" in maps and "WHT" in maps, "mosaic", str(path), "needs SCI and WHT")
         # cosmic-ray and saturation bits mark repaired pixels (their slopes were refitted):
         # only pixels that no exposure covers are left out of detection
-        no_cov = int(hl["DQ"].header.get("DQNOCOVE", 16)) if dq_m is not None else 0
+        no_cov = int(hl["DQ"].header.get("DQNOCOVE", 16)) if "DQ" in maps else 0
         wcs = WCS(hdr).celestial
         scale = float(np.sqrt(abs(np.linalg.det(wcs.pixel_scale_matrix))) * 3600.0)
         zp = float(hdr["ZP_AB"])
         exptime = float(hdr.get("EXPTIME", 0)) or None
-        ny, nx = sci_m.shape
+        ny, nx = maps["SCI"][1]
+        segm_file = segm_out if hasattr(segm_out, "array") else None
         box = max(8, int(round(cfg.background_box_arcsec / scale)))
         ty = tile_bounds(ny, core, margin, box)
         tx = tile_bounds(nx, core, margin, box)
@@ -325,9 +350,11 @@ def detect_mosaic(path, segm_out, cfg: DetectionConfig, psf_fwhm_arcsec: float,
         for ylo, y0, y1, yhi in ty:
             for xlo, x0, x1, xhi in tx:
                 win = (slice(ylo, yhi), slice(xlo, xhi))
-                mask = None if dq_m is None else (np.asarray(dq_m[win]) & no_cov) != 0
+                mask = None if "DQ" not in maps else \
+                    (_window(path, *maps["DQ"], win) & no_cov) != 0
                 twcs = wcs if one else wcs.slice(win)
-                det = detect_sources(np.asarray(sci_m[win], float), np.asarray(wht_m[win], float),
+                det = detect_sources(_window(path, *maps["SCI"], win).astype(float),
+                                     _window(path, *maps["WHT"], win).astype(float),
                                      twcs, cfg, psf_fwhm_arcsec, zp, scale, exptime=exptime,
                                      mask=mask)
                 cat = det.catalog
@@ -342,7 +369,9 @@ def detect_mosaic(path, segm_out, cfg: DetectionConfig, psf_fwhm_arcsec: float,
                 provisional.append((offset, labels, own, gx, gy))
                 if segm_out is not None:
                     seg = det.segmentation[y0 - ylo:y1 - ylo, x0 - xlo:x1 - xlo]
-                    segm_out[y0:y1, x0:x1] = np.where(seg > 0, seg + offset, 0)
+                    out = segm_file.array("SEGM") if segm_file else segm_out
+                    out[y0:y1, x0:x1] = np.where(seg > 0, seg + offset, 0)
+                    del out
                 offset += int(det.segmentation.max(initial=0))
                 del det, mask
 
@@ -387,7 +416,9 @@ def detect_mosaic(path, segm_out, cfg: DetectionConfig, psf_fwhm_arcsec: float,
         if segm_out is not None:
             rows = max(1, (1 << 22) // max(nx, 1))  # ~16 MB of int32 per block
             for r0 in range(0, ny, rows):
-                segm_out[r0:r0 + rows] = lut[np.asarray(segm_out[r0:r0 + rows])]
+                out = segm_file.array("SEGM") if segm_file else segm_out
+                out[r0:r0 + rows] = lut[np.asarray(out[r0:r0 + rows])]
+                del out
     return cat
 
 
@@ -436,10 +467,7 @@ def run_detection(run_dir, sc, bands, prov) -> dict:
         out = run_dir / f"detections_{name}.fits"
         with section_files([(out, [spec], [("BAND", name, "simfield band name")])],
                            prov) as (sf,):
-            segm = sf.array("SEGM")
-            cat = detect_mosaic(mpath, segm, cfg, fwhm)
-            segm.flush()
-            del segm
+            cat = detect_mosaic(mpath, sf, cfg, fwhm)
             cat.meta.update({"BAND": name})
             tab = fits.BinTableHDU(cat, name="DETECTIONS")
             for key, value, comment in prov.header_cards():
