@@ -400,3 +400,56 @@ def test_cli_scores_a_catalogue(run_dir, tmp_path):
     rc = score_main_args([str(path), "--catalog", str(path / "cat.ecsv"), "--band", BAND,
                           "--radius", "0.1", "--out", str(out), "--no-report"])
     assert rc == 0 and json.loads((out / "summary.json").read_text())["match_radius_arcsec"] == 0.1
+
+
+# ------------------------------------------------------------------------------ bounded memory
+def test_load_truth_maps_images_and_reads_them_like_astropy(run_dir):
+    """load_truth returns memory maps (no float64 / int64 copies) whose values at any pixel
+    equal astropy.io.fits' reading of the files."""
+    from simfield.score.run import load_truth, pixel_values
+
+    path, _ = run_dir
+    t = load_truth(path, BAND)
+    for key, fname, ext in (("sci", "mosaic", "SCI"), ("dq", "mosaic", "DQ"),
+                            ("segm", "truth_image", "SEGM")):
+        assert isinstance(t[key], np.memmap), key
+        assert t[key].dtype.itemsize == 4, key
+        ref = fits.getdata(path / f"{fname}_{BAND}.fits", ext)
+        assert_array_equal(np.asarray(t[key]), ref)
+    assert t["shape"] == (300, 300)
+    rng = np.random.default_rng(2)
+    x, y = rng.uniform(-3, 303, 50), rng.uniform(-3, 303, 50)
+    ref = fits.getdata(path / f"truth_image_{BAND}.fits", "SEGM")
+    ix, iy = np.clip(np.round(x).astype(int), 0, 299), np.clip(np.round(y).astype(int), 0, 299)
+    assert_array_equal(pixel_values(t["segm"], x, y), ref[iy, ix])
+
+
+def test_flagged_pixel_makes_an_unmatched_detection_an_artefact(tmp_path):
+    """A detection on a pixel whose saturation bit is set is an artefact (rule 1 wins over the
+    others), read from the DQ map at that pixel alone; an unflagged bit (cosmic ray) is not."""
+    g, *_ = _make_run(tmp_path)
+    with fits.open(tmp_path / f"mosaic_{BAND}.fits", mode="update") as hl:
+        hl["DQ"].data[100, 40] = 8  # saturated
+        hl["DQ"].data[100, 260] = 4  # cosmic ray, repaired
+    ra, dec = g.pixel_to_sky(np.array([40.0, 260.0]), np.array([100.0, 100.0]))
+    cat = Table({"ra": ra, "dec": dec, "mag": [27.0, 27.0]})
+    score_run(tmp_path, cat, BAND, ScoreConfig(report=False), tmp_path / "s")
+    ft = Table.read(tmp_path / "s" / "false_detections.ecsv")
+    x, y = g.sky_to_pixel(ft["ra"], ft["dec"])
+    assert ft["cause"][np.argmin(np.hypot(x - 40, y - 100))] == "artefact"
+    assert ft["cause"][np.argmin(np.hypot(x - 260, y - 100))] != "artefact"
+
+
+def test_colour_preview_is_the_strided_whole_image_preview(run_dir):
+    """The preview read by strided rows of the memory map equals the one computed from the
+    whole image read by astropy and subsampled (every step-th pixel)."""
+    from simfield.score.report import _colour_preview, _stretch
+
+    path, _ = run_dir
+    rgb, used = _colour_preview(path, max_side=70)
+    full = np.nan_to_num(fits.getdata(path / f"mosaic_{BAND}.fits", "SCI").astype(float))
+    c = full[::5, ::5]  # ceil(300 / 70) = 5
+    med = np.median(c)
+    mad = 1.4826 * np.median(np.abs(c - med))
+    assert used == [BAND] * 3 and rgb.shape == (60, 60, 3)
+    assert_allclose(rgb[..., 0], _stretch(c, med - mad, med + 200 * mad), rtol=0, atol=1e-12)
