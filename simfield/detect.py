@@ -6,6 +6,11 @@ matched filter (a circular Gaussian of the PSF FWHM), a segmentation of the filt
 photutils and of similar detectors), deblending by multi-thresholding, then photometry in a
 circular aperture, in the isophotal footprint and in a Kron aperture.
 
+:func:`detect_sources` works on arrays in memory; :func:`detect_mosaic` runs it on a mosaic file
+tile by tile (cores of at most :data:`TILE_CORE_PIX` with :data:`TILE_MARGIN_PIX` of overlap),
+so memory is bounded by the tile, not the mosaic; :func:`run_detection` writes the catalogue and
+the segmentation (by sections) of each detected band of a run.
+
 Units: images in e-/s, the inverse-variance weight in (e-/s)^-2, fluxes in e-/s (and nJy),
 magnitudes AB, pixel positions 0-based (pixel centre at integers, see :mod:`simfield.grid`).
 """
@@ -345,7 +350,7 @@ def detect_mosaic(path, segm_out, cfg: DetectionConfig, psf_fwhm_arcsec: float,
         ty = tile_bounds(ny, core, margin, box)
         tx = tile_bounds(nx, core, margin, box)
         one = len(ty) == 1 and len(tx) == 1
-        kept, provisional = [], []  # per tile: kept catalogue; (offset, labels, x, y) of others
+        kept, provisional = [], []  # per tile: kept rows; (label offset, labels, kept, x, y)
         offset = 0
         for ylo, y0, y1, yhi in ty:
             for xlo, x0, x1, xhi in tx:
