@@ -202,11 +202,7 @@ class SectionFile:
 
 
 def _extension_header(spec: ImageSpec, prov: Provenance) -> fits.Header:
-    dtype = np.dtype(spec.dtype)
-    if dtype not in _BITPIX:
-        raise ValueError(f"ImageSpec {spec.name}: dtype {dtype} not one of "
-                         f"{', '.join(str(d) for d in _BITPIX)}")
-    hdu = fits.ImageHDU(np.zeros((1, 1), dtype), name=spec.name)
+    hdu = fits.ImageHDU(np.zeros((1, 1), np.dtype(spec.dtype)), name=spec.name)
     h = hdu.header
     h["NAXIS1"] = int(spec.shape[1])
     h["NAXIS2"] = int(spec.shape[0])
@@ -263,6 +259,11 @@ def section_files(items: Sequence[tuple[str | os.PathLike, Sequence[ImageSpec],
     a whole image; when the block succeeds all files are flushed and renamed into place, and if
     it fails none is left (the temporary files are removed), as with :func:`atomic_path`.
     """
+    for _, specs, _ in items:  # refuse bad specs before anything is written
+        for spec in specs:
+            if np.dtype(spec.dtype) not in _BITPIX:
+                raise ValueError(f"ImageSpec {spec.name}: dtype {np.dtype(spec.dtype)} not one "
+                                 f"of {', '.join(str(d) for d in _BITPIX)}")
     files: list[SectionFile] = []
     try:
         for path, specs, cards in items:
@@ -271,7 +272,12 @@ def section_files(items: Sequence[tuple[str | os.PathLike, Sequence[ImageSpec],
             fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=path.parent)
             os.close(fd)
             os.chmod(tmp, 0o666 & ~_UMASK)
-            files.append(SectionFile(Path(tmp), path, _create(Path(tmp), specs, prov, cards)))
+            try:
+                layout = _create(Path(tmp), specs, prov, cards)
+            except BaseException:
+                os.unlink(tmp)
+                raise
+            files.append(SectionFile(Path(tmp), path, layout))
         yield files
         for f in files:
             os.replace(f.path, f.final)

@@ -20,7 +20,7 @@ import dataclasses
 
 import numpy as np
 import pytest
-from numpy.testing import assert_allclose
+from numpy.testing import assert_allclose, assert_array_equal
 from scipy import ndimage
 
 from simfield import detector as dt
@@ -259,3 +259,18 @@ def test_bad_input_raises():
     with pytest.raises(ConfigError, match="rate"):
         dt.expose(-np.ones((10, 10)), 0.1, None, det, 10.0, 18.0, np.random.default_rng(0),
                   fixed)
+
+
+def test_fixed_pattern_window_does_not_depend_on_the_window():
+    """A pixel's flat and bad-pixel values are the same whichever window asks (common practice:
+    a detector's fixed pattern is a property of the pixel)."""
+    det = _det(hot_pixel_fraction=1e-2, dead_pixel_fraction=1e-2)
+    big = dt.fixed_pattern_window(det, 7, 100, 700, 50, 600)
+    small = dt.fixed_pattern_window(det, 7, 250, 530, 300, 310)
+    cut = (slice(150, 430), slice(250, 260))
+    for name in ("flat", "flat_cal", "hot", "hot_dark", "dead"):
+        assert_array_equal(getattr(small, name), getattr(big, name)[cut])
+    other = dt.fixed_pattern_window(det, 8, 250, 530, 300, 310)
+    assert not np.array_equal(other.flat, small.flat)
+    with pytest.raises(ConfigError, match="window"):
+        dt.fixed_pattern_window(det, 7, 10, 10, 0, 5)

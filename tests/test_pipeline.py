@@ -212,3 +212,25 @@ def test_external_catalogue_scores_like_the_built_in_path(run, tmp_path):
                             "--out", str(tmp_path / "s2")]) == 0
     again = json.loads((tmp_path / "s2" / "summary.json").read_text())
     assert again["n_matched"] == own["n_matched"]
+
+
+def test_tiling_changes_no_truth_and_leaves_no_seams(tmp_path):
+    """Cutting the field into 4 x 4 tiles gives the same noiseless truth image and segmentation
+    as one tile, and no weight rim along tile seams (common practice: a mosaic must not show
+    how it was computed)."""
+    one = run_scenario(small_scenario(tmp_path, "detection.enabled=false"), tmp_path / "one")
+    many = run_scenario(small_scenario(tmp_path, "detection.enabled=false",
+                                       "survey.tile_pixels=64"), tmp_path / "many")
+    b = "b23"
+    with fits.open(one.out_dir / f"truth_image_{b}.fits") as a, \
+            fits.open(many.out_dir / f"truth_image_{b}.fits") as c:
+        sa, sc_ = a["SCI"].data, c["SCI"].data
+        assert_allclose(sc_, sa, rtol=0, atol=1e-6 * sa.max())
+        assert np.array_equal(a["SEGM"].data, c["SEGM"].data)
+    with fits.open(many.out_dir / f"mosaic_{b}.fits") as m:
+        wht = m["WHT"].data
+    # 250 px in 4 tiles cut at 62, 125, 188: the columns on either side of each seam
+    seams = np.array([61, 62, 124, 125, 187, 188])
+    inner = np.setdiff1d(np.arange(3, 247), np.concatenate([seams - 1, seams, seams + 1]))
+    ratio = np.median(wht[3:-3, seams]) / np.median(wht[3:-3, inner])
+    assert 0.97 < ratio < 1.03

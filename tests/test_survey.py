@@ -295,3 +295,44 @@ def test_bad_arguments_raise():
         sv.drizzle_mosaic([e, e], [g], g, "square", 0.8)
     with pytest.raises(ConfigError, match="scene"):
         sv.sample_scene(np.zeros((5, 5)), g, g)
+
+
+def test_grid_window_matches_astropy_wcs_slicing():
+    """A window's WCS equals astropy's slice of the parent WCS (astropy.wcs slicing)."""
+    g = Grid(nx=300, ny=200, scale=0.04, ra0=150.0, dec0=2.0, roll_deg=17.0, xi0=1.3, eta0=-0.7)
+    w = g.window(40, 25, 100, 60)
+    ref = g.wcs[25:85, 40:140]
+    x, y = np.meshgrid([0.0, 17.5, 99.0], [0.0, 33.0, 59.0])
+    assert_allclose(w.wcs.all_pix2world(x, y, 0), ref.all_pix2world(x, y, 0), atol=1e-11, rtol=0)
+
+
+@pytest.mark.parametrize("roll", [0.0, 25.0])
+def test_tiles_partition_mosaic_and_detector_pixels(roll):
+    """Tiles cover every mosaic pixel once, each exposure window covers its tile (with room for
+    a drizzle drop), and every detector pixel is owned by exactly one tile (common practice)."""
+    srv = dataclasses.replace(SMALL, width_arcsec=12.0, height_arcsec=9.0, roll_deg=roll,
+                              mosaic_pixel_arcsec=0.04)
+    eg = sv.exposure_grids(srv, TEL, np.random.default_rng(2))
+    mg, sg = sv.mosaic_grid(srv), sv.scene_grid(srv, TEL)
+    tiles = sv.plan_tiles(mg, eg, sg, 100)
+    hits = np.zeros(mg.shape, int)
+    owned = [np.zeros(g.shape, int) for g in eg]
+    for t in tiles:
+        y0, y1, x0, x1 = t.mosaic
+        hits[y0:y1, x0:x1] += 1
+        for k, (ey0, ey1, ex0, ex1) in enumerate(t.exposures):
+            owned[k][ey0:ey1, ex0:ex1] += sv.owned_pixels(t, k, mg)
+            # the tile's mosaic pixel corners land inside the exposure window, 1 pixel in
+            cx, cy = np.meshgrid([x0 - 0.5, x1 - 0.5], [y0 - 0.5, y1 - 0.5])
+            px, py = t.egrids[k].offsets_to_pixel(*mg.pixel_to_offsets(cx, cy))
+            assert px.min() > 0.5 and px.max() < t.egrids[k].nx - 1.5
+            assert py.min() > 0.5 and py.max() < t.egrids[k].ny - 1.5
+        # the scene window lies under every exposure window
+        for g in t.egrids:
+            ex, ey = np.meshgrid([-0.5, g.nx - 0.5], [-0.5, g.ny - 0.5])
+            qx, qy = t.sgrid.offsets_to_pixel(*g.pixel_to_offsets(ex, ey))
+            assert qx.min() >= -0.5 and qx.max() <= t.sgrid.nx - 0.5
+            assert qy.min() >= -0.5 and qy.max() <= t.sgrid.ny - 0.5
+    assert len(tiles) == 9 and np.all(hits == 1)
+    for o in owned:
+        assert np.all(o == 1)

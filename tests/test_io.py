@@ -1,0 +1,63 @@
+"""Tests of simfield.io: FITS images written by sections.
+
+Comparison to outside sources: astropy.io.fits reads and verifies the files (the FITS standard
+4.0, Pence et al. 2010, A&A 524, A42: 2880-byte records, big-endian data); numpy holds the
+expected arrays.
+"""
+
+import numpy as np
+import pytest
+from astropy.io import fits
+from astropy.wcs import WCS
+from numpy.testing import assert_array_equal
+
+from simfield.grid import Grid
+from simfield.io import ImageSpec, Provenance, section_files
+
+PROV = Provenance(3, "0123456789abcdef", "seed: 3\n")
+
+
+def test_sections_read_back_through_astropy(tmp_path):
+    """Sections written through the memory maps read back with astropy, headers intact."""
+    g = Grid(70, 45, 0.04, 150.0, 2.0)
+    hdr = g.wcs.to_header()
+    hdr["BUNIT"] = "electron/s"
+    specs = [ImageSpec("SCI", g.shape, np.float32, hdr), ImageSpec("DQ", g.shape, np.int32,
+                                                                    [("BUNIT", "", "bits")])]
+    rng = np.random.default_rng(0)
+    sci = rng.normal(size=g.shape).astype(np.float32)
+    dq = rng.integers(0, 64, g.shape).astype(np.int32)
+    with section_files([(tmp_path / "m.fits", specs, [("BAND", "b10", "band")])], PROV) as (f,):
+        for y0 in range(0, g.ny, 20):  # in strips, as tiles do
+            f.array("SCI")[y0:y0 + 20, :30] = sci[y0:y0 + 20, :30]
+            f.array("SCI")[y0:y0 + 20, 30:] = sci[y0:y0 + 20, 30:]
+        f.array("DQ")[:] = dq
+    with fits.open(tmp_path / "m.fits") as hl:
+        hl.verify("exception")
+        assert_array_equal(hl["SCI"].data, sci)
+        assert_array_equal(hl["DQ"].data, dq)
+        assert hl[0].header["BAND"] == "b10" and hl[0].header["SIMFSEED"] == 3
+        assert hl["SCI"].header["BUNIT"] == "electron/s"
+        w = WCS(hl["SCI"].header)
+        assert np.allclose(w.all_pix2world(3.0, 4.0, 0), g.pixel_to_sky(3.0, 4.0), atol=1e-10)
+    assert list(tmp_path.iterdir()) == [tmp_path / "m.fits"]
+
+
+def test_failure_leaves_no_file(tmp_path):
+    """An error inside the block removes every partly written file (common practice)."""
+    specs = [ImageSpec("SCI", (10, 10), np.float32)]
+    with pytest.raises(RuntimeError, match="stop"):
+        with section_files([(tmp_path / "a.fits", specs, []), (tmp_path / "b.fits", specs, [])],
+                           PROV) as files:
+            files[0].array("SCI")[:] = 1.0
+            raise RuntimeError("stop")
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_unsupported_dtype_refused(tmp_path):
+    """A dtype FITS cannot hold without scaling is refused by name."""
+    with pytest.raises(ValueError, match="uint32"):
+        with section_files([(tmp_path / "a.fits", [ImageSpec("X", (4, 4), np.uint32)], [])],
+                           PROV):
+            pass
+    assert list(tmp_path.iterdir()) == []
