@@ -7,20 +7,27 @@ convolution, and time / peak memory against field size and number of sources.
     python benchmarks/bench_scale.py default          # the default scenario in a subprocess
     python benchmarks/bench_scale.py sizes            # field size and source count series
     python benchmarks/bench_scale.py sizes --sizes 20 160 --densities 1000
+    python benchmarks/bench_scale.py area             # default survey at 1x, 4x, 16x the area
+    python benchmarks/bench_scale.py area --areas 1 4 # ... only some of them
 
 Each scenario runs in its own subprocess so that its peak memory (max RSS, from
-``resource.getrusage(RUSAGE_CHILDREN)`` after it exits) is its own. Not a test: it prints
-figures for the notes and for comparing changes.
+``resource.getrusage(RUSAGE_CHILDREN)`` after it exits) is its own. The area series also
+samples the whole process tree (the run and its tile workers) every 0.25 s and reports the
+peak of the summed proportional set size (PSS: pages shared between forked processes are
+split between them, so the sum is the machine's memory in use). Not a test: it prints figures
+for the notes and for comparing changes.
 """
 
 from __future__ import annotations
 
 import argparse
 import json
+import os
 import resource
 import subprocess
 import sys
 import tempfile
+import threading
 import time
 from pathlib import Path
 
@@ -54,7 +61,33 @@ def _child(overrides: list[str]) -> None:
     }))
 
 
-def run_child(overrides: list[str]) -> dict:
+def _tree_pss_mb(root: int) -> float:
+    """Summed PSS (MB) of process ``root`` and all its descendants (Linux /proc)."""
+    children: dict[int, list[int]] = {}
+    for d in os.listdir("/proc"):
+        if d.isdigit():
+            try:
+                with open(f"/proc/{d}/stat") as f:
+                    ppid = int(f.read().rsplit(")", 1)[1].split()[1])
+            except OSError:
+                continue
+            children.setdefault(ppid, []).append(int(d))
+    total, todo = 0.0, [root]
+    while todo:
+        pid = todo.pop()
+        todo.extend(children.get(pid, []))
+        try:
+            with open(f"/proc/{pid}/smaps_rollup") as f:
+                for line in f:
+                    if line.startswith("Pss:"):
+                        total += int(line.split()[1]) / 1024
+                        break
+        except OSError:
+            pass
+    return total
+
+
+def run_child(overrides: list[str], sample_tree: bool = False) -> dict:
     """Run a scenario in a subprocess: its figures, process wall time and peak RSS (MB).
 
     Peak RSS comes from GNU time (``/usr/bin/time -f %M``) when installed, otherwise from
@@ -67,8 +100,22 @@ def run_child(overrides: list[str]) -> dict:
         if gtime.exists():
             cmd = [str(gtime), "-f", "%M", "-o", f.name, *cmd]
         t0 = time.perf_counter()
-        r = subprocess.run(cmd, cwd=ROOT, capture_output=True, text=True)
+        proc = subprocess.Popen(cmd, cwd=ROOT, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                                text=True)
+        peak = [0.0]
+        done = threading.Event()
+
+        def sample():
+            while not done.wait(0.25):
+                peak[0] = max(peak[0], _tree_pss_mb(proc.pid))
+
+        sampler = threading.Thread(target=sample, daemon=True)
+        if sample_tree:
+            sampler.start()
+        stdout, stderr = proc.communicate()
+        done.set()
         wall = time.perf_counter() - t0
+        r = subprocess.CompletedProcess(cmd, proc.returncode, stdout, stderr)
         if r.returncode != 0:
             raise RuntimeError(f"scenario {overrides} failed:\n{r.stderr[-3000:]}")
         if gtime.exists():
@@ -79,6 +126,8 @@ def run_child(overrides: list[str]) -> dict:
     out = json.loads(line[len("RESULT "):])
     out["max_rss_mb"] = rss_kb / 1024  # Linux reports kB
     out["process_s"] = wall
+    if sample_tree:
+        out["peak_tree_pss_mb"] = peak[0]
     return out
 
 
@@ -113,6 +162,25 @@ def bench_sizes(sizes=(10, 20, 40, 80), densities=(500, 2000, 8000, 32000)) -> N
         print(f"  {dens:11.0f} {r['n_sources']:8d} {r['wall_s']:8.1f} "
               f"{t.get('stamps', float('nan')):8.2f} {t.get('scene', float('nan')):8.2f} "
               f"{t.get('detect', float('nan')):8.2f} {r['max_rss_mb']:8.0f}")
+
+
+def bench_area(areas=(1, 4, 16)) -> None:
+    """The default scenario with the field side scaled by sqrt(area factor)."""
+    print("== default scenario vs field area (side x sqrt(k)), one subprocess each")
+    print(f"  {'k':>4s} {'side(as)':>8s} {'sources':>8s} {'run s':>8s} {'s/k':>7s} "
+          f"{'tiles s':>8s} {'detect s':>8s} {'score s':>8s} {'maxRSS MB':>9s} {'tree PSS MB':>11s}")
+    first = None
+    for k in areas:
+        side = 100.0 * float(k) ** 0.5
+        r = run_child([f"survey.width_arcsec={side:g}", f"survey.height_arcsec={side:g}"],
+                      sample_tree=True)
+        t = r["timings_s"]
+        first = first or r["wall_s"] / k
+        print(f"  {k:4g} {side:8.0f} {r['n_sources']:8d} {r['wall_s']:8.1f} "
+              f"{r['wall_s'] / k:7.1f} {t.get('tiles', float('nan')):8.1f} "
+              f"{t.get('detect', float('nan')):8.1f} {t.get('score', float('nan')):8.1f} "
+              f"{r['max_rss_mb']:9.0f} {r['peak_tree_pss_mb']:11.0f}", flush=True)
+    print("  (s/k constant = run time linear in area; tree PSS = all processes together)")
 
 
 # --------------------------------------------------------------------------------------------
@@ -236,8 +304,10 @@ def main(argv: list[str]) -> None:
         _child(argv[1:])
         return
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    p.add_argument("what", nargs="*", default=["default", "scene", "sizes"],
-                   choices=["default", "scene", "sizes"])
+    p.add_argument("what", nargs="*", default=["default", "scene", "sizes", "area"],
+                   choices=["default", "scene", "sizes", "area"])
+    p.add_argument("--areas", type=float, nargs="+", default=[1, 4, 16],
+                   help="field area factors of the area series (default field = 1)")
     p.add_argument("--n", type=int, default=200, help="galaxies in the scene comparison")
     p.add_argument("--sizes", type=float, nargs="+", default=[10, 20, 40, 80],
                    help="field sides (arcsec) of the size series")
@@ -249,6 +319,8 @@ def main(argv: list[str]) -> None:
             bench_default()
         elif what == "scene":
             bench_scene(a.n)
+        elif what == "area":
+            bench_area(a.areas)
         else:
             bench_sizes(a.sizes, a.densities)
 
