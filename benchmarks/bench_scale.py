@@ -3,7 +3,7 @@ convolution, and time / peak memory against field size and number of sources.
 
     python benchmarks/bench_scale.py                  # everything (several minutes on 2 cores)
     python benchmarks/bench_scale.py scene            # renderer vs naive GalSim only
-    python benchmarks/bench_scale.py scene --n 400    # ... with 400 galaxies
+    python benchmarks/bench_scale.py scene --side 40  # ... on a 40" x 40" field
     python benchmarks/bench_scale.py default          # the default scenario in a subprocess
     python benchmarks/bench_scale.py sizes            # field size and source count series
     python benchmarks/bench_scale.py sizes --sizes 20 160 --densities 1000
@@ -186,117 +186,117 @@ def bench_area(areas=(1, 4, 16)) -> None:
 # --------------------------------------------------------------------------------------------
 # scene renderer against naive per-object convolution
 # --------------------------------------------------------------------------------------------
-def _psf_image(scale: float):
-    """The default telescope's b17 core PSF at the scene scale (project optics), or a GalSim
-    Airy when the optics stage is unavailable."""
+def bench_scene(side_arcsec: float = 24.0, seed: int = 11) -> None:
+    """The renderer against per-object galsim.Convolve on the default population, every band.
+
+    Both draw the same sources (the default light cone over a ``side_arcsec`` square: galaxies
+    from ``make_profile`` and stars) with the same band core PSFs (the default telescope's,
+    sampled at scene-pixel centres as the pipeline uses them). simfield: unit stamps once
+    (``draw_source_stamp``), then per band ``accumulate`` + ``convolve_tiled``. Naive: per band
+    and per source, ``galsim.Convolve(profile, InterpolatedImage(psf)).drawImage``.
+    """
     import galsim
 
-    try:
-        from simfield.bands import make_band
-        from simfield.optics.psf import cached_band_psf
-        from tests.conftest import make_scenario
+    from simfield.optics.psf import cached_band_psf
+    from simfield.pipeline import make_bands
+    from simfield.population.lightcone import make_population
+    from simfield.population.morphology import make_profile
+    from simfield.random import stream
+    from simfield.scene import accumulate, convolve_tiled, draw_source_stamp
+    from tests.conftest import make_scenario
 
-        sc = make_scenario()
-        tel = sc.telescope
-        b = next(b for b in tel.bands if b.name == "b17")
-        band = make_band(b.name, b.center_nm, b.width_nm, b.throughput, b.sky_mjy_sr)
-        psf = cached_band_psf(tel, band, scale, tel.psf.core_radius_arcsec, sc.seed)
-        return np.asarray(psf.image, float), "simfield optics, b17 core, pixel-integrated"
-    except ImportError:
-        lam_over_d = 1700e-9 / 6.0 * 206264.806
-        img = galsim.Airy(lam_over_d=lam_over_d, obscuration=0.13).drawImage(
-            nx=151, ny=151, scale=scale).array
-        return img / img.sum(), "galsim.Airy 1700 nm / 6 m (optics stage not importable)"
-
-
-def bench_scene(n: int = 200, side_arcsec: float = 16.0, seed: int = 11) -> None:
-    """draw_stamps + accumulate + convolve_tiled against per-object galsim.Convolve."""
-    import galsim
-
-    from simfield.scene import (accumulate, convolve_tiled, draw_stamps, stamp_half_size,
-                                supersampling)
-
-    scale = 0.02  # arcsec per scene pixel (the default 0.04" detector pixel / 2)
+    sc = make_scenario()
+    tel = sc.telescope
+    bands = make_bands(sc)
+    scale = tel.pixel_scale_arcsec / sc.survey.scene_oversample
     npix = int(round(side_arcsec / scale))
-    psf, psf_desc = _psf_image(scale)
-    rng = np.random.default_rng(seed)
-    x = rng.uniform(20, npix - 20, n)
-    y = rng.uniform(20, npix - 20, n)
-    hlr = np.exp(rng.normal(np.log(0.12), 0.6, n)).clip(0.02, 1.0)  # arcsec
-    sersic_n = rng.choice([0.8, 1.0, 1.5, 2.5, 4.0], n)  # few values: GalSim tabulates per n
-    e = rng.uniform(0, 0.6, n)
-    beta = rng.uniform(0, np.pi, n)
-    flux = 10 ** rng.uniform(-1, 2, n)  # e-/s
-    profiles = [galsim.Sersic(n=float(sn), half_light_radius=float(r), trunc=float(10 * r),
-                              flux_untruncated=True)
-                .shear(e=float(ei), beta=float(b) * galsim.radians)
-                for sn, r, ei, b in zip(sersic_n, hlr, e, beta)]
+    h = side_arcsec / 2
+    src = make_population(sc.population, bands, (-h, h), (-h, h), stream(seed, "population"))
+    src = src[np.isin(np.asarray(src["kind"]).astype(str), ("galaxy", "star"))]
+    n = len(src)
+    x = np.asarray(src["x_arcsec"], float) / scale + (npix - 1) / 2  # columns along +xi here
+    y = np.asarray(src["y_arcsec"], float) / scale + (npix - 1) / 2
+    rhalf = np.nan_to_num(np.asarray(src["r_half"], float))
+    profiles = [make_profile(src[i], sc.seed) for i in range(n)]
+    psfs = {b.name: np.asarray(cached_band_psf(tel, b, scale, tel.psf.core_radius_arcsec,
+                                               sc.seed, pixel_integrated=False).image, float)
+            for b in bands}
+    rates = {b.name: np.nan_to_num(10 ** (-0.4 * (np.asarray(src[f"mag_{b.name}"], float)
+                                                  - b.zeropoint(tel.collecting_area_m2))))
+             for b in bands}
 
-    # simfield: unit stamps once, one image per band, one tiled FFT with the PSF
+    # warm GalSim's per-Sersic-index tables (real and Fourier space) for both methods alike:
+    # each galaxy has its own index, and whichever method ran first would pay for them
+    for p in profiles:
+        p.xValue(0.0, 0.0)
+        p.kValue(0.0, 0.0)
+        p.drawImage(nx=3, ny=3, scale=scale, method="no_pixel")
+
     t0 = time.perf_counter()
-    # stamp size and pixel sub-sampling chosen as the pipeline does
-    items = ((i, p, x[i], y[i], stamp_half_size(p, scale),
-              supersampling(hlr[i] / scale)) for i, p in enumerate(profiles))
-    stamps = draw_stamps(items, scale)
+    stamps = [draw_source_stamp(None if src["kind"][i] == "star" else profiles[i], x[i], y[i],
+                                scale, rhalf[i] / scale, i) for i in range(n)]
     t_stamps = time.perf_counter() - t0
-    t1 = time.perf_counter()
-    fast = convolve_tiled(accumulate(stamps, flux, (npix, npix)), psf)
-    t_conv = time.perf_counter() - t1
-    t_fast = time.perf_counter() - t0
+    fast, t_band = {}, {}
+    for b in bands:
+        t1 = time.perf_counter()
+        fast[b.name] = convolve_tiled(accumulate(stamps, rates[b.name], (npix, npix)),
+                                      psfs[b.name].astype(np.float32))
+        t_band[b.name] = time.perf_counter() - t1
 
-    # naive: every galaxy convolved with the PSF on its own, GalSim does the FFT per object
-    t0 = time.perf_counter()
-    ii = galsim.InterpolatedImage(galsim.ImageD(psf, scale=scale))
-    full = galsim.ImageD(npix, npix, scale=scale)  # bounds 1..npix: 0-based pixel i is i+1
-    for i, p in enumerate(profiles):
-        conv = galsim.Convolve(p.withFlux(float(flux[i])), ii)
-        # the PSF image already integrates over scene pixels: sample, do not add a pixel again
-        stamp = conv.drawImage(scale=scale, method="no_pixel",
-                               center=galsim.PositionD(x[i] + 1, y[i] + 1))
-        b = stamp.bounds & full.bounds
-        if b.isDefined():
-            full[b] += stamp[b]
-    naive = full.array
-    t_naive = time.perf_counter() - t0
+    naive, t_naive = {}, {}
+    for b in bands:
+        t1 = time.perf_counter()
+        ii = galsim.InterpolatedImage(galsim.ImageD(psfs[b.name], scale=scale))
+        full = galsim.ImageD(npix, npix, scale=scale)  # bounds 1..npix: 0-based pixel i is i+1
+        for i, p in enumerate(profiles):
+            f = float(rates[b.name][i])
+            if f <= 0:
+                continue
+            # the PSF is sampled at pixel centres; the pixel box is GalSim's own (method auto)
+            st = galsim.Convolve(p.withFlux(f), ii).drawImage(
+                scale=scale, center=galsim.PositionD(x[i] + 1, y[i] + 1))
+            bb = st.bounds & full.bounds
+            if bb.isDefined():
+                full[bb] += st[bb]
+        naive[b.name] = full.array
+        t_naive[b.name] = time.perf_counter() - t1
 
-    print(f"== scene renderer vs naive per-object convolution ({n} Sersic galaxies, "
-          f"{npix}x{npix} scene pixels of {scale}\", PSF {psf.shape[0]}x{psf.shape[1]}: "
-          f"{psf_desc})")
-    print(f"  simfield: stamps {t_stamps:.2f} s + accumulate/convolve {t_conv:.2f} s "
-          f"= {t_fast:.2f} s")
-    print(f"  naive galsim.Convolve(profile, InterpolatedImage(psf)) per object: {t_naive:.2f} s")
-    print(f"  speed-up naive / simfield: {t_naive / t_fast:.1f}x "
-          f"(per-band cost after the stamps: {t_naive / t_conv:.0f}x)")
-    nb = 5  # the default telescope's bands: stamps are drawn once, convolution once per band
-    print(f"  for {nb} bands: simfield {t_stamps + nb * t_conv:.2f} s, naive {nb * t_naive:.2f} s, "
-          f"speed-up {nb * t_naive / (t_stamps + nb * t_conv):.1f}x")
-    tot_f, tot_n = fast.sum(), naive.sum()
-    print(f"  total flux: simfield {tot_f:.4f}  naive {tot_n:.4f}  input {flux.sum():.4f} e-/s; "
-          f"simfield/naive - 1 = {tot_f / tot_n - 1:+.2e}")
-    # per-galaxy flux in a 0.3" radius aperture around each centre, both images
-    yy, xx = np.mgrid[:npix, :npix]
+    tf = t_stamps + sum(t_band.values())
+    tn = sum(t_naive.values())
+    first = bands[0].name
+    print(f"== scene renderer vs naive per-object convolution: default population, {n} sources "
+          f"in {side_arcsec:g}\" x {side_arcsec:g}\" ({npix}^2 scene pixels of {scale:g}\"), "
+          f"{len(bands)} bands, core PSFs {psfs[first].shape[0]}^2")
+    print(f"  simfield: stamps {t_stamps:.2f} s ({1e3 * t_stamps / n:.2f} ms/source) + "
+          f"accumulate/convolve {sum(t_band.values()):.2f} s over {len(bands)} bands = {tf:.2f} s")
+    print(f"  naive: {tn:.2f} s ({1e3 * tn / (n * len(bands)):.2f} ms per source per band)")
+    print(f"  speed-up, all bands: {tn / tf:.1f}x; one band incl. stamps: "
+          f"{t_naive[first] / (t_stamps + t_band[first]):.1f}x; per band after the stamps: "
+          f"{np.mean([t_naive[k] / t_band[k] for k in t_band]):.0f}x")
+    for b in bands:
+        a, c = fast[b.name], naive[b.name]
+        inner = (slice(80, -80), slice(80, -80))  # away from the image edge (1.6")
+        print(f"  {b.name}: total flux simfield/naive - 1 = {a.sum() / c.sum() - 1:+.2e} "
+              f"(inside 1.6\" of the edge {a[inner].sum() / c[inner].sum() - 1:+.2e}); "
+              f"max |diff| / peak = {np.abs(a - c).max() / c.max():.2e}")
+    # per-source flux in a 0.3" radius aperture, reddest band
+    last = bands[-1].name
+    a, c = fast[last], naive[last]
     rel = []
+    r_ap = 0.3 / scale
     for i in range(n):
-        sl = (slice(max(int(y[i]) - 20, 0), int(y[i]) + 21),
-              slice(max(int(x[i]) - 20, 0), int(x[i]) + 21))
-        m = (xx[sl] - x[i]) ** 2 + (yy[sl] - y[i]) ** 2 <= (0.3 / scale) ** 2
-        a, b_ = fast[sl][m].sum(), naive[sl][m].sum()
-        if b_ > 0:
-            rel.append(a / b_ - 1)
+        iy, ix = int(round(y[i])), int(round(x[i]))
+        if not (20 <= iy < npix - 20 and 20 <= ix < npix - 20):
+            continue
+        yy, xx = np.mgrid[iy - 16:iy + 17, ix - 16:ix + 17]
+        m = (xx - x[i]) ** 2 + (yy - y[i]) ** 2 <= r_ap ** 2
+        fa, fc = a[yy[m], xx[m]].sum(), c[yy[m], xx[m]].sum()
+        if fc > 0:
+            rel.append(fa / fc - 1)
     rel = np.asarray(rel)
-    print(f"  0.3\" aperture flux per galaxy, simfield/naive - 1: median {np.median(rel):+.2e}, "
-          f"68% range [{np.percentile(rel, 16):+.2e}, {np.percentile(rel, 84):+.2e}], "
-          f"max |.| {np.abs(rel).max():.2e}")
-    peak = naive.max()
-    diff = np.abs(fast - naive)
-    iy, ix = np.unravel_index(np.argmax(diff), diff.shape)
-    k = int(np.argmin((x - ix) ** 2 + (y - iy) ** 2))
-    print(f"  pixel residual: max |simfield - naive| / peak = {diff.max() / peak:.2e}, "
-          f"rms / peak = {np.sqrt(np.mean((fast - naive) ** 2)) / peak:.2e}")
-    print(f"  largest residual at pixel ({ix}, {iy}), galaxy {k}: Sersic n={sersic_n[k]:g}, "
-          f"r_half={hlr[k]:.3f}\" ({hlr[k] / scale:.1f} pix, sub-sampling "
-          f"{supersampling(hlr[k] / scale)}); there simfield {fast[iy, ix]:.4g}, naive "
-          f"{naive[iy, ix]:.4g} e-/s")
+    print(f"  {last}: 0.3\" aperture flux per source, simfield/naive - 1: median "
+          f"{np.median(rel):+.2e}, 68% range [{np.percentile(rel, 16):+.2e}, "
+          f"{np.percentile(rel, 84):+.2e}] (blends included)")
 
 
 def main(argv: list[str]) -> None:
@@ -308,7 +308,8 @@ def main(argv: list[str]) -> None:
                    choices=["default", "scene", "sizes", "area"])
     p.add_argument("--areas", type=float, nargs="+", default=[1, 4, 16],
                    help="field area factors of the area series (default field = 1)")
-    p.add_argument("--n", type=int, default=200, help="galaxies in the scene comparison")
+    p.add_argument("--side", type=float, default=24.0,
+                   help="field side (arcsec) of the scene comparison")
     p.add_argument("--sizes", type=float, nargs="+", default=[10, 20, 40, 80],
                    help="field sides (arcsec) of the size series")
     p.add_argument("--densities", type=float, nargs="+", default=[500, 2000, 8000, 32000],
@@ -318,7 +319,7 @@ def main(argv: list[str]) -> None:
         if what == "default":
             bench_default()
         elif what == "scene":
-            bench_scene(a.n)
+            bench_scene(a.side)
         elif what == "area":
             bench_area(a.areas)
         else:

@@ -32,7 +32,7 @@ from .io import (COMPLETE_MARKER, Provenance, section_files, write_fits, write_j
                  write_text)
 from .random import stream
 from .scene import (Stamp, accumulate, add_bright, convolve_tiled, dominant_source,
-                    draw_profile_stamp, draw_window, point_stamp, stamp_half_size, supersampling)
+                    draw_source_stamp, draw_window, point_stamp, stamp_half_size)
 
 __all__ = ["RunResult", "run_scenario", "make_bands", "SEGMENTATION_NSIGMA"]
 
@@ -611,8 +611,8 @@ def _draw_tile(ctx: _TileContext, acc_box, bright_box, bright_any: np.ndarray) -
         half = stamp_half_size(prof, sgrid.scale)
         if not overlaps(box, int(round(ypix[i])) - half, int(round(xpix[i])) - half, 2 * half + 1):
             continue
-        stamps.append(draw_profile_stamp(prof, xpix[i], ypix[i], sgrid.scale, half, int(i),
-                                         supersampling(float(rhalf[i]) / sgrid.scale)))
+        stamps.append(draw_source_stamp(prof, xpix[i], ypix[i], sgrid.scale,
+                                        float(rhalf[i]) / sgrid.scale, int(i)))
     return stamps
 
 
