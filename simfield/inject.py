@@ -32,8 +32,7 @@ from .errors import CatalogError
 from .grid import Grid
 from .io import COMPLETE_MARKER, Provenance, write_fits, write_table, write_text
 from .random import stream
-from .scene import (accumulate, convolve_tiled, dominant_source, draw_profile_stamp, point_stamp,
-                    stamp_half_size, supersampling)
+from .scene import accumulate, convolve_tiled, dominant_source, draw_stamps
 
 __all__ = ["read_image", "read_psf", "inject_into_image"]
 
@@ -191,16 +190,11 @@ def inject_into_image(image_path, sc: Scenario, band: str, out_dir, psf_path=Non
 
     # draw in image pixels: profile (xi, eta) -> pixel frame, J = scale * (d(xi,eta)/d(x,y))^-1
     frame = (scale * np.linalg.inv(jac)).ravel()
-    stamps = []
     kinds = np.asarray(sources["kind"]).astype(str)
-    for i, row in enumerate(sources):
-        if kinds[i] == "star":
-            stamps.append(point_stamp(float(row["x"]), float(row["y"]), i))
-            continue
-        prof = make_profile(row, sc.seed).transform(*frame)
-        half = stamp_half_size(prof, scale)
-        stamps.append(draw_profile_stamp(prof, float(row["x"]), float(row["y"]), scale, half,
-                                         i, supersampling(float(row["r_half"]) / scale)))
+    stamps = draw_stamps(
+        ((i, None if kinds[i] == "star" else make_profile(row, sc.seed).transform(*frame),
+          float(row["x"]), float(row["y"]), np.nan_to_num(float(row["r_half"])) / scale)
+         for i, row in enumerate(sources)), scale)
     rate = np.nan_to_num(10 ** (-0.4 * (np.asarray(sources[f"mag_{band}"], float) - zp)))
     model = convolve_tiled(accumulate(stamps, rate, sci.shape, dtype=np.float64), psf)
     np.maximum(model, 0.0, out=model)

@@ -32,7 +32,8 @@ from .io import (COMPLETE_MARKER, Provenance, section_files, write_fits, write_j
                  write_text)
 from .random import stream
 from .scene import (Stamp, accumulate, add_bright, convolve_tiled, dominant_source,
-                    draw_source_stamp, draw_window, point_stamp, stamp_half_size)
+                    STAMP_HALF_MAX, draw_source_stamp, draw_window, point_stamp,
+                    stamp_half_size)
 
 __all__ = ["RunResult", "run_scenario", "make_bands", "SEGMENTATION_NSIGMA"]
 
@@ -565,7 +566,7 @@ def _draw_tile(ctx: _TileContext, acc_box, bright_box, bright_any: np.ndarray) -
     z = np.asarray(sources["redshift"], float)
     rhalf = np.asarray(sources["r_half"], float)
     frame = sgrid.pixel_frame().ravel()  # (xi, eta) -> (column, row) directions
-    cap = 256  # largest stamp half-size (scene pixels), see scene.stamp_half_size
+    cap = STAMP_HALF_MAX
 
     def near(box, pad):
         return ((ypix >= box[0] - pad) & (ypix < box[1] + pad)
@@ -612,7 +613,7 @@ def _draw_tile(ctx: _TileContext, acc_box, bright_box, bright_any: np.ndarray) -
         if not overlaps(box, int(round(ypix[i])) - half, int(round(xpix[i])) - half, 2 * half + 1):
             continue
         stamps.append(draw_source_stamp(prof, xpix[i], ypix[i], sgrid.scale,
-                                        float(rhalf[i]) / sgrid.scale, int(i)))
+                                        float(rhalf[i]) / sgrid.scale, int(i), half))
     return stamps
 
 

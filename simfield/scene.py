@@ -31,6 +31,7 @@ __all__ = [
     "supersampling",
     "supersampled_radius",
     "stamp_half_size",
+    "STAMP_HALF_MAX",
     "draw_source_stamp",
     "draw_stamps",
     "accumulate",
@@ -94,7 +95,11 @@ def point_stamp(x: float, y: float, index: int) -> Stamp:
     return Stamp(img, iy, ix, index)
 
 
-def stamp_half_size(profile, scale: float, cap: int = 256) -> int:
+#: Largest stamp half-size (pixels) :func:`stamp_half_size` gives.
+STAMP_HALF_MAX = 256
+
+
+def stamp_half_size(profile, scale: float, cap: int = STAMP_HALF_MAX) -> int:
     """Half-size (pixels) of the stamp for a GalSim ``profile`` on pixels of ``scale``
     (arcsec): GalSim's good image size, at least 3 and at most ``cap``."""
     return int(np.clip(profile.getGoodImageSize(scale) // 2 + 1, 3, cap))
@@ -219,7 +224,7 @@ def draw_window(profile, x: float, y: float, scale: float, iy0: int, ix0: int, n
 
 
 def draw_source_stamp(profile, x: float, y: float, scale: float, r_half_pix: float,
-                      index: int) -> Stamp:
+                      index: int, half_size: int | None = None) -> Stamp:
     """A source's unit-flux stamp with the project's sampling rules: a point source
     (``profile`` None) split over 2 x 2 pixels (:func:`point_stamp`), else the profile drawn on
     :func:`stamp_half_size` pixels, its core sub-sampled (:func:`supersampling`,
@@ -235,10 +240,13 @@ def draw_source_stamp(profile, x: float, y: float, scale: float, r_half_pix: flo
         Half-light radius.
     index : int
         Source row.
+    half_size : int or None (pixels)
+        The stamp half-size if already known (None: :func:`stamp_half_size`).
     """
     if profile is None:
         return point_stamp(x, y, index)
-    return draw_profile_stamp(profile, x, y, scale, stamp_half_size(profile, scale), index,
+    half = stamp_half_size(profile, scale) if half_size is None else half_size
+    return draw_profile_stamp(profile, x, y, scale, half, index,
                               supersampling(r_half_pix),
                               core_radius=supersampled_radius(r_half_pix))
 
