@@ -172,7 +172,9 @@ def bench_area(areas=(1, 4, 16)) -> None:
     first = None
     for k in areas:
         side = 100.0 * float(k) ** 0.5
-        r = run_child([f"survey.width_arcsec={side:g}", f"survey.height_arcsec={side:g}"],
+        r = run_child([f"survey.width_arcsec={side:g}", f"survey.height_arcsec={side:g}",
+                       # the guard against mistaken huge fields scales with the field here
+                       f"population.max_sources={int(2e5 * max(1.0, k))}"],
                       sample_tree=True)
         t = r["timings_s"]
         first = first or r["wall_s"] / k

@@ -275,7 +275,7 @@ class Scenario:
     """One complete scenario: what simfield needs to make a field and score it."""
 
     seed: int = 0
-    workers: int = 0  #: processes for the per-band stages; 0: one per core (at most one per band)
+    workers: int = 0  #: processes for the mosaic tiles; 0: one per core (at most one per tile)
     telescope: TelescopeConfig = MISSING
     population: PopulationConfig = MISSING
     lens: LensConfig = MISSING

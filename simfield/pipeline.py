@@ -320,6 +320,9 @@ def _render_tile(ctx: _TileContext, i: int) -> dict:
     hk = max(p.image.shape[0] // 2 for p in ctx.psf_core.values())
     hw = max(p.image.shape[0] // 2 for p in ctx.psf_wide.values())
     acc_box = _grow(tile.scene, hk, sgrid.shape)
+    # start on a multiple of 4 scene pixels, like the scene windows, so the lensing node grid
+    # of every tile's window is the same lattice (lensed stamps then agree across seams)
+    acc_box = (acc_box[0] // 4 * 4, acc_box[1], acc_box[2] // 4 * 4, acc_box[3])
     bright_any = np.logical_or.reduce([ctx.bright[b.name] for b in ctx.bands])
     with timer("stamps"):
         stamps = _draw_tile(ctx, acc_box, _grow(tile.scene, hw, sgrid.shape), bright_any)
@@ -592,7 +595,9 @@ def _draw_tile(ctx: _TileContext, acc_box, bright_box, bright_any: np.ndarray) -
         for im, iy0, ix0 in render_lensed(lens, prof, xs[i], ys[i], z[i], acc_grid):
             stamps.append(Stamp(np.asarray(im, np.float32), int(iy0) + acc_box[0],
                                 int(ix0) + acc_box[2], int(i)))
-    for i in np.nonzero(~lensed & (near(acc_box, cap) | (bright_any & near(bright_box, cap))))[0]:
+    # the diffuse intracluster light spans the field: every tile draws its window of it
+    wanted = (near(acc_box, cap) | (bright_any & near(bright_box, cap)) | (kinds == "icl"))
+    for i in np.nonzero(~lensed & wanted)[0]:
         box = box_of(i)
         if kinds[i] == "star":
             st = point_stamp(xpix[i], ypix[i], int(i))
