@@ -13,7 +13,9 @@ enters as sigma_f^2 sum_j c_j^2, exactly Gaussian. The charge is a Poisson proce
 arriving in frame interval i (between reads i - 1 and i) adds D_i = sum_{j >= i} c_j to b. Given
 the total charge N of the ramp (Poisson, drawn exactly), arrival times are independent and
 uniform, so b = N mean(D) + sqrt(N var(D)) z with z standard normal (the sum over electrons by
-its central limit; exact mean and variance for any N). The resulting variance is Rauscher et
+its central limit; exact mean and variance for any N). With :class:`PixelNoise` (windows of a
+large detector, as a tiled mosaic uses) N is exact below 20 expected electrons and above by a
+Cornish-Fisher expansion with the Poisson mean and skewness. The resulting variance is Rauscher et
 al. 2007 eq. 1, which the tests check against a Monte Carlo of frames. Integer-ADU readout adds
 gain^2 / 12 to the frame variance (uniform quantisation error, valid while the frame read noise
 exceeds about one ADU; checked in the tests against quantised frames).
@@ -74,6 +76,7 @@ __all__ = [
     "slope_weights",
     "slope_variance_factors",
     "apply_ipc",
+    "PixelNoise",
     "expose",
 ]
 
@@ -280,22 +283,37 @@ def _ipc_at(img: np.ndarray, alpha: float, idx) -> np.ndarray:
             + alpha * (pad[r - 1, c] + pad[r + 1, c] + pad[r, c - 1] + pad[r, c + 1]))
 
 
-def _cosmic_rays(shape, det: DetectorConfig, pixel_size_um: float, duration_s: float,
-                 n_intervals: int, rng: np.random.Generator):
-    """Charge image (e-) and arrival frame-interval index image of cosmic-ray events."""
-    ny, nx = shape
+def _cr_events(det: DetectorConfig, pixel_size_um: float, duration_s: float, n_intervals: int,
+               rng: np.random.Generator, y0: float, x0: float, ny: int, nx: int):
+    """Cosmic-ray events over the pixel rectangle rows y0 ... y0 + ny, columns x0 ... x0 + nx:
+    (centre x, centre y, angle, length, charge, interval), each an array, positions in pixels."""
     area_cm2 = ny * nx * (pixel_size_um * 1e-4) ** 2
     n = int(rng.poisson(det.cosmic_ray_rate_cm2_s * area_cm2 * duration_s))
-    charge = np.zeros(ny * nx)  # replaced below when there are events
-    when = np.full(ny * nx, -1, dtype=np.int64)
-    if n == 0:
-        return charge.reshape(shape), when.reshape(shape), 0
-    cx = rng.uniform(-0.5, nx - 0.5, n)
-    cy = rng.uniform(-0.5, ny - 0.5, n)
+    cx = rng.uniform(x0 - 0.5, x0 + nx - 0.5, n)
+    cy = rng.uniform(y0 - 0.5, y0 + ny - 0.5, n)
     theta = rng.uniform(0.0, np.pi, n)
     length = rng.uniform(0.0, _CR_MAX_LENGTH_PIX, n)
     q = det.cosmic_ray_charge_e * np.exp(_CR_SIGMA_LN * rng.standard_normal(n))
     interval = rng.integers(0, n_intervals, n)
+    return cx, cy, theta, length, q, interval
+
+
+def _cosmic_rays(shape, det: DetectorConfig, pixel_size_um: float, duration_s: float,
+                 n_intervals: int, rng: np.random.Generator):
+    """Charge image (e-) and arrival frame-interval index image of cosmic-ray events."""
+    ev = _cr_events(det, pixel_size_um, duration_s, n_intervals, rng, 0, 0, *shape)
+    return _deposit(shape, *ev)
+
+
+def _deposit(shape, cx, cy, theta, length, q, interval):
+    """Charge image (e-), arrival-interval image and event count of tracks (see _cr_events)
+    on an image of ``shape`` (tracks are clipped at its edges)."""
+    ny, nx = shape
+    n = int(np.size(cx))
+    charge = np.zeros(ny * nx)  # replaced below when there are events
+    when = np.full(ny * nx, -1, dtype=np.int64)
+    if n == 0:
+        return charge.reshape(shape), when.reshape(shape), 0
     s = (np.arange(_CR_POINTS) + 0.5) / _CR_POINTS - 0.5
     px = (cx[:, None] + s[None, :] * (length * np.cos(theta))[:, None]).ravel()
     py = (cy[:, None] + s[None, :] * (length * np.sin(theta))[:, None]).ravel()
@@ -333,8 +351,133 @@ def _best_runs(usable: np.ndarray, brk: np.ndarray) -> tuple[np.ndarray, np.ndar
     return best_start, best_len
 
 
+#: Side (pixels) of the detector blocks that carry their own noise streams (:class:`PixelNoise`).
+NOISE_BLOCK = 128
+#: Below this mean count a pixel's Poisson charge is drawn exactly (inverse CDF); above it
+#: by the Cornish-Fisher expansion (see :meth:`PixelNoise.poisson`).
+POISSON_EXACT_BELOW = 20.0
+
+
+class PixelNoise:
+    """Random numbers of one exposure tied to detector pixels, not to the window asking.
+
+    The detector is cut into ``NOISE_BLOCK``-pixel blocks, each with its own streams
+    ``(seed, *names, slot, row, column)``; a window of rows ``y0 ... y0 + shape[0]`` and columns
+    ``x0 ...`` is cut from the blocks it touches. Two overlapping windows (neighbouring tiles of
+    a mosaic) therefore see the same noise on the pixels they share, and a mosaic shows no seam.
+
+    Parameters
+    ----------
+    seed : int
+        Scenario seed.
+    names : tuple of str or int
+        The exposure's stream names, e.g. ``("exposure", band, k)``.
+    y0, x0 : int (detector pixels)
+        Window origin, 0-based.
+    shape : (ny, nx)
+        Window shape.
+    """
+
+    def __init__(self, seed: int, names: tuple, y0: int, x0: int, shape: tuple[int, int]):
+        self.seed, self.names = int(seed), tuple(names)
+        self.y0, self.x0 = int(y0), int(x0)
+        self.shape = (int(shape[0]), int(shape[1]))
+
+    def _blocks(self, pad: int = 0):
+        b = NOISE_BLOCK
+        y0, x0 = self.y0 - pad, self.x0 - pad
+        y1, x1 = self.y0 + self.shape[0] + pad, self.x0 + self.shape[1] + pad
+        for by in range(y0 // b, (y1 - 1) // b + 1):
+            for bx in range(x0 // b, (x1 - 1) // b + 1):
+                yield by, bx
+
+    def _field(self, slot: str, uniform: bool = False) -> np.ndarray:
+        from .random import stream
+
+        b = NOISE_BLOCK
+        out = np.empty(self.shape, np.float32)
+        for by, bx in self._blocks():
+            rng = stream(self.seed, *self.names, slot, by, bx)
+            blk = rng.random((b, b), np.float32) if uniform else                 rng.standard_normal((b, b), np.float32)
+            ys = slice(max(self.y0, by * b), min(self.y0 + self.shape[0], (by + 1) * b))
+            xs = slice(max(self.x0, bx * b), min(self.x0 + self.shape[1], (bx + 1) * b))
+            out[ys.start - self.y0:ys.stop - self.y0, xs.start - self.x0:xs.stop - self.x0] = \
+                blk[ys.start - by * b:ys.stop - by * b, xs.start - bx * b:xs.stop - bx * b]
+        return out
+
+    def normal(self, slot: str) -> np.ndarray:
+        """Standard normal deviates (float32) of the window, one per pixel."""
+        return self._field(slot)
+
+    def normal_at(self, slot: str, idx) -> np.ndarray:
+        """The deviates of :meth:`normal` at ``idx`` (a numpy index of the window)."""
+        return self._field(slot)[idx].astype(float)
+
+    def poisson(self, lam: np.ndarray) -> np.ndarray:
+        """Poisson counts of mean ``lam`` (window-shaped), from the pixels' own deviates.
+
+        Below :data:`POISSON_EXACT_BELOW` the exact inverse CDF of a uniform deviate (an
+        integer); above it the Cornish-Fisher expansion lam + sqrt(lam) z + (z^2 - 1) / 6 of a
+        normal deviate z (Cornish & Fisher 1938 [mem]), which has the Poisson mean, its
+        skewness to O(lam^-1), variance lam + 1/18 and is continuous in lam, so the same pixel
+        gets the same count whichever window draws it.
+        """
+        from scipy import stats
+
+        lam = np.asarray(lam, float)
+        z = self._field("counts").astype(float)
+        out = np.maximum(lam + np.sqrt(lam) * z + (z * z - 1.0) / 6.0, 0.0)
+        small = lam < POISSON_EXACT_BELOW
+        if small.any():
+            u = self._field("counts_u", uniform=True)[small].astype(float)
+            out[small] = stats.poisson.ppf(u, lam[small])
+        return out.astype(np.float32)
+
+    def cosmic_rays(self, det: DetectorConfig, pixel_size_um: float, duration_s: float,
+                    n_intervals: int):
+        """Cosmic-ray charge (e-) and arrival-interval images of the window, and the number of
+        events centred in it: each block draws its own events, and tracks from blocks next to
+        the window reach into it."""
+        from .random import stream
+
+        b = NOISE_BLOCK
+        parts = []
+        for by, bx in self._blocks(pad=int(math.ceil(_CR_MAX_LENGTH_PIX)) + 1):
+            if by < 0 or bx < 0:  # no detector there, no events
+                continue
+            ev = _cr_events(det, pixel_size_um, duration_s, n_intervals,
+                            stream(self.seed, *self.names, "cosmic_rays", by, bx), by * b,
+                            bx * b, b, b)
+            parts.append(ev)
+        cx, cy, theta, length, q, interval = (np.concatenate(v) for v in zip(*parts))
+        cx, cy = cx - self.x0, cy - self.y0
+        charge, when, _ = _deposit(self.shape, cx, cy, theta, length, q, interval)
+        inside = ((cx > -0.5) & (cx < self.shape[1] - 0.5) & (cy > -0.5)
+                  & (cy < self.shape[0] - 0.5))
+        return charge, when, int(inside.sum())
+
+
+class _GeneratorNoise:
+    """The :class:`PixelNoise` interface on one Generator (draws in a fixed order)."""
+
+    def __init__(self, rng: np.random.Generator, shape):
+        self.rng, self.shape = rng, shape
+
+    def normal(self, slot):
+        return self.rng.standard_normal(self.shape, dtype=np.float32)
+
+    def normal_at(self, slot, idx):
+        return self.rng.standard_normal(np.shape(idx[0]))
+
+    def poisson(self, lam):
+        return self.rng.poisson(lam).astype(np.float32)
+
+    def cosmic_rays(self, det, pixel_size_um, duration_s, n_intervals):
+        return _cosmic_rays(self.shape, det, pixel_size_um, duration_s, n_intervals, self.rng)
+
+
 def expose(rate: np.ndarray, sky_rate, dark, det: DetectorConfig, exptime_s: float,
-           pixel_size_um: float, rng: np.random.Generator, fixed: FixedPattern) -> Exposure:
+           pixel_size_um: float, rng, fixed: FixedPattern) -> Exposure:
     """Simulate and calibrate one up-the-ramp exposure.
 
     Parameters
@@ -350,8 +493,8 @@ def expose(rate: np.ndarray, sky_rate, dark, det: DetectorConfig, exptime_s: flo
         Effective exposure time (slope baseline (n_groups - 1) t_g).
     pixel_size_um : float (micron)
         Physical pixel side (sets the cosmic-ray hit rate per pixel).
-    rng : numpy.random.Generator
-        The exposure's own stream.
+    rng : numpy.random.Generator or PixelNoise
+        The exposure's own stream, or its pixel-tied noise (for windows of a large detector).
     fixed : FixedPattern
         The detector's fixed pattern, of the same shape as ``rate``.
 
@@ -366,6 +509,12 @@ def expose(rate: np.ndarray, sky_rate, dark, det: DetectorConfig, exptime_s: flo
     check_range("exptime_s", exptime_s, 0, None, lo_open=True)
     check_range("pixel_size_um", pixel_size_um, 0, None, lo_open=True)
     require(np.all(rate >= 0), "rate", float(rate.min()), "must be >= 0 everywhere")
+    if isinstance(rng, PixelNoise):
+        require(rng.shape == rate.shape, "rng.shape", rng.shape,
+                f"must be the image's shape {rate.shape}")
+        noise = rng
+    else:
+        noise = _GeneratorNoise(rng, rate.shape)
     n, m = det.n_groups, det.n_frames
     tf = frame_time(det, exptime_s)
     tg = m * tf
@@ -392,8 +541,8 @@ def expose(rate: np.ndarray, sky_rate, dark, det: DetectorConfig, exptime_s: flo
     d_int = _interval_weights(c)
     a_full, b_full = float((c * c).sum()), float(tf * (d_int * d_int).sum())
     if det.poisson:
-        total = rng.poisson(f * duration).astype(np.float32)
-        z = rng.standard_normal(f.shape, dtype=np.float32)
+        total = noise.poisson(f * duration)
+        z = noise.normal("ramp")
         slope = total * float(d_int.mean()) + np.sqrt(total * float(d_int.var())) * z
     else:
         slope = f.copy()
@@ -406,7 +555,7 @@ def expose(rate: np.ndarray, sky_rate, dark, det: DetectorConfig, exptime_s: flo
     jump = np.zeros(rate.shape, bool)
     when = None
     if det.cosmic_rays and det.cosmic_ray_rate_cm2_s > 0:
-        cr_q, when, n_cr = _cosmic_rays(rate.shape, det, pixel_size_um, duration, n_int, rng)
+        cr_q, when, n_cr = noise.cosmic_rays(det, pixel_size_um, duration, n_int)
         if alpha > 0:
             cr_q = apply_ipc(cr_q, alpha)
             when = np.where(when >= 0, when, ndimage.grey_dilation(
@@ -423,7 +572,7 @@ def expose(rate: np.ndarray, sky_rate, dark, det: DetectorConfig, exptime_s: flo
     if alpha > 0:
         slope = apply_ipc(slope, alpha)
     if sig_f2 > 0:
-        slope += math.sqrt(a_full * sig_f2) * rng.standard_normal(f.shape, dtype=np.float32)
+        slope += math.sqrt(a_full * sig_f2) * noise.normal("read")
 
     # group k is usable while the charge at its last read, f (k + 1) t_g, is below full well
     sat = f * (n * tg) >= det.full_well_e if det.saturation else np.zeros(rate.shape, bool)
@@ -453,7 +602,7 @@ def expose(rate: np.ndarray, sky_rate, dark, det: DetectorConfig, exptime_s: flo
             table_a[cnt], table_b[cnt] = slope_variance_factors(n, m, tf, cnt)
         fa, fb = table_a[length], table_b[length]
         sd = np.sqrt(fa * sig_f2 + (fb * f[idx] * ipc_var if det.poisson else 0.0))
-        new = _ipc_at(f, alpha, idx) + sd * rng.standard_normal(sd.shape)
+        new = _ipc_at(f, alpha, idx) + sd * noise.normal_at("refit", idx)
         new[length < 2] = 0.0
         slope[idx] = new
         flags = np.where(n_ok < n, DQ_SATURATED, 0) | np.where(jump[idx], DQ_COSMIC_RAY, 0) | \

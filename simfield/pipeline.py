@@ -308,7 +308,7 @@ def _render_tile(ctx: _TileContext, i: int) -> dict:
     """Stamps of the sources that reach tile ``i`` (drawn once), then per band its scene
     window, truth image, exposure windows and drizzled mosaic section, written into the run's
     files. Returns the empty-aperture sums per band (e-/s) and stage timings (s)."""
-    from .detector import expose, fixed_pattern_window
+    from .detector import PixelNoise, expose, fixed_pattern_window
     from .survey import aperture_sums, drizzle_mosaic, sample_scene
 
     sc, tile, sgrid, mgrid = ctx.sc, ctx.tiles[i], ctx.sgrid, ctx.mgrid
@@ -380,9 +380,12 @@ def _render_tile(ctx: _TileContext, i: int) -> dict:
             for k, eg in enumerate(tile.egrids):
                 with timer("exposures"):
                     r = sample_scene(scene, tile.sgrid, eg)
+                    # noise tied to detector pixels: pixels shared with a neighbouring tile
+                    # get the same noise there, so the mosaic has no seams
+                    ey0, _, ex0, _ = tile.exposures[k]
+                    noise = PixelNoise(sc.seed, ("exposure", b.name, k), ey0, ex0, eg.shape)
                     e = expose(r, sky, None, sc.detector, srv.exposure_time_s,
-                               tel.pixel_size_um,
-                               stream(sc.seed, "exposure", b.name, k, "tile", ty, tx), fixed[k])
+                               tel.pixel_size_um, noise, fixed[k])
                     del r
                     if srv.write_exposures:
                         _write_exposure_section(ctx.files[f"exp_{b.name}_{k:02d}.fits"],

@@ -76,7 +76,15 @@ def test_rauscher_eq1_against_frame_monte_carlo():
     assert_allclose(slopes.mean(), f, rtol=0.01)
 
 
-def test_expose_pixel_variance_matches_rauscher_eq1():
+def _noise(kind, seed, shape):
+    """A Generator or the pixel-tied noise of a window (the two noise sources of expose)."""
+    if kind == "generator":
+        return np.random.default_rng(seed)
+    return dt.PixelNoise(seed, ("exposure", "test", 0), 37, 11, shape)
+
+
+@pytest.mark.parametrize("kind", ["generator", "pixel"])
+def test_expose_pixel_variance_matches_rauscher_eq1(kind):
     """Pixel variance of a flat exposure (shot + read noise only) follows Rauscher et al. eq. 1."""
     det = _det(n_groups=6, n_frames=3, read_noise_e=11.0, **QUIET)
     exptime = 500.0
@@ -85,7 +93,7 @@ def test_expose_pixel_variance_matches_rauscher_eq1():
     shape = (600, 600)
     fixed = dt.make_fixed_pattern(shape, det, np.random.default_rng(0))
     e = dt.expose(np.full(shape, rate), sky, None, det, exptime, 18.0,
-                  np.random.default_rng(1), fixed)
+                  _noise(kind, 1, shape), fixed)
     expected = _rauscher_eq1(rate + sky, 11.0 / np.sqrt(2), 6, 3, t_f)
     # 360000 pixels: variance known to sqrt(2/N) = 0.24%
     assert_allclose(e.sci.var(), expected, rtol=0.012)
@@ -150,13 +158,14 @@ def test_apply_ipc_conserves_charge_and_matches_kernel():
     assert_allclose(dt.apply_ipc(img, alpha), ref, rtol=1e-12, atol=1e-14)
 
 
-def test_cosmic_ray_events_follow_rate():
+@pytest.mark.parametrize("kind", ["generator", "pixel"])
+def test_cosmic_ray_events_follow_rate(kind):
     """Detected cosmic-ray clusters match rate x area x ramp time (Rauscher & Fixsen 2025)."""
     n, m, exptime, pix_um = 8, 4, 1000.0, 18.0
     det = _det(cosmic_ray_rate_cm2_s=0.5, **{**QUIET, "cosmic_rays": True})
     shape = (1000, 1000)
     fixed = dt.make_fixed_pattern(shape, det, np.random.default_rng(0))
-    e = dt.expose(np.zeros(shape), 0.2, None, det, exptime, pix_um, np.random.default_rng(8),
+    e = dt.expose(np.zeros(shape), 0.2, None, det, exptime, pix_um, _noise(kind, 8, shape),
                   fixed)
     area_cm2 = shape[0] * shape[1] * (pix_um * 1e-4) ** 2
     ramp_s = n * exptime / (n - 1)  # reset to last read: n groups of t_g = exptime / (n - 1)
@@ -274,3 +283,44 @@ def test_fixed_pattern_window_does_not_depend_on_the_window():
     assert not np.array_equal(other.flat, small.flat)
     with pytest.raises(ConfigError, match="window"):
         dt.fixed_pattern_window(det, 7, 10, 10, 0, 5)
+
+
+@pytest.mark.parametrize("lam", [4.0, 150.0])
+def test_pixel_noise_counts_follow_poisson(lam):
+    """PixelNoise counts have the Poisson mean, variance and skewness (scipy.stats.poisson):
+    exact below 20 e-, Cornish-Fisher above (variance lam + 1/18)."""
+    from scipy import stats
+
+    shape = (700, 700)
+    c = dt.PixelNoise(3, ("t",), 0, 0, shape).poisson(np.full(shape, lam)).astype(float)
+    mean, var, skew = (float(v) for v in stats.poisson.stats(lam, moments="mvs"))
+    n = c.size
+    assert abs(c.mean() - mean) < 4 * np.sqrt(var / n)
+    assert_allclose(c.var(), var, rtol=4 * np.sqrt(2 / n) + 1 / (18 * lam))
+    assert_allclose(stats.skew(c.ravel()), skew, atol=4 * np.sqrt(6 / n))
+    if lam < dt.POISSON_EXACT_BELOW:
+        assert np.all(c == np.round(c))
+
+
+def test_pixel_noise_windows_agree_where_they_overlap():
+    """Two overlapping windows of one detector give the same exposure on their shared pixels,
+    IPC, cosmic rays and jumps included, away from the window edges (common practice: noise
+    belongs to the pixel; this is what keeps a tiled mosaic free of seams)."""
+    det = _det(cosmic_ray_rate_cm2_s=2.0)
+    rng = np.random.default_rng(4)
+    full = (rng.random((420, 500)) * 2.0).astype(np.float32)
+    fixed = dt.fixed_pattern_window(det, 9, 0, 420, 0, 500)
+
+    def window(y0, y1, x0, x1):
+        cut = (slice(y0, y1), slice(x0, x1))
+        fp = dt.FixedPattern(**{k: getattr(fixed, k)[cut] for k in
+                                ("flat", "flat_cal", "hot", "hot_dark", "dead")})
+        return dt.expose(full[cut], 0.3, None, det, 500.0, 18.0,
+                         dt.PixelNoise(9, ("exposure", "b", 0), y0, x0, (y1 - y0, x1 - x0)), fp)
+
+    a = window(0, 300, 0, 400)
+    b = window(150, 420, 250, 500)
+    sa, sb = (slice(155, 295), slice(255, 395)), (slice(5, 145), slice(5, 145))
+    assert_allclose(a.sci[sa], b.sci[sb], rtol=1e-5, atol=1e-6)
+    assert np.array_equal(a.dq[sa], b.dq[sb])
+    assert np.any(a.dq[sa] & dt.DQ_COSMIC_RAY)  # the overlap does hold cosmic-ray hits
