@@ -327,15 +327,7 @@ def _render_tile(ctx: _TileContext, i: int) -> dict:
     with timer("stamps"):
         stamps = _draw_tile(ctx, acc_box, _grow(tile.scene, hw, sgrid.shape), bright_any)
     ids = np.asarray(ctx.sources["id"])
-    fy0, fy1, fx0, fx1 = (min(w[0] for w in tile.exposures), max(w[1] for w in tile.exposures),
-                          min(w[2] for w in tile.exposures), max(w[3] for w in tile.exposures))
-    fixed_all = fixed_pattern_window(sc.detector, sc.seed, fy0, fy1, fx0, fx1)
-    fixed = []
-    for y0, y1, x0, x1 in tile.exposures:
-        cut = (slice(y0 - fy0, y1 - fy0), slice(x0 - fx0, x1 - fx0))
-        fixed.append(type(fixed_all)(**{k: getattr(fixed_all, k)[cut]
-                                       for k in ("flat", "flat_cal", "hot", "hot_dark", "dead")}))
-    del fixed_all
+    fixed = [fixed_pattern_window(sc.detector, sc.seed, *w) for w in tile.exposures]
     sy0, sy1, sx0, sx1 = tile.scene
     my0, my1, mx0, mx1 = tile.mosaic
     msec = (slice(my0, my1), slice(mx0, mx1))

@@ -2,11 +2,12 @@
 
 Cost grows with the number of pixels, not with sources x PSF area:
 
-1. every source is drawn once, band-independent, as a unit-flux stamp of its intrinsic
-   (or lensed) surface brightness integrated over scene pixels (:func:`draw_stamps`);
-2. per band, stamps are scaled by the source's electron rate and summed into one image
-   (:func:`accumulate`), which is convolved with the band's core PSF by FFT in tiles with
-   overlap-add (:func:`convolve_tiled`);
+1. every source is drawn once (per mosaic tile it reaches), band-independent, as a unit-flux
+   stamp of its intrinsic (or lensed) surface brightness integrated over scene pixels
+   (:func:`draw_source_stamp`);
+2. per band, stamps are scaled by the source's electron rate and summed into one image, or
+   one window of the scene (:func:`accumulate`), which is convolved with the band's core PSF
+   by FFT in tiles with overlap-add (:func:`convolve_tiled`);
 3. the few sources bright enough for their diffraction spikes to matter are convolved one by
    one with the large PSF and added (:func:`add_bright`).
 
