@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import warnings
 from dataclasses import dataclass
+from pathlib import Path
 
 import numpy as np
 from astropy.convolution import convolve_fft
@@ -274,7 +275,8 @@ def _window(path, loc: int, shape, dtype, win) -> np.ndarray:
 
 
 def detect_mosaic(path, segm_out, cfg: DetectionConfig, psf_fwhm_arcsec: float,
-                  core: int | None = None, margin: int | None = None) -> Table:
+                  core: int | None = None, margin: int | None = None,
+                  progress: bool = False) -> Table:
     """Detect sources on a mosaic file tile by tile, in memory bounded by the tile size.
 
     The mosaic (``SCI``, ``WHT`` and, if present, ``DQ`` extensions) is opened as a memory map
@@ -309,6 +311,8 @@ def detect_mosaic(path, segm_out, cfg: DetectionConfig, psf_fwhm_arcsec: float,
         Detection settings.
     psf_fwhm_arcsec : float (arcsec)
         PSF FWHM for the matched filter.
+    progress : bool
+        Show a progress bar over the tiles.
     core, margin : int (pixels), optional
         Tile core side and overlap; default :data:`TILE_CORE_PIX`, :data:`TILE_MARGIN_PIX`.
 
@@ -352,6 +356,10 @@ def detect_mosaic(path, segm_out, cfg: DetectionConfig, psf_fwhm_arcsec: float,
         one = len(ty) == 1 and len(tx) == 1
         kept, provisional = [], []  # per tile: kept rows; (label offset, labels, kept, x, y)
         offset = 0
+        from tqdm import tqdm
+
+        bar = tqdm(total=len(ty) * len(tx), desc=f"detect {Path(path).name}", unit="tile",
+                   disable=not progress, leave=False)
         for ylo, y0, y1, yhi in ty:
             for xlo, x0, x1, xhi in tx:
                 win = (slice(ylo, yhi), slice(xlo, xhi))
@@ -379,6 +387,8 @@ def detect_mosaic(path, segm_out, cfg: DetectionConfig, psf_fwhm_arcsec: float,
                     del out
                 offset += int(det.segmentation.max(initial=0))
                 del det, mask
+                bar.update()
+        bar.close()
 
         # ---- seam duplicates, then global ids in tile order
         tile_of = np.concatenate([np.full(len(c), i) for i, c in enumerate(kept)]) \
@@ -427,7 +437,7 @@ def detect_mosaic(path, segm_out, cfg: DetectionConfig, psf_fwhm_arcsec: float,
     return cat
 
 
-def run_detection(run_dir, sc, bands, prov) -> dict:
+def run_detection(run_dir, sc, bands, prov, progress: bool = False) -> dict:
     """Run :func:`detect_mosaic` on each mosaic of a run directory; write ``detections_<band>.fits``.
 
     The file holds the primary header (provenance, ``BAND``), the ``SEGM`` image (int32
@@ -445,14 +455,14 @@ def run_detection(run_dir, sc, bands, prov) -> dict:
         The scenario's bands.
     prov : simfield.io.Provenance
         Provenance written into every file.
+    progress : bool
+        Progress bars over each mosaic's tiles.
 
     Returns
     -------
     dict
         Number of detections per band.
     """
-    from pathlib import Path
-
     from astropy.io import fits
 
     from .io import ImageSpec, section_files
@@ -472,7 +482,7 @@ def run_detection(run_dir, sc, bands, prov) -> dict:
         out = run_dir / f"detections_{name}.fits"
         with section_files([(out, [spec], [("BAND", name, "simfield band name")])],
                            prov) as (sf,):
-            cat = detect_mosaic(mpath, sf, cfg, fwhm)
+            cat = detect_mosaic(mpath, sf, cfg, fwhm, progress=progress)
             cat.meta.update({"BAND": name})
             tab = fits.BinTableHDU(cat, name="DETECTIONS")
             for key, value, comment in prov.header_cards():
