@@ -323,9 +323,12 @@ def _render_tile(ctx: _TileContext, i: int) -> dict:
     # start on a multiple of 4 scene pixels, like the scene windows, so the lensing node grid
     # of every tile's window is the same lattice (lensed stamps then agree across seams)
     acc_box = (acc_box[0] // 4 * 4, acc_box[1], acc_box[2] // 4 * 4, acc_box[3])
+    acc_grid = sgrid.window(acc_box[2], acc_box[0], acc_box[3] - acc_box[2],
+                            acc_box[1] - acc_box[0])
     bright_any = np.logical_or.reduce([ctx.bright[b.name] for b in ctx.bands])
     with timer("stamps"):
-        stamps = _draw_tile(ctx, acc_box, _grow(tile.scene, hw, sgrid.shape), bright_any)
+        stamps = _draw_tile(ctx, acc_box, acc_grid, _grow(tile.scene, hw, sgrid.shape),
+                            bright_any)
     ids = np.asarray(ctx.sources["id"])
     fixed = [fixed_pattern_window(sc.detector, sc.seed, *w) for w in tile.exposures]
     sy0, sy1, sx0, sx1 = tile.scene
@@ -405,8 +408,7 @@ def _render_tile(ctx: _TileContext, i: int) -> dict:
     if ctx.lens is not None:
         from .lensing import forget_grid
 
-        forget_grid(ctx.lens, sgrid.window(acc_box[2], acc_box[0], acc_box[3] - acc_box[2],
-                                           acc_box[1] - acc_box[0]))
+        forget_grid(ctx.lens, acc_grid)
     return {"sums": sums, "timings": timings}
 
 
@@ -543,11 +545,12 @@ def _truth_images(sources: Table, lens, sc: Scenario, hx: float, hy: float):
     return images, np.asarray(mag_total, float), np.asarray(n_images, np.int32)
 
 
-def _draw_tile(ctx: _TileContext, acc_box, bright_box, bright_any: np.ndarray) -> list[Stamp]:
+def _draw_tile(ctx: _TileContext, acc_box, acc_grid: Grid, bright_box,
+               bright_any: np.ndarray) -> list[Stamp]:
     """Unit-flux stamps, in scene-grid indices, of every source whose light reaches a tile.
 
-    ``acc_box`` is the tile's scene window grown by the core PSF (the light convolved there),
-    ``bright_box`` grown by the large PSF, which sources bright in some band (``bright_any``)
+    ``acc_box`` is the tile's scene window grown by the core PSF (the light convolved there;
+    ``acc_grid`` its window of the scene grid), ``bright_box`` grown by the large PSF, which sources bright in some band (``bright_any``)
     may reach. Lensed sources are ray traced on the window of ``acc_box``; they are found from
     the box's source-plane bounds (:func:`simfield.lensing.source_plane_bounds`). The diffuse
     intracluster light is drawn over the window only (:func:`simfield.scene.draw_window`).
@@ -574,8 +577,6 @@ def _draw_tile(ctx: _TileContext, acc_box, bright_box, bright_any: np.ndarray) -
         return iy0 < box[1] and iy0 + n > box[0] and ix0 < box[3] and ix0 + n > box[2]
 
     lensed = np.zeros(len(sources), bool)
-    acc_grid = sgrid.window(acc_box[2], acc_box[0], acc_box[3] - acc_box[2],
-                            acc_box[1] - acc_box[0])
     if lens is not None:
         from .lensing import render_lensed, source_plane_bounds
 
