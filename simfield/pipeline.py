@@ -421,7 +421,7 @@ def _crop_mosaic(m, cut):
 def _band_depth(sc: Scenario, b: Band, psf_core, sums: np.ndarray) -> dict:
     """Predicted and measured (from the tiles' empty-aperture sums) 5-sigma depths (AB)."""
     from .optics.psf import effective_psf
-    from .survey import depth_from_sums, predicted_depth
+    from .survey import MIN_EMPTY_APERTURES, depth_from_sums, predicted_depth
 
     tel, srv = sc.telescope, sc.survey
     zp = b.zeropoint(tel.collecting_area_m2)
@@ -429,13 +429,19 @@ def _band_depth(sc: Scenario, b: Band, psf_core, sums: np.ndarray) -> dict:
     eff = effective_psf(psf_core, tel.pixel_scale_arcsec)
     ee = float(np.interp(r_ap, eff.ee_radii_arcsec, eff.ee_values))
     sky = b.sky_rate(tel.collecting_area_m2, tel.pixel_scale_arcsec)
+    if len(sums) >= MIN_EMPTY_APERTURES:
+        measured = depth_from_sums(sums, zp, ee)
+    else:  # a crowded or tiny field: no depth to measure, but nothing wrong with the run
+        log.warning("band %s: only %d empty sky apertures, measured depth not given",
+                    b.name, len(sums))
+        measured = float("nan")
     return {
         "aperture_radius_arcsec": r_ap,
         "encircled_energy": ee,
         "predicted_5sigma": predicted_depth(sc.detector, srv.exposure_time_s, srv.n_exposures,
                                             zp, sky, tel.pixel_scale_arcsec, r_ap,
                                             encircled_energy=ee),
-        "measured_5sigma": depth_from_sums(sums, zp, ee),
+        "measured_5sigma": measured,
     }
 
 

@@ -53,6 +53,7 @@ __all__ = [
     "measured_depth",
     "aperture_sums",
     "depth_from_sums",
+    "MIN_EMPTY_APERTURES",
     "Tile",
     "plan_tiles",
     "owned_pixels",
@@ -645,13 +646,18 @@ def aperture_sums(sci: np.ndarray, bad: np.ndarray, radius_pix: float,
                                           method="exact")["aperture_sum"], float)
 
 
+#: Fewest empty-sky apertures a measured depth is given from.
+MIN_EMPTY_APERTURES = 20
+
+
 def depth_from_sums(sums: np.ndarray, zeropoint: float, encircled_energy: float = 1.0,
                     nsigma: float = 5.0) -> float:
     """Depth (AB mag) from empty-aperture sums (e-/s): the robust sigma (1.4826 x MAD) at
     ``nsigma``, corrected by the point-source ``encircled_energy``."""
     sums = np.asarray(sums, float)
-    require(sums.size >= 20, "mask", int(sums.size),
-            "leaves fewer than 20 empty apertures: mask less or use a larger field")
+    require(sums.size >= MIN_EMPTY_APERTURES, "mask", int(sums.size),
+            f"leaves fewer than {MIN_EMPTY_APERTURES} empty apertures: mask less or use a "
+            "larger field")
     sigma = 1.4826 * np.median(np.abs(sums - np.median(sums)))
     return float(zeropoint - 2.5 * math.log10(nsigma * sigma / encircled_energy))
 

@@ -266,3 +266,16 @@ def test_written_exposures_are_whole_and_consistent_with_their_wcs(tmp_path):
         yy, xx = np.mgrid[iy - 3:iy + 4, ix - 3:ix + 4]
         assert_allclose([(cut * xx).sum() / cut.sum(), (cut * yy).sum() / cut.sum()],
                         [float(x), float(y)], atol=0.15)
+
+
+def test_field_without_empty_sky_still_completes(tmp_path):
+    """A field too small (or crowded) for empty-sky apertures finishes, with the measured depth
+    left out (null in summary.json) and the predicted one given (common practice: a missing
+    diagnostic is not a failed run)."""
+    sc = small_scenario(tmp_path, "survey.width_arcsec=3", "survey.height_arcsec=3",
+                        "detection.aperture_radius_arcsec=1.4", "detection.enabled=false")
+    res = run_scenario(sc, tmp_path / "tiny")
+    assert (res.out_dir / COMPLETE_MARKER).exists()
+    depth = json.loads((res.out_dir / "summary.json").read_text())["depth_ab"]
+    for d in depth.values():
+        assert d["measured_5sigma"] is None and np.isfinite(d["predicted_5sigma"])
