@@ -556,8 +556,8 @@ def _draw_tile(ctx: _TileContext, acc_box, acc_grid: Grid, bright_box,
     """Unit-flux stamps, in scene-grid indices, of every source whose light reaches a tile.
 
     ``acc_box`` is the tile's scene window grown by the core PSF (the light convolved there;
-    ``acc_grid`` its window of the scene grid), ``bright_box`` grown by the large PSF, which sources bright in some band (``bright_any``)
-    may reach. Lensed sources are ray traced on the window of ``acc_box``; they are found from
+    ``acc_grid`` its window of the scene grid), ``bright_box`` grown by the large PSF, which
+    sources bright in some band (``bright_any``) may reach. Lensed sources are ray traced on the window of ``acc_box``; they are found from
     the box's source-plane bounds (:func:`simfield.lensing.source_plane_bounds`). The diffuse
     intracluster light is drawn over the window only (:func:`simfield.scene.draw_window`).
     """
@@ -590,7 +590,6 @@ def _draw_tile(ctx: _TileContext, acc_box, acc_grid: Grid, bright_box,
         xlo, xhi, ylo, yhi = source_plane_bounds(lens, acc_grid)
         r_max = 5.0  # arcsec, largest source radius drawn (lensing.render.source_radius)
         seen = (xs > xlo - r_max) & (xs < xhi + r_max) & (ys > ylo - r_max) & (ys < yhi + r_max)
-    box_of = lambda i: bright_box if bright_any[i] else acc_box  # noqa: E731
     stamps: list[Stamp] = []
     for i in np.nonzero(lensed & seen if lens is not None else lensed)[0]:
         prof = make_profile(sources[i], sc.seed)
@@ -600,7 +599,7 @@ def _draw_tile(ctx: _TileContext, acc_box, acc_grid: Grid, bright_box,
     # the diffuse intracluster light spans the field: every tile draws its window of it
     wanted = (near(acc_box, cap) | (bright_any & near(bright_box, cap)) | (kinds == "icl"))
     for i in np.nonzero(~lensed & wanted)[0]:
-        box = box_of(i)
+        box = bright_box if bright_any[i] else acc_box
         if kinds[i] == "star":
             st = point_stamp(xpix[i], ypix[i], int(i))
             if overlaps(box, st.iy0, st.ix0, 2):
