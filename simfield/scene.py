@@ -17,6 +17,8 @@ pixel (see :mod:`simfield.grid` for the pixel convention).
 
 from __future__ import annotations
 
+import functools
+import hashlib
 from dataclasses import dataclass
 from typing import Iterable, Sequence
 
@@ -134,9 +136,16 @@ def _sample(profile, n: int, scale: float, dx: float, dy: float) -> np.ndarray:
     import galsim
 
     h = n // 2
-    img = galsim.ImageD(galsim.BoundsI(-h, h, -h, h), scale=scale)
+    img = galsim._Image(np.zeros((n, n)), galsim._BoundsI(-h, h, -h, h), _pixel_scale(scale))
     profile._shift(dx * scale, dy * scale)._drawReal(img)
     return img.array
+
+
+@functools.lru_cache(maxsize=16)
+def _pixel_scale(scale: float):
+    import galsim
+
+    return galsim.PixelScale(scale)
 
 
 def supersampled_radius(r_half_pix: float) -> int:
@@ -184,7 +193,9 @@ def draw_profile_stamp(profile, x: float, y: float, scale: float, half_size: int
         if m <= finest:
             continue
         k = 2 * r + 1
-        sub = _sample(profile, k * m, scale / m, dx * m, dy * m).reshape(k, m, k, m).sum(axis=(1, 3))
+        sub = _sample(profile, k * m, scale / m, dx * m, dy * m)
+        if m > 1:
+            sub = sub.reshape(k, m, k, m).sum(axis=(1, 3))
         if a is None:
             a = sub
         else:
@@ -288,40 +299,82 @@ def accumulate(stamps: Sequence[Stamp], flux: np.ndarray, shape: tuple[int, int]
     return out
 
 
-def convolve_tiled(image: np.ndarray, kernel: np.ndarray, tile: int = 1024,
+#: Kernel transforms kept between calls (key: kernel bytes, FFT shape), up to this many bytes:
+#: a tile's bands reuse their kernels' transforms on every tile of the same shape.
+KERNEL_CACHE_BYTES = 64 * 2**20
+_kernel_cache: dict = {}
+
+
+def _kernel_transform(kernel: np.ndarray, real, shape: tuple[int, int], workers: int):
+    """rfft2 of ``kernel`` (as ``real``) zero-padded to ``shape``, cached by content."""
+    k = np.ascontiguousarray(kernel, dtype=real)
+    key = (hashlib.blake2b(k.tobytes(), digest_size=16).digest(), k.shape, shape)
+    kf = _kernel_cache.pop(key, None)
+    if kf is None:
+        # rows first, over the kernel's own rows only (rfft2 would also transform the padding)
+        kf = sfft.fft(sfft.rfft(k, n=shape[1], axis=1, workers=workers), n=shape[0], axis=0,
+                      workers=workers, overwrite_x=True)
+    _kernel_cache[key] = kf  # newest last
+    while sum(v.nbytes for v in _kernel_cache.values()) > KERNEL_CACHE_BYTES \
+            and len(_kernel_cache) > 1:
+        _kernel_cache.pop(next(iter(_kernel_cache)))
+    return kf
+
+
+def _tiling(n: int, k: int, tile: int) -> tuple[int, int]:
+    """Tile length and FFT length along an axis of ``n`` pixels for a kernel of ``k``: the
+    number of equal tiles (each at most ``tile`` long) whose FFTs cost least, taking the cost
+    of an FFT of length L as L log L (pocketfft's scaling for its fast lengths)."""
+    best = None
+    for p in range(-(-n // tile), -(-n // tile) + 4):
+        t = -(-n // p)
+        f = sfft.next_fast_len(t + k - 1, real=True)
+        cost = p * f * np.log(f)
+        if best is None or cost < best[0]:
+            best = (cost, t, f)
+    return best[1], best[2]
+
+
+def convolve_tiled(image: np.ndarray, kernel: np.ndarray, tile: int = 2048,
                    workers: int = -1) -> np.ndarray:
     """Convolve ``image`` with ``kernel`` (odd shape, centred) by FFT overlap-add in tiles.
 
     Output has the shape of ``image`` (``mode='same'``); flux that the kernel spreads beyond the
     image edge is lost, as on a real detector. Memory is bounded by the tile, not the image:
-    each tile of ``tile`` x ``tile`` pixels is transformed with the kernel zero-padded to a fast
-    FFT length. Empty tiles are skipped.
+    the image is cut into equal tiles of at most ``tile`` x ``tile`` pixels, as many as make
+    the FFTs cheapest (:func:`_tiling`), each transformed with the kernel zero-padded to a fast
+    FFT length. Empty tiles are skipped. The kernel's transform is cached between calls
+    (:data:`KERNEL_CACHE_BYTES`).
     """
     ky, kx = kernel.shape
     if ky % 2 == 0 or kx % 2 == 0:
         raise ValueError(f"kernel must have odd dimensions, got {kernel.shape}")
     hy, hx = ky // 2, kx // 2
     ny, nx = image.shape
-    # equal tiles (1200 px with tile=1024: two of 600, not 1024 + 176)
-    ty = -(-ny // -(-ny // tile))
-    tx = -(-nx // -(-nx // tile))
-    fy = sfft.next_fast_len(ty + ky - 1, real=True)
-    fx = sfft.next_fast_len(tx + kx - 1, real=True)
+    ty, fy = _tiling(ny, ky, tile)
+    tx, fx = _tiling(nx, kx, tile)
     # single precision when the image is: float32 FFTs are ~2x faster and err ~1e-7 of the
     # image's peak, far below any noise the scene will get
     real = np.float32 if image.dtype == np.float32 else np.float64
-    kf = sfft.rfft2(kernel.astype(real), s=(fy, fx), workers=workers)
-    out = np.zeros((ny + ky - 1, nx + kx - 1), dtype=image.dtype)
+    kf = _kernel_transform(kernel, real, (fy, fx), workers)
+    out = np.zeros((ny, nx), dtype=image.dtype)
     for y0 in range(0, ny, ty):
         for x0 in range(0, nx, tx):
             t = image[y0:y0 + ty, x0:x0 + tx]
             if not t.any():
                 continue
-            c = sfft.irfft2(sfft.rfft2(t, s=(fy, fx), workers=workers) * kf, s=(fy, fx),
-                            workers=workers)
+            spec = sfft.rfft2(t, s=(fy, fx), workers=workers)
+            spec *= kf
+            # the tile's full convolution spans output rows y0 - hy .. y0 + h + hy (columns
+            # likewise); only the rows inside the output are transformed back along x
             h, w = t.shape
-            out[y0:y0 + h + ky - 1, x0:x0 + w + kx - 1] += c[:h + ky - 1, :w + kx - 1]
-    return out[hy:hy + ny, hx:hx + nx]
+            oy0, ox0 = max(y0 - hy, 0), max(x0 - hx, 0)
+            oy1, ox1 = min(y0 + h + hy, ny), min(x0 + w + hx, nx)
+            rows = sfft.ifft(spec, axis=0, workers=workers, overwrite_x=True)[
+                oy0 - y0 + hy:oy1 - y0 + hy]
+            c = sfft.irfft(rows, n=fx, axis=1, workers=workers)
+            out[oy0:oy1, ox0:ox1] += c[:, ox0 - x0 + hx:ox1 - x0 + hx]
+    return out
 
 
 def add_bright(image: np.ndarray, stamps: Sequence[Stamp], flux: np.ndarray,

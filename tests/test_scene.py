@@ -22,6 +22,20 @@ def test_convolve_tiled_matches_scipy():
     assert_allclose(convolve_tiled(img, ker, tile=1000), ref, rtol=0, atol=1e-10)
 
 
+def test_convolve_tiled_kernel_cache_follows_content():
+    """The cached kernel transform is keyed by the kernel's values: two kernels of one shape,
+    and a kernel changed in place, each still give scipy.signal.fftconvolve's result."""
+    rng = np.random.default_rng(4)
+    img = rng.random((120, 90)).astype(np.float32)
+    k1, k2 = rng.random((15, 15)), rng.random((15, 15))
+    for ker in (k1, k2, k1):
+        assert_allclose(convolve_tiled(img, ker), signal.fftconvolve(img, ker, mode="same"),
+                        rtol=0, atol=1e-4)
+    k1 *= 2.0
+    assert_allclose(convolve_tiled(img, k1), signal.fftconvolve(img, k1, mode="same"),
+                    rtol=0, atol=2e-4)
+
+
 def test_convolution_conserves_flux_away_from_edges():
     """A normalised kernel conserves flux of sources away from the edges (to 0.5%, issue rule)."""
     img = np.zeros((400, 400), np.float32)
