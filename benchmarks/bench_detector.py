@@ -10,7 +10,6 @@ from __future__ import annotations
 
 import time
 
-import numpy as np
 
 from simfield.bands import make_band
 from simfield.config import DetectorConfig, SurveyConfig, TelescopeConfig

@@ -13,7 +13,7 @@ import dataclasses
 import hashlib
 import typing
 from dataclasses import dataclass, field
-from typing import Any, Optional
+from typing import Any
 
 from omegaconf import MISSING, DictConfig, OmegaConf
 from omegaconf.errors import ConfigKeyError, MissingMandatoryValue, ValidationError

@@ -508,8 +508,6 @@ def score_run(run_dir, catalog, band: str, cfg: ScoreConfig | None = None, out_d
 
     area = float(nx * ny) * truth["pixel_scale"] ** 2
     if "abs_mag_uv" in sources.colnames:
-        from astropy.cosmology import FlatLambdaCDM  # noqa: F401  (type of default cosmology)
-
         M_edges = _edges(-24.0, -14.0, 1.0)
         zb = np.asarray(cfg.z_bins, float)
         c = _cosmo.default_cosmology()
