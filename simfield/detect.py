@@ -274,9 +274,71 @@ def _window(path, loc: int, shape, dtype, win) -> np.ndarray:
     return out
 
 
+@dataclass(frozen=True)
+class _TileJob:
+    """What a detection tile needs from its mosaic (picklable; see :func:`_detect_tile`)."""
+
+    path: Path
+    maps: dict  #: extension -> (byte offset, shape, dtype)
+    no_cov: int
+    wcs: WCS
+    one: bool
+    cfg: DetectionConfig
+    fwhm: float
+    zp: float
+    scale: float
+    exptime: float | None
+    shape: tuple[int, int]
+    want_segm: bool
+
+
+def _detect_tile(job: _TileJob, tile):
+    """:func:`detect_sources` on one tile of ``job``'s mosaic. Returns the tile's catalogue
+    (mosaic pixel positions), its photutils labels, which rows the tile owns (centroid pixel
+    in its core), the positions, the core's segmentation (tile labels, or None) and the
+    number of labels."""
+    (ylo, y0, y1, yhi), (xlo, x0, x1, xhi) = tile
+    ny, nx = job.shape
+    win = (slice(ylo, yhi), slice(xlo, xhi))
+    mask = None if "DQ" not in job.maps else \
+        (_window(job.path, *job.maps["DQ"], win) & job.no_cov) != 0
+    twcs = job.wcs if job.one else job.wcs.slice(win)
+    det = detect_sources(_window(job.path, *job.maps["SCI"], win).astype(float),
+                         _window(job.path, *job.maps["WHT"], win).astype(float),
+                         twcs, job.cfg, job.fwhm, job.zp, job.scale, exptime=job.exptime,
+                         mask=mask)
+    cat = det.catalog
+    gx = np.asarray(cat["x"], float) + xlo
+    gy = np.asarray(cat["y"], float) + ylo
+    px = np.clip(np.floor(gx + 0.5), 0, nx - 1)
+    py = np.clip(np.floor(gy + 0.5), 0, ny - 1)
+    own = (px >= x0) & (px < x1) & (py >= y0) & (py < y1)
+    labels = np.asarray(cat["id"], np.int64)
+    cat["x"], cat["y"] = gx, gy
+    seg = np.ascontiguousarray(det.segmentation[y0 - ylo:y1 - ylo, x0 - xlo:x1 - xlo],
+                               dtype=np.int32) if job.want_segm else None
+    return cat, labels, own, gx, gy, seg, int(det.segmentation.max(initial=0))
+
+
+def _map_detect(job: _TileJob, tiles: list, workers: int):
+    """:func:`_detect_tile` over ``tiles`` in order, in ``workers`` forked processes (0: one
+    per core, at most one per tile); a generator, so results are used as they arrive."""
+    import multiprocessing
+    import os
+    from concurrent.futures import ProcessPoolExecutor
+    from functools import partial
+
+    n = min(len(tiles), os.cpu_count() or 1) if workers == 0 else min(workers, len(tiles))
+    if n <= 1:
+        yield from (_detect_tile(job, t) for t in tiles)
+        return
+    with ProcessPoolExecutor(n, mp_context=multiprocessing.get_context("fork")) as pool:
+        yield from pool.map(partial(_detect_tile, job), tiles)
+
+
 def detect_mosaic(path, segm_out, cfg: DetectionConfig, psf_fwhm_arcsec: float,
                   core: int | None = None, margin: int | None = None,
-                  progress: bool = False) -> Table:
+                  progress: bool = False, workers: int = 1) -> Table:
     """Detect sources on a mosaic file tile by tile, in memory bounded by the tile size.
 
     The mosaic (``SCI``, ``WHT`` and, if present, ``DQ`` extensions) is opened as a memory map
@@ -315,6 +377,9 @@ def detect_mosaic(path, segm_out, cfg: DetectionConfig, psf_fwhm_arcsec: float,
         Show a progress bar over the tiles.
     core, margin : int (pixels), optional
         Tile core side and overlap; default :data:`TILE_CORE_PIX`, :data:`TILE_MARGIN_PIX`.
+    workers : int
+        Processes for the tiles (0: one per core; never more than the tiles). Each holds one
+        tile (~1.2 GB for a full 3072-pixel core), and the result does not depend on it.
 
     Returns
     -------
@@ -358,36 +423,22 @@ def detect_mosaic(path, segm_out, cfg: DetectionConfig, psf_fwhm_arcsec: float,
         offset = 0
         from tqdm import tqdm
 
-        bar = tqdm(total=len(ty) * len(tx), desc=f"detect {Path(path).name}", unit="tile",
+        tiles = [(yb, xb) for yb in ty for xb in tx]
+        job = _TileJob(Path(path), maps, no_cov, wcs, one, cfg, psf_fwhm_arcsec, zp, scale,
+                       exptime, (ny, nx), segm_out is not None)
+        bar = tqdm(total=len(tiles), desc=f"detect {Path(path).name}", unit="tile",
                    disable=not progress, leave=False)
-        for ylo, y0, y1, yhi in ty:
-            for xlo, x0, x1, xhi in tx:
-                win = (slice(ylo, yhi), slice(xlo, xhi))
-                mask = None if "DQ" not in maps else \
-                    (_window(path, *maps["DQ"], win) & no_cov) != 0
-                twcs = wcs if one else wcs.slice(win)
-                det = detect_sources(_window(path, *maps["SCI"], win).astype(float),
-                                     _window(path, *maps["WHT"], win).astype(float),
-                                     twcs, cfg, psf_fwhm_arcsec, zp, scale, exptime=exptime,
-                                     mask=mask)
-                cat = det.catalog
-                gx = np.asarray(cat["x"], float) + xlo
-                gy = np.asarray(cat["y"], float) + ylo
-                px = np.clip(np.floor(gx + 0.5), 0, nx - 1)
-                py = np.clip(np.floor(gy + 0.5), 0, ny - 1)
-                own = (px >= x0) & (px < x1) & (py >= y0) & (py < y1)
-                labels = np.asarray(cat["id"], np.int64)
-                cat["x"], cat["y"] = gx, gy
-                kept.append(cat[own])
-                provisional.append((offset, labels, own, gx, gy))
-                if segm_out is not None:
-                    seg = det.segmentation[y0 - ylo:y1 - ylo, x0 - xlo:x1 - xlo]
-                    out = segm_file.array("SEGM") if segm_file else segm_out
-                    out[y0:y1, x0:x1] = np.where(seg > 0, seg + offset, 0)
-                    del out
-                offset += int(det.segmentation.max(initial=0))
-                del det, mask
-                bar.update()
+        for (yb, xb), (cat, labels, own, gx, gy, seg, n_labels) in zip(
+                tiles, _map_detect(job, tiles, workers)):
+            kept.append(cat[own])
+            provisional.append((offset, labels, own, gx, gy))
+            if seg is not None:
+                (_, y0, y1, _), (_, x0, x1, _) = yb, xb
+                out = segm_file.array("SEGM") if segm_file else segm_out
+                out[y0:y1, x0:x1] = np.where(seg > 0, seg + offset, 0)
+                del out
+            offset += n_labels
+            bar.update()
         bar.close()
 
         # ---- seam duplicates, then global ids in tile order
@@ -437,7 +488,7 @@ def detect_mosaic(path, segm_out, cfg: DetectionConfig, psf_fwhm_arcsec: float,
     return cat
 
 
-def run_detection(run_dir, sc, bands, prov, progress: bool = False) -> dict:
+def run_detection(run_dir, sc, bands, prov, progress: bool = False, workers: int = 1) -> dict:
     """Run :func:`detect_mosaic` on each mosaic of a run directory; write ``detections_<band>.fits``.
 
     The file holds the primary header (provenance, ``BAND``), the ``SEGM`` image (int32
@@ -457,6 +508,8 @@ def run_detection(run_dir, sc, bands, prov, progress: bool = False) -> dict:
         Provenance written into every file.
     progress : bool
         Progress bars over each mosaic's tiles.
+    workers : int
+        Processes for each mosaic's tiles (see :func:`detect_mosaic`).
 
     Returns
     -------
@@ -482,7 +535,7 @@ def run_detection(run_dir, sc, bands, prov, progress: bool = False) -> dict:
         out = run_dir / f"detections_{name}.fits"
         with section_files([(out, [spec], [("BAND", name, "simfield band name")])],
                            prov) as (sf,):
-            cat = detect_mosaic(mpath, sf, cfg, fwhm, progress=progress)
+            cat = detect_mosaic(mpath, sf, cfg, fwhm, progress=progress, workers=workers)
             cat.meta.update({"BAND": name})
             tab = fits.BinTableHDU(cat, name="DETECTIONS")
             for key, value, comment in prov.header_cards():

@@ -232,7 +232,7 @@ def run_scenario(sc: Scenario, out_dir: str | Path, progress: bool = False) -> R
         with timer("detect"):
             from .detect import run_detection
 
-            summary["detections"] = run_detection(out, sc, bands, prov, progress)
+            summary["detections"] = run_detection(out, sc, bands, prov, progress, sc.workers)
             files.extend(out / f"detections_{b}.fits" for b in summary["detections"])
     if sc.score.enabled and sc.detection.enabled:
         with timer("score"):
