@@ -464,9 +464,7 @@ def _image_files(out: Path, sc: Scenario, bands: list[Band], mgrid: Grid, egrids
 
     srv, area = sc.survey, sc.telescope.collecting_area_m2
     t_total = srv.exposure_time_s * srv.n_exposures
-    dq_cards = [(("DQ" + name[3:].replace("_", ""))[:8], getattr(survey, name),
-                 f"DQ bit value of {name}")
-                for name in survey.__all__ if name.startswith("DQ_") and name != "DQ_EXCLUDE"]
+    dq_cards = survey.dq_header_cards()
     seg_note = ("SEGDEF", "id of the source contributing most light above SEGTHR", "")
 
     def hdr(grid: Grid, bunit: str, cards=()):

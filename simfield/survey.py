@@ -40,6 +40,7 @@ __all__ = [
     "DQ_NO_COVERAGE",
     "DQ_NO_SLOPE",
     "DQ_EXCLUDE",
+    "dq_header_cards",
     "Mosaic",
     "scene_grid",
     "mosaic_grid",
@@ -74,6 +75,20 @@ DQ_NO_COVERAGE = 16
 DQ_NO_SLOPE = 32
 #: Exposure pixels with any of these bits get zero weight in the drizzle.
 DQ_EXCLUDE = DQ_HOT | DQ_DEAD | DQ_NO_SLOPE
+
+
+
+def dq_header_cards() -> list[tuple[str, int, str]]:
+    """(FITS key, bit value, comment) of every DQ bit, as written in the header of each DQ
+    extension: the key is ``DQ`` and the bit's name without underscores, cut to the 8
+    characters of a FITS keyword (``DQHOT``, ``DQNOCOVE``, ...)."""
+    bits = [("DQ_HOT", "hot pixel (excluded)"), ("DQ_DEAD", "dead pixel (excluded)"),
+            ("DQ_COSMIC_RAY", "cosmic-ray jump, clean segment kept"),
+            ("DQ_SATURATED", "saturated late in ramp, early groups kept"),
+            ("DQ_NO_COVERAGE", "no coverage"), ("DQ_NO_SLOPE", "no usable slope (excluded)")]
+    return [(("DQ" + name[3:].replace("_", ""))[:8], globals()[name], comment)
+            for name, comment in bits]
+
 
 # R2 low-discrepancy sequence (Roberts 2018, "The unreasonable effectiveness of quasirandom
 # sequences" [mem]): phases k/g, k/g^2 mod 1 with g the plastic number, g^3 = g + 1.
@@ -468,12 +483,8 @@ def mosaic_hdus(mosaic: Mosaic, grid: Grid, band: str = "", zeropoint: float | N
         if unit:
             h.header["BUNIT"] = unit
         if name == "DQ":
-            h.header["DQ_HOT"] = (DQ_HOT, "hot pixel (excluded)")
-            h.header["DQ_DEAD"] = (DQ_DEAD, "dead pixel (excluded)")
-            h.header["DQ_CR"] = (DQ_COSMIC_RAY, "cosmic-ray jump, clean segment kept")
-            h.header["DQ_SAT"] = (DQ_SATURATED, "saturated late in ramp, early groups kept")
-            h.header["DQ_NOCOV"] = (DQ_NO_COVERAGE, "no coverage")
-            h.header["DQ_NOSLP"] = (DQ_NO_SLOPE, "no usable slope (excluded)")
+            for key, bit, comment in dq_header_cards():
+                h.header[key] = (bit, comment)
         h.header["EXPTIME"] = (float(mosaic.exp.max()) if mosaic.exp.size else 0.0,
                                "[s] maximum summed exposure time")
         hdus.append(h)

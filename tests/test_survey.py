@@ -278,6 +278,11 @@ def test_mosaic_hdus_verify():
     hdus.verify("exception")
     assert hdus["SCI"].header["BUNIT"] == "electron/s"
     assert hdus["SCI"].header["EXPTIME"] == 4000.0
+    # the DQ bits under the keys the pipeline's files use and detection reads (DQNOCOVE)
+    dq = hdus["DQ"].header
+    assert (dq["DQHOT"], dq["DQDEAD"], dq["DQCOSMIC"], dq["DQSATURA"], dq["DQNOCOVE"],
+            dq["DQNOSLOP"]) == (sv.DQ_HOT, sv.DQ_DEAD, sv.DQ_COSMIC_RAY, sv.DQ_SATURATED,
+                                sv.DQ_NO_COVERAGE, sv.DQ_NO_SLOPE)
     w = WCS(hdus["SCI"].header)
     assert_allclose(w.all_pix2world([[3.0, 7.0]], 0), mg.wcs.all_pix2world([[3.0, 7.0]], 0),
                     rtol=0, atol=1e-12)
