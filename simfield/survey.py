@@ -77,7 +77,6 @@ DQ_NO_SLOPE = 32
 DQ_EXCLUDE = DQ_HOT | DQ_DEAD | DQ_NO_SLOPE
 
 
-
 def dq_header_cards() -> list[tuple[str, int, str]]:
     """(FITS key, bit value, comment) of every DQ bit, as written in the header of each DQ
     extension: the key is ``DQ`` and the bit's name without underscores, cut to the 8
