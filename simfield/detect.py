@@ -489,7 +489,8 @@ def detect_mosaic(path, segm_out, cfg: DetectionConfig, psf_fwhm_arcsec: float,
 
 
 def run_detection(run_dir, sc, bands, prov, progress: bool = False, workers: int = 1) -> dict:
-    """Run :func:`detect_mosaic` on each mosaic of a run directory; write ``detections_<band>.fits``.
+    """Run :func:`detect_mosaic` on each mosaic of a run directory; write
+    ``detections_<band>.fits``.
 
     The file holds the primary header (provenance, ``BAND``), the ``SEGM`` image (int32
     labels = catalogue ids, with the mosaic WCS; written by sections through a memory map, see

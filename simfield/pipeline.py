@@ -110,8 +110,7 @@ def run_scenario(sc: Scenario, out_dir: str | Path, progress: bool = False) -> R
         Log stage progress.
     """
     # stage modules are imported here so that ``import simfield.pipeline`` stays light
-    from .optics.psf import cached_band_psf, effective_psf, write_psf_png
-    from .optics.pupil import scenario_pupil
+    from .optics.psf import cached_band_psf, cached_psf_png, effective_psf
     from .population.lightcone import make_population
     from .survey import exposure_grids, mosaic_grid, scene_grid
 
@@ -176,9 +175,8 @@ def run_scenario(sc: Scenario, out_dir: str | Path, progress: bool = False) -> R
                                     psf_wide[b.name],
                                     effective_psf(psf_core[b.name], tel.pixel_scale_arcsec),
                                     b, prov))
-        pupil = scenario_pupil(tel, sc.seed, grid_size=512)
-        write_psf_png([psf_wide[b.name] for b in bands], pupil, out / "psf.png")
-        files.append(out / "psf.png")
+        files.append(cached_psf_png(tel, [psf_wide[b.name] for b in bands], sc.seed,
+                                    out / "psf.png", cache))
 
     # ---------------------------------------------------------------- tiles
     from .survey import plan_tiles
@@ -555,9 +553,10 @@ def _draw_tile(ctx: _TileContext, acc_box, acc_grid: Grid, bright_box,
 
     ``acc_box`` is the tile's scene window grown by the core PSF (the light convolved there;
     ``acc_grid`` its window of the scene grid), ``bright_box`` grown by the large PSF, which
-    sources bright in some band (``bright_any``) may reach. Lensed sources are ray traced on the window of ``acc_box``; they are found from
-    the box's source-plane bounds (:func:`simfield.lensing.source_plane_bounds`). The diffuse
-    intracluster light is drawn over the window only (:func:`simfield.scene.draw_window`).
+    sources bright in some band (``bright_any``) may reach. Lensed sources are ray traced on
+    the window of ``acc_box``; they are found from the box's source-plane bounds
+    (:func:`simfield.lensing.source_plane_bounds`). The diffuse intracluster light is drawn
+    over the window only (:func:`simfield.scene.draw_window`).
     """
     import galsim
 

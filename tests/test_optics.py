@@ -29,7 +29,7 @@ from simfield.bands import make_band
 from simfield.config import PSFConfig, PupilConfig, TelescopeConfig
 from simfield.errors import ConfigError
 from simfield.optics import (band_psf, cached_band_psf, effective_psf, make_pupil,
-                             monochromatic_psf, scenario_pupil, write_psf_png)
+                             cached_psf_png, monochromatic_psf, scenario_pupil, write_psf_png)
 from simfield.optics import psf as psf_module
 
 RAD_PER_ARCSEC = np.pi / 180 / 3600
@@ -411,3 +411,28 @@ def test_write_psf_png(tmp_path):
     p = band_psf(tel, narrow_band(), 0.05, 0.5)
     out = write_psf_png([p], make_pupil(tel), tmp_path / "psf.png")
     assert out.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+
+
+def test_cached_psf_png_draws_once_per_content(tmp_path, monkeypatch):
+    """The cached picture has the bytes write_psf_png gives for the same PSFs and pupil; a
+    second run copies it without drawing; other PSF values make another picture; no
+    temporary file is left."""
+    tel = circular(grid=64, n_wavelengths=1)
+    p = band_psf(tel, narrow_band(), 0.05, 0.5)
+    ref = write_psf_png([p], scenario_pupil(tel, 4, grid_size=64), tmp_path / "ref.png")
+    out = cached_psf_png(tel, [p], 4, tmp_path / "run1" / "psf.png", tmp_path / "cache",
+                         pupil_grid=64)
+    assert out.read_bytes() == ref.read_bytes()
+    drawn = []
+    real = psf_module.write_psf_png
+    monkeypatch.setattr(psf_module, "write_psf_png",
+                        lambda *a, **k: drawn.append(1) or real(*a, **k))
+    again = cached_psf_png(tel, [p], 4, tmp_path / "run2" / "psf.png", tmp_path / "cache",
+                           pupil_grid=64)
+    assert again.read_bytes() == ref.read_bytes() and not drawn
+    q = dataclasses.replace(p, image=p.image * 0.5)
+    cached_psf_png(tel, [q], 4, tmp_path / "run3" / "psf.png", tmp_path / "cache",
+                   pupil_grid=64)
+    assert drawn == [1] and len(list((tmp_path / "cache").glob("*.png"))) == 2
+    assert not list(tmp_path.rglob("*.part"))
+

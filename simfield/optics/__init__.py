@@ -13,6 +13,7 @@ from .psf import (
     measure_fwhm,
     monochromatic_psf,
     write_psf_png,
+    cached_psf_png,
 )
 from .pupil import Pupil, make_pupil, pupil_extent_m, scenario_pupil, segment_centers
 
@@ -31,4 +32,5 @@ __all__ = [
     "measure_fwhm",
     "encircled_energy",
     "write_psf_png",
+    "cached_psf_png",
 ]

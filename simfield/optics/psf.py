@@ -52,6 +52,7 @@ __all__ = [
     "measure_fwhm",
     "encircled_energy",
     "write_psf_png",
+    "cached_psf_png",
 ]
 
 _RAD_PER_ARCSEC = np.pi / 180.0 / 3600.0
@@ -541,3 +542,33 @@ def write_psf_png(psfs: Sequence[PSFImage], pupil: Pupil, path: str | os.PathLik
     with atomic_path(path) as tmp:
         fig.savefig(tmp, dpi=100, format="png")
     return path
+
+
+def cached_psf_png(tel: TelescopeConfig, psfs: Sequence[PSFImage], seed: int,
+                   path: str | os.PathLike, cache_dir: str | os.PathLike | None = None,
+                   pupil_grid: int = 512) -> Path:
+    """:func:`write_psf_png` of ``psfs`` and the scenario's pupil, kept in the PSF disk cache.
+
+    Drawing the picture takes seconds (matplotlib), longer than a small run's optics; the
+    cached copy is named by a SHA-256 of the PSF images and what they are titled with, the
+    pupil settings, ``seed``, ``pupil_grid`` and the code version, and copied to ``path``
+    (through a temporary name, so a killed run leaves no partial file).
+    """
+    import shutil
+
+    h = hashlib.sha256(json.dumps({"version": _CACHE_VERSION,
+                                   "pupil": dataclasses.asdict(tel.pupil), "seed": int(seed),
+                                   "grid": int(pupil_grid)}, sort_keys=True,
+                                  default=str).encode())
+    for p in psfs:
+        h.update(f"{p.band} {p.fwhm_arcsec:.6g} {p.strehl:.6g} {p.scale_arcsec!r}".encode())
+        h.update(np.ascontiguousarray(p.image).tobytes())
+    cached = Path(cache_dir if cache_dir is not None else tel.psf.cache_dir) / \
+        f"psf_picture_{h.hexdigest()[:20]}.png"
+    if not cached.exists():
+        write_psf_png(psfs, scenario_pupil(tel, seed, grid_size=pupil_grid), cached)
+    path = Path(path)
+    with atomic_path(path) as tmp:
+        shutil.copyfile(cached, tmp)
+    return path
+
