@@ -10,7 +10,6 @@ from __future__ import annotations
 
 import time
 
-
 from simfield.bands import make_band
 from simfield.config import DetectorConfig, SurveyConfig, TelescopeConfig
 from simfield.detector import expose, make_fixed_pattern

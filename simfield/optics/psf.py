@@ -571,4 +571,3 @@ def cached_psf_png(tel: TelescopeConfig, psfs: Sequence[PSFImage], seed: int,
     with atomic_path(path) as tmp:
         shutil.copyfile(cached, tmp)
     return path
-
