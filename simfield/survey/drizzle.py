@@ -1,0 +1,206 @@
+"""Drizzling exposures into a mosaic (Fruchter & Hook 2002, PASP 114, 144) and the
+mosaic's flags."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from ..errors import check_range, require
+from ..grid import Grid
+from .grids import _affine, _is_aligned
+
+#: DQ bit: hot pixel (high dark current), excluded from the mosaic.
+DQ_HOT = 1
+#: DQ bit: dead pixel (no response), excluded.
+DQ_DEAD = 2
+#: DQ bit: cosmic-ray jump found in the ramp; the slope comes from the longest clean segment
+#: (kept, with its larger variance).
+DQ_COSMIC_RAY = 4
+#: DQ bit: saturated before the end of the ramp; slope from the unsaturated groups (kept).
+DQ_SATURATED = 8
+#: DQ bit (mosaic only): no unflagged exposure pixel covers this mosaic pixel.
+DQ_NO_COVERAGE = 16
+#: DQ bit: fewer than two usable groups, no slope (excluded).
+DQ_NO_SLOPE = 32
+#: Exposure pixels with any of these bits get zero weight in the drizzle.
+DQ_EXCLUDE = DQ_HOT | DQ_DEAD | DQ_NO_SLOPE
+
+
+def dq_header_cards() -> list[tuple[str, int, str]]:
+    """(FITS key, bit value, comment) of every DQ bit, as written in the header of each DQ
+    extension: the key is ``DQ`` and the bit's name without underscores, cut to the 8
+    characters of a FITS keyword (``DQHOT``, ``DQNOCOVE``, ...)."""
+    bits = [("DQ_HOT", "hot pixel (excluded)"), ("DQ_DEAD", "dead pixel (excluded)"),
+            ("DQ_COSMIC_RAY", "cosmic-ray jump, clean segment kept"),
+            ("DQ_SATURATED", "saturated late in ramp, early groups kept"),
+            ("DQ_NO_COVERAGE", "no coverage"), ("DQ_NO_SLOPE", "no usable slope (excluded)")]
+    return [(("DQ" + name[3:].replace("_", ""))[:8], globals()[name], comment)
+            for name, comment in bits]
+
+
+@dataclass(frozen=True, eq=False)
+class Mosaic:
+    """A drizzled mosaic on a mosaic grid.
+
+    Attributes
+    ----------
+    sci : ndarray (e-/s per mosaic pixel)
+        Weighted mean of the exposures (sky subtracted if asked), 0 where not covered.
+    wht : ndarray ((e-/s)^-2)
+        Inverse variance of ``sci`` per pixel (from the exposures' variances; ignores the
+        pixel-to-pixel correlation drizzle introduces), 0 where not covered.
+    exp : ndarray (s)
+        Summed exposure time of the exposures that contribute.
+    dq : ndarray (int32 bit mask)
+        OR of the DQ bits of contributing (kept) exposure pixels, plus ``DQ_NO_COVERAGE``.
+    """
+
+    sci: np.ndarray
+    wht: np.ndarray
+    exp: np.ndarray
+    dq: np.ndarray
+
+
+def _pixmap(src: Grid, dst: Grid) -> np.ndarray:
+    """(ny, nx, 2) map of src pixel centres to dst pixel coordinates (0-based)."""
+    a, b = _affine(src, dst)
+    x = np.arange(src.nx, dtype=float)[None, :]
+    y = np.arange(src.ny, dtype=float)[:, None]
+    pm = np.empty(src.shape + (2,))
+    pm[..., 0] = a[0, 0] * x + a[0, 1] * y + b[0]
+    pm[..., 1] = a[1, 0] * x + a[1, 1] * y + b[1]
+    return pm
+
+
+def drizzle_mosaic(exposures, exp_grids: list[Grid], mosaic_grid: Grid, kernel: str = "square",
+                   pixfrac: float = 0.8, subtract_sky: bool = True) -> Mosaic:
+    """Drizzle exposures onto the mosaic grid (Fruchter & Hook 2002, PASP 114, 144).
+
+    Parameters
+    ----------
+    exposures : iterable of simfield.detector.Exposure
+        Consumed one at a time (a generator keeps only one exposure in memory). Each with ``sci`` (e-/s), ``var`` ((e-/s)^2), ``var_sky`` ((e-/s)^2, variance of a
+        source-free pixel), ``dq``, ``exptime`` (s) and ``sky`` (e-/s per pixel).
+    exp_grids : list of Grid
+        The exposures' grids (same tangent point as ``mosaic_grid``).
+    mosaic_grid : Grid
+    kernel : str
+        Drizzle kernel: square, point, turbo, gaussian, lanczos3 (the last two do not conserve
+        flux).
+    pixfrac : float
+        Linear size of the drop relative to the input pixel (0, 1].
+    subtract_sky : bool
+        Subtract each exposure's nominal sky level before combining.
+
+    Returns
+    -------
+    Mosaic
+
+    Notes
+    -----
+    Input pixels are weighted by 1/var_sky (inverse-variance weights that do not depend on the
+    sources, so they do not bias source fluxes), and pixels with any ``DQ_EXCLUDE`` bit get
+    weight 0. Input rates are scaled by (mosaic pixel / detector pixel)^2 so ``sci`` is in e-/s
+    per mosaic pixel and sums to the same total flux. The variance of ``sci`` is drizzled with
+    squared weights: var = sum(w^2 a^2 var_i) / (sum w a)^2, and ``wht = 1 / var``.
+    """
+    from drizzle.resample import Drizzle
+
+    require(kernel in ("square", "point", "turbo", "gaussian", "lanczos3"), "survey.drizzle_kernel",
+            kernel, "must be one of: square, point, turbo, gaussian, lanczos3")
+    check_range("survey.pixfrac", pixfrac, 0, 1, lo_open=True)
+    require(len(exp_grids) > 0, "exp_grids", len(exp_grids), "must not be empty")
+    aligned = all(_is_aligned(_affine(g, mosaic_grid)[0]) for g in exp_grids)
+    # with the exposure axes along the mosaic axes the square drop is an axis-aligned square,
+    # which the turbo kernel computes exactly and ~3x faster (checked in the tests)
+    driz = Drizzle(kernel="turbo" if kernel == "square" and aligned else kernel,
+                   out_shape=mosaic_grid.shape, fillval=0.0, fillval2=0.0,
+                   max_ctx_id=len(exp_grids) - 1)
+    exptimes = []
+    for k, e in enumerate(exposures):
+        require(k < len(exp_grids), "exposures", k + 1,
+                f"must be as many as exp_grids ({len(exp_grids)})")
+        g = exp_grids[k]
+        exptimes.append(float(e.exptime))
+        require(e.sci.shape == g.shape, "exposure.sci", e.sci.shape,
+                f"must have its grid's shape {g.shape}")
+        ratio = mosaic_grid.scale / g.scale
+        var_sky = np.asarray(getattr(e, "var_sky", e.var), dtype=np.float32)
+        good = ((e.dq & DQ_EXCLUDE) == 0) & (var_sky > 0)
+        with np.errstate(divide="ignore"):
+            w = np.where(good, np.float32(1.0) / var_sky, np.float32(0.0))
+        sci = e.sci - np.float32(getattr(e, "sky", 0.0)) if subtract_sky else e.sci
+        driz.add_image(np.asarray(sci, np.float32), exptime=float(e.exptime),
+                       pixmap=_pixmap(g, mosaic_grid), data2=np.asarray(e.var, np.float32),
+                       dq=np.asarray(e.dq, np.uint32), iscale=ratio * ratio,
+                       pixel_scale_ratio=ratio, weight_map=w, pixfrac=pixfrac, in_units="cps")
+    require(len(exptimes) == len(exp_grids), "exposures", len(exptimes),
+            f"must be as many as exp_grids ({len(exp_grids)})")
+    sci = np.asarray(driz.out_img, dtype=np.float32)
+    var = np.asarray(driz.out_img2[0] if isinstance(driz.out_img2, list) else driz.out_img2,
+                     dtype=np.float32)
+    covered = np.asarray(driz.out_wht) > 0
+    with np.errstate(divide="ignore"):
+        wht = np.where(covered & (var > 0), np.float32(1.0) / var, np.float32(0.0))
+    ctx = np.asarray(driz.out_ctx)
+    ctx = ctx.reshape((-1,) + mosaic_grid.shape).astype(np.uint32)
+    exp = np.zeros(mosaic_grid.shape, np.float32)
+    for i, t in enumerate(exptimes):
+        exp += ((ctx[i // 32] >> np.uint32(i % 32)) & np.uint32(1)) * np.float32(t)
+    dq = np.zeros(mosaic_grid.shape, np.int32) if driz.out_dq is None else \
+        np.asarray(driz.out_dq).astype(np.int32)
+    dq[~covered] |= DQ_NO_COVERAGE
+    sci[~covered] = 0.0
+    return Mosaic(sci=sci, wht=wht, exp=exp, dq=dq)
+
+
+def mosaic_hdus(mosaic: Mosaic, grid: Grid, band: str = "", zeropoint: float | None = None,
+                header: dict | None = None) -> list:
+    """FITS HDUs of a mosaic: an empty primary and SCI, WHT, EXP, DQ image extensions.
+
+    Parameters
+    ----------
+    mosaic : Mosaic
+    grid : Grid
+        The mosaic grid (its TAN WCS goes into every extension).
+    band : str
+        Band name (keyword BAND).
+    zeropoint : float or None (AB mag)
+        AB magnitude of 1 e-/s (keyword ZP_AB).
+    header : dict or None
+        Extra primary-header keywords (e.g. provenance), names of at most 8 characters.
+
+    Returns
+    -------
+    list of astropy.io.fits HDUs
+    """
+    from astropy.io import fits
+
+    prim = fits.PrimaryHDU()
+    for k, v in (header or {}).items():
+        prim.header[k] = v
+    if band:
+        prim.header["BAND"] = (band, "band name")
+    if zeropoint is not None:
+        prim.header["ZP_AB"] = (float(zeropoint), "AB mag of 1 e-/s")
+    prim.header["EXPTIME"] = (float(mosaic.exp.max()) if mosaic.exp.size else 0.0,
+                              "[s] maximum summed exposure time")
+    wcs_header = grid.wcs.to_header()
+    units = {"SCI": ("electron/s", mosaic.sci.astype(np.float32)),
+             "WHT": ("s2/electron2", mosaic.wht.astype(np.float32)),
+             "EXP": ("s", mosaic.exp.astype(np.float32)),
+             "DQ": ("", mosaic.dq.astype(np.int32))}
+    hdus = [prim]
+    for name, (unit, data) in units.items():
+        h = fits.ImageHDU(data=data, header=wcs_header.copy(), name=name)
+        if unit:
+            h.header["BUNIT"] = unit
+        if name == "DQ":
+            for key, bit, comment in dq_header_cards():
+                h.header[key] = (bit, comment)
+        h.header["EXPTIME"] = (float(mosaic.exp.max()) if mosaic.exp.size else 0.0,
+                               "[s] maximum summed exposure time")
+        hdus.append(h)
+    return hdus
