@@ -266,16 +266,32 @@ def test_radial_struts_spike_count(n_struts):
     angle_set_close(found, expected, 2.0)
 
 
-def test_three_strut_preset_six_plus_two(scenario_factory):
-    """conf telescope=three_struts: six main spikes along the hexagon normals plus a fainter
-    pair perpendicular to the 90-deg strut (common practice)."""
+def test_three_strut_preset_six_plus_six(scenario_factory):
+    """conf telescope=three_struts: three struts 120 deg apart at 100, 220, 340 deg. Expected
+    spikes (common practice): six along the hexagon-edge normals 30 + 60 k deg, and a pair
+    perpendicular to each strut, a +- 90 deg = 10 + 60 k deg (odd N = 3 -> 2N = 6, none on a
+    segment spike, each 20 deg from the nearest). Found to 2 deg, twelve in all, the strut
+    spikes fainter than the segment-edge ones, and nothing at 0 / 180 deg, the pair a strut at
+    90 deg would throw."""
+    struts = np.array([100.0, 220.0, 340.0])
     tel = scenario_factory("telescope=three_struts").telescope
+    assert tel.pupil.strut_count == 3
+    assert_allclose(tel.pupil.strut_angles_deg, struts)
+    hexagon = np.mod(30.0 + 60.0 * np.arange(6), 360)
+    strut_spikes = np.unique(np.mod(np.concatenate([struts + 90, struts - 90]), 360))
+    assert strut_spikes.size == 6
+    sep = np.abs((strut_spikes[:, None] - hexagon[None, :] + 180) % 360 - 180).min(axis=1)
+    assert_allclose(sep, 20.0)
     img = poly_psf(make_pupil(tel, grid_size=256), np.linspace(1800, 2200, 5), 0.02, 341)
-    found, prof, _ = spike_angles(img, 100, 165)
-    angle_set_close(found, [0, 30, 90, 150, 180, 210, 270, 330], 2.0)
+    found, prof, med = spike_angles(img, 100, 165)
+    angle_set_close(found, np.concatenate([hexagon, strut_spikes]), 2.0)
     level = prof[(found // 1).astype(int)]
-    pair = np.isin(np.round(found - 0.5) % 180, [0])
-    assert pair.sum() == 2 and level[pair].max() < level[~pair].min()
+    d_strut = np.abs((found[:, None] - strut_spikes[None, :] + 180) % 360 - 180).min(axis=1)
+    is_strut = d_strut <= 2.0
+    assert is_strut.sum() == 6 and level[is_strut].max() < level[~is_strut].min()
+    assert level[is_strut].min() > 4 * med  # well above the detection contrast (3)
+    off = np.abs((np.arange(360) + 0.5 + 90) % 180 - 90) <= 3  # bins within 3 deg of 0 / 180
+    assert prof[off].max() < 1.5 * med
 
 
 # --------------------------------------------------------------------------------------------
