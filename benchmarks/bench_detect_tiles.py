@@ -66,7 +66,7 @@ def write_mosaic(run_dir: Path, size: int, n_sources: int, seed: int = 1) -> Non
     specs = [ImageSpec("SCI", (size, size), np.float32, hdr),
              ImageSpec("WHT", (size, size), np.float32, hdr),
              ImageSpec("EXP", (size, size), np.float32, hdr),
-             ImageSpec("DQ", (size, size), np.int32, [("DQNOCOVE", 16, "no coverage bit")])]
+             ImageSpec("DQ", (size, size), np.int32, [("FNODATA", 1, "no-data bit")])]
     rows = 500
     with section_files([(run_dir / f"mosaic_{BAND}.fits", specs, [])], prov) as (f,):
         sci, wht, exp_ = f.array("SCI"), f.array("WHT"), f.array("EXP")

@@ -185,6 +185,7 @@ class DetectorConfig:
     cosmic_ray_rate_cm2_s: float = 5.0  #: cosmic-ray events per cm^2 per s
     cosmic_ray_charge_e: float = 6000.0  #: median total charge of one event (e-)
     jump_threshold_sigma: float = 5.0  #: a ramp jump above this many sigma is detected
+    dark_cal_ramps: int = 20  #: dark ramps averaged into the calibration dark (0: noiseless)
     poisson: bool = True
     read_noise: bool = True
     dark_current: bool = True
@@ -441,6 +442,7 @@ def _validate_detector(d: DetectorConfig) -> None:
     check_range("detector.cosmic_ray_rate_cm2_s", d.cosmic_ray_rate_cm2_s, 0, 1000)
     check_range("detector.cosmic_ray_charge_e", d.cosmic_ray_charge_e, 0, 1e7)
     check_range("detector.jump_threshold_sigma", d.jump_threshold_sigma, 0, 1000, lo_open=True)
+    check_range("detector.dark_cal_ramps", d.dark_cal_ramps, 0, 10000)
 
 
 def _validate_survey(s: SurveyConfig) -> None:

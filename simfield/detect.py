@@ -82,7 +82,7 @@ def _columns_empty(meta) -> Table:
 
 def detect_sources(sci, wht, wcs: WCS, cfg: DetectionConfig, psf_fwhm_arcsec: float,
                    zeropoint: float, pixel_scale_arcsec: float, exptime: float | None = None,
-                   mask=None) -> Detections:
+                   mask=None, noise_table=None) -> Detections:
     """Detect and measure sources on one mosaic.
 
     Parameters
@@ -106,6 +106,12 @@ def detect_sources(sci, wht, wcs: WCS, cfg: DetectionConfig, psf_fwhm_arcsec: fl
         electrons per e-/s) is added to the flux errors.
     mask : ndarray of bool, optional
         Pixels to ignore (e.g. data-quality flags set).
+    noise_table : tuple or None
+        The mosaic's aperture noise table (:func:`simfield.noisecards.read_noise_factors`):
+        every flux error is multiplied by the factor F at the radius of its footprint
+        (circular aperture: its radius; Kron ellipse and isophotal area: the radius of a
+        circle of the same area), since the pixels of a drizzled mosaic are correlated.
+        None: errors from the pixel variances alone.
 
     Returns
     -------
@@ -178,6 +184,16 @@ def detect_sources(sci, wht, wcs: WCS, cfg: DetectionConfig, psf_fwhm_arcsec: fl
     f_ap, e_ap = cat.circular_photometry(r_ap)
     f_kr, e_kr = cat.kron_flux, cat.kron_flux_err
     f_iso, e_iso = cat.segment_flux, cat.segment_flux_err
+    if noise_table is not None:  # correlated pixels: scale each error by F at its size
+        from .noisecards import noise_factor
+
+        ab = np.sqrt(np.asarray(cat.semimajor_axis.value, float)
+                     * np.asarray(cat.semiminor_axis.value, float))
+        r_kron = np.asarray(cat.kron_radius.value, float) * ab
+        r_iso = np.sqrt(np.asarray(cat.area.value, float) / np.pi)
+        e_ap = np.asarray(e_ap, float) * noise_factor(noise_table, r_ap)
+        e_kr = np.asarray(e_kr, float) * noise_factor(noise_table, np.nan_to_num(r_kron))
+        e_iso = np.asarray(e_iso, float) * noise_factor(noise_table, r_iso)
     x, y = np.asarray(cat.x_centroid, float), np.asarray(cat.y_centroid, float)
     ra, dec = wcs.all_pix2world(x, y, 0)
 
@@ -290,6 +306,7 @@ class _TileJob:
     exptime: float | None
     shape: tuple[int, int]
     want_segm: bool
+    noise_table: tuple | None = None
 
 
 def _detect_tile(job: _TileJob, tile):
@@ -306,7 +323,7 @@ def _detect_tile(job: _TileJob, tile):
     det = detect_sources(_window(job.path, *job.maps["SCI"], win).astype(float),
                          _window(job.path, *job.maps["WHT"], win).astype(float),
                          twcs, job.cfg, job.fwhm, job.zp, job.scale, exptime=job.exptime,
-                         mask=mask)
+                         mask=mask, noise_table=job.noise_table)
     cat = det.catalog
     gx = np.asarray(cat["x"], float) + xlo
     gy = np.asarray(cat["y"], float) + ylo
@@ -406,9 +423,12 @@ def detect_mosaic(path, segm_out, cfg: DetectionConfig, psf_fwhm_arcsec: float,
                 maps[ext] = (hl.fileinfo(hl.index_of(ext))["datLoc"],
                              (int(h["NAXIS2"]), int(h["NAXIS1"])), _FITS_DTYPE[h["BITPIX"]])
         require("SCI" in maps and "WHT" in maps, "mosaic", str(path), "needs SCI and WHT")
-        # cosmic-ray and saturation bits mark repaired pixels (their slopes were refitted):
-        # only pixels that no exposure covers are left out of detection
-        no_cov = int(hl["DQ"].header.get("DQNOCOVE", 16)) if "DQ" in maps else 0
+        # only pixels that no exposure reached are left out of detection (the other mosaic
+        # flags say how well a value is measured, and it is still a measurement)
+        no_cov = int(hl["DQ"].header.get("FNODATA", 1)) if "DQ" in maps else 0
+        from .noisecards import read_noise_factors
+
+        noise_table = read_noise_factors(hl["WHT"].header)
         wcs = WCS(hdr).celestial
         scale = float(np.sqrt(abs(np.linalg.det(wcs.pixel_scale_matrix))) * 3600.0)
         zp = float(hdr["ZP_AB"])
@@ -425,7 +445,7 @@ def detect_mosaic(path, segm_out, cfg: DetectionConfig, psf_fwhm_arcsec: float,
 
         tiles = [(yb, xb) for yb in ty for xb in tx]
         job = _TileJob(Path(path), maps, no_cov, wcs, one, cfg, psf_fwhm_arcsec, zp, scale,
-                       exptime, (ny, nx), segm_out is not None)
+                       exptime, (ny, nx), segm_out is not None, noise_table)
         bar = tqdm(total=len(tiles), desc=f"detect {Path(path).name}", unit="tile",
                    disable=not progress, leave=False)
         for (yb, xb), (cat, labels, own, gx, gy, seg, n_labels) in zip(

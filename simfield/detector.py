@@ -24,11 +24,19 @@ Effects (each switched by a :class:`~simfield.config.DetectorConfig` boolean)
 -----------------------------------------------------------------------------
 - ``flat``: pixel response P ~ 1 + flat_rms N(0, 1) multiplies the photo-current. The pipeline
   divides by a calibration flat P (1 + flat_error_rms N(0, 1)), so only the calibration error
-  stays in the image (and the noise is scaled by 1 / P).
-- ``dark_current``: dark_e_s accumulates (with shot noise); the pipeline subtracts the known
-  dark. Hot pixels (``bad_pixels``) add a much larger dark, flagged ``DQ_HOT``.
-- ``bad_pixels``: hot and dead (P = 0, flagged ``DQ_DEAD``) pixels, fixed per detector
-  (:func:`make_fixed_pattern`).
+  stays in the image (and the noise is scaled by 1 / P). That error, -epsilon x signal with
+  epsilon ~ N(0, flat_error_rms), is fixed per pixel; ``var`` carries its variance
+  (flat_error_rms x signal)^2.
+- ``dark_current``: dark_e_s accumulates (with shot noise). The pipeline subtracts a
+  calibration dark, as a reduction does: the mean of ``dark_cal_ramps`` dark ramps of the same
+  readout, so it holds each pixel's own dark (hot pixels included) after IPC, plus the noise of
+  that mean (variance = one dark ramp's slope variance / ``dark_cal_ramps``), a fixed pattern
+  that stays in every exposure and is part of ``var``.
+- ``bad_pixels``: hot (dark current ``hot_dark_e_s`` x 1...100, flagged ``DQ_HOT``) and dead
+  (P = 0, flagged ``DQ_DEAD``) pixels, fixed per detector (:func:`make_fixed_pattern`) and
+  known to the reduction (from its darks and flats). With IPC on, their four neighbours share
+  their charge (a hot pixel's dark, a dead pixel's missing signal) and are flagged
+  ``DQ_BAD_NEIGHBOUR``; all three are left out of the mosaic.
 - ``poisson``: shot noise of sky + sources + dark.
 - ``ipc``: inter-pixel capacitance, a 3x3 kernel with ``ipc_alpha`` on the four neighbours and
   1 - 4 alpha in the centre, acting on the collected charge (read noise is added after it).
@@ -39,7 +47,8 @@ Effects (each switched by a :class:`~simfield.config.DetectorConfig` boolean)
   exceeds ``jump_threshold_sigma`` times the noise of a group difference is detected: the pixel
   is flagged ``DQ_COSMIC_RAY`` and its slope is fitted to the longest clean run of groups (its
   variance grows accordingly); with fewer than two clean groups it gets ``DQ_NO_SLOPE``.
-  Fainter deposits stay in the ramp and bias the slope by charge x D_i.
+  Fainter deposits stay in the ramp and bias the slope by charge x D_i: the exposure's
+  ``artefact`` image holds that bias (e-/s), which no noise model describes.
 - ``saturation``: groups whose last frame holds more than ``full_well_e`` are dropped; a pixel
   that loses groups is flagged ``DQ_SATURATED`` and fitted to the rest; with fewer than two
   groups left it gets ``DQ_NO_SLOPE`` and sci = 0.
@@ -67,7 +76,9 @@ __all__ = [
     "DQ_COSMIC_RAY",
     "DQ_SATURATED",
     "DQ_NO_SLOPE",
+    "DQ_BAD_NEIGHBOUR",
     "DQ_EXCLUDE",
+    "sky_noise_terms",
     "FixedPattern",
     "Exposure",
     "make_fixed_pattern",
@@ -90,8 +101,10 @@ DQ_COSMIC_RAY = 4
 DQ_SATURATED = 8
 #: DQ bit: fewer than two usable groups, no slope, sci = 0 (excluded).
 DQ_NO_SLOPE = 32
+#: DQ bit: one of the four IPC neighbours of a hot or dead pixel (excluded).
+DQ_BAD_NEIGHBOUR = 64
 #: Pixels with these bits should not be used (simfield.survey gives them zero weight).
-DQ_EXCLUDE = DQ_HOT | DQ_DEAD | DQ_NO_SLOPE
+DQ_EXCLUDE = DQ_HOT | DQ_DEAD | DQ_NO_SLOPE | DQ_BAD_NEIGHBOUR
 
 _CR_SIGMA_LN = 0.5  # log-normal width of the event charge (common practice)
 _CR_MAX_LENGTH_PIX = 3.0  # projected track length uniform in [0, this] pixels (common practice)
@@ -112,6 +125,8 @@ class FixedPattern:
     hot_dark : ndarray (e-/s)
         Extra dark current of hot pixels (0 elsewhere).
     dead : ndarray of bool
+    dark_z : ndarray (dimensionless)
+        Standard normal deviates of the calibration dark's noise (scaled in :func:`expose`).
     """
 
     flat: np.ndarray
@@ -119,6 +134,7 @@ class FixedPattern:
     hot: np.ndarray
     hot_dark: np.ndarray
     dead: np.ndarray
+    dark_z: np.ndarray
 
 
 @dataclass(frozen=True, eq=False)
@@ -135,6 +151,9 @@ class Exposure:
         Variance of a source-free pixel (sky + dark + read), for inverse-variance weights.
     dq : ndarray (int32 bit mask)
         ``DQ_*`` bits.
+    artefact : ndarray (e-/s per pixel) or None
+        The part of ``sci`` that ``var`` does not describe: the slope bias of cosmic-ray
+        deposits too faint to be found (None without cosmic rays).
     exptime : float (s)
         Effective exposure time, (n_groups - 1) x group time.
     sky : float (e-/s per pixel)
@@ -150,6 +169,7 @@ class Exposure:
     exptime: float
     sky: float
     n_cr: int
+    artefact: np.ndarray | None = None
 
 
 def make_fixed_pattern(shape: tuple[int, int], det: DetectorConfig,
@@ -172,7 +192,9 @@ def make_fixed_pattern(shape: tuple[int, int], det: DetectorConfig,
     dead = (u >= det.hot_pixel_fraction) & (u < det.hot_pixel_fraction + det.dead_pixel_fraction)
     hot_dark = np.where(hot, det.hot_dark_e_s * 10.0 ** (2.0 * rng.random(shape, np.float32)),
                         0.0).astype(np.float32)
-    return FixedPattern(flat=flat, flat_cal=flat_cal, hot=hot, hot_dark=hot_dark, dead=dead)
+    dark_z = rng.standard_normal(shape, dtype=np.float32)
+    return FixedPattern(flat=flat, flat_cal=flat_cal, hot=hot, hot_dark=hot_dark, dead=dead,
+                        dark_z=dark_z)
 
 
 #: Side (pixels) of the detector blocks from which :func:`fixed_pattern_window` is built.
@@ -204,7 +226,7 @@ def fixed_pattern_window(det: DetectorConfig, seed: int, y0: int, y1: int, x0: i
     shape = (y1 - y0, x1 - x0)
     parts = {name: np.empty(shape, dtype) for name, dtype in
              (("flat", np.float32), ("flat_cal", np.float32), ("hot", bool),
-              ("hot_dark", np.float32), ("dead", bool))}
+              ("hot_dark", np.float32), ("dead", bool), ("dark_z", np.float32))}
     for by in range(y0 // b, (y1 - 1) // b + 1):
         for bx in range(x0 // b, (x1 - 1) // b + 1):
             blk = make_fixed_pattern((b, b), det, stream(seed, "detector_fixed", by, bx))
@@ -476,6 +498,63 @@ class _GeneratorNoise:
         return _cosmic_rays(self.shape, det, pixel_size_um, duration_s, n_intervals, self.rng)
 
 
+def _readout(det: DetectorConfig, exptime_s: float):
+    """Readout constants: frame time (s), frame variance sig_f2 (e-^2), slope factors a_full
+    (1/s^2) and b_full (1/s), interval weights D_i (1/s), IPC alpha and the pixel variance
+    IPC keeps for white charge noise."""
+    tf = frame_time(det, exptime_s)
+    sig_f2 = (det.read_noise_e ** 2 / 2.0 if det.read_noise else 0.0) + \
+        (det.gain_e_adu ** 2 / 12.0 if det.quantize else 0.0)
+    c = slope_weights(det.n_groups, det.n_frames, tf)
+    d_int = _interval_weights(c)
+    alpha = det.ipc_alpha if det.ipc else 0.0
+    ipc_var = (1.0 - 4.0 * alpha) ** 2 + 4.0 * alpha ** 2  # variance kept by IPC (uncorrelated)
+    return tf, sig_f2, float((c * c).sum()), float(tf * (d_int * d_int).sum()), d_int, alpha, \
+        ipc_var
+
+
+def _dark_cal_var(det: DetectorConfig, a_full: float, b_full: float, sig_f2: float, ipc_var,
+                  dark_true):
+    """Variance ((e-/s)^2) of the calibration dark: one dark ramp's slope variance divided by
+    the ``dark_cal_ramps`` averaged (0 ramps: a perfect dark); 0 without dark current."""
+    if not det.dark_current or det.dark_cal_ramps == 0:
+        return 0.0
+    pois = b_full * ipc_var * dark_true if det.poisson else 0.0
+    return (a_full * sig_f2 + pois) / det.dark_cal_ramps
+
+
+def sky_noise_terms(det: DetectorConfig, exptime_s: float, sky_rate: float) -> tuple:
+    """Variance of a calibrated source-free pixel, split by how it is correlated.
+
+    Parameters
+    ----------
+    det : DetectorConfig
+    exptime_s : float (s)
+    sky_rate : float (e-/s per pixel)
+
+    Returns
+    -------
+    white : float ((e-/s)^2)
+        Read and quantisation noise, calibration-dark noise and flat-field error: independent
+        from pixel to pixel.
+    charge : float ((e-/s)^2)
+        Shot noise of sky and dark before IPC; IPC spreads it over the neighbours with the
+        kernel of :func:`apply_ipc`, so its pixel variance is ``charge`` x ((1 - 4 alpha)^2 +
+        4 alpha^2) while a large aperture keeps all of it.
+    alpha : float
+        IPC coupling to each of the four neighbours (0 when IPC is off).
+
+    The pixel variance ``white + charge x ipc kept`` equals ``Exposure.var_sky`` of
+    :func:`expose` for a pixel with flat response (checked in the tests).
+    """
+    _, sig_f2, a_full, b_full, _, alpha, ipc_var = _readout(det, exptime_s)
+    dark = det.dark_e_s if det.dark_current else 0.0
+    charge = b_full * (sky_rate + dark) if det.poisson else 0.0
+    flat = (det.flat_error_rms * sky_rate) ** 2 if det.flat else 0.0
+    white = a_full * sig_f2 + _dark_cal_var(det, a_full, b_full, sig_f2, ipc_var, dark) + flat
+    return float(white), float(charge), float(alpha)
+
+
 def expose(rate: np.ndarray, sky_rate, dark, det: DetectorConfig, exptime_s: float,
            pixel_size_um: float, rng, fixed: FixedPattern) -> Exposure:
     """Simulate and calibrate one up-the-ramp exposure.
@@ -516,15 +595,10 @@ def expose(rate: np.ndarray, sky_rate, dark, det: DetectorConfig, exptime_s: flo
     else:
         noise = _GeneratorNoise(rng, rate.shape)
     n, m = det.n_groups, det.n_frames
-    tf = frame_time(det, exptime_s)
+    tf, sig_f2, a_full, b_full, d_int, alpha, ipc_var = _readout(det, exptime_s)
     tg = m * tf
     n_int = n * m
     duration = n_int * tf
-    gain = det.gain_e_adu
-    sig_f2 = (det.read_noise_e ** 2 / 2.0 if det.read_noise else 0.0) + \
-        (gain * gain / 12.0 if det.quantize else 0.0)
-    alpha = det.ipc_alpha if det.ipc else 0.0
-    ipc_var = (1.0 - 4.0 * alpha) ** 2 + 4.0 * alpha ** 2  # variance kept by IPC (uncorrelated)
 
     resp = fixed.flat if det.flat else np.ones(rate.shape, np.float32)
     cal = fixed.flat_cal if det.flat else np.ones(rate.shape, np.float32)
@@ -537,9 +611,6 @@ def expose(rate: np.ndarray, sky_rate, dark, det: DetectorConfig, exptime_s: flo
     f_sky = sky * resp + dark_true  # expected e-/s without sources
     f = rate * resp + f_sky  # expected e-/s
 
-    c = slope_weights(n, m, tf)
-    d_int = _interval_weights(c)
-    a_full, b_full = float((c * c).sum()), float(tf * (d_int * d_int).sum())
     if det.poisson:
         total = noise.poisson(f * duration)
         z = noise.normal("ramp")
@@ -550,6 +621,10 @@ def expose(rate: np.ndarray, sky_rate, dark, det: DetectorConfig, exptime_s: flo
     if det.bad_pixels:
         dq[fixed.hot] |= DQ_HOT
         dq[fixed.dead] |= DQ_DEAD
+        if alpha > 0:
+            bad = fixed.hot | fixed.dead
+            near = ndimage.binary_dilation(bad) & ~bad  # the four neighbours (cross)
+            dq[near] |= DQ_BAD_NEIGHBOUR
 
     n_cr = 0
     jump = np.zeros(rate.shape, bool)
@@ -567,10 +642,14 @@ def expose(rate: np.ndarray, sky_rate, dark, det: DetectorConfig, exptime_s: flo
         # practice in ramp fitting: the faint fringe of a track would otherwise stay in)
         jump |= hit & ndimage.binary_dilation(jump, structure=np.ones((3, 3), bool))
         faint = hit & ~jump
-        # an undetected deposit in interval i adds charge x D_i to the fitted slope
-        slope[faint] += (cr_q[faint] * d_int[when[faint]]).astype(np.float32)
+        # an undetected deposit in interval i adds charge x D_i to the fitted slope (the
+        # deposit is already spread by IPC, so it is not convolved again below)
+        bias = np.zeros(rate.shape, np.float32)
+        bias[faint] = cr_q[faint] * d_int[when[faint]]
     if alpha > 0:
         slope = apply_ipc(slope, alpha)
+    if n_cr:
+        slope += bias
     if sig_f2 > 0:
         slope += math.sqrt(a_full * sig_f2) * noise.normal("read")
 
@@ -609,15 +688,32 @@ def expose(rate: np.ndarray, sky_rate, dark, det: DetectorConfig, exptime_s: flo
             np.where(length < 2, DQ_NO_SLOPE, 0)
         dq[idx] |= flags.astype(np.int32)
 
+    # the reduction subtracts its calibration dark: every pixel's own dark after IPC, with the
+    # noise of the dark ramps averaged into it (a fixed pattern of the detector)
+    if det.dark_current:
+        dark_seen = apply_ipc(np.broadcast_to(dark_true, rate.shape).astype(np.float32), alpha) \
+            if alpha > 0 else dark_true
+        var_dcal = _dark_cal_var(det, a_full, b_full, sig_f2, ipc_var, dark_true)
+        dark_cal = dark_seen + np.sqrt(var_dcal) * fixed.dark_z
+    else:
+        var_dcal, dark_cal = 0.0, 0.0
     inv_cal = np.float32(1.0) / cal
-    sci = (slope - dark_nom) * inv_cal
+    sci = (slope - dark_cal) * inv_cal
     if special.any():
         sci[idx] = np.where(length < 2, 0.0, sci[idx])
     inv_cal2 = inv_cal * inv_cal
     pois = ipc_var if det.poisson else 0.0
-    var_sky = (a_full * sig_f2 + b_full * pois * f_sky) * inv_cal2
-    var = var_sky + (b_full * pois * rate * resp) * inv_cal2
+    # the calibration flat's error leaves -epsilon x signal, epsilon ~ N(0, flat_error_rms)
+    ferr2 = np.float32(det.flat_error_rms ** 2 if det.flat else 0.0)
+    sky_sig = sky * resp * inv_cal
+    var_sky = (a_full * sig_f2 + b_full * pois * f_sky) * inv_cal2 + var_dcal * inv_cal2 \
+        + ferr2 * sky_sig * sky_sig
+    sig = (sky + rate) * resp * inv_cal
+    var = var_sky + (b_full * pois * rate * resp) * inv_cal2 + ferr2 * (sig * sig - sky_sig * sky_sig)
     if special.any():
-        var[idx] = (fa * sig_f2 + fb * pois * f[idx]) * inv_cal2[idx]
+        extra = var_dcal * inv_cal2 + ferr2 * sig * sig
+        var[idx] = (fa * sig_f2 + fb * pois * f[idx]) * inv_cal2[idx] + extra[idx]
+    artefact = bias * inv_cal if n_cr else None
     return Exposure(sci=sci, var=var, var_sky=np.broadcast_to(var_sky, rate.shape).astype(np.float32),
-                    dq=dq, exptime=float(exptime_s), sky=float(np.mean(sky)), n_cr=int(n_cr))
+                    dq=dq, exptime=float(exptime_s), sky=float(np.mean(sky)), n_cr=int(n_cr),
+                    artefact=artefact)

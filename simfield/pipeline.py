@@ -183,6 +183,8 @@ def run_scenario(sc: Scenario, out_dir: str | Path, progress: bool = False) -> R
 
     egrids = exposure_grids(srv, tel, stream(sc.seed, "dither"))
     tiles = plan_tiles(mgrid, egrids, sgrid, srv.tile_pixels)
+    with timer("noise_correlation"):
+        noise = _noise_correlations(sc, bands, egrids, mgrid)
     rates, bright = {}, {}
     mu = np.maximum(np.asarray(sources["magnification"], float), 1e-6)
     for b in bands:
@@ -192,16 +194,17 @@ def run_scenario(sc: Scenario, out_dir: str | Path, progress: bool = False) -> R
     ctx = _TileContext(sc=sc, bands=bands, sources=sources, lens=lens, sgrid=sgrid,
                        mgrid=mgrid, egrids=egrids, tiles=tiles, psf_core=psf_core,
                        psf_wide=psf_wide, rates=rates, bright=bright, files={})
-    with timer("tiles"), section_files(_image_files(out, sc, bands, mgrid, egrids),
+    with timer("tiles"), section_files(_image_files(out, sc, bands, mgrid, egrids, noise),
                                        prov) as sfiles:
         ctx.files = {f.final.name: f for f in sfiles}
+        for b in bands:
+            ctx.files[f"mosaic_{b.name}.fits"].array("NOISECOR")[:] = noise[b.name].rho
         results = _map_tiles(ctx, sc.workers, progress)
+        with timer("depth"):
+            depths = {b.name: _band_depth(sc, b, psf_core[b.name], ctx.files, mgrid)
+                      for b in bands}
     files.extend(f.final for f in sfiles)
     del ctx
-    depths = {}
-    for b in bands:
-        sums = np.concatenate([r["sums"][b.name] for r in results])
-        depths[b.name] = _band_depth(sc, b, psf_core[b.name], sums)
     for r in results:
         for k, v in r["timings"].items():
             res.timings[k] = res.timings.get(k, 0.0) + v
@@ -305,9 +308,9 @@ def _grow(box, pad: int, shape) -> tuple[int, int, int, int]:
 def _render_tile(ctx: _TileContext, i: int) -> dict:
     """Stamps of the sources that reach tile ``i`` (drawn once), then per band its scene
     window, truth image, exposure windows and drizzled mosaic section, written into the run's
-    files. Returns the empty-aperture sums per band (e-/s) and stage timings (s)."""
+    files. Returns the stage timings (s)."""
     from .detector import PixelNoise, expose, fixed_pattern_window
-    from .survey import aperture_sums, drizzle_mosaic, sample_scene
+    from .survey import MOSAIC_SATURATED, drizzle_mosaic, sample_scene
 
     sc, tile, sgrid, mgrid = ctx.sc, ctx.tiles[i], ctx.sgrid, ctx.mgrid
     tel, srv = sc.telescope, sc.survey
@@ -333,14 +336,10 @@ def _render_tile(ctx: _TileContext, i: int) -> dict:
     my0, my1, mx0, mx1 = tile.mosaic
     msec = (slice(my0, my1), slice(mx0, mx1))
     t_total = srv.exposure_time_s * srv.n_exposures
-    r_ap = sc.detection.aperture_radius_arcsec
-    # empty apertures in proportion to the tile's share of the mosaic (2000 over the field)
-    n_ap = int(round(2000 * (my1 - my0) * (mx1 - mx0) / (mgrid.nx * mgrid.ny)))
     grow = int(np.ceil(2 * tel.pixel_scale_arcsec / mgrid.scale)) + 1
     dbox = _grow(tile.mosaic, grow, mgrid.shape)
     dgrid = mgrid.window(dbox[2], dbox[0], dbox[3] - dbox[2], dbox[1] - dbox[0])
     dcut = (slice(my0 - dbox[0], my1 - dbox[0]), slice(mx0 - dbox[2], mx1 - dbox[2]))
-    sums = {}
     for b in ctx.bands:
         rate, brt = ctx.rates[b.name], ctx.bright[b.name]
         with timer("scene"):
@@ -389,8 +388,11 @@ def _render_tile(ctx: _TileContext, i: int) -> dict:
         t_exp = timings.get("exposures", 0.0)
         # drizzle onto the tile grown by a few pixels, then cut: drizzle leaves out drops of
         # input pixels whose centres map outside its output, which would thin the tile's rim
-        mosaic = _crop_mosaic(drizzle_mosaic(exposures(), tile.egrids, dgrid, srv.drizzle_kernel,
-                                             srv.pixfrac), dcut)
+        grown = drizzle_mosaic(exposures(), tile.egrids, dgrid, srv.drizzle_kernel, srv.pixfrac)
+        # the artefact map is dilated on the grown tile, so it does not depend on the tiling
+        artefacts = _artefact_map(grown, MOSAIC_SATURATED)[dcut]
+        mosaic = _crop_mosaic(grown, dcut)
+        del grown
         timings["mosaic"] = timings.get("mosaic", 0.0) + (
             time.perf_counter() - t0 - (timings.get("exposures", 0.0) - t_exp))
         scene = None  # the closure above holds it until here
@@ -398,28 +400,78 @@ def _render_tile(ctx: _TileContext, i: int) -> dict:
             f = ctx.files[f"mosaic_{b.name}.fits"]
             for name in ("sci", "wht", "exp", "dq"):
                 f.array(name.upper())[msec] = getattr(mosaic, name)
-        with timer("depth"):
-            bad = (mosaic.wht <= 0) | ndimage.binary_dilation(seg > 0, iterations=3)
-            sums[b.name] = aperture_sums(mosaic.sci, bad, r_ap / mgrid.scale,
-                                         stream(sc.seed, "depth", b.name, ty, tx), n_ap)
+            ctx.files[f"truth_image_{b.name}.fits"].array("ARTEFACT")[msec] = artefacts
         del mosaic, seg
     if ctx.lens is not None:
         from .lensing import forget_grid
 
         forget_grid(ctx.lens, acc_grid)
-    return {"sums": sums, "timings": timings}
+    return {"timings": timings}
 
 
 def _crop_mosaic(m, cut):
     from .survey import Mosaic
 
-    return Mosaic(*(np.ascontiguousarray(getattr(m, k)[cut]) for k in ("sci", "wht", "exp", "dq")))
+    art = None if m.artefact is None else np.ascontiguousarray(m.artefact[cut])
+    return Mosaic(*(np.ascontiguousarray(getattr(m, k)[cut]) for k in ("sci", "wht", "exp", "dq")),
+                  artefact=art)
 
 
-def _band_depth(sc: Scenario, b: Band, psf_core, sums: np.ndarray) -> dict:
-    """Predicted and measured (from the tiles' empty-aperture sums) 5-sigma depths (AB)."""
+#: Truth artefact bit: a cosmic-ray deposit too faint to be found left more than
+#: ``ARTEFACT_NSIGMA`` times the pixel noise in the mosaic (or a neighbouring pixel).
+ARTEFACT_COSMIC = 1
+#: Truth artefact bit: saturated in some exposure (the mosaic's saturated flag).
+ARTEFACT_SATURATED = 2
+ARTEFACT_NSIGMA = 1.0
+
+
+def _artefact_map(mosaic, saturated_bit: int) -> np.ndarray:
+    """Truth map of detector artefacts on a mosaic section (int16 bits ``ARTEFACT_*``)."""
+    art = np.zeros(mosaic.sci.shape, np.int16)
+    if mosaic.artefact is not None:
+        sigma = np.where(mosaic.wht > 0, 1.0 / np.sqrt(np.where(mosaic.wht > 0, mosaic.wht, 1)),
+                         np.inf)
+        cr = np.abs(mosaic.artefact) > ARTEFACT_NSIGMA * sigma
+        art[ndimage.binary_dilation(cr)] |= ARTEFACT_COSMIC
+    art[(mosaic.dq & saturated_bit) != 0] |= ARTEFACT_SATURATED
+    return art
+
+
+def _noise_correlations(sc: Scenario, bands: list[Band], egrids: list, mgrid: Grid) -> dict:
+    """Each band's mosaic noise correlation (:mod:`simfield.survey.noise`): the drizzle's
+    covariance for white and IPC-spread noise (the same geometry for all bands), weighted by
+    the detector's split of a sky pixel's variance into those parts."""
+    from .detector import sky_noise_terms
+    from .survey import drizzle_noise_covariance, noise_correlation
+
+    tel, srv, det = sc.telescope, sc.survey, sc.detector
+    alpha = det.ipc_alpha if det.ipc else 0.0
+    cov_w, cov_c = drizzle_noise_covariance(egrids, mgrid, srv.drizzle_kernel, srv.pixfrac,
+                                            alpha, stream(sc.seed, "noise_correlation"))
+    out = {}
+    for b in bands:
+        sky = b.sky_rate(tel.collecting_area_m2, tel.pixel_scale_arcsec)
+        white, charge, _ = sky_noise_terms(det, srv.exposure_time_s, sky)
+        out[b.name] = noise_correlation(cov_w, cov_c, white, charge)
+    return out
+
+
+#: Empty-sky apertures drawn over the whole mosaic for the measured depth and noise check.
+N_EMPTY_APERTURES = 2000
+
+
+def _band_depth(sc: Scenario, b: Band, psf_core, files: dict, mgrid: Grid) -> dict:
+    """Predicted and measured 5-sigma depths (AB) and the aperture-noise check of one band.
+
+    The empty-sky apertures are placed over the whole written mosaic at once (memory maps of
+    its files), so nothing here depends on the tiling. ``aperture_noise`` compares, at the
+    depth's radius and at the noise table's radii 2 and 10 pixels, the scatter of aperture
+    sums of mosaic minus truth image with the files' statement F(r) sqrt(sum 1/WHT).
+    """
+    from .noisecards import noise_factor, read_noise_factors
     from .optics.psf import effective_psf
-    from .survey import MIN_EMPTY_APERTURES, depth_from_sums, predicted_depth
+    from .survey import (MIN_EMPTY_APERTURES, depth_from_sums, empty_apertures, predicted_depth,
+                         robust_sigma)
 
     tel, srv = sc.telescope, sc.survey
     zp = b.zeropoint(tel.collecting_area_m2)
@@ -427,12 +479,32 @@ def _band_depth(sc: Scenario, b: Band, psf_core, sums: np.ndarray) -> dict:
     eff = effective_psf(psf_core, tel.pixel_scale_arcsec)
     ee = float(np.interp(r_ap, eff.ee_radii_arcsec, eff.ee_values))
     sky = b.sky_rate(tel.collecting_area_m2, tel.pixel_scale_arcsec)
-    if len(sums) >= MIN_EMPTY_APERTURES:
-        measured = depth_from_sums(sums, zp, ee)
-    else:  # a crowded or tiny field: no depth to measure, but nothing wrong with the run
-        log.warning("band %s: only %d empty sky apertures, measured depth not given",
-                    b.name, len(sums))
-        measured = float("nan")
+    mf, tf = files[f"mosaic_{b.name}.fits"], files[f"truth_image_{b.name}.fits"]
+    sci, wht = mf.array("SCI", "r"), mf.array("WHT", "r")
+    truth, segm = tf.array("SCI", "r"), tf.array("SEGM", "r")
+    with np.errstate(divide="ignore"):
+        var = _LazyInverse(wht)
+    table = read_noise_factors(_noise_header(mf))
+    checks, measured = [], float("nan")
+    r_depth = r_ap / mgrid.scale
+    radii = (r_depth, 2.0, 10.0)
+    aps = empty_apertures({"sci": sci, "truth": truth, "var": var}, segm, wht, radii,
+                          stream(sc.seed, "depth", b.name), N_EMPTY_APERTURES)
+    for r, ap in zip(radii, aps):
+        n = ap["sci"].size
+        if r == r_depth:
+            if n >= MIN_EMPTY_APERTURES:
+                measured = depth_from_sums(ap["sci"], zp, ee)
+            else:  # a crowded or tiny field: no depth to measure, nothing wrong with the run
+                log.warning("band %s: only %d empty sky apertures, measured depth not given",
+                            b.name, n)
+        if n >= MIN_EMPTY_APERTURES:
+            f_r = float(noise_factor(table, r))
+            stated = f_r * float(np.median(np.sqrt(ap["var"])))
+            checks.append({"radius_pix": round(float(r), 4), "n_apertures": int(n),
+                           "stated_factor": round(f_r, 4),
+                           "measured_over_stated": robust_sigma(ap["sci"] - ap["truth"])
+                           / stated})
     return {
         "aperture_radius_arcsec": r_ap,
         "encircled_energy": ee,
@@ -440,7 +512,27 @@ def _band_depth(sc: Scenario, b: Band, psf_core, sums: np.ndarray) -> dict:
                                             zp, sky, tel.pixel_scale_arcsec, r_ap,
                                             encircled_energy=ee),
         "measured_5sigma": measured,
+        "aperture_noise": checks,
     }
+
+
+class _LazyInverse:
+    """1 / wht (0 where wht <= 0), computed on the slices asked for (memory maps stay lazy)."""
+
+    def __init__(self, wht):
+        self.wht = wht
+        self.shape = wht.shape
+
+    def __getitem__(self, key):
+        w = np.asarray(self.wht[key], float)
+        return np.where(w > 0, 1.0 / np.where(w > 0, w, 1.0), 0.0)
+
+
+def _noise_header(f) -> fits.Header:
+    """The WHT extension's header of a section file being written (its noise table)."""
+    with open(f.path, "rb") as fh:
+        hl = fits.open(fh, memmap=False, lazy_load_hdus=True)
+        return hl["WHT"].header.copy()
 
 
 def _write_exposure_section(f, e, tile, k: int, mgrid: Grid) -> None:
@@ -455,14 +547,19 @@ def _write_exposure_section(f, e, tile, k: int, mgrid: Grid) -> None:
         view[own] = data[own]
 
 
-def _image_files(out: Path, sc: Scenario, bands: list[Band], mgrid: Grid, egrids: list):
-    """(path, image specs, primary cards) of every image file the tiles write into."""
+def _image_files(out: Path, sc: Scenario, bands: list[Band], mgrid: Grid, egrids: list,
+                 noise: dict):
+    """(path, image specs, primary cards) of every image file the tiles write into; ``noise``
+    holds each band's :class:`~simfield.survey.NoiseCorrelation` (the mosaic's noise table)."""
     from . import survey
     from .io import ImageSpec
+    from .noisecards import noise_cards
 
     srv, area = sc.survey, sc.telescope.collecting_area_m2
     t_total = srv.exposure_time_s * srv.n_exposures
-    dq_cards = survey.dq_header_cards()
+    dq_cards = survey.flag_header_cards("mosaic")
+    art_cards = [("ARTCOSMI", ARTEFACT_COSMIC, f"cosmic-ray residual > {ARTEFACT_NSIGMA:g} "
+                  "sigma (+1 pix)"), ("ARTSATUR", ARTEFACT_SATURATED, "saturated in an exposure")]
     seg_note = ("SEGDEF", "id of the source contributing most light above SEGTHR", "")
 
     def hdr(grid: Grid, bunit: str, cards=()):
@@ -478,25 +575,34 @@ def _image_files(out: Path, sc: Scenario, bands: list[Band], mgrid: Grid, egrids
         cards = _band_cards(b, zp)
         mcards = cards + [("EXPTIME", t_total, "[s] total exposure time at full depth"),
                           ("NEXP", srv.n_exposures, "exposures combined")]
+        nc = noise[b.name]
+        ncards = noise_cards(nc.radii_pix, nc.factors, nc.factor_inf)
+        k = nc.rho.shape[0]
         items.append((out / f"mosaic_{b.name}.fits", [
             ImageSpec("SCI", mgrid.shape, np.float32, hdr(mgrid, "electron/s", mcards)),
-            ImageSpec("WHT", mgrid.shape, np.float32, hdr(mgrid, "s2/electron2", mcards)),
+            ImageSpec("WHT", mgrid.shape, np.float32,
+                      hdr(mgrid, "s2/electron2", mcards + ncards)),
             ImageSpec("EXP", mgrid.shape, np.float32, hdr(mgrid, "s")),
-            ImageSpec("DQ", mgrid.shape, np.int32, hdr(mgrid, "", dq_cards))], mcards))
+            ImageSpec("DQ", mgrid.shape, np.int32, hdr(mgrid, "", dq_cards)),
+            ImageSpec("NOISECOR", (k, k), np.float32,
+                      [("NCDESC", "correlation of pixel noise at lags (centre: 0)", "")]
+                      + ncards)], mcards))
         sigma = np.sqrt(b.sky_rate(area, mgrid.scale) * t_total) / t_total
         seg_cards = [("SEGNSIG", SEGMENTATION_NSIGMA, "threshold in sky-limited sigma per pixel"),
                      ("SEGTHR", float(SEGMENTATION_NSIGMA * sigma), "[electron/s] threshold"),
                      seg_note]
         items.append((out / f"truth_image_{b.name}.fits", [
             ImageSpec("SCI", mgrid.shape, np.float32, hdr(mgrid, "electron/s", cards)),
-            ImageSpec("SEGM", mgrid.shape, np.int32, hdr(mgrid, "", seg_cards))], cards))
+            ImageSpec("SEGM", mgrid.shape, np.int32, hdr(mgrid, "", seg_cards)),
+            ImageSpec("ARTEFACT", mgrid.shape, np.int16, hdr(mgrid, "", art_cards))], cards))
         if srv.write_exposures:
             ecards = cards + [("EXPTIME", srv.exposure_time_s, "[s] exposure time")]
             for k, g in enumerate(egrids):
                 items.append((out / "exposures" / f"exp_{b.name}_{k:02d}.fits", [
                     ImageSpec("SCI", g.shape, np.float32, hdr(g, "electron/s", ecards)),
                     ImageSpec("VAR", g.shape, np.float32, hdr(g, "electron2/s2")),
-                    ImageSpec("DQ", g.shape, np.int32, hdr(g, ""))], ecards))
+                    ImageSpec("DQ", g.shape, np.int32,
+                              hdr(g, "", survey.flag_header_cards("exposure")))], ecards))
     return items
 
 

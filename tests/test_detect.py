@@ -142,13 +142,13 @@ def _seam_field(noise=0.0, seed=11):
 
 
 def _write_mosaic(path, g, sci, wht):
-    """A mosaic file as the survey stage writes it (SCI, WHT, DQ with the no-coverage bit)."""
+    """A mosaic file as the survey stage writes it (SCI, WHT, DQ with the no-data bit)."""
     from astropy.io import fits
 
     h = g.wcs.to_header()
     h["ZP_AB"], h["EXPTIME"] = ZP, 1e4
     dq = fits.ImageHDU(np.zeros(sci.shape, np.int32), h, "DQ")
-    dq.header["DQNOCOVE"] = 16
+    dq.header["FNODATA"] = 1
     fits.HDUList([fits.PrimaryHDU(), fits.ImageHDU(sci, h, "SCI"), fits.ImageHDU(wht, h, "WHT"),
                   dq]).writeto(path)
 

@@ -277,7 +277,7 @@ def test_fixed_pattern_window_does_not_depend_on_the_window():
     big = dt.fixed_pattern_window(det, 7, 100, 700, 50, 600)
     small = dt.fixed_pattern_window(det, 7, 250, 530, 300, 310)
     cut = (slice(150, 430), slice(250, 260))
-    for name in ("flat", "flat_cal", "hot", "hot_dark", "dead"):
+    for name in ("flat", "flat_cal", "hot", "hot_dark", "dead", "dark_z"):
         assert_array_equal(getattr(small, name), getattr(big, name)[cut])
     other = dt.fixed_pattern_window(det, 8, 250, 530, 300, 310)
     assert not np.array_equal(other.flat, small.flat)
@@ -314,7 +314,7 @@ def test_pixel_noise_windows_agree_where_they_overlap():
     def window(y0, y1, x0, x1):
         cut = (slice(y0, y1), slice(x0, x1))
         fp = dt.FixedPattern(**{k: getattr(fixed, k)[cut] for k in
-                                ("flat", "flat_cal", "hot", "hot_dark", "dead")})
+                                ("flat", "flat_cal", "hot", "hot_dark", "dead", "dark_z")})
         return dt.expose(full[cut], 0.3, None, det, 500.0, 18.0,
                          dt.PixelNoise(9, ("exposure", "b", 0), y0, x0, (y1 - y0, x1 - x0)), fp)
 

@@ -48,7 +48,7 @@ def test_every_contract_file_is_written(run):
                 assert hl[0].header["SIMFSEED"] == sc.seed
                 assert len(hl[0].header["SIMFHASH"]) == 16
         with fits.open(out / f"mosaic_{band}.fits") as hl:
-            assert [h.name for h in hl[1:]] == ["SCI", "WHT", "EXP", "DQ"]
+            assert [h.name for h in hl[1:]] == ["SCI", "WHT", "EXP", "DQ", "NOISECOR"]
             assert hl["SCI"].header["BUNIT"] == "electron/s"
             assert hl["SCI"].header["EXPTIME"] > 0 and "ZP_AB" in hl["SCI"].header
             assert WCS(hl["SCI"].header).wcs.ctype[0] == "RA---TAN"

@@ -425,12 +425,16 @@ def test_load_truth_maps_images_and_reads_them_like_astropy(run_dir):
 
 
 def test_flagged_pixel_makes_an_unmatched_detection_an_artefact(tmp_path):
-    """A detection on a pixel whose saturation bit is set is an artefact (rule 1 wins over the
-    others), read from the DQ map at that pixel alone; an unflagged bit (cosmic ray) is not."""
+    """A detection on a pixel the truth's artefact map marks is an artefact (rule 1 wins over
+    the others), read from that map at that pixel alone; a mosaic flag that only says how a
+    value was measured (a repaired cosmic ray) does not make one."""
     g, *_ = _make_run(tmp_path)
     with fits.open(tmp_path / f"mosaic_{BAND}.fits", mode="update") as hl:
-        hl["DQ"].data[100, 40] = 8  # saturated
-        hl["DQ"].data[100, 260] = 4  # cosmic ray, repaired
+        hl["DQ"].data[100, 260] = 8  # only cosmic-ray-repaired pixels contributed
+    with fits.open(tmp_path / f"truth_image_{BAND}.fits", mode="update") as hl:
+        art = np.zeros(hl["SCI"].data.shape, np.int16)
+        art[100, 40] = 2  # saturated in an exposure
+        hl.append(fits.ImageHDU(art, name="ARTEFACT"))
     ra, dec = g.pixel_to_sky(np.array([40.0, 260.0]), np.array([100.0, 100.0]))
     cat = Table({"ra": ra, "dec": dec, "mag": [27.0, 27.0]})
     score_run(tmp_path, cat, BAND, ScoreConfig(report=False), tmp_path / "s")

@@ -81,7 +81,7 @@ def _noiseless(rate):
 def test_dq_bits_agree_with_detector():
     """The survey's DQ bits are the detector's."""
     for name in ("DQ_HOT", "DQ_DEAD", "DQ_COSMIC_RAY", "DQ_SATURATED", "DQ_NO_SLOPE",
-                 "DQ_EXCLUDE"):
+                 "DQ_BAD_NEIGHBOUR", "DQ_EXCLUDE"):
         assert getattr(sv, name) == getattr(dt, name)
 
 
@@ -185,7 +185,7 @@ def test_drizzle_conserves_flux(roll):
     mosaic = sv.drizzle_mosaic(exposures, grids, mg, "square", 0.8)
     assert_allclose(mosaic.sci.sum(), flux.sum(), rtol=0.005)
     assert_allclose(np.median(mosaic.exp), 4 * 100.0, rtol=1e-6)
-    assert np.all(mosaic.dq & sv.DQ_NO_COVERAGE == 0)
+    assert np.all(mosaic.dq & sv.MOSAIC_NO_DATA == 0)
 
 
 def test_turbo_equals_square_for_aligned_drops():
@@ -215,7 +215,7 @@ def test_flagged_pixels_excluded():
     m = sv.drizzle_mosaic([e], [g], mg, "square", 1.0)
     inside = m.wht > 0
     assert m.sci[inside].max() < 1.0  # 1 e-/s per detector pixel = 0.5625 per mosaic pixel
-    assert (m.dq[~inside] & sv.DQ_NO_COVERAGE).all()
+    assert (m.dq[~inside] & sv.MOSAIC_NO_DATA).all()
 
 
 def _howell_depth(zp, npix, sky_e_s, dark_e_s, read_e, t, n_exp, nsigma):
@@ -278,11 +278,10 @@ def test_mosaic_hdus_verify():
     hdus.verify("exception")
     assert hdus["SCI"].header["BUNIT"] == "electron/s"
     assert hdus["SCI"].header["EXPTIME"] == 4000.0
-    # the DQ bits under the keys the pipeline's files use and detection reads (DQNOCOVE)
+    # the mosaic flag bits under the keys the pipeline's files use and detection reads
     dq = hdus["DQ"].header
-    assert (dq["DQHOT"], dq["DQDEAD"], dq["DQCOSMIC"], dq["DQSATURA"], dq["DQNOCOVE"],
-            dq["DQNOSLOP"]) == (sv.DQ_HOT, sv.DQ_DEAD, sv.DQ_COSMIC_RAY, sv.DQ_SATURATED,
-                                sv.DQ_NO_COVERAGE, sv.DQ_NO_SLOPE)
+    assert (dq["FNODATA"], dq["FFEWEXP"], dq["FSATUR"], dq["FCRONLY"]) == (
+        sv.MOSAIC_NO_DATA, sv.MOSAIC_FEW_EXPOSURES, sv.MOSAIC_SATURATED, sv.MOSAIC_CR_ONLY)
     w = WCS(hdus["SCI"].header)
     assert_allclose(w.all_pix2world([[3.0, 7.0]], 0), mg.wcs.all_pix2world([[3.0, 7.0]], 0),
                     rtol=0, atol=1e-12)

@@ -281,9 +281,9 @@ def load_truth(run_dir, band: str) -> dict:
     dict
         ``sources``, ``images`` (Tables), ``wcs``, ``shape`` (ny, nx), ``zeropoint`` (AB),
         ``pixel_scale`` (arcsec), ``segm`` (truth source ids, int32 memory map, or None),
-        ``dq`` (the mosaic's data-quality map as stored, int32 memory map, or None) with
-        ``dq_bits`` (int: the artefact bits, saturated or uncovered; cosmic-ray hits are
-        repaired), ``psf`` (image or None), ``psf_fwhm`` (arcsec or None), ``sci`` (mosaic
+        ``dq`` (the truth's map of detector artefacts, ``ARTEFACT`` of the truth image, int16
+        memory map; for a run without one, the mosaic's flags; or None) with ``dq_bits``
+        (int: the bits that make a detection an artefact), ``psf`` (image or None), ``psf_fwhm`` (arcsec or None), ``sci`` (mosaic
         image, float32 memory map, e-/s).
     """
     run_dir = Path(run_dir)
@@ -293,9 +293,9 @@ def load_truth(run_dir, band: str) -> dict:
     with fits.open(mpath, memmap=True) as hl:
         hdr = hl["SCI"].header.copy()
         dq_bits = None
-        if "DQ" in hl:  # artefact bits: saturated or uncovered (cosmic-ray hits are repaired)
+        if "DQ" in hl:  # a run without an artefact truth map: saturated or no data
             h = hl["DQ"].header
-            dq_bits = int(h.get("DQSATURA", 8)) | int(h.get("DQNOCOVE", 16))
+            dq_bits = int(h.get("FSATUR", 4)) | int(h.get("FNODATA", 1))
     sci = image_map(mpath, "SCI")
     dq = image_map(mpath, "DQ") if dq_bits is not None else None
     if "ZP_AB" not in hdr:
@@ -320,9 +320,11 @@ def load_truth(run_dir, band: str) -> dict:
     ti = run_dir / f"truth_image_{band}.fits"
     if ti.is_file():
         with fits.open(ti, memmap=True) as hl:
-            has_segm = "SEGM" in hl
+            has_segm, has_art = "SEGM" in hl, "ARTEFACT" in hl
         if has_segm:
             segm = image_map(ti, "SEGM")
+        if has_art:  # the truth knows every artefact pixel: any bit makes an artefact
+            dq, dq_bits = image_map(ti, "ARTEFACT"), -1
     psf, fwhm = None, None
     pp = run_dir / f"psf_{band}.fits"
     if pp.is_file():

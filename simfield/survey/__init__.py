@@ -16,14 +16,18 @@ Grids (see :mod:`simfield.grid` for the pixel convention, 0-based, centre of pix
   ``survey.roll_deg``, each covering the whole field;
 - mosaic grid: ``survey.mosaic_pixel_arcsec``, north up, exactly the field.
 
-Images are in e-/s per pixel of their grid. DQ bits of the mosaic (the same values as
-:mod:`simfield.detector`, checked in the tests) are the module constants ``DQ_*``.
+Images are in e-/s per pixel of their grid. The exposure flag bits (the same values as
+:mod:`simfield.detector`, checked in the tests) are the constants ``DQ_*``; the mosaic's own
+flags, which say what each mosaic pixel rests on, are ``MOSAIC_*``.
 """
 
-from .depth import (MIN_EMPTY_APERTURES, aperture_sums, depth_from_sums, measured_depth,
-                    predicted_depth, ramp_variance_rauscher)
-from .drizzle import (DQ_COSMIC_RAY, DQ_DEAD, DQ_EXCLUDE, DQ_HOT, DQ_NO_COVERAGE, DQ_NO_SLOPE,
-                      DQ_SATURATED, Mosaic, dq_header_cards, drizzle_mosaic, mosaic_hdus)
+from .depth import (MIN_EMPTY_APERTURES, aperture_sums, depth_from_sums, empty_apertures,
+                    measured_depth, predicted_depth, ramp_variance_rauscher, robust_sigma)
+from .noise import (APERTURE_RADII_PIX, NoiseCorrelation, drizzle_noise_covariance,
+                    noise_correlation)
+from .drizzle import (DQ_BAD_NEIGHBOUR, DQ_COSMIC_RAY, DQ_DEAD, DQ_EXCLUDE, DQ_HOT, DQ_NO_SLOPE,
+                      DQ_SATURATED, MOSAIC_CR_ONLY, MOSAIC_FEW_EXPOSURES, MOSAIC_NO_DATA,
+                      MOSAIC_SATURATED, Mosaic, drizzle_mosaic, flag_header_cards, mosaic_hdus)
 from .grids import (dither_offsets, exposure_grids, mosaic_grid, sample_scene, scene_grid)
 from .tiles import Tile, owned_pixels, plan_tiles
 
@@ -33,10 +37,14 @@ __all__ = [
     "DQ_DEAD",
     "DQ_COSMIC_RAY",
     "DQ_SATURATED",
-    "DQ_NO_COVERAGE",
     "DQ_NO_SLOPE",
+    "DQ_BAD_NEIGHBOUR",
     "DQ_EXCLUDE",
-    "dq_header_cards",
+    "MOSAIC_NO_DATA",
+    "MOSAIC_FEW_EXPOSURES",
+    "MOSAIC_SATURATED",
+    "MOSAIC_CR_ONLY",
+    "flag_header_cards",
     "Mosaic",
     "scene_grid",
     "mosaic_grid",
@@ -50,6 +58,12 @@ __all__ = [
     "measured_depth",
     "aperture_sums",
     "depth_from_sums",
+    "empty_apertures",
+    "robust_sigma",
+    "NoiseCorrelation",
+    "noise_correlation",
+    "drizzle_noise_covariance",
+    "APERTURE_RADII_PIX",
     "MIN_EMPTY_APERTURES",
     "Tile",
     "plan_tiles",

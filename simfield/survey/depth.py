@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import functools
 import math
 
 import numpy as np
@@ -189,3 +190,96 @@ def depth_from_sums(sums: np.ndarray, zeropoint: float, encircled_energy: float 
             "larger field")
     sigma = 1.4826 * np.median(np.abs(sums - np.median(sums)))
     return float(zeropoint - 2.5 * math.log10(nsigma * sigma / encircled_energy))
+
+
+@functools.lru_cache(maxsize=64)
+def disk_weights(radius_pix: float) -> np.ndarray:
+    """Exact overlap (photutils, method ``exact``) of a circle of ``radius_pix`` pixels centred
+    on a pixel centre with each pixel: a (2h+1)^2 image, h = ceil(radius_pix)."""
+    from photutils.aperture import CircularAperture
+
+    h = int(math.ceil(radius_pix))
+    w = CircularAperture((h, h), radius_pix).to_mask(method="exact").to_image((2 * h + 1,) * 2)
+    w.setflags(write=False)
+    return w
+
+
+def empty_apertures(images: dict, segm, wht, radii_pix, rng: np.random.Generator,
+                    n_apertures: int, grow: int = 3) -> list[dict]:
+    """Sums of circular apertures dropped at random over a whole mosaic, away from sources.
+
+    The candidate centres are pixel centres drawn over the whole mosaic at once (uniform,
+    ``radius + 1`` from the edges; one set per radius), so the result does not depend on how
+    the mosaic was made or cut; every image is read only at the apertures' own pixels, so
+    memory maps of any size serve.
+
+    Parameters
+    ----------
+    images : dict of name -> 2-D array (e-/s per pixel, or (e-/s)^2 for variances)
+        The images to sum in every kept aperture (e.g. ``{"sci": ..., "var": ...}``).
+    segm : 2-D int array
+        Truth segmentation; an aperture is dropped if any pixel within ``grow`` pixels
+        (city-block) of a source pixel has its centre within ``radius + 0.5``.
+    wht : 2-D array ((e-/s)^-2)
+        Apertures reaching a pixel with ``wht <= 0`` are dropped likewise.
+    radii_pix : sequence of float (pixels)
+    rng : numpy.random.Generator
+    n_apertures : int
+        Candidate apertures drawn per radius.
+
+    Returns
+    -------
+    list of dict, one per radius: name -> ndarray
+        One exact-overlap sum (:func:`disk_weights`) per kept aperture and image, plus the
+        centres ``x``, ``y`` (pixels).
+    """
+    ny, nx = segm.shape
+    out = []
+    for r in radii_pix:
+        lo = int(math.ceil(r)) + 1
+        empty = {k: np.zeros(0) for k in list(images) + ["x", "y"]}
+        if n_apertures <= 0 or nx - lo <= lo or ny - lo <= lo:
+            out.append(empty)
+            continue
+        xc = rng.integers(lo, nx - lo, n_apertures)
+        yc = rng.integers(lo, ny - lo, n_apertures)
+        # pixels whose centres lie within r + 0.5 + grow city-block steps: reject any source
+        # pixel there (the dilation of the source mask by ``grow``, looked up directly)
+        h = int(math.ceil(r + 0.5)) + grow
+        dy, dx = np.mgrid[-h:h + 1, -h:h + 1]
+        inner = dy ** 2 + dx ** 2 <= (r + 0.5) ** 2
+        near = np.zeros_like(inner)
+        for oy, ox in zip(*np.nonzero(inner)):
+            near |= (np.abs(dy - dy[oy, ox]) + np.abs(dx - dx[oy, ox])) <= grow
+        keep = np.ones(n_apertures, bool)
+        for oy, ox in zip(dy[near], dx[near]):
+            keep &= ~(_take(segm, yc + oy, xc + ox) > 0)
+        for oy, ox in zip(dy[inner], dx[inner]):
+            keep &= _take(wht, yc + oy, xc + ox) > 0
+        xc, yc = xc[keep], yc[keep]
+        w = disk_weights(r)
+        k = w.shape[0] // 2
+        res = {"x": xc.astype(float), "y": yc.astype(float)}
+        for name, img in images.items():
+            s = np.zeros(xc.size)
+            for oy, ox in zip(*np.nonzero(w)):
+                s += w[oy, ox] * _take(img, yc + oy - k, xc + ox - k)
+            res[name] = s
+        out.append(res)
+    return out
+
+
+def _take(img, y: np.ndarray, x: np.ndarray) -> np.ndarray:
+    """img[y, x] for index arrays (pixels outside read as 0), memory maps read sparsely."""
+    ny, nx = img.shape
+    ok = (y >= 0) & (y < ny) & (x >= 0) & (x < nx)
+    out = np.zeros(y.shape)
+    if ok.any():
+        out[ok] = np.asarray(img[y[ok], x[ok]], float)
+    return out
+
+
+def robust_sigma(values) -> float:
+    """1.4826 x the median absolute deviation (the Gaussian sigma of a clean sample)."""
+    v = np.asarray(values, float)
+    return float(1.4826 * np.median(np.abs(v - np.median(v)))) if v.size else float("nan")

@@ -11,33 +11,53 @@ from ..errors import check_range, require
 from ..grid import Grid
 from .grids import _affine, _is_aligned
 
-#: DQ bit: hot pixel (high dark current), excluded from the mosaic.
+# Exposure flags: the detector's bits (the same values as :mod:`simfield.detector`, checked in
+# the tests; stages do not import each other).
+#: hot pixel (known from the calibration dark), excluded from the mosaic
 DQ_HOT = 1
-#: DQ bit: dead pixel (no response), excluded.
+#: dead pixel (no response), excluded
 DQ_DEAD = 2
-#: DQ bit: cosmic-ray jump found in the ramp; the slope comes from the longest clean segment
-#: (kept, with its larger variance).
+#: cosmic-ray jump found in the ramp; slope from the longest clean segment (kept)
 DQ_COSMIC_RAY = 4
-#: DQ bit: saturated before the end of the ramp; slope from the unsaturated groups (kept).
+#: saturated before the end of the ramp; slope from the unsaturated groups (kept)
 DQ_SATURATED = 8
-#: DQ bit (mosaic only): no unflagged exposure pixel covers this mosaic pixel.
-DQ_NO_COVERAGE = 16
-#: DQ bit: fewer than two usable groups, no slope (excluded).
+#: fewer than two usable groups, no slope (excluded)
 DQ_NO_SLOPE = 32
+#: one of the four IPC neighbours of a hot or dead pixel (excluded)
+DQ_BAD_NEIGHBOUR = 64
 #: Exposure pixels with any of these bits get zero weight in the drizzle.
-DQ_EXCLUDE = DQ_HOT | DQ_DEAD | DQ_NO_SLOPE
+DQ_EXCLUDE = DQ_HOT | DQ_DEAD | DQ_NO_SLOPE | DQ_BAD_NEIGHBOUR
+
+# Mosaic flags: what a mosaic pixel's value rests on. Each mosaic pixel is judged from the
+# exposure pixel nearest to its centre in every exposure that covers it.
+#: no exposure contributed (no coverage, or every covering pixel excluded): value 0, weight 0
+MOSAIC_NO_DATA = 1
+#: fewer than half of the exposures covering the pixel contributed (noisier, less robust)
+MOSAIC_FEW_EXPOSURES = 2
+#: saturated in at least one covering exposure (ramp cut short, or left out): flux here is
+#: from fewer groups or exposures, or missing
+MOSAIC_SATURATED = 4
+#: every contributing exposure had a repaired cosmic-ray jump here
+MOSAIC_CR_ONLY = 8
+
+_EXPOSURE_BITS = [("DQ_HOT", "FHOT", "hot pixel (excluded)"),
+                  ("DQ_DEAD", "FDEAD", "dead pixel (excluded)"),
+                  ("DQ_COSMIC_RAY", "FCOSMIC", "cosmic-ray jump, clean segment kept"),
+                  ("DQ_SATURATED", "FSATUR", "saturated in the ramp, early groups kept"),
+                  ("DQ_NO_SLOPE", "FNOSLOPE", "no usable slope (excluded)"),
+                  ("DQ_BAD_NEIGHBOUR", "FBADNEI", "IPC neighbour of a bad pixel (excluded)")]
+_MOSAIC_BITS = [("MOSAIC_NO_DATA", "FNODATA", "no exposure contributed (mask)"),
+                ("MOSAIC_FEW_EXPOSURES", "FFEWEXP", "under half the exposures contributed"),
+                ("MOSAIC_SATURATED", "FSATUR", "saturated in some exposure (mask for flux)"),
+                ("MOSAIC_CR_ONLY", "FCRONLY", "only cosmic-ray-repaired pixels contributed")]
 
 
-def dq_header_cards() -> list[tuple[str, int, str]]:
-    """(FITS key, bit value, comment) of every DQ bit, as written in the header of each DQ
-    extension: the key is ``DQ`` and the bit's name without underscores, cut to the 8
-    characters of a FITS keyword (``DQHOT``, ``DQNOCOVE``, ...)."""
-    bits = [("DQ_HOT", "hot pixel (excluded)"), ("DQ_DEAD", "dead pixel (excluded)"),
-            ("DQ_COSMIC_RAY", "cosmic-ray jump, clean segment kept"),
-            ("DQ_SATURATED", "saturated late in ramp, early groups kept"),
-            ("DQ_NO_COVERAGE", "no coverage"), ("DQ_NO_SLOPE", "no usable slope (excluded)")]
-    return [(("DQ" + name[3:].replace("_", ""))[:8], globals()[name], comment)
-            for name, comment in bits]
+def flag_header_cards(kind: str = "mosaic") -> list[tuple[str, int, str]]:
+    """(FITS key, bit value, comment) of every flag bit of a ``mosaic`` or ``exposure`` flag
+    image, as written in the header of its flag extension (``FNODATA``, ``FHOT``, ...)."""
+    require(kind in ("mosaic", "exposure"), "kind", kind, "must be mosaic or exposure")
+    bits = _MOSAIC_BITS if kind == "mosaic" else _EXPOSURE_BITS
+    return [(key, globals()[name], comment) for name, key, comment in bits]
 
 
 @dataclass(frozen=True, eq=False)
@@ -54,13 +74,17 @@ class Mosaic:
     exp : ndarray (s)
         Summed exposure time of the exposures that contribute.
     dq : ndarray (int32 bit mask)
-        OR of the DQ bits of contributing (kept) exposure pixels, plus ``DQ_NO_COVERAGE``.
+        Mosaic flags ``MOSAIC_*``.
+    artefact : ndarray (e-/s per mosaic pixel) or None
+        The exposures' ``artefact`` images (signal no noise model describes) combined with the
+        drizzle weights of the nearest exposure pixels; None when no exposure has one.
     """
 
     sci: np.ndarray
     wht: np.ndarray
     exp: np.ndarray
     dq: np.ndarray
+    artefact: np.ndarray | None = None
 
 
 def _pixmap(src: Grid, dst: Grid) -> np.ndarray:
@@ -119,6 +143,7 @@ def drizzle_mosaic(exposures, exp_grids: list[Grid], mosaic_grid: Grid, kernel: 
                    out_shape=mosaic_grid.shape, fillval=0.0, fillval2=0.0,
                    max_ctx_id=len(exp_grids) - 1)
     exptimes = []
+    flags = _FlagCounter(mosaic_grid)
     for k, e in enumerate(exposures):
         require(k < len(exp_grids), "exposures", k + 1,
                 f"must be as many as exp_grids ({len(exp_grids)})")
@@ -131,6 +156,7 @@ def drizzle_mosaic(exposures, exp_grids: list[Grid], mosaic_grid: Grid, kernel: 
         good = ((e.dq & DQ_EXCLUDE) == 0) & (var_sky > 0)
         with np.errstate(divide="ignore"):
             w = np.where(good, np.float32(1.0) / var_sky, np.float32(0.0))
+        flags.add(e, g, w, ratio * ratio)
         sci = e.sci - np.float32(getattr(e, "sky", 0.0)) if subtract_sky else e.sci
         driz.add_image(np.asarray(sci, np.float32), exptime=float(e.exptime),
                        pixmap=_pixmap(g, mosaic_grid), data2=np.asarray(e.var, np.float32),
@@ -149,11 +175,61 @@ def drizzle_mosaic(exposures, exp_grids: list[Grid], mosaic_grid: Grid, kernel: 
     exp = np.zeros(mosaic_grid.shape, np.float32)
     for i, t in enumerate(exptimes):
         exp += ((ctx[i // 32] >> np.uint32(i % 32)) & np.uint32(1)) * np.float32(t)
-    dq = np.zeros(mosaic_grid.shape, np.int32) if driz.out_dq is None else \
-        np.asarray(driz.out_dq).astype(np.int32)
-    dq[~covered] |= DQ_NO_COVERAGE
+    dq = flags.flags(covered)
     sci[~covered] = 0.0
-    return Mosaic(sci=sci, wht=wht, exp=exp, dq=dq)
+    return Mosaic(sci=sci, wht=wht, exp=exp, dq=dq, artefact=flags.artefact())
+
+
+class _FlagCounter:
+    """Per mosaic pixel: how many exposures cover it, contribute, are saturated or had a
+    repaired cosmic ray there, judged at the exposure pixel nearest to the mosaic pixel's
+    centre; and the weighted mean of the exposures' artefact images at those pixels."""
+
+    def __init__(self, grid: Grid):
+        self.grid = grid
+        shape = grid.shape
+        self.n_cover = np.zeros(shape, np.int16)
+        self.n_good = np.zeros(shape, np.int16)
+        self.n_sat = np.zeros(shape, np.int16)
+        self.n_cr = np.zeros(shape, np.int16)
+        self.art = None
+        self.wsum = np.zeros(shape, np.float32)
+
+    def add(self, e, g: Grid, w: np.ndarray, iscale: float) -> None:
+        a, b = _affine(self.grid, g)
+        x = np.arange(self.grid.nx, dtype=float)[None, :]
+        y = np.arange(self.grid.ny, dtype=float)[:, None]
+        ix = np.floor(a[0, 0] * x + a[0, 1] * y + b[0] + 0.5).astype(np.int64)
+        iy = np.floor(a[1, 0] * x + a[1, 1] * y + b[1] + 0.5).astype(np.int64)
+        inside = (ix >= 0) & (ix < g.nx) & (iy >= 0) & (iy < g.ny)
+        ix, iy = np.where(inside, ix, 0), np.where(inside, iy, 0)
+        dq = np.where(inside, e.dq[iy, ix], 0)
+        wk = np.where(inside, w[iy, ix], 0.0).astype(np.float32)
+        good = inside & (wk > 0)
+        self.n_cover += inside
+        self.n_good += good
+        self.n_sat += (dq & DQ_SATURATED) != 0  # with or without a slope left
+        self.n_cr += good & ((dq & DQ_COSMIC_RAY) != 0)
+        self.wsum += np.where(good, wk, 0.0)
+        art = getattr(e, "artefact", None)
+        if art is not None:
+            if self.art is None:
+                self.art = np.zeros(self.grid.shape, np.float32)
+            self.art += np.where(good, wk * art[iy, ix] * np.float32(iscale), 0.0)
+
+    def flags(self, covered: np.ndarray) -> np.ndarray:
+        dq = np.zeros(self.grid.shape, np.int32)
+        dq[~covered] |= MOSAIC_NO_DATA
+        dq[covered & (2 * self.n_good < self.n_cover)] |= MOSAIC_FEW_EXPOSURES
+        dq[self.n_sat > 0] |= MOSAIC_SATURATED
+        dq[covered & (self.n_good > 0) & (self.n_cr == self.n_good)] |= MOSAIC_CR_ONLY
+        return dq
+
+    def artefact(self) -> np.ndarray | None:
+        if self.art is None:
+            return None
+        with np.errstate(invalid="ignore", divide="ignore"):
+            return np.where(self.wsum > 0, self.art / self.wsum, 0.0).astype(np.float32)
 
 
 def mosaic_hdus(mosaic: Mosaic, grid: Grid, band: str = "", zeropoint: float | None = None,
@@ -198,7 +274,7 @@ def mosaic_hdus(mosaic: Mosaic, grid: Grid, band: str = "", zeropoint: float | N
         if unit:
             h.header["BUNIT"] = unit
         if name == "DQ":
-            for key, bit, comment in dq_header_cards():
+            for key, bit, comment in flag_header_cards("mosaic"):
                 h.header[key] = (bit, comment)
         h.header["EXPTIME"] = (float(mosaic.exp.max()) if mosaic.exp.size else 0.0,
                                "[s] maximum summed exposure time")

@@ -44,7 +44,10 @@ def _spiral(n: int) -> np.ndarray:
 def _nominal_offsets(survey: SurveyConfig, telescope: TelescopeConfig) -> np.ndarray:
     """Dither offsets (xi, eta) in arcsec without pointing errors, shape (n_exposures, 2)."""
     n = survey.n_exposures
-    big = _spiral(n) * survey.dither_step_arcsec
+    # the large steps are whole detector pixels, so the sub-pixel phases are the R2 ones alone
+    # (a step of 12.5 pixels would add half a pixel to some exposures and clump the phases)
+    pix = telescope.pixel_scale_arcsec
+    big = _spiral(n) * round(survey.dither_step_arcsec / pix) * pix
     k = np.arange(n)[:, None]
     sub = (k * np.array(_R2)) % 1.0 * telescope.pixel_scale_arcsec
     off = big + sub
