@@ -76,18 +76,45 @@ def test_match_is_deterministic_under_permutation():
 
 
 # ------------------------------------------------------------------------------ intervals, fits
-def test_beta_interval_matches_astropy_flat_and_scipy_beta():
-    """Cameron 2011 (PASA 28, 128) intervals equal scipy.stats.beta quantiles of
-    Beta(k+1, n-k+1) and astropy binom_conf_interval(interval='flat')."""
-    k = np.array([0, 1, 5, 9, 10, 37])
-    n = np.array([10, 10, 10, 10, 10, 50])
+def test_beta_interval_is_the_jeffreys_interval_of_astropy_and_scipy():
+    """Jeffreys intervals (Brown, Cai & DasGupta 2001, Stat. Sci. 16, 101, sec. 4.1.2) equal
+    scipy.stats.beta quantiles of Beta(k+1/2, n-k+1/2) inside, 0 at k = 0 and 1 at k = n, as
+    astropy binom_conf_interval(interval='jeffreys') gives them."""
+    k = np.array([0, 1, 1, 5, 9, 10, 37, 3])
+    n = np.array([10, 1, 10, 10, 10, 10, 50, 3])
     lo, hi = metrics.beta_interval(k, n, 0.683)
-    assert_allclose(lo, stats.beta.ppf(0.1585, k + 1, n - k + 1), rtol=1e-12)
-    assert_allclose(hi, stats.beta.ppf(0.8415, k + 1, n - k + 1), rtol=1e-12)
-    ref = binom_conf_interval(k, n, confidence_level=0.683, interval="flat")
-    # astropy's 'flat' is the same posterior; agreement to its root-finding precision
-    assert_allclose(lo[(k > 0) & (k < n)], ref[0][(k > 0) & (k < n)], rtol=0, atol=2e-3)
-    assert_allclose(hi[(k > 0) & (k < n)], ref[1][(k > 0) & (k < n)], rtol=0, atol=2e-3)
+    ref = binom_conf_interval(k, n, confidence_level=0.683, interval="jeffreys")
+    assert_allclose(lo, ref[0], rtol=1e-10, atol=1e-12)
+    assert_allclose(hi, ref[1], rtol=1e-10, atol=1e-12)
+    inner = (k > 0) & (k < n)
+    assert_allclose(lo[inner], stats.beta.ppf(0.1585, k[inner] + 0.5, n[inner] - k[inner] + 0.5),
+                    rtol=1e-12)
+    assert_allclose(hi[inner], stats.beta.ppf(0.8415, k[inner] + 0.5, n[inner] - k[inner] + 0.5),
+                    rtol=1e-12)
+    # k = n = 1: completeness 1.0 lies inside its interval, which reaches 1
+    assert hi[1] == 1.0 and lo[1] < 1.0 and lo[0] == 0.0
+    assert np.all((lo <= k / n) & (k / n <= hi))
+
+
+def test_report_error_bars_reach_the_point_at_k_equal_n():
+    """The plotted bars run from fraction_lo to fraction_hi, so at k = n the bar ends at the
+    point (1.0), and at k = 0 it starts at 0."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    from simfield.score.report import _plot_fraction
+
+    t = metrics.binned_fraction([1.0, 2.0, 2.2, 3.0], [True, True, False, False], [0.5, 1.5, 2.5,
+                                                                                  3.5], name="m")
+    fig, ax = plt.subplots()
+    cont = _plot_fraction(ax, np.asarray(t["m_mid"]), t, np.ones(3, bool), "k", None)
+    seg = np.array(cont.lines[2][0].get_segments())  # one vertical segment per point
+    plt.close(fig)
+    assert_allclose(seg[:, 0, 1], t["fraction_lo"], rtol=0, atol=1e-12)
+    assert_allclose(seg[:, 1, 1], t["fraction_hi"], rtol=0, atol=1e-12)
+    assert seg[0, 1, 1] == 1.0 and t["fraction"][0] == 1.0 and seg[2, 0, 1] == 0.0
 
 
 @pytest.mark.parametrize("model", ["logistic", "erf"])
@@ -126,6 +153,72 @@ def test_completeness_fit_errors_scale_with_sample_size():
 
 
 # ------------------------------------------------------------------------------ volumes
+def test_binned_deviance_equals_scipy_binomial_likelihood_ratio():
+    """D = 2 [ln L(saturated) - ln L(model)] with scipy.stats.binom log-pmfs per bin
+    (Wilks 1938, Ann. Math. Stat. 9, 60; McCullagh & Nelder 1989, sec. 4.4.3)."""
+    rng = np.random.default_rng(8)
+    mag = rng.uniform(25, 30, 400)
+    det = rng.random(400) < 1 / (1 + np.exp((mag - 27.5) / 0.4))
+    curve = lambda m: 0.9 / (1 + np.exp((m - 27.3) / 0.5))  # noqa: E731
+    edges = metrics.gof_bins(mag)
+    dev, nb = metrics.binned_deviance(mag, det, curve, edges)
+    b = np.clip(np.digitize(mag, edges) - 1, 0, len(edges) - 2)
+    n = np.bincount(b)
+    k = np.bincount(b, weights=det).astype(int)
+    e = np.bincount(b, weights=curve(mag))
+    ref = 2 * np.sum(stats.binom.logpmf(k, n, k / n) - stats.binom.logpmf(k, n, e / n))
+    assert nb == len(edges) - 1 and n.min() >= metrics.BIN_MIN_N
+    assert_allclose(dev, ref, rtol=1e-10)
+
+
+def test_fit_p_values_of_true_model_rarely_reject():
+    """Samples drawn from a logistic curve pass the goodness-of-fit test: at most 2 of 30 fall
+    below FIT_P_MIN = 0.01 (binomial probability of 3 or more at a calibrated 1% is 0.003;
+    the deviance's chi2 law, Wilks 1938, is conservative where bins expect few detections)."""
+    rng = np.random.default_rng(1)
+    p = []
+    for _ in range(30):
+        m = rng.uniform(24, 31, 800)
+        d = rng.random(m.size) < 0.95 / (1 + np.exp((m - 28) / 0.35))
+        p.append(metrics.fit_completeness(m, d).p_value)
+    assert np.sum(np.asarray(p) < metrics.FIT_P_MIN) <= 2
+
+
+def test_fit_that_does_not_describe_the_data_quotes_no_limit():
+    """A curve that drops to 0 at 26-27 and comes back to 0.8 at 27-29 (a lensed field's
+    shape) fails the deviance test (chi2 p < 0.01); m50 and m90 are null with the reason."""
+    rng = np.random.default_rng(4)
+    m = rng.uniform(23, 29, 1500)
+    p = np.where(m < 26, 0.97, np.where(m < 27, 0.02, 0.8))
+    f = metrics.fit_completeness(m, rng.random(m.size) < p)
+    assert f.p_value < 1e-6 and not f.describes_data
+    d = f.as_dict()
+    assert d["m50"] is None and d["m50_err"] is None and "does not describe" in d["m50_reason"]
+    assert d["m90"] is None and "does not describe" in d["m90_reason"]
+    json.dumps(d, allow_nan=False)
+
+
+def test_limit_outside_the_data_or_too_uncertain_is_not_quoted():
+    """Sources only fainter than the 90% point: m90 is not bracketed by the data; a plateau
+    just above 0.9 from 150 sources gives an m90 error beyond 0.5 mag; m50 of a well sampled
+    curve is quoted."""
+    rng = np.random.default_rng(6)
+    m = rng.uniform(27.5, 31, 1500)
+    f = metrics.fit_completeness(m, rng.random(m.size) < 0.97 / (1 + np.exp((m - 28) / 0.3)))
+    assert f.describes_data and np.isfinite(f.m50) and f.m50_reason is None
+    assert np.isnan(f.m90) and "do not bracket 0.9" in f.m90_reason
+    # plateau 0.9: m90 is either not reached, or quoted within 0.5 mag, or refused for its error
+    reasons = []
+    for seed in range(10):
+        rng = np.random.default_rng(seed)
+        m = rng.uniform(24, 31, 400)
+        f = metrics.fit_completeness(m, rng.random(m.size) < 0.9 / (1 + np.exp((m - 28) / 0.35)))
+        assert (f.m90_reason is None) == np.isfinite(f.m90)
+        assert f.m90_reason is not None or f.m90_err <= metrics.LIMIT_ERR_MAX
+        reasons.append(f.m90_reason or "")
+    assert any("exceeds 0.5 mag" in r for r in reasons)
+
+
 def test_veff_of_perfect_detector_equals_astropy_comoving_volume():
     """p = 1: V_eff = [V_c(z2) - V_c(z1)] x area / (4 pi sr) (Hogg 1999 eq. 29, astropy)."""
     area = 3600.0 * 4  # 4 arcmin^2 in arcsec^2
@@ -284,7 +377,11 @@ def test_score_run_writes_tables_summary_and_report(run_dir):
     bright = (cm["mag_hi"] <= 26) & (cm["n"] > 0)
     # crowded fixture (80 sources in 9 arcsec): allow a few blended losses
     assert np.sum(cm["k"][bright]) >= 0.9 * np.sum(cm["n"][bright])
-    assert s["m50"] > 26.5
+    # 79 galaxies: the fitted transition is faint, its limit quoted only if the rules allow
+    assert s["completeness_fit"]["logistic"]["m_t"] > 26.5
+    for key in ("m50", "m90"):
+        assert (js[key] is None) == (js[f"{key}_reason"] is not None)
+        assert js[key] is None or js[f"{key}_err"] <= metrics.LIMIT_ERR_MAX
     ft = Table.read(out / "false_detections.ecsv")
     x, y = g.sky_to_pixel(ft["ra"], ft["dec"])
     far = np.hypot(x - 5, y - 290) < 1

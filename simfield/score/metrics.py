@@ -1,11 +1,27 @@
 """Completeness, purity, causes of false detections, photometric bias and completeness fits.
 
-Fractions per bin carry central Bayesian intervals from the Beta posterior of a binomial with a
-uniform prior, Beta(k + 1, n - k + 1) (Cameron 2011, PASA 28, 128, sec. 2). Completeness curves
-are fitted by maximum likelihood on the unbinned Bernoulli outcomes (detected or not), with a
-logistic or an error-function form (Fleming et al. 1995, AJ 109, 1044), and give the magnitudes
-where completeness falls to 50% and 90% with uncertainties from the inverse Hessian of the
-log-likelihood propagated to those magnitudes (delta method).
+Fractions per bin carry Jeffreys intervals: the central quantiles of the Beta posterior of a
+binomial under the Jeffreys prior, Beta(k + 1/2, n - k + 1/2), with the lower bound set to 0 at
+k = 0 and the upper bound to 1 at k = n (Brown, Cai & DasGupta 2001, Statistical Science 16, 101,
+sec. 4.1.2; Beta quantiles as in Cameron 2011, PASA 28, 128), so every interval holds k/n.
+
+Completeness curves are fitted by maximum likelihood on the unbinned Bernoulli outcomes
+(detected or not), with a logistic or an error-function form (Fleming et al. 1995, AJ 109, 1044),
+and give the magnitudes where completeness falls to 50% and 90% with uncertainties from the
+inverse Hessian of the log-likelihood propagated to those magnitudes (delta method). A limit is
+quoted only when (:func:`fit_completeness`, rules in order):
+
+1. the fit describes the data: the binomial deviance of the binned counts against the saturated
+   model (one free fraction per bin), D = 2 sum [k ln(k/E) + (n-k) ln((n-k)/(n-E))], has a
+   p-value P(chi2_dof > D) >= :data:`FIT_P_MIN` with dof = bins - fitted parameters (likelihood
+   ratio, Wilks 1938, Ann. Math. Stat. 9, 60; binomial deviance, McCullagh & Nelder 1989,
+   "Generalized Linear Models", sec. 4.4.3). Bins are 0.25 mag wide, merged with their fainter
+   neighbours until each holds at least :data:`BIN_MIN_N` sources;
+2. the data cross the level: a bin wholly brighter than the limit has k/n >= the level and a bin
+   wholly fainter has k/n <= the level (both with at least :data:`BIN_MIN_N` sources);
+3. its 1-sigma uncertainty is at most :data:`LIMIT_ERR_MAX` mag.
+
+Otherwise the limit is NaN (null in JSON) with the reason in ``m50_reason`` / ``m90_reason``.
 
 Units: magnitudes AB, sizes arcsec, surface brightness AB mag/arcsec^2, pixel positions 0-based.
 """
@@ -20,17 +36,27 @@ from scipy import optimize, special, stats
 
 __all__ = [
     "FALSE_CAUSES",
+    "INTERVAL_NOTE",
     "beta_interval",
     "binned_fraction",
     "binned_fraction_2d",
     "photometric_bias",
     "mean_surface_brightness",
+    "FIT_P_MIN",
+    "BIN_MIN_N",
+    "LIMIT_ERR_MAX",
     "CompletenessFit",
+    "gof_bins",
+    "binned_deviance",
     "completeness_model",
     "fit_completeness",
     "measure_spike_angles",
     "classify_false_detections",
 ]
+
+#: how the per-bin intervals are made (``level`` filled in)
+INTERVAL_NOTE = ("Jeffreys {level:g} interval: Beta(k+1/2, n-k+1/2) quantiles, 0 at k=0 and 1 at "
+                 "k=n (Brown, Cai & DasGupta 2001, Stat. Sci. 16, 101)")
 
 #: causes of unmatched detections, in order of precedence
 FALSE_CAUSES = ("artefact", "spike", "shred", "blend", "noise")
@@ -40,7 +66,8 @@ _NMAD = 1.4826
 
 
 def beta_interval(k, n, level: float = 0.683):
-    """Central credible interval of a binomial fraction (Cameron 2011, PASA 28, 128, eq. 3-4).
+    """Jeffreys interval of a binomial fraction (Brown, Cai & DasGupta 2001, Statistical
+    Science 16, 101, sec. 4.1.2).
 
     Parameters
     ----------
@@ -52,13 +79,14 @@ def beta_interval(k, n, level: float = 0.683):
     Returns
     -------
     lo, hi : ndarray (dimensionless)
-        Quantiles (1 -/+ level)/2 of Beta(k + 1, n - k + 1).
+        Quantiles (1 -/+ level)/2 of Beta(k + 1/2, n - k + 1/2), with ``lo = 0`` where
+        ``k == 0`` and ``hi = 1`` where ``k == n``: the interval always contains k/n.
     """
     k = np.asarray(k, float)
     n = np.asarray(n, float)
-    a, b = k + 1.0, n - k + 1.0
-    lo = stats.beta.ppf(0.5 * (1.0 - level), a, b)
-    hi = stats.beta.ppf(0.5 * (1.0 + level), a, b)
+    a, b = k + 0.5, n - k + 0.5
+    lo = np.where(k > 0, stats.beta.ppf(0.5 * (1.0 - level), a, b), 0.0)
+    hi = np.where(k < n, stats.beta.ppf(0.5 * (1.0 + level), a, b), 1.0)
     return np.asarray(lo, float), np.asarray(hi, float)
 
 
@@ -98,7 +126,7 @@ def binned_fraction(values, success, edges, level: float = 0.683, name: str = "x
     t[f"{name}_mid"] = 0.5 * (edges[:-1] + edges[1:])
     t["n"], t["k"] = n, k
     t["fraction"], t["fraction_lo"], t["fraction_hi"] = frac, lo, hi
-    t.meta["interval"] = f"central {level:g} Beta(k+1, n-k+1) (Cameron 2011, PASA 28, 128)"
+    t.meta["interval"] = INTERVAL_NOTE.format(level=level)
     return t
 
 
@@ -206,6 +234,20 @@ def _limit(model, c0, m_t, width, p):
     return m_t + np.sqrt(2.0) * width * special.erfcinv(2.0 * p / c0)
 
 
+#: smallest goodness-of-fit p-value of a fit whose limits are quoted: a fit rejected at 1%
+#: does not describe the data (choice of this project)
+FIT_P_MIN = 0.01
+#: fewest sources per magnitude bin of the goodness-of-fit test and of the bracketing rule;
+#: the chi2 law of the deviance needs several expected counts per bin (McCullagh & Nelder
+#: 1989, sec. 4.4.3), and a fraction from fewer than 10 sources says little (common practice)
+BIN_MIN_N = 10
+#: largest 1-sigma error (mag) of a quoted limit: beyond a factor 1.6 in flux a "limit" no
+#: longer tells depths apart (choice of this project)
+LIMIT_ERR_MAX = 0.5
+#: width (mag) of the fine bins merged into the goodness-of-fit bins
+GOF_STEP = 0.25
+
+
 @dataclass(frozen=True)
 class CompletenessFit:
     """Maximum-likelihood completeness curve.
@@ -219,9 +261,18 @@ class CompletenessFit:
     cov : ndarray (3, 3)
         Covariance of (c0, m_t, width).
     m50, m50_err, m90, m90_err : float (AB mag)
-        Magnitudes where C = 0.5 and 0.9, with 1-sigma errors (NaN if never reached).
+        Magnitudes where C = 0.5 and 0.9 with 1-sigma errors; NaN where not quoted (module
+        docstring), the reason then in ``m50_reason`` / ``m90_reason``.
     n : int
         Number of Bernoulli trials fitted.
+    deviance : float
+        Binomial deviance of the binned counts against the saturated model.
+    dof : int
+        Its degrees of freedom (bins - fitted parameters).
+    p_value : float
+        P(chi2_dof > deviance); NaN when dof < 1.
+    m50_reason, m90_reason : str or None
+        Why the limit is not quoted (None when it is).
     """
 
     model: str
@@ -234,18 +285,123 @@ class CompletenessFit:
     m90: float
     m90_err: float
     n: int
+    deviance: float = np.nan
+    dof: int = 0
+    p_value: float = np.nan
+    m50_reason: str | None = None
+    m90_reason: str | None = None
 
     def __call__(self, mag):
         """Completeness at ``mag`` (AB)."""
         return completeness_model(mag, self.model, self.c0, self.m_t, self.width)
 
+    @property
+    def describes_data(self) -> bool:
+        """Whether the goodness-of-fit test passed (p >= :data:`FIT_P_MIN`)."""
+        return bool(self.p_value >= FIT_P_MIN)
+
     def as_dict(self) -> dict:
-        """Plain dict for JSON."""
+        """Plain dict for JSON (limits not quoted are None, with their reason)."""
         err = np.sqrt(np.clip(np.diag(self.cov), 0, None))
-        return {"model": self.model, "c0": self.c0, "c0_err": float(err[0]), "m_t": self.m_t,
-                "m_t_err": float(err[1]), "width": self.width, "width_err": float(err[2]),
-                "m50": self.m50, "m50_err": self.m50_err, "m90": self.m90,
-                "m90_err": self.m90_err, "n": self.n}
+        d = {"model": self.model, "c0": self.c0, "c0_err": float(err[0]), "m_t": self.m_t,
+             "m_t_err": float(err[1]), "width": self.width, "width_err": float(err[2]),
+             "n": self.n, "deviance": self.deviance, "dof": self.dof, "p_value": self.p_value}
+        for key in ("m50", "m90"):
+            reason = getattr(self, f"{key}_reason")
+            d[key] = None if reason else getattr(self, key)
+            d[f"{key}_err"] = None if reason else getattr(self, f"{key}_err")
+            d[f"{key}_reason"] = reason
+        return d
+
+
+def gof_bins(mag, step: float = GOF_STEP, n_min: int = BIN_MIN_N) -> np.ndarray:
+    """Magnitude bin edges holding at least ``n_min`` sources each.
+
+    Bins of ``step`` mag from the brightest source are merged with their fainter neighbours
+    until each holds ``n_min`` sources; a short remainder joins the last bin.
+
+    Parameters
+    ----------
+    mag : array_like (AB mag)
+        Finite magnitudes.
+    step : float (mag)
+    n_min : int
+
+    Returns
+    -------
+    ndarray (AB mag)
+        Increasing edges (a single bin if there are fewer than ``2 n_min`` sources).
+    """
+    m = np.sort(np.asarray(mag, float))
+    lo = np.floor(m[0] / step) * step
+    fine = lo + step * np.arange(int(np.floor((m[-1] - lo) / step)) + 2)
+    counts, _ = np.histogram(m, fine)
+    edges, run = [fine[0]], 0
+    for hi, c in zip(fine[1:], counts):
+        run += c
+        if run >= n_min:
+            edges.append(hi)
+            run = 0
+    if run and len(edges) > 1:
+        edges[-1] = fine[-1]
+    elif run:
+        edges.append(fine[-1])
+    return np.asarray(edges, float)
+
+
+def binned_deviance(mag, detected, curve, edges):
+    """Binomial deviance of binned counts against the saturated model.
+
+    Parameters
+    ----------
+    mag : array_like (AB mag)
+    detected : array_like of bool
+    curve : callable mag -> probability
+        Fitted completeness; E = sum of C(m) over the sources of a bin.
+    edges : array_like (AB mag)
+        Bin edges (:func:`gof_bins`).
+
+    Returns
+    -------
+    deviance : float
+        D = 2 sum [k ln(k/E) + (n-k) ln((n-k)/(n-E))], 0 ln 0 = 0 (McCullagh & Nelder 1989,
+        sec. 4.4.3).
+    n_bins : int
+        Bins holding sources.
+    """
+    m = np.asarray(mag, float)
+    k = np.asarray(detected, bool).astype(float)
+    b = np.clip(np.digitize(m, edges) - 1, 0, len(edges) - 2)
+    nb = len(edges) - 1
+    n = np.bincount(b, minlength=nb).astype(float)
+    kk = np.bincount(b, weights=k, minlength=nb)
+    e = np.bincount(b, weights=np.clip(curve(m), 1e-12, 1 - 1e-12), minlength=nb)
+    use = n > 0
+    n, kk, e = n[use], kk[use], e[use]
+    dev = 2.0 * np.sum(special.xlogy(kk, kk / e) + special.xlogy(n - kk, (n - kk) / (n - e)))
+    return float(max(dev, 0.0)), int(use.sum())
+
+
+def _limit_reason(value, err, p, frac, lo, hi, n, p_value, dof):
+    """Why a limit at level ``p`` cannot be quoted (None if it can); rules of the module."""
+    if dof < 1:
+        return f"too few magnitude bins of {BIN_MIN_N}+ sources to test the fit ({dof} dof)"
+    if not p_value >= FIT_P_MIN:
+        return (f"the fit does not describe the data (binomial deviance p = {p_value:.2g} < "
+                f"{FIT_P_MIN:g}, {dof} dof)")
+    if not np.isfinite(value):
+        return f"the fitted plateau never reaches {p:g}"
+    full = n >= BIN_MIN_N
+    brighter = np.any(full & (hi <= value) & (frac >= p))
+    fainter = np.any(full & (lo >= value) & (frac <= p))
+    if not (brighter and fainter):
+        return (f"the data do not bracket {p:g} at {value:.2f} (need a bin of {BIN_MIN_N}+ "
+                f"sources at or above {p:g} brighter and one at or below fainter)")
+    if not np.isfinite(err):
+        return "uncertainty undefined (singular curvature of the likelihood)"
+    if err > LIMIT_ERR_MAX:
+        return f"uncertainty {err:.2f} mag exceeds {LIMIT_ERR_MAX:g} mag"
+    return None
 
 
 # plateau c0 = expit(12) = 1 - 6e-6: closer to 1 counts as "at the boundary"
@@ -283,8 +439,9 @@ def fit_completeness(mag, detected, model: str = "logistic") -> CompletenessFit:
     Returns
     -------
     CompletenessFit
-        Parameters, covariance (inverse Hessian of -ln L, transformed back by the Jacobian) and
-        the 50% / 90% magnitudes with delta-method errors.
+        Parameters, covariance (inverse Hessian of -ln L, transformed back by the Jacobian),
+        the goodness of fit, and the 50% / 90% magnitudes with delta-method errors where the
+        rules of the module docstring allow them (NaN with a reason otherwise).
     """
     if model not in ("logistic", "erf"):
         raise ValueError(f"'model' must be 'logistic' or 'erf', got {model!r}")
@@ -352,8 +509,22 @@ def fit_completeness(mag, detected, model: str = "logistic") -> CompletenessFit:
         else:
             err = np.nan
         out[p] = (float(val), err)
+    # goodness of fit and the quoting rules (module docstring)
+    edges = gof_bins(m)
+    dev, n_bins = binned_deviance(m, k, lambda x: completeness_model(x, model, c0, m_t, width),
+                                  edges)
+    dof = n_bins - free.size
+    p_value = float(stats.chi2.sf(dev, dof)) if dof >= 1 else np.nan
+    b = np.clip(np.digitize(m, edges) - 1, 0, len(edges) - 2)
+    nb = np.bincount(b, minlength=len(edges) - 1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        frac = np.bincount(b, weights=k, minlength=len(edges) - 1) / nb
+    reasons = {p: _limit_reason(out[p][0], out[p][1], p, frac, edges[:-1], edges[1:], nb,
+                                p_value, dof) for p in (0.5, 0.9)}
+    quoted = {p: (out[p] if reasons[p] is None else (np.nan, np.nan)) for p in (0.5, 0.9)}
     return CompletenessFit(model, float(c0), float(m_t), float(width), cov,
-                           out[0.5][0], out[0.5][1], out[0.9][0], out[0.9][1], int(m.size))
+                           quoted[0.5][0], quoted[0.5][1], quoted[0.9][0], quoted[0.9][1],
+                           int(m.size), dev, int(dof), p_value, reasons[0.5], reasons[0.9])
 
 
 # --------------------------------------------------------------------------------------------

@@ -559,10 +559,12 @@ def score_run(run_dir, catalog, band: str, cfg: ScoreConfig | None = None, out_d
         "spike_angles_deg": [float(a) for a in angles],
         "catalog_rows_skipped": int(det.meta.get("n_skipped", 0)),
     }
+    # limits the headline fit may quote (metrics module rules); null with a reason otherwise
     head = fits_.get(cfg.fit_model)
-    if isinstance(head, metrics.CompletenessFit):
-        summary["m50"], summary["m50_err"] = head.m50, head.m50_err
-        summary["m90"], summary["m90_err"] = head.m90, head.m90_err
+    hd = head.as_dict() if isinstance(head, metrics.CompletenessFit) else {}
+    for key in ("m50", "m90"):
+        summary[key], summary[f"{key}_err"] = hd.get(key), hd.get(f"{key}_err")
+        summary[f"{key}_reason"] = hd.get(f"{key}_reason") if hd else f"no fit: {head}"
 
     # ---- write (all inputs are read and checked by now)
     out.mkdir(parents=True, exist_ok=True)
