@@ -16,8 +16,8 @@ import re
 
 from astropy.table import Table
 
-__all__ = ["TRUTH_COLUMNS", "IMAGE_COLUMNS", "SCORE_COLUMNS", "describe", "describe_fits_header",
-           "table_hdu"]
+__all__ = ["TRUTH_COLUMNS", "IMAGE_COLUMNS", "SCORE_COLUMNS", "SCORE_TABLES", "describe",
+           "describe_fits_header", "table_hdu"]
 
 _POS = {
     "ra": ("deg", "right ascension (ICRS)"),
@@ -104,6 +104,23 @@ SCORE_COLUMNS = {
     "magnification": ("", "|magnification| of the brightest image"),
     "recovered": ("", "whether any image of the source was matched"),
     "det_row": ("", "catalogue row of the matched detection (0-based), -1 if none"),
+}
+
+#: what each score table holds (``meta["description"]`` of ``<name>.ecsv``)
+SCORE_TABLES = {
+    "completeness_mag": "fraction of truth galaxies recovered per bin of observed magnitude",
+    "completeness_size": "fraction of truth galaxies recovered per bin of observed half-light "
+                         "radius",
+    "completeness_sb": "fraction of truth galaxies recovered per bin of mean surface brightness",
+    "completeness_z": "fraction of truth galaxies recovered per redshift bin",
+    "completeness_mu": "fraction of truth galaxies recovered per bin of |magnification|",
+    "completeness_mag_size": "fraction of truth galaxies recovered per (magnitude, size) cell",
+    "purity_mag": "fraction of detections matched to a truth image, per measured magnitude",
+    "false_detections": "every unmatched detection with its likely cause",
+    "photometry": "measured - true magnitude of matched pairs, per true observed magnitude",
+    "effective_volume": "recovered fraction x comoving volume per (M_UV, z) cell",
+    "recovered": "each truth source with an image on the mosaic: recovered or not, and its "
+                 "matched detection",
 }
 
 

@@ -390,6 +390,33 @@ def test_score_run_writes_tables_summary_and_report(run_dir):
     assert page.count("data:image/png;base64,") >= 5 and "<img src=\"http" not in page
 
 
+def test_score_tables_carry_units_descriptions_and_null_volumes(run_dir, tmp_path):
+    """Every score table column has a description, magnitudes carry unit mag; V_eff is null
+    where a cell holds no source and elsewhere the fraction times the comoving volume of the
+    z bin over the mosaic area (astropy.cosmology comoving_volume, Hogg 1999 eq. 29)."""
+    path, _ = run_dir
+    out = tmp_path / "s"
+    score_run(path, path / "cat.ecsv", BAND, ScoreConfig(report=False), out)
+    for f in sorted(out.glob("*.ecsv")):
+        t = Table.read(f)
+        assert t.meta["description"], f.name
+        assert [c for c in t.colnames if not t[c].description] == [], f.name
+        for c in t.colnames:
+            if c == "mag" or c.startswith("mag_"):
+                assert t[c].unit == "mag", (f.name, c)
+    v = Table.read(out / "effective_volume.ecsv")
+    empty = np.asarray(v["n"]) == 0
+    assert empty.any() and (~empty).any()
+    assert np.all(np.ma.getmaskarray(v["v_eff_mpc3"]) == empty)
+    area = (300 * 300 * 0.03**2 * u.arcsec**2).to(u.sr) / (4 * np.pi * u.sr)
+    c = default_cosmology()
+    vol = (c.comoving_volume(np.asarray(v["z_hi"])) - c.comoving_volume(np.asarray(v["z_lo"])))
+    ref = (vol * area).to_value(u.Mpc**3)
+    assert_allclose(v["volume_mpc3"], ref, rtol=1e-6)
+    assert_allclose(v["v_eff_mpc3"][~empty], (v["fraction"] * ref)[~empty], rtol=1e-6)
+    assert v["v_eff_mpc3"].unit == "Mpc3"
+
+
 def test_spike_angles_are_measured_on_the_psf(run_dir):
     """The synthetic PSF's spikes along the pixel axes are found at 0, 90, 180, 270 deg."""
     path, _ = run_dir

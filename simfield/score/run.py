@@ -31,10 +31,12 @@ from astropy.wcs import WCS
 
 from .._argparse import ArgError, OneLineParser
 from ..bands import AB_NJY_ZERO
+from ..columns import SCORE_COLUMNS, SCORE_TABLES, describe
 from ..config import ScoreConfig, _validate_score
 from ..errors import CatalogError, ConfigError
 from . import metrics
 from .match import match_radius, match_sky
+from .volume import binned_effective_volume
 
 __all__ = ["FLUX_UNITS", "load_catalog", "load_truth", "image_map", "pixel_values", "score_run",
            "score_pipeline_run", "score_main_args"]
@@ -504,26 +506,12 @@ def score_run(run_dir, catalog, band: str, cfg: ScoreConfig | None = None, out_d
                                                     det_mag[m.det_index], mag_edges)
 
     # ---- effective volume per (M_UV, z) bin: recovered fraction x comoving volume over the field
-    from .. import cosmo as _cosmo
-
-    area = float(nx * ny) * truth["pixel_scale"] ** 2
     if "abs_mag_uv" in sources.colnames:
-        M_edges = _edges(-24.0, -14.0, 1.0)
-        zb = np.asarray(cfg.z_bins, float)
-        c = _cosmo.default_cosmology()
-        vol = (c.comoving_volume(zb[1:]).value - c.comoving_volume(zb[:-1]).value) \
-            * area / (4 * np.pi * _cosmo.ARCSEC2_PER_SR)
-        absm = np.asarray(sources["abs_mag_uv"], float)
         sel = kind == "galaxy"
-        veff = metrics.binned_fraction_2d(absm[sel], z[sel], recovered[sel], M_edges, zb, lvl,
-                                          ("abs_mag_uv", "z"))
-        zi = np.searchsorted(zb, np.asarray(veff["z_lo"]), side="right") - 1
-        veff["volume_mpc3"] = vol[zi]
-        veff["v_eff_mpc3"] = np.nan_to_num(np.asarray(veff["fraction"], float)) * vol[zi]
-        veff.meta["note"] = ("V_eff = recovered fraction x comoving volume of the z bin over the "
-                             "mosaic area; lensed fields: the fraction already includes "
-                             "magnification, the area is the image-plane area")
-        tables["effective_volume"] = veff
+        tables["effective_volume"] = binned_effective_volume(
+            np.asarray(sources["abs_mag_uv"], float)[sel], z[sel], recovered[sel],
+            _edges(-24.0, -14.0, 1.0), cfg.z_bins, float(nx * ny) * truth["pixel_scale"] ** 2,
+            lvl)
 
     rec_t = Table({"id": sid, "kind": kind, "mag_obs": best_mag, "r_half_obs": r_obs,
                    "redshift": z, "magnification": mu_best, "recovered": recovered,
@@ -570,7 +558,8 @@ def score_run(run_dir, catalog, band: str, cfg: ScoreConfig | None = None, out_d
     out.mkdir(parents=True, exist_ok=True)
     for name, t in tables.items():
         t.meta["band"] = band
-        _write_table(out / f"{name}.ecsv", t)
+        t.meta["description"] = SCORE_TABLES[name]
+        _write_table(out / f"{name}.ecsv", describe(t, SCORE_COLUMNS))
     if cfg.report:
         from .report import make_report
 
