@@ -577,3 +577,133 @@ def test_colour_preview_is_the_strided_whole_image_preview(run_dir):
     mad = 1.4826 * np.median(np.abs(c - med))
     assert used == [BAND] * 3 and rgb.shape == (60, 60, 3)
     assert_allclose(rgb[..., 0], _stretch(c, med - mad, med + 200 * mad), rtol=0, atol=1e-12)
+
+
+# ------------------------------------------------------------------------------ catalogue checks
+def _cli(args, capsys):
+    rc = score_main_args([str(a) for a in args])
+    cap = capsys.readouterr()
+    return rc, cap.out.strip().splitlines(), cap.err.strip().splitlines()
+
+
+def test_vector_column_is_chosen_by_0_based_index_or_refused(run_dir, tmp_path, capsys):
+    """MAG_APER[1] scores element 1 (0-based) of a 3-aperture column; MAG_APER alone and
+    MAG_APER[3] are refused with one line, exit 2, nothing written."""
+    path, _ = run_dir
+    cat = Table.read(path / "cat.ecsv")
+    t = Table({"ra": cat["ra"], "dec": cat["dec"],
+               "MAG_APER": np.column_stack([cat["mag"] + 0.5, cat["mag"], cat["mag"] - 0.5])})
+    t.write(tmp_path / "vec.fits")
+    res = load_catalog(tmp_path / "vec.fits", {"mag": "MAG_APER[1]"})
+    assert_allclose(res["mag"], cat["mag"], rtol=0, atol=1e-12)
+    assert res.meta["columns"]["mag"] == "MAG_APER[1]"
+    for spec, msg in (("MAG_APER", "MAG_APER: 3 values per row (mag); pick one as MAG_APER[i] "
+                                   "with i = 0..2 (0-based)"),
+                      ("MAG_APER[3]", "MAG_APER[3]: index out of range; i = 0..2 (0-based)")):
+        out = tmp_path / spec.replace("[", "_").replace("]", "")
+        rc, _, err = _cli([path, "--catalog", tmp_path / "vec.fits", "--band", BAND,
+                           "--mag-col", spec, "--out", out], capsys)
+        assert rc == 2 and err == [f"simfield-score: error: {msg}"] and not out.exists()
+    rc, _, err = _cli([path, "--catalog", tmp_path / "vec.fits", "--band", BAND, "--mag-col",
+                       "MAG_APER[1]", "--no-report", "--out", tmp_path / "ok"], capsys)
+    assert rc == 0 and (tmp_path / "ok" / "summary.json").is_file()
+
+
+def test_duplicate_rows_are_refused_with_their_count_or_dropped(run_dir, tmp_path, capsys):
+    """Rows within 1 milliarcsec of an earlier row (counted against astropy
+    search_around_sky) are refused with their count, or dropped with --drop-duplicates."""
+    path, _ = run_dir
+    cat = Table.read(path / "cat.ecsv")
+    extra = cat[:3].copy()
+    extra["dec"][1] += 0.5e-3 / 3600  # 0.5 mas away: a duplicate
+    extra["dec"][2] += 5e-3 / 3600  # 5 mas away: not one
+    t = Table(np.concatenate([cat.as_array(), extra.as_array()]))
+    t.write(tmp_path / "dup.ecsv")
+    sc = SkyCoord(t["ra"] * u.deg, t["dec"] * u.deg)
+    i, j, _, _ = search_around_sky(sc, sc, 1e-3 * u.arcsec)
+    n_ref = len({max(a, b) for a, b in zip(i, j) if a != b})
+    assert n_ref == 2
+    out = tmp_path / "o"
+    rc, _, err = _cli([path, "--catalog", tmp_path / "dup.ecsv", "--band", BAND, "--out", out],
+                      capsys)
+    assert rc == 2 and len(err) == 1 and not out.exists()
+    assert "ra/dec: 2 row(s) within 1 milliarcsec" in err[0] and "--drop-duplicates" in err[0]
+    rc, _, _ = _cli([path, "--catalog", tmp_path / "dup.ecsv", "--band", BAND, "--out", out,
+                     "--no-report", "--drop-duplicates"], capsys)
+    js = json.loads((out / "summary.json").read_text())
+    assert rc == 0 and js["catalog_duplicates_dropped"] == 2
+    assert js["n_detections"] == len(cat) + 1
+
+
+def test_catalogue_on_another_flux_scale_is_refused(run_dir, tmp_path, capsys):
+    """uJy declared as nJy, magnitudes + 10 and e-/s declared as nJy are refused with the
+    column, the offset and the option; the uJy offset exceeds the right one by 7.5 mag
+    (AB: 1 uJy = 23.9, 1 nJy = 31.4; Oke & Gunn 1983, ApJ 266, 713); --allow-flux-offset
+    scores it and records the offset."""
+    path, _ = run_dir
+    cat = Table.read(path / "cat.ecsv")
+    njy = 10 ** (-0.4 * (np.asarray(cat["mag"]) - 31.4))
+    cases = {"ujy": ("flux", njy / 1e3), "plus10": ("mag", cat["mag"] + 10),
+             "eps": ("flux", 10 ** (-0.4 * (np.asarray(cat["mag"]) - ZP)))}
+    good = score_run(path, path / "cat.ecsv", BAND, ScoreConfig(report=False), tmp_path / "g")
+    off0 = good["magnitude_check"]["median_offset"]
+    assert abs(off0) < 0.5 and good["magnitude_check"]["n_pairs"] >= 10
+    for name, (col, v) in cases.items():
+        Table({"ra": cat["ra"], "dec": cat["dec"], col: v}).write(tmp_path / f"{name}.ecsv")
+        opt = ["--flux-col", "flux"] if col == "flux" else []
+        out = tmp_path / name
+        rc, _, err = _cli([path, "--catalog", tmp_path / f"{name}.ecsv", "--band", BAND,
+                           "--out", out, *opt], capsys)
+        assert rc == 2 and len(err) == 1 and not out.exists(), name
+        assert err[0].startswith(f"simfield-score: error: {col}: median offset +")
+        assert "at most 1 mag allowed" in err[0] and "--allow-flux-offset" in err[0]
+    s = score_run(path, tmp_path / "ujy.ecsv", BAND, ScoreConfig(report=False), tmp_path / "u",
+                  {"flux": "flux"}, allow_flux_offset=True)
+    assert_allclose(s["magnitude_check"]["median_offset"] - off0, 7.5, rtol=0, atol=1e-9)
+
+
+def test_magnitude_check_needs_ten_pairs(run_dir, tmp_path):
+    """A catalogue with fewer than 10 bright isolated matches cannot pass the magnitude check
+    by chance: refused unless allowed."""
+    path, _ = run_dir
+    cat = Table.read(path / "cat.ecsv")
+    cat[np.argsort(cat["mag"])[:5]].write(tmp_path / "five.ecsv")
+    with pytest.raises(CatalogError, match=r"only [0-5] bright isolated matches .* at least 10"):
+        score_run(path, tmp_path / "five.ecsv", BAND, ScoreConfig(report=False), tmp_path / "o")
+    assert not (tmp_path / "o").exists()
+    s = score_run(path, tmp_path / "five.ecsv", BAND, ScoreConfig(report=False), tmp_path / "o",
+                  allow_flux_offset=True)
+    assert s["magnitude_check"]["median_offset"] is None
+
+
+def test_default_band_is_the_runs_detection_band(tmp_path):
+    """Without --band: summary.json's detection band, else the scenario's detection band
+    (scenario.yaml), else the only mosaic; otherwise one line listing the bands."""
+    from simfield.config import to_yaml
+    from simfield.score.run import run_detection_band
+    from tests.conftest import make_scenario
+
+    for b in ("b10", "b36"):
+        (tmp_path / f"mosaic_{b}.fits").write_bytes(b"")
+    with pytest.raises(CatalogError, match=r"--band: not given .* one of b10, b36"):
+        run_detection_band(tmp_path)
+    sc = make_scenario("detection.bands=[b13]")
+    (tmp_path / "scenario.yaml").write_text(to_yaml(sc))
+    assert run_detection_band(tmp_path) == ("b13", "the scenario's detection band")
+    (tmp_path / "summary.json").write_text(json.dumps({"detections": {"b36": 4}}))
+    assert run_detection_band(tmp_path)[0] == "b36"
+
+
+def test_each_catalogue_gets_its_own_default_folder(run_dir, capsys):
+    """Two catalogues scored without --out land in score_<stem>/<band>, apart from each other
+    and from the run's own score/; the band and the folder are printed."""
+    path, _ = run_dir
+    Table.read(path / "cat.ecsv").write(path / "other.ecsv", overwrite=True)
+    for stem in ("cat", "other"):
+        rc, out, _ = _cli([path, "--catalog", path / f"{stem}.ecsv", "--no-report"], capsys)
+        assert rc == 0
+        assert out[-1].startswith(f"simfield-score: band {BAND} (the run's only mosaic);")
+        assert out[-1].endswith(f"results in {path / f'score_{stem}' / BAND}")
+        js = json.loads((path / f"score_{stem}" / BAND / "summary.json").read_text())
+        assert js["catalog"].endswith(f"{stem}.ecsv")
+    assert not (path / "score").exists()
