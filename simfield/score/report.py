@@ -59,8 +59,9 @@ def _band_order(run_dir: Path) -> list[str]:
         from astropy.table import Table
 
         t = Table.read(bpath, format="ascii.ecsv")
-        piv = {str(n): float(p) for n, p in zip(t["name"], t["pivot_nm"])}
-        names.sort(key=lambda n: piv.get(n, np.inf))
+        if "pivot_nm" in t.colnames:  # else (an older injection folder) by name
+            piv = {str(n): float(p) for n, p in zip(t["name"], t["pivot_nm"])}
+            names.sort(key=lambda n: piv.get(n, np.inf))
     return names
 
 

@@ -3,8 +3,8 @@
 ``load_catalog`` (:mod:`simfield.score.catalog`) reads and checks a user catalogue (FITS, ECSV
 or CSV), ``score_run`` matches it to the truth images of one band, checks the catalogue's
 magnitude scale on bright isolated matches, and writes, into ``<out_dir>`` (default
-:func:`default_out_dir`: ``<run_dir>/score/<band>`` for the run's own detections,
-``<run_dir>/score_<catalogue file stem>/<band>`` for a catalogue file):
+:func:`default_out_dir`: ``<run_dir>/score_<catalogue file stem>/<band>``; the pipeline writes
+its own into ``<run_dir>/score/<band>``):
 
 - ``completeness_mag.ecsv``, ``completeness_size.ecsv``, ``completeness_sb.ecsv``,
   ``completeness_z.ecsv``, ``completeness_mu.ecsv``, ``completeness_mag_size.ecsv``: fractions of
@@ -199,12 +199,13 @@ def _write_table(path: Path, t: Table) -> None:
 
 
 def default_out_dir(run_dir, catalog, band: str) -> Path:
-    """Where scores go by default: ``<run_dir>/score/<band>`` for the run's own detections
-    (``catalog`` None, as the pipeline writes them), ``<run_dir>/score_<file stem>/<band>`` for
-    a catalogue file, ``<run_dir>/score_table/<band>`` for a Table."""
+    """Where scores go by default: ``<run_dir>/score_<file stem>/<band>`` for a catalogue file,
+    ``<run_dir>/score_detections_<band>/<band>`` for the run's own detections (``catalog``
+    None; the pipeline's own ``<run_dir>/score/<band>`` is left alone),
+    ``<run_dir>/score_table/<band>`` for a Table."""
     run_dir = Path(run_dir)
     if catalog is None:
-        return run_dir / "score" / band
+        return run_dir / f"score_detections_{band}" / band
     if isinstance(catalog, Table):
         return run_dir / "score_table" / band
     stem = Path(catalog).name.split(".")[0] or "catalog"
@@ -435,6 +436,11 @@ def score_run(run_dir, catalog, band: str, cfg: ScoreConfig | None = None, out_d
         "catalog_duplicates_dropped": int(det.meta.get("n_duplicates", 0)),
         "magnitude_check": mag_check,
     }
+    injected = fits.getheader(run_dir / f"mosaic_{band}.fits", "SCI").get("INJFROM")
+    if injected and from_file:
+        summary["injected_into"] = str(injected)
+        summary["purity_note"] = ("the truth holds only the injected sources: the image's own "
+                                  "objects in the catalogue count as unmatched detections")
     # limits the headline fit may quote (metrics module rules); null with a reason otherwise
     head = fits_.get(cfg.fit_model)
     hd = head.as_dict() if isinstance(head, metrics.CompletenessFit) else {}
@@ -498,10 +504,24 @@ def _parser() -> argparse.ArgumentParser:
                    help="score even if the bright matches' magnitudes are off the truth by "
                         "more than 1 mag (or too few to check)")
     p.add_argument("--out", help="output directory (default <run_dir>/score_<catalogue file "
-                                 "stem>/<band>, or <run_dir>/score/<band> for the run's own "
-                                 "detections)")
+                                 "stem>/<band>; the run's own detections: "
+                                 "<run_dir>/score_detections_<band>/<band>)")
     p.add_argument("--no-report", action="store_true", help="skip report.html and plots")
     return p
+
+
+def run_scenario_of(run_dir: Path):
+    """The run's ``scenario.yaml`` as a Scenario, or None if absent or not readable."""
+    if not (run_dir / "scenario.yaml").is_file():
+        return None
+    from omegaconf import OmegaConf
+
+    from ..config import to_scenario
+
+    try:
+        return to_scenario(OmegaConf.load(run_dir / "scenario.yaml"))
+    except Exception:  # a scenario of another version: the caller falls back to defaults
+        return None
 
 
 def run_detection_band(run_dir: Path) -> tuple[str, str]:
@@ -523,16 +543,9 @@ def run_detection_band(run_dir: Path) -> tuple[str, str]:
         det = {}
     if det:
         return next(iter(det)), "the run's detection band"
-    if (run_dir / "scenario.yaml").is_file():
-        from omegaconf import OmegaConf
-
-        from ..config import to_scenario
-
-        try:
-            return (to_scenario(OmegaConf.load(run_dir / "scenario.yaml")).detection_bands[0],
-                    "the scenario's detection band")
-        except Exception:  # an unreadable scenario: fall back to the mosaics
-            pass
+    sc = run_scenario_of(run_dir)
+    if sc is not None:
+        return sc.detection_bands[0], "the scenario's detection band"
     found = sorted(p.name[len("mosaic_"):-len(".fits")] for p in run_dir.glob("mosaic_*.fits"))
     if len(found) == 1:
         return found[0], "the run's only mosaic"
@@ -552,7 +565,8 @@ def score_main_args(argv: list[str]) -> int:
         if not run_dir.is_dir():
             raise CatalogError(f"run directory {a.run_dir!r} does not exist")
         band, why = (a.band, "given") if a.band else run_detection_band(run_dir)
-        cfg = ScoreConfig()
+        sc = run_scenario_of(run_dir)  # the run's own score settings, where it has them
+        cfg = sc.score if sc is not None else ScoreConfig()
         if a.radius is not None:
             cfg.match_radius_arcsec = a.radius
         cfg.report = not a.no_report
