@@ -26,7 +26,7 @@ from ..bands import AB_NJY_ZERO
 from ..errors import CatalogError
 
 __all__ = ["FLUX_UNITS", "DUPLICATE_ARCSEC", "MAG_OFFSET_MAX", "MAG_CHECK_MIN_PAIRS",
-           "MAG_CHECK_PAIRS", "parse_column", "load_catalog", "check_magnitude_scale"]
+           "MAG_CHECK_PAIRS", "ISOLATION_ARCSEC", "parse_column", "load_catalog", "check_magnitude_scale"]
 
 #: AB magnitude of unit flux in each accepted flux unit (m = ZP - 2.5 log10 f):
 #: nJy 31.4, uJy 23.9, mJy 16.4, Jy 8.9 (Oke & Gunn 1983, ApJ 266, 713); e-/s needs the
