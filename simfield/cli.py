@@ -131,9 +131,11 @@ def inject_main(argv: list[str] | None = None) -> None:
         _fail("simfield-inject", str(exc))
     except Exception as exc:  # Hydra override syntax errors and the like
         _fail("simfield-inject", f"{type(exc).__name__}: {exc}")
+    m50 = summary.get("m50")
     print(f"simfield-inject: {summary['n_injected']} sources injected, "
-          f"{summary['n_matched']} recovered; m50 = {summary.get('m50', float('nan')):.2f} AB; "
-          f"results in {out}")
+          f"{summary['n_matched']} recovered; "
+          + (f"m50 = {m50:.2f} AB" if m50 is not None else
+             f"m50 not quoted ({summary.get('m50_reason')})") + f"; results in {out}")
 
 
 def collect_main(argv: list[str] | None = None) -> None:

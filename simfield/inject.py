@@ -30,7 +30,7 @@ from astropy.wcs import WCS
 from .config import Scenario, config_hash, to_yaml
 from .errors import CatalogError
 from .grid import Grid
-from .io import COMPLETE_MARKER, Provenance, write_fits, write_table, write_text
+from .io import COMPLETE_MARKER, Provenance, write_fits, write_json, write_table, write_text
 from .random import stream
 from .scene import accumulate, convolve_tiled, dominant_source, draw_stamps
 
@@ -139,7 +139,9 @@ def inject_into_image(image_path, sc: Scenario, band: str, out_dir, psf_path=Non
     Returns
     -------
     dict
-        The score summary of ``band`` (also in ``out_dir/score/<band>/summary.json``).
+        The score summary of ``band`` (also in ``out_dir/score/<band>/summary.json``) with the
+        injection's counts; ``out_dir/summary.json`` holds both, and ``out_dir/scenario.yaml``
+        the scenario, so ``simfield-score out_dir`` finds the band and score settings.
     """
     from .detect import detect_sources
     from .optics.psf import band_psf, measure_fwhm
@@ -258,9 +260,23 @@ def inject_into_image(image_path, sc: Scenario, band: str, out_dir, psf_path=Non
     new.meta = {"BAND": band, "NOTE": "detections of the injected image not present before"}
     write_fits(out / f"detections_{band}.fits", [fits.BinTableHDU(new, name="DETECTIONS")],
                prov)
+    # the band as a run's bands.ecsv describes it (the report orders bands by pivot_nm)
+    bt = Table({"name": [band], "pivot_nm": [b.pivot_nm], "width_nm": [b.width_nm],
+                "zeropoint": [zp]})
+    bt["pivot_nm"].unit = bt["width_nm"].unit = "nm"
+    bt["zeropoint"].unit = "mag"
+    bt.meta["description"] = ("Band of the injection. zeropoint: AB magnitude of one unit of "
+                              "the input image.")
+    write_table(out / "bands.ecsv", bt, prov)
+    write_text(out / "scenario.yaml", to_yaml(sc))
     summary = score_run(out, None, band, sc.score, out / "score" / band, prov=prov)
-    summary.update({"n_injected": int(len(src)), "n_detections_original": int(len(before)),
-                    "n_detections_injected": int(len(after)), "n_new_detections": int(len(new))})
-    write_table(out / "bands.ecsv", Table({"name": [band], "zeropoint": [zp]}), prov)
+    counts = {"n_injected": int(len(src)), "n_detections_original": int(len(before)),
+              "n_detections_injected": int(len(after)), "n_new_detections": int(len(new))}
+    summary.update(counts)
+    # the folder's own summary, laid out like a run's (simfield-score reads its band from it)
+    write_json(out / "summary.json", {"injected_into": Path(image_path).name, **counts,
+                                      "detections": {band: int(len(new))},
+                                      "score": {band: {k: v for k, v in summary.items()
+                                                       if k != "completeness_fit"}}}, prov)
     write_text(out / COMPLETE_MARKER, f"simfield injection seed {sc.seed}\n")
     return summary

@@ -645,7 +645,7 @@ def _truth_images(sources: Table, lens, sc: Scenario, hx: float, hy: float):
         images["x_arcsec"] = xs
         images["y_arcsec"] = ys
         images["magnification"] = np.ones(n)
-        images["parity"] = np.ones(n, dtype=np.int8)
+        images["parity"] = np.ones(n, dtype=np.int16)
         return images, np.ones(n), np.ones(n, dtype=np.int32)
     from .lensing import lens_sources
 
@@ -831,6 +831,8 @@ def _write_psf(path, core, wide, eff, b: Band, prov) -> Path:
 
 
 def _write_truth(path, sources: Table, images: Table, grid: Grid, prov) -> Path:
+    from .columns import IMAGE_COLUMNS, TRUTH_COLUMNS, describe, table_hdu
+
     s = sources.copy()
     ra, dec = grid.offsets_to_sky(np.asarray(s["x_arcsec"], float),
                                   np.asarray(s["y_arcsec"], float))
@@ -845,6 +847,8 @@ def _write_truth(path, sources: Table, images: Table, grid: Grid, prov) -> Path:
                                  np.asarray(im["y_arcsec"], float))
     im["ra"], im["dec"], im["x"], im["y"] = ra, dec, x, y
     im["in_mosaic"] = grid.contains(x, y)
+    # a signed integer: FITS has no signed byte, and astropy writes int8 as a logical
+    im["parity"] = np.asarray(im["parity"], np.int16)
     for t in (s, im):
         t["ra"].unit = t["dec"].unit = "deg"
         t["x"].unit = t["y"].unit = "pix"
@@ -859,9 +863,11 @@ def _write_truth(path, sources: Table, images: Table, grid: Grid, prov) -> Path:
     for c in s.colnames:
         if s[c].dtype.kind == "U":
             s[c] = s[c].astype("S")
+    describe(s, TRUTH_COLUMNS)
+    describe(im, TRUTH_COLUMNS, IMAGE_COLUMNS)
     notes = {**sources.meta, **images.meta}
     s.meta, im.meta = {}, {}
-    hdus = [fits.BinTableHDU(s, name="SOURCES"), fits.BinTableHDU(im, name="IMAGES")]
+    hdus = [table_hdu(s, "SOURCES"), table_hdu(im, "IMAGES")]
     for h in hdus:
         h.header["PIXCONV"] = ("0-based", "x, y: 0-based mosaic pixels, first pixel (0, 0)")
         h.header["OFFSETS"] = ("xi east, eta north", "x_arcsec, y_arcsec: tangent plane")

@@ -377,7 +377,8 @@ def _override_items(overrides: list[str]) -> dict[str, Any]:
 
 
 def _flatten(d: dict, prefix: tuple[str, ...] = ()) -> dict[tuple[str, ...], float]:
-    """Numeric leaves of a nested summary: {path: value}; None (JSON null) becomes NaN."""
+    """Numeric leaves of a nested summary: {path: value}; None (JSON null) becomes NaN. The
+    reason a limit is not quoted (``*_reason``, a string) is kept beside it."""
     out = {}
     for k, v in d.items():
         if k in _SKIP_SUMMARY:
@@ -391,6 +392,8 @@ def _flatten(d: dict, prefix: tuple[str, ...] = ()) -> dict[tuple[str, ...], flo
             out[path] = v
         elif v is None:
             out[path] = math.nan
+        elif isinstance(v, str) and str(k).endswith("_reason"):
+            out[path] = v
     return out
 
 

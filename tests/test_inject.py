@@ -101,3 +101,63 @@ def test_missing_zeropoint_is_refused(tmp_path):
     with pytest.raises(CatalogError, match="ZP_AB"):
         inject_into_image(tmp_path / "nozp.fits", sc, "b23", tmp_path / "o")
     assert not (tmp_path / "o").exists()
+
+
+def _digests(folder):
+    import hashlib
+
+    return {p.relative_to(folder).as_posix(): hashlib.sha256(p.read_bytes()).hexdigest()
+            for p in sorted(folder.rglob("*")) if p.is_file()}
+
+
+def test_second_identical_injection_into_one_folder_gives_the_same_files(tmp_path):
+    """Running the same injection twice into one folder (report on, so bands.ecsv is read
+    back) succeeds, leaves COMPLETE, and every file is byte-identical."""
+    _user_image(tmp_path / "user.fits")
+    _psf_file(tmp_path / "psf.fits")
+    sc = make_scenario("population=uniform", "population.uniform_mag_min=21",
+                       "population.uniform_mag_max=27", "population.uniform_density_arcmin2=150",
+                       "population.star_density_arcmin2=0", "population.clumpy=false",
+                       "score.mag_min=20", "score.mag_max=28")
+    out = tmp_path / "out"
+    first = inject_into_image(tmp_path / "user.fits", sc, "b23", out, tmp_path / "psf.fits")
+    d1 = _digests(out)
+    second = inject_into_image(tmp_path / "user.fits", sc, "b23", out, tmp_path / "psf.fits")
+    assert (out / "COMPLETE").is_file() and (out / "score" / "b23" / "report.html").is_file()
+    assert _digests(out) == d1
+    assert json.dumps(first, sort_keys=True) == json.dumps(second, sort_keys=True)
+    top = json.loads((out / "summary.json").read_text())
+    assert top["detections"] == {"b23": first["n_new_detections"]}
+    assert top["n_injected"] == first["n_injected"]
+
+
+def test_scoring_an_injection_folder_reproduces_its_own_score(injected, capsys):
+    """simfield-score on an injection folder finds its band, uses its score settings, and
+    writes the same tables as the injection's own scoring (into its own folder)."""
+    from simfield.score.run import score_main_args
+
+    out, _ = injected
+    rc = score_main_args([str(out), "--no-report"])
+    msg = capsys.readouterr().out.strip().splitlines()[-1]
+    assert rc == 0 and msg.startswith("simfield-score: band b23 (the run's detection band)")
+    mine, own = out / "score_detections_b23" / "b23", out / "score" / "b23"
+    names = sorted(p.name for p in own.glob("*.ecsv"))
+    assert names == sorted(p.name for p in mine.glob("*.ecsv")) and len(names) >= 8
+    for n in names:
+        assert (mine / n).read_bytes() == (own / n).read_bytes(), n
+
+
+def test_scoring_an_incomplete_injection_folder_is_refused_in_one_line(injected, tmp_path,
+                                                                      capsys):
+    """A folder without truth.fits is refused with one line, exit 2, nothing written."""
+    import shutil
+
+    from simfield.score.run import score_main_args
+
+    out, _ = injected
+    bad = tmp_path / "bad"
+    shutil.copytree(out, bad, ignore=shutil.ignore_patterns("truth.fits", "score*"))
+    rc = score_main_args([str(bad)])
+    err = capsys.readouterr().err.strip().splitlines()
+    assert rc == 2 and len(err) == 1 and "lacks truth.fits" in err[0]
+    assert not any(p.name.startswith("score") for p in bad.iterdir())

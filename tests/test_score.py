@@ -76,18 +76,45 @@ def test_match_is_deterministic_under_permutation():
 
 
 # ------------------------------------------------------------------------------ intervals, fits
-def test_beta_interval_matches_astropy_flat_and_scipy_beta():
-    """Cameron 2011 (PASA 28, 128) intervals equal scipy.stats.beta quantiles of
-    Beta(k+1, n-k+1) and astropy binom_conf_interval(interval='flat')."""
-    k = np.array([0, 1, 5, 9, 10, 37])
-    n = np.array([10, 10, 10, 10, 10, 50])
+def test_beta_interval_is_the_jeffreys_interval_of_astropy_and_scipy():
+    """Jeffreys intervals (Brown, Cai & DasGupta 2001, Stat. Sci. 16, 101, sec. 4.1.2) equal
+    scipy.stats.beta quantiles of Beta(k+1/2, n-k+1/2) inside, 0 at k = 0 and 1 at k = n, as
+    astropy binom_conf_interval(interval='jeffreys') gives them."""
+    k = np.array([0, 1, 1, 5, 9, 10, 37, 3])
+    n = np.array([10, 1, 10, 10, 10, 10, 50, 3])
     lo, hi = metrics.beta_interval(k, n, 0.683)
-    assert_allclose(lo, stats.beta.ppf(0.1585, k + 1, n - k + 1), rtol=1e-12)
-    assert_allclose(hi, stats.beta.ppf(0.8415, k + 1, n - k + 1), rtol=1e-12)
-    ref = binom_conf_interval(k, n, confidence_level=0.683, interval="flat")
-    # astropy's 'flat' is the same posterior; agreement to its root-finding precision
-    assert_allclose(lo[(k > 0) & (k < n)], ref[0][(k > 0) & (k < n)], rtol=0, atol=2e-3)
-    assert_allclose(hi[(k > 0) & (k < n)], ref[1][(k > 0) & (k < n)], rtol=0, atol=2e-3)
+    ref = binom_conf_interval(k, n, confidence_level=0.683, interval="jeffreys")
+    assert_allclose(lo, ref[0], rtol=1e-10, atol=1e-12)
+    assert_allclose(hi, ref[1], rtol=1e-10, atol=1e-12)
+    inner = (k > 0) & (k < n)
+    assert_allclose(lo[inner], stats.beta.ppf(0.1585, k[inner] + 0.5, n[inner] - k[inner] + 0.5),
+                    rtol=1e-12)
+    assert_allclose(hi[inner], stats.beta.ppf(0.8415, k[inner] + 0.5, n[inner] - k[inner] + 0.5),
+                    rtol=1e-12)
+    # k = n = 1: completeness 1.0 lies inside its interval, which reaches 1
+    assert hi[1] == 1.0 and lo[1] < 1.0 and lo[0] == 0.0
+    assert np.all((lo <= k / n) & (k / n <= hi))
+
+
+def test_report_error_bars_reach_the_point_at_k_equal_n():
+    """The plotted bars run from fraction_lo to fraction_hi, so at k = n the bar ends at the
+    point (1.0), and at k = 0 it starts at 0."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    from simfield.score.report import _plot_fraction
+
+    t = metrics.binned_fraction([1.0, 2.0, 2.2, 3.0], [True, True, False, False], [0.5, 1.5, 2.5,
+                                                                                  3.5], name="m")
+    fig, ax = plt.subplots()
+    cont = _plot_fraction(ax, np.asarray(t["m_mid"]), t, np.ones(3, bool), "k", None)
+    seg = np.array(cont.lines[2][0].get_segments())  # one vertical segment per point
+    plt.close(fig)
+    assert_allclose(seg[:, 0, 1], t["fraction_lo"], rtol=0, atol=1e-12)
+    assert_allclose(seg[:, 1, 1], t["fraction_hi"], rtol=0, atol=1e-12)
+    assert seg[0, 1, 1] == 1.0 and t["fraction"][0] == 1.0 and seg[2, 0, 1] == 0.0
 
 
 @pytest.mark.parametrize("model", ["logistic", "erf"])
@@ -126,6 +153,72 @@ def test_completeness_fit_errors_scale_with_sample_size():
 
 
 # ------------------------------------------------------------------------------ volumes
+def test_binned_deviance_equals_scipy_binomial_likelihood_ratio():
+    """D = 2 [ln L(saturated) - ln L(model)] with scipy.stats.binom log-pmfs per bin
+    (Wilks 1938, Ann. Math. Stat. 9, 60; McCullagh & Nelder 1989, sec. 4.4.3)."""
+    rng = np.random.default_rng(8)
+    mag = rng.uniform(25, 30, 400)
+    det = rng.random(400) < 1 / (1 + np.exp((mag - 27.5) / 0.4))
+    curve = lambda m: 0.9 / (1 + np.exp((m - 27.3) / 0.5))  # noqa: E731
+    edges = metrics.gof_bins(mag)
+    dev, nb = metrics.binned_deviance(mag, det, curve, edges)
+    b = np.clip(np.digitize(mag, edges) - 1, 0, len(edges) - 2)
+    n = np.bincount(b)
+    k = np.bincount(b, weights=det).astype(int)
+    e = np.bincount(b, weights=curve(mag))
+    ref = 2 * np.sum(stats.binom.logpmf(k, n, k / n) - stats.binom.logpmf(k, n, e / n))
+    assert nb == len(edges) - 1 and n.min() >= metrics.BIN_MIN_N
+    assert_allclose(dev, ref, rtol=1e-10)
+
+
+def test_fit_p_values_of_true_model_rarely_reject():
+    """Samples drawn from a logistic curve pass the goodness-of-fit test: at most 2 of 30 fall
+    below FIT_P_MIN = 0.01 (binomial probability of 3 or more at a calibrated 1% is 0.003;
+    the deviance's chi2 law, Wilks 1938, is conservative where bins expect few detections)."""
+    rng = np.random.default_rng(1)
+    p = []
+    for _ in range(30):
+        m = rng.uniform(24, 31, 800)
+        d = rng.random(m.size) < 0.95 / (1 + np.exp((m - 28) / 0.35))
+        p.append(metrics.fit_completeness(m, d).p_value)
+    assert np.sum(np.asarray(p) < metrics.FIT_P_MIN) <= 2
+
+
+def test_fit_that_does_not_describe_the_data_quotes_no_limit():
+    """A curve that drops to 0 at 26-27 and comes back to 0.8 at 27-29 (a lensed field's
+    shape) fails the deviance test (chi2 p < 0.01); m50 and m90 are null with the reason."""
+    rng = np.random.default_rng(4)
+    m = rng.uniform(23, 29, 1500)
+    p = np.where(m < 26, 0.97, np.where(m < 27, 0.02, 0.8))
+    f = metrics.fit_completeness(m, rng.random(m.size) < p)
+    assert f.p_value < 1e-6 and not f.describes_data
+    d = f.as_dict()
+    assert d["m50"] is None and d["m50_err"] is None and "does not describe" in d["m50_reason"]
+    assert d["m90"] is None and "does not describe" in d["m90_reason"]
+    json.dumps(d, allow_nan=False)
+
+
+def test_limit_outside_the_data_or_too_uncertain_is_not_quoted():
+    """Sources only fainter than the 90% point: m90 is not bracketed by the data; a plateau
+    just above 0.9 from 150 sources gives an m90 error beyond 0.5 mag; m50 of a well sampled
+    curve is quoted."""
+    rng = np.random.default_rng(6)
+    m = rng.uniform(27.5, 31, 1500)
+    f = metrics.fit_completeness(m, rng.random(m.size) < 0.97 / (1 + np.exp((m - 28) / 0.3)))
+    assert f.describes_data and np.isfinite(f.m50) and f.m50_reason is None
+    assert np.isnan(f.m90) and "do not bracket 0.9" in f.m90_reason
+    # plateau 0.9: m90 is either not reached, or quoted within 0.5 mag, or refused for its error
+    reasons = []
+    for seed in range(10):
+        rng = np.random.default_rng(seed)
+        m = rng.uniform(24, 31, 400)
+        f = metrics.fit_completeness(m, rng.random(m.size) < 0.9 / (1 + np.exp((m - 28) / 0.35)))
+        assert (f.m90_reason is None) == np.isfinite(f.m90)
+        assert f.m90_reason is not None or f.m90_err <= metrics.LIMIT_ERR_MAX
+        reasons.append(f.m90_reason or "")
+    assert any("exceeds 0.5 mag" in r for r in reasons)
+
+
 def test_veff_of_perfect_detector_equals_astropy_comoving_volume():
     """p = 1: V_eff = [V_c(z2) - V_c(z1)] x area / (4 pi sr) (Hogg 1999 eq. 29, astropy)."""
     area = 3600.0 * 4  # 4 arcmin^2 in arcsec^2
@@ -284,13 +377,44 @@ def test_score_run_writes_tables_summary_and_report(run_dir):
     bright = (cm["mag_hi"] <= 26) & (cm["n"] > 0)
     # crowded fixture (80 sources in 9 arcsec): allow a few blended losses
     assert np.sum(cm["k"][bright]) >= 0.9 * np.sum(cm["n"][bright])
-    assert s["m50"] > 26.5
+    # 79 galaxies: the fitted transition is faint, its limit quoted only if the rules allow
+    assert s["completeness_fit"]["logistic"]["m_t"] > 26.5
+    for key in ("m50", "m90"):
+        assert (js[key] is None) == (js[f"{key}_reason"] is not None)
+        assert js[key] is None or js[f"{key}_err"] <= metrics.LIMIT_ERR_MAX
     ft = Table.read(out / "false_detections.ecsv")
     x, y = g.sky_to_pixel(ft["ra"], ft["dec"])
     far = np.hypot(x - 5, y - 290) < 1
     assert list(ft["cause"][far]) == ["noise"]
     page = (out / "report.html").read_text()
     assert page.count("data:image/png;base64,") >= 5 and "<img src=\"http" not in page
+
+
+def test_score_tables_carry_units_descriptions_and_null_volumes(run_dir, tmp_path):
+    """Every score table column has a description, magnitudes carry unit mag; V_eff is null
+    where a cell holds no source and elsewhere the fraction times the comoving volume of the
+    z bin over the mosaic area (astropy.cosmology comoving_volume, Hogg 1999 eq. 29)."""
+    path, _ = run_dir
+    out = tmp_path / "s"
+    score_run(path, path / "cat.ecsv", BAND, ScoreConfig(report=False), out)
+    for f in sorted(out.glob("*.ecsv")):
+        t = Table.read(f)
+        assert t.meta["description"], f.name
+        assert [c for c in t.colnames if not t[c].description] == [], f.name
+        for c in t.colnames:
+            if c == "mag" or c.startswith("mag_"):
+                assert t[c].unit == "mag", (f.name, c)
+    v = Table.read(out / "effective_volume.ecsv")
+    empty = np.asarray(v["n"]) == 0
+    assert empty.any() and (~empty).any()
+    assert np.all(np.ma.getmaskarray(v["v_eff_mpc3"]) == empty)
+    area = (300 * 300 * 0.03**2 * u.arcsec**2).to(u.sr) / (4 * np.pi * u.sr)
+    c = default_cosmology()
+    vol = (c.comoving_volume(np.asarray(v["z_hi"])) - c.comoving_volume(np.asarray(v["z_lo"])))
+    ref = (vol * area).to_value(u.Mpc**3)
+    assert_allclose(v["volume_mpc3"], ref, rtol=1e-6)
+    assert_allclose(v["v_eff_mpc3"][~empty], (v["fraction"] * ref)[~empty], rtol=1e-6)
+    assert v["v_eff_mpc3"].unit == "Mpc3"
 
 
 def test_spike_angles_are_measured_on_the_psf(run_dir):
@@ -457,3 +581,133 @@ def test_colour_preview_is_the_strided_whole_image_preview(run_dir):
     mad = 1.4826 * np.median(np.abs(c - med))
     assert used == [BAND] * 3 and rgb.shape == (60, 60, 3)
     assert_allclose(rgb[..., 0], _stretch(c, med - mad, med + 200 * mad), rtol=0, atol=1e-12)
+
+
+# ------------------------------------------------------------------------------ catalogue checks
+def _cli(args, capsys):
+    rc = score_main_args([str(a) for a in args])
+    cap = capsys.readouterr()
+    return rc, cap.out.strip().splitlines(), cap.err.strip().splitlines()
+
+
+def test_vector_column_is_chosen_by_0_based_index_or_refused(run_dir, tmp_path, capsys):
+    """MAG_APER[1] scores element 1 (0-based) of a 3-aperture column; MAG_APER alone and
+    MAG_APER[3] are refused with one line, exit 2, nothing written."""
+    path, _ = run_dir
+    cat = Table.read(path / "cat.ecsv")
+    t = Table({"ra": cat["ra"], "dec": cat["dec"],
+               "MAG_APER": np.column_stack([cat["mag"] + 0.5, cat["mag"], cat["mag"] - 0.5])})
+    t.write(tmp_path / "vec.fits")
+    res = load_catalog(tmp_path / "vec.fits", {"mag": "MAG_APER[1]"})
+    assert_allclose(res["mag"], cat["mag"], rtol=0, atol=1e-12)
+    assert res.meta["columns"]["mag"] == "MAG_APER[1]"
+    for spec, msg in (("MAG_APER", "MAG_APER: 3 values per row (mag); pick one as MAG_APER[i] "
+                                   "with i = 0..2 (0-based)"),
+                      ("MAG_APER[3]", "MAG_APER[3]: index out of range; i = 0..2 (0-based)")):
+        out = tmp_path / spec.replace("[", "_").replace("]", "")
+        rc, _, err = _cli([path, "--catalog", tmp_path / "vec.fits", "--band", BAND,
+                           "--mag-col", spec, "--out", out], capsys)
+        assert rc == 2 and err == [f"simfield-score: error: {msg}"] and not out.exists()
+    rc, _, err = _cli([path, "--catalog", tmp_path / "vec.fits", "--band", BAND, "--mag-col",
+                       "MAG_APER[1]", "--no-report", "--out", tmp_path / "ok"], capsys)
+    assert rc == 0 and (tmp_path / "ok" / "summary.json").is_file()
+
+
+def test_duplicate_rows_are_refused_with_their_count_or_dropped(run_dir, tmp_path, capsys):
+    """Rows within 1 milliarcsec of an earlier row (counted against astropy
+    search_around_sky) are refused with their count, or dropped with --drop-duplicates."""
+    path, _ = run_dir
+    cat = Table.read(path / "cat.ecsv")
+    extra = cat[:3].copy()
+    extra["dec"][1] += 0.5e-3 / 3600  # 0.5 mas away: a duplicate
+    extra["dec"][2] += 5e-3 / 3600  # 5 mas away: not one
+    t = Table(np.concatenate([cat.as_array(), extra.as_array()]))
+    t.write(tmp_path / "dup.ecsv")
+    sc = SkyCoord(t["ra"] * u.deg, t["dec"] * u.deg)
+    i, j, _, _ = search_around_sky(sc, sc, 1e-3 * u.arcsec)
+    n_ref = len({max(a, b) for a, b in zip(i, j) if a != b})
+    assert n_ref == 2
+    out = tmp_path / "o"
+    rc, _, err = _cli([path, "--catalog", tmp_path / "dup.ecsv", "--band", BAND, "--out", out],
+                      capsys)
+    assert rc == 2 and len(err) == 1 and not out.exists()
+    assert "ra/dec: 2 row(s) within 1 milliarcsec" in err[0] and "--drop-duplicates" in err[0]
+    rc, _, _ = _cli([path, "--catalog", tmp_path / "dup.ecsv", "--band", BAND, "--out", out,
+                     "--no-report", "--drop-duplicates"], capsys)
+    js = json.loads((out / "summary.json").read_text())
+    assert rc == 0 and js["catalog_duplicates_dropped"] == 2
+    assert js["n_detections"] == len(cat) + 1
+
+
+def test_catalogue_on_another_flux_scale_is_refused(run_dir, tmp_path, capsys):
+    """uJy declared as nJy, magnitudes + 10 and e-/s declared as nJy are refused with the
+    column, the offset and the option; the uJy offset exceeds the right one by 7.5 mag
+    (AB: 1 uJy = 23.9, 1 nJy = 31.4; Oke & Gunn 1983, ApJ 266, 713); --allow-flux-offset
+    scores it and records the offset."""
+    path, _ = run_dir
+    cat = Table.read(path / "cat.ecsv")
+    njy = 10 ** (-0.4 * (np.asarray(cat["mag"]) - 31.4))
+    cases = {"ujy": ("flux", njy / 1e3), "plus10": ("mag", cat["mag"] + 10),
+             "eps": ("flux", 10 ** (-0.4 * (np.asarray(cat["mag"]) - ZP)))}
+    good = score_run(path, path / "cat.ecsv", BAND, ScoreConfig(report=False), tmp_path / "g")
+    off0 = good["magnitude_check"]["median_offset"]
+    assert abs(off0) < 0.5 and good["magnitude_check"]["n_pairs"] >= 10
+    for name, (col, v) in cases.items():
+        Table({"ra": cat["ra"], "dec": cat["dec"], col: v}).write(tmp_path / f"{name}.ecsv")
+        opt = ["--flux-col", "flux"] if col == "flux" else []
+        out = tmp_path / name
+        rc, _, err = _cli([path, "--catalog", tmp_path / f"{name}.ecsv", "--band", BAND,
+                           "--out", out, *opt], capsys)
+        assert rc == 2 and len(err) == 1 and not out.exists(), name
+        assert err[0].startswith(f"simfield-score: error: {col}: median offset +")
+        assert "at most 1 mag allowed" in err[0] and "--allow-flux-offset" in err[0]
+    s = score_run(path, tmp_path / "ujy.ecsv", BAND, ScoreConfig(report=False), tmp_path / "u",
+                  {"flux": "flux"}, allow_flux_offset=True)
+    assert_allclose(s["magnitude_check"]["median_offset"] - off0, 7.5, rtol=0, atol=1e-9)
+
+
+def test_magnitude_check_needs_ten_pairs(run_dir, tmp_path):
+    """A catalogue with fewer than 10 bright isolated matches cannot pass the magnitude check
+    by chance: refused unless allowed."""
+    path, _ = run_dir
+    cat = Table.read(path / "cat.ecsv")
+    cat[np.argsort(cat["mag"])[:5]].write(tmp_path / "five.ecsv")
+    with pytest.raises(CatalogError, match=r"only [0-5] bright isolated matches .* at least 10"):
+        score_run(path, tmp_path / "five.ecsv", BAND, ScoreConfig(report=False), tmp_path / "o")
+    assert not (tmp_path / "o").exists()
+    s = score_run(path, tmp_path / "five.ecsv", BAND, ScoreConfig(report=False), tmp_path / "o",
+                  allow_flux_offset=True)
+    assert s["magnitude_check"]["median_offset"] is None
+
+
+def test_default_band_is_the_runs_detection_band(tmp_path):
+    """Without --band: summary.json's detection band, else the scenario's detection band
+    (scenario.yaml), else the only mosaic; otherwise one line listing the bands."""
+    from simfield.config import to_yaml
+    from simfield.score.run import run_detection_band
+    from tests.conftest import make_scenario
+
+    for b in ("b10", "b36"):
+        (tmp_path / f"mosaic_{b}.fits").write_bytes(b"")
+    with pytest.raises(CatalogError, match=r"--band: not given .* one of b10, b36"):
+        run_detection_band(tmp_path)
+    sc = make_scenario("detection.bands=[b13]")
+    (tmp_path / "scenario.yaml").write_text(to_yaml(sc))
+    assert run_detection_band(tmp_path) == ("b13", "the scenario's detection band")
+    (tmp_path / "summary.json").write_text(json.dumps({"detections": {"b36": 4}}))
+    assert run_detection_band(tmp_path)[0] == "b36"
+
+
+def test_each_catalogue_gets_its_own_default_folder(run_dir, capsys):
+    """Two catalogues scored without --out land in score_<stem>/<band>, apart from each other
+    and from the run's own score/; the band and the folder are printed."""
+    path, _ = run_dir
+    Table.read(path / "cat.ecsv").write(path / "other.ecsv", overwrite=True)
+    for stem in ("cat", "other"):
+        rc, out, _ = _cli([path, "--catalog", path / f"{stem}.ecsv", "--no-report"], capsys)
+        assert rc == 0
+        assert out[-1].startswith(f"simfield-score: band {BAND} (the run's only mosaic);")
+        assert out[-1].endswith(f"results in {path / f'score_{stem}' / BAND}")
+        js = json.loads((path / f"score_{stem}" / BAND / "summary.json").read_text())
+        assert js["catalog"].endswith(f"{stem}.ecsv")
+    assert not (path / "score").exists()

@@ -387,3 +387,26 @@ def test_other_launchers_give_the_same_job(basic_sweep, tmp_path, launcher):
     assert a == b
     np.testing.assert_array_equal(_sci(sd / "0" / "mosaic_b17.fits"),
                                   _sci(basic_sweep / "0" / "mosaic_b17.fits"))
+
+
+def test_collect_masks_limits_that_are_not_quoted(tmp_path):
+    """A job whose m50 is null (not quoted, with a reason) gets a masked m50 in the collected
+    table, beside a job that quotes one, and its reason in a string column."""
+    from simfield.sweep import collect
+
+    for i, (m50, reason) in enumerate(((27.9, None), (None, "the fit does not describe the "
+                                                             "data"))):
+        job = tmp_path / str(i)
+        (job / ".hydra").mkdir(parents=True)
+        (job / ".hydra" / "overrides.yaml").write_text(f"- seed={i}\n")
+        (job / "summary.json").write_text(json.dumps(
+            {"seed": i, "score": {"b36": {"m50": m50, "m50_err": None if m50 is None else 0.1,
+                                          "m50_reason": reason}}}))
+        (job / "COMPLETE").write_text(f"simfield 0.1.0 seed {i} config x\nsummary.json\n")
+    t = collect(tmp_path)
+    col = t["score.b36.m50"]
+    assert col.unit == "mag" and list(np.ma.getmaskarray(col)) == [False, True]
+    assert col[0] == 27.9
+    why = t["score.b36.m50_reason"]
+    assert list(np.ma.getmaskarray(why)) == [True, False]
+    assert why[1] == "the fit does not describe the data"

@@ -272,7 +272,7 @@ def find_images(lens: Lens, beta_x, beta_y, z_s, extent_arcsec, resolution_arcse
         mu = 1.0 / det
     order = np.lexsort((-np.abs(mu), src))
     tab = Table({"source": src[order], "x_arcsec": x[order], "y_arcsec": y[order],
-                 "mu": mu[order], "parity": np.where(det[order] >= 0, 1, -1).astype(np.int8),
+                 "mu": mu[order], "parity": np.where(det[order] >= 0, 1, -1).astype(np.int16),
                  "residual_arcsec": res[order]})
     tab["x_arcsec"].unit = tab["y_arcsec"].unit = tab["residual_arcsec"].unit = "arcsec"
     tab.meta["extent_arcsec"] = list(_extent_box(extent_arcsec))

@@ -408,6 +408,6 @@ def lens_sources(lens: Lens, sources: Table, lens_cfg=None, x_range=(-50.0, 50.0
     images["x_arcsec"] = np.asarray(tab["x_arcsec"], float)
     images["y_arcsec"] = np.asarray(tab["y_arcsec"], float)
     images["magnification"] = mu
-    images["parity"] = np.asarray(tab["parity"], np.int8)
+    images["parity"] = np.asarray(tab["parity"], np.int16)
     images["x_arcsec"].unit = images["y_arcsec"].unit = "arcsec"
     return images, total, n_images

@@ -1,7 +1,8 @@
 """score stage of simfield: matching, completeness / purity metrics, effective volume, report.
 
 The submodules are imported explicitly (``from simfield.score import match, metrics, volume``);
-:mod:`simfield.score.run` reads run directories and user catalogues and writes the outputs.
+:mod:`simfield.score.catalog` reads and checks user catalogues, :mod:`simfield.score.fit` fits
+completeness curves, :mod:`simfield.score.run` reads run directories and writes the outputs.
 """
 
-__all__ = ["match", "metrics", "volume", "report", "run"]
+__all__ = ["match", "catalog", "metrics", "fit", "volume", "report", "run"]

@@ -1,36 +1,48 @@
 """Completeness, purity, causes of false detections, photometric bias and completeness fits.
 
-Fractions per bin carry central Bayesian intervals from the Beta posterior of a binomial with a
-uniform prior, Beta(k + 1, n - k + 1) (Cameron 2011, PASA 28, 128, sec. 2). Completeness curves
-are fitted by maximum likelihood on the unbinned Bernoulli outcomes (detected or not), with a
-logistic or an error-function form (Fleming et al. 1995, AJ 109, 1044), and give the magnitudes
-where completeness falls to 50% and 90% with uncertainties from the inverse Hessian of the
-log-likelihood propagated to those magnitudes (delta method).
+Fractions per bin carry Jeffreys intervals: the central quantiles of the Beta posterior of a
+binomial under the Jeffreys prior, Beta(k + 1/2, n - k + 1/2), with the lower bound set to 0 at
+k = 0 and the upper bound to 1 at k = n (Brown, Cai & DasGupta 2001, Statistical Science 16, 101,
+sec. 4.1.2; Beta quantiles as in Cameron 2011, PASA 28, 128), so every interval holds k/n.
+
+Completeness curves are fitted in :mod:`simfield.score.fit` (maximum likelihood, with the rules
+for quoting their 50% / 90% limits); its names are importable from here too.
 
 Units: magnitudes AB, sizes arcsec, surface brightness AB mag/arcsec^2, pixel positions 0-based.
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass
-
 import numpy as np
 from astropy.table import Table
-from scipy import optimize, special, stats
+from scipy import stats
+
+from .fit import (BIN_MIN_N, FIT_P_MIN, LIMIT_ERR_MAX, CompletenessFit, binned_deviance,
+                  completeness_model, fit_completeness, gof_bins)
 
 __all__ = [
     "FALSE_CAUSES",
+    "INTERVAL_NOTE",
     "beta_interval",
     "binned_fraction",
     "binned_fraction_2d",
     "photometric_bias",
     "mean_surface_brightness",
+    "FIT_P_MIN",
+    "BIN_MIN_N",
+    "LIMIT_ERR_MAX",
     "CompletenessFit",
+    "gof_bins",
+    "binned_deviance",
     "completeness_model",
     "fit_completeness",
     "measure_spike_angles",
     "classify_false_detections",
 ]
+
+#: how the per-bin intervals are made (``level`` filled in)
+INTERVAL_NOTE = ("Jeffreys {level:g} interval: Beta(k+1/2, n-k+1/2) quantiles, 0 at k=0 and 1 at "
+                 "k=n (Brown, Cai & DasGupta 2001, Stat. Sci. 16, 101)")
 
 #: causes of unmatched detections, in order of precedence
 FALSE_CAUSES = ("artefact", "spike", "shred", "blend", "noise")
@@ -40,7 +52,8 @@ _NMAD = 1.4826
 
 
 def beta_interval(k, n, level: float = 0.683):
-    """Central credible interval of a binomial fraction (Cameron 2011, PASA 28, 128, eq. 3-4).
+    """Jeffreys interval of a binomial fraction (Brown, Cai & DasGupta 2001, Statistical
+    Science 16, 101, sec. 4.1.2).
 
     Parameters
     ----------
@@ -52,13 +65,14 @@ def beta_interval(k, n, level: float = 0.683):
     Returns
     -------
     lo, hi : ndarray (dimensionless)
-        Quantiles (1 -/+ level)/2 of Beta(k + 1, n - k + 1).
+        Quantiles (1 -/+ level)/2 of Beta(k + 1/2, n - k + 1/2), with ``lo = 0`` where
+        ``k == 0`` and ``hi = 1`` where ``k == n``: the interval always contains k/n.
     """
     k = np.asarray(k, float)
     n = np.asarray(n, float)
-    a, b = k + 1.0, n - k + 1.0
-    lo = stats.beta.ppf(0.5 * (1.0 - level), a, b)
-    hi = stats.beta.ppf(0.5 * (1.0 + level), a, b)
+    a, b = k + 0.5, n - k + 0.5
+    lo = np.where(k > 0, stats.beta.ppf(0.5 * (1.0 - level), a, b), 0.0)
+    hi = np.where(k < n, stats.beta.ppf(0.5 * (1.0 + level), a, b), 1.0)
     return np.asarray(lo, float), np.asarray(hi, float)
 
 
@@ -98,7 +112,7 @@ def binned_fraction(values, success, edges, level: float = 0.683, name: str = "x
     t[f"{name}_mid"] = 0.5 * (edges[:-1] + edges[1:])
     t["n"], t["k"] = n, k
     t["fraction"], t["fraction_lo"], t["fraction_hi"] = frac, lo, hi
-    t.meta["interval"] = f"central {level:g} Beta(k+1, n-k+1) (Cameron 2011, PASA 28, 128)"
+    t.meta["interval"] = INTERVAL_NOTE.format(level=level)
     return t
 
 
@@ -176,184 +190,6 @@ def photometric_bias(mag_true, mag_meas, edges) -> Table:
     for key, v in rows.items():
         t[key] = v
     return t
-
-
-# --------------------------------------------------------------------------------------------
-# completeness fits
-# --------------------------------------------------------------------------------------------
-def completeness_model(mag, model: str, c0: float, m_t: float, width: float):
-    """Completeness curve C(m) (dimensionless).
-
-    ``logistic``: C = c0 / (1 + exp((m - m_t) / width));
-    ``erf``: C = c0 / 2 erfc((m - m_t) / (sqrt(2) width)) (Fleming et al. 1995, AJ 109, 1044).
-    In both, C(m_t) = c0 / 2; c0 is the bright-end plateau, width in mag.
-    """
-    with np.errstate(divide="ignore", invalid="ignore"):  # width -> 0 is a step, tried by fits
-        u = (np.asarray(mag, float) - m_t) / width
-    if model == "logistic":
-        return c0 * special.expit(-u)
-    if model == "erf":
-        return 0.5 * c0 * special.erfc(u / np.sqrt(2.0))
-    raise ValueError(f"'model' must be 'logistic' or 'erf', got {model!r}")
-
-
-def _limit(model, c0, m_t, width, p):
-    """Magnitude where C(m) = p (NaN if the plateau c0 <= p)."""
-    if c0 <= p:
-        return np.nan
-    if model == "logistic":
-        return m_t + width * np.log(c0 / p - 1.0)
-    return m_t + np.sqrt(2.0) * width * special.erfcinv(2.0 * p / c0)
-
-
-@dataclass(frozen=True)
-class CompletenessFit:
-    """Maximum-likelihood completeness curve.
-
-    Attributes
-    ----------
-    model : str
-        ``logistic`` or ``erf``.
-    c0, m_t, width : float
-        Plateau (0..1), transition magnitude (AB, C = c0/2) and width (mag).
-    cov : ndarray (3, 3)
-        Covariance of (c0, m_t, width).
-    m50, m50_err, m90, m90_err : float (AB mag)
-        Magnitudes where C = 0.5 and 0.9, with 1-sigma errors (NaN if never reached).
-    n : int
-        Number of Bernoulli trials fitted.
-    """
-
-    model: str
-    c0: float
-    m_t: float
-    width: float
-    cov: np.ndarray
-    m50: float
-    m50_err: float
-    m90: float
-    m90_err: float
-    n: int
-
-    def __call__(self, mag):
-        """Completeness at ``mag`` (AB)."""
-        return completeness_model(mag, self.model, self.c0, self.m_t, self.width)
-
-    def as_dict(self) -> dict:
-        """Plain dict for JSON."""
-        err = np.sqrt(np.clip(np.diag(self.cov), 0, None))
-        return {"model": self.model, "c0": self.c0, "c0_err": float(err[0]), "m_t": self.m_t,
-                "m_t_err": float(err[1]), "width": self.width, "width_err": float(err[2]),
-                "m50": self.m50, "m50_err": self.m50_err, "m90": self.m90,
-                "m90_err": self.m90_err, "n": self.n}
-
-
-# plateau c0 = expit(12) = 1 - 6e-6: closer to 1 counts as "at the boundary"
-_LOGIT_PLATEAU_MAX = 12.0
-
-
-def _unpack(theta):
-    # c0 in (0, 1) through a logistic, width > 0 through a log
-    return special.expit(theta[0]), theta[1], np.exp(theta[2])
-
-
-def _hessian(f, x, h):
-    n = x.size
-    hess = np.empty((n, n))
-    for i in range(n):
-        for j in range(i, n):
-            ei, ej = np.eye(n)[i] * h[i], np.eye(n)[j] * h[j]
-            v = (f(x + ei + ej) - f(x + ei - ej) - f(x - ei + ej) + f(x - ei - ej)) / (4 * h[i] * h[j])
-            hess[i, j] = hess[j, i] = v
-    return hess
-
-
-def fit_completeness(mag, detected, model: str = "logistic") -> CompletenessFit:
-    """Maximum-likelihood fit of a completeness curve to Bernoulli outcomes.
-
-    Parameters
-    ----------
-    mag : array_like (AB mag)
-        True (observed-frame) magnitude of each input source.
-    detected : array_like of bool
-        Whether it was recovered.
-    model : str
-        ``logistic`` or ``erf`` (:func:`completeness_model`).
-
-    Returns
-    -------
-    CompletenessFit
-        Parameters, covariance (inverse Hessian of -ln L, transformed back by the Jacobian) and
-        the 50% / 90% magnitudes with delta-method errors.
-    """
-    if model not in ("logistic", "erf"):
-        raise ValueError(f"'model' must be 'logistic' or 'erf', got {model!r}")
-    m = np.asarray(mag, float)
-    k = np.asarray(detected, bool)
-    ok = np.isfinite(m)
-    m, k = m[ok], k[ok].astype(float)
-    if m.size < 5 or k.sum() == 0 or k.sum() == k.size:
-        raise ValueError("completeness fit needs at least 5 sources, some detected and some not")
-    eps = 1e-12
-
-    def nll(theta):
-        c = np.clip(completeness_model(m, model, *_unpack(theta)), eps, 1 - eps)
-        return -np.sum(k * np.log(c) + (1 - k) * np.log1p(-c))
-
-    # start: plateau = fraction among the brightest quarter, m_t where the running fraction halves
-    order = np.argsort(m)
-    c_start = min(max(k[order[: max(1, m.size // 4)]].mean(), 0.55), 0.99)
-    m_start = float(np.median(m[k > 0])) if k.sum() else float(np.median(m))
-    best = None
-    for m0 in (m_start, float(np.median(m)), float(np.percentile(m, 75))):
-        for w0 in (0.2, 0.6):
-            th0 = np.array([special.logit(c_start), m0, np.log(w0)])
-            r = optimize.minimize(nll, th0, method="Nelder-Mead",
-                                  options={"xatol": 1e-7, "fatol": 1e-9, "maxiter": 8000})
-            if best is None or r.fun < best.fun:
-                best = r
-    r = optimize.minimize(nll, best.x, method="BFGS")
-    theta = r.x if r.fun <= best.fun else best.x
-    h = np.array([1e-3, 1e-3 * max(np.exp(theta[2]), 0.05), 1e-3])
-    # a plateau at the boundary (c0 -> 1) has no curvature: fix it there, and give the other
-    # two parameters their conditional errors
-    free = np.arange(3)
-    if theta[0] > _LOGIT_PLATEAU_MAX:
-        theta[0] = _LOGIT_PLATEAU_MAX
-        free = np.arange(1, 3)
-    c0, m_t, width = _unpack(theta)
-    cov_t = np.zeros((3, 3))
-    sub = free[:, None], free[None, :]
-
-    def nll_free(x):
-        th = theta.copy()
-        th[free] = x
-        return nll(th)
-
-    try:
-        cov_t[sub] = np.linalg.inv(_hessian(nll_free, theta[free], h[free]))
-    except np.linalg.LinAlgError:
-        cov_t[sub] = np.nan
-
-    # Jacobian of (c0, m_t, width) and of the limits with respect to theta
-    jac = np.diag([c0 * (1 - c0), 1.0, width])
-    cov = jac @ cov_t @ jac.T
-    out = {}
-    for p in (0.5, 0.9):
-        val = _limit(model, c0, m_t, width, p)
-        if np.isfinite(val):
-            g = np.zeros(3)
-            for i in free:
-                d = np.zeros(3)
-                d[i] = h[i]
-                g[i] = (_limit(model, *_unpack(theta + d), p)
-                        - _limit(model, *_unpack(theta - d), p)) / (2 * h[i])
-            err = float(np.sqrt(max(g @ cov_t @ g, 0.0)))
-        else:
-            err = np.nan
-        out[p] = (float(val), err)
-    return CompletenessFit(model, float(c0), float(m_t), float(width), cov,
-                           out[0.5][0], out[0.5][1], out[0.9][0], out[0.9][1], int(m.size))
 
 
 # --------------------------------------------------------------------------------------------

@@ -44,10 +44,12 @@ def _stretch(img, lo, hi):
 
 
 def _plot_fraction(ax, x, t, ok, colour, label):
-    # the Beta interval need not contain k/n (e.g. k = n), so draw it as a bar, not as errors
-    ax.vlines(x, np.asarray(t["fraction_lo"])[ok], np.asarray(t["fraction_hi"])[ok],
-              color=colour, lw=1.2, alpha=0.6)
-    ax.plot(x, np.asarray(t["fraction"])[ok], "o", ms=3, color=colour, label=label)
+    """Fractions with their interval as error bars from ``fraction_lo`` to ``fraction_hi``
+    (the Jeffreys interval holds k/n, so the bars reach the point, e.g. up to 1 at k = n)."""
+    f = np.asarray(t["fraction"], float)[ok]
+    lo, hi = np.asarray(t["fraction_lo"], float)[ok], np.asarray(t["fraction_hi"], float)[ok]
+    return ax.errorbar(x, f, yerr=[f - lo, hi - f], fmt="o", ms=3, color=colour, elinewidth=1.2,
+                       ecolor=colour, alpha=0.8, label=label)
 
 
 def _band_order(run_dir: Path) -> list[str]:
@@ -57,8 +59,9 @@ def _band_order(run_dir: Path) -> list[str]:
         from astropy.table import Table
 
         t = Table.read(bpath, format="ascii.ecsv")
-        piv = {str(n): float(p) for n, p in zip(t["name"], t["pivot_nm"])}
-        names.sort(key=lambda n: piv.get(n, np.inf))
+        if "pivot_nm" in t.colnames:  # else (an older injection folder) by name
+            piv = {str(n): float(p) for n, p in zip(t["name"], t["pivot_nm"])}
+            names.sort(key=lambda n: piv.get(n, np.inf))
     return names
 
 
@@ -166,8 +169,10 @@ def make_report(out_dir, truth: dict, det, tables: dict, fits_: dict, summary: d
     for model, ls in (("logistic", "-"), ("erf", "--")):
         f = fits_.get(model)
         if isinstance(f, metrics.CompletenessFit):
-            ax.plot(mm, f(mm), ls, color="0.4",
-                    label=f"{model} fit: m50 = {f.m50:.2f} +/- {f.m50_err:.2f}")
+            quote = (f"m50 = {f.m50:.2f} +/- {f.m50_err:.2f}" if f.m50_reason is None else
+                     "m50 not quoted")
+            ax.plot(mm, f(mm), ls, color="0.4" if f.describes_data else "0.75",
+                    label=f"{model} fit (p = {f.p_value:.2g}): {quote}")
     ax.axhline(0.5, color="0.8", lw=0.8)
     ax.axhline(0.9, color="0.8", lw=0.8)
     ax.set_xlabel(f"{band} AB magnitude")
@@ -175,8 +180,8 @@ def make_report(out_dir, truth: dict, det, tables: dict, fits_: dict, summary: d
     ax.set_ylim(-0.02, 1.05)
     ax.legend(fontsize=8, loc="lower left")
     figs.append(("Completeness and purity", _save(fig, out / "completeness_purity.png"),
-                 f"bars: central {summary.get('interval', '')} Beta intervals "
-                 "(Cameron 2011, PASA 28, 128)"))
+                 "bars: " + str(cm.meta.get("interval", "")) + "; fits in light grey fail "
+                 "the goodness-of-fit test"))
 
     fig, axes = plt.subplots(1, 3, figsize=(11, 3.2))
     for ax, (key, col, lab, logx) in zip(axes, (
@@ -258,9 +263,10 @@ def make_report(out_dir, truth: dict, det, tables: dict, fits_: dict, summary: d
         v = summary.get(k)
         rows.append((lab, "n/a" if v is None else f"{v:.3f}"))
     for k in ("m50", "m90"):
-        if summary.get(k) is not None and np.isfinite(summary[k]):
-            rows.append((f"{k} ({summary['headline_fit']} fit, AB)",
-                         f"{summary[k]:.2f} +/- {summary[k + '_err']:.2f}"))
+        v = summary.get(k)
+        rows.append((f"{k} ({summary['headline_fit']} fit, AB)",
+                     f"{v:.2f} +/- {summary[k + '_err']:.2f}" if v is not None else
+                     f"not quoted: {summary.get(k + '_reason')}"))
     rows.append(("false detections", ", ".join(f"{k}: {v}" for k, v in counts.items())))
     table = "\n".join(f"<tr><th>{html.escape(str(a))}</th><td>{html.escape(str(b))}</td></tr>"
                       for a, b in rows)

@@ -1,7 +1,10 @@
 """Score a detection catalogue against a run directory's truth: tables, summary and report.
 
-``load_catalog`` reads and checks a user catalogue (FITS, ECSV or CSV), ``score_run`` matches it
-to the truth images of one band and writes, into ``<out_dir>`` (default ``<run_dir>/score``):
+``load_catalog`` (:mod:`simfield.score.catalog`) reads and checks a user catalogue (FITS, ECSV
+or CSV), ``score_run`` matches it to the truth images of one band, checks the catalogue's
+magnitude scale on bright isolated matches, and writes, into ``<out_dir>`` (default
+:func:`default_out_dir`: ``<run_dir>/score_<catalogue file stem>/<band>``; the pipeline writes
+its own into ``<run_dir>/score/<band>``):
 
 - ``completeness_mag.ecsv``, ``completeness_size.ecsv``, ``completeness_sb.ecsv``,
   ``completeness_z.ecsv``, ``completeness_mu.ecsv``, ``completeness_mag_size.ecsv``: fractions of
@@ -30,181 +33,16 @@ from astropy.table import Table
 from astropy.wcs import WCS
 
 from .._argparse import ArgError, OneLineParser
-from ..bands import AB_NJY_ZERO
+from ..columns import SCORE_COLUMNS, SCORE_TABLES, describe
 from ..config import ScoreConfig, _validate_score
 from ..errors import CatalogError, ConfigError
 from . import metrics
+from .catalog import FLUX_UNITS, ISOLATION_ARCSEC, check_magnitude_scale, load_catalog
 from .match import match_radius, match_sky
+from .volume import binned_effective_volume
 
-__all__ = ["FLUX_UNITS", "load_catalog", "load_truth", "image_map", "pixel_values", "score_run",
-           "score_pipeline_run", "score_main_args"]
-
-#: AB magnitude of unit flux in each accepted flux unit (m = ZP - 2.5 log10 f):
-#: nJy 31.4, uJy 23.9, mJy 16.4, Jy 8.9 (Oke & Gunn 1983, ApJ 266, 713); e-/s needs the
-#: mosaic's ZP_AB.
-FLUX_UNITS = {"nJy": AB_NJY_ZERO, "uJy": AB_NJY_ZERO - 7.5, "mJy": AB_NJY_ZERO - 15.0,
-              "Jy": AB_NJY_ZERO - 22.5, "e-/s": None}
-
-# plausible range of AB magnitudes of real detections in a deep field (common practice)
-_MAG_PLAUSIBLE = (5.0, 45.0)
-
-
-def _read_table(path: Path) -> Table:
-    name = path.name.lower()
-    if not path.is_file():
-        raise CatalogError(f"catalogue {str(path)!r} does not exist or is not a file")
-    try:
-        if name.endswith((".fits", ".fit", ".fits.gz", ".fts")):
-            with fits.open(path) as hl:
-                ext = next((i for i, h in enumerate(hl) if isinstance(h, fits.BinTableHDU)
-                            or isinstance(h, fits.TableHDU)), None)
-                if ext is None:
-                    raise CatalogError(f"catalogue {str(path)!r} has no table extension")
-            return Table.read(path, hdu=ext)
-        if name.endswith(".ecsv"):
-            return Table.read(path, format="ascii.ecsv")
-        if name.endswith(".csv"):
-            return Table.read(path, format="ascii.csv")
-    except CatalogError:
-        raise
-    except Exception as exc:
-        raise CatalogError(f"catalogue {str(path)!r} cannot be read: "
-                           f"{str(exc).splitlines()[0] if str(exc) else type(exc).__name__}"
-                           ) from None
-    raise CatalogError(f"catalogue {str(path)!r}: unknown format; use .fits, .ecsv or .csv")
-
-
-def load_catalog(path, columns: dict | None = None, skip_invalid: bool = False,
-                 zeropoint: float | None = None, field: tuple[WCS, tuple[int, int]] | None = None
-                 ) -> Table:
-    """Read and check a detection catalogue.
-
-    Parameters
-    ----------
-    path : str or Path
-        FITS (first table extension), ECSV or CSV file.
-    columns : dict, optional
-        Column names: ``ra``, ``dec`` (deg), and either ``mag`` (AB) or ``flux`` with
-        ``flux_unit`` (one of :data:`FLUX_UNITS`). Default ``ra``, ``dec``, ``mag``.
-    skip_invalid : bool
-        Drop rows with NaN/inf values or positions outside the field instead of refusing.
-    zeropoint : float (AB mag), optional
-        Magnitude of 1 e-/s; needed for ``flux_unit='e-/s'``.
-    field : (WCS, (ny, nx)), optional
-        Mosaic WCS and shape; positions must fall on it.
-
-    Returns
-    -------
-    Table
-        Columns ``ra``, ``dec`` (deg), ``mag`` (AB; NaN where a flux is <= 0) and ``row`` (row
-        index in the file). Metadata: ``source``, ``n_skipped``, ``n_nonpositive_flux``.
-
-    Raises
-    ------
-    CatalogError
-        For an unreadable or empty file, missing columns (the available ones are listed),
-        non-numeric values, NaN/inf values, RA/Dec out of range, implausible magnitudes,
-        positions outside the field.
-    """
-    cols = {"ra": "ra", "dec": "dec"}
-    cols.update({k: v for k, v in (columns or {}).items() if v is not None})
-    if "mag" in cols and "flux" in cols:
-        raise CatalogError("give either a magnitude column or a flux column, not both")
-    if "flux" not in cols:
-        cols.setdefault("mag", "mag")
-    unit = cols.pop("flux_unit", None)
-    if "flux" in cols:
-        unit = unit or "nJy"
-        if unit not in FLUX_UNITS:
-            raise CatalogError(f"flux unit {unit!r} is not one of: {', '.join(FLUX_UNITS)}")
-        if unit == "e-/s" and zeropoint is None:
-            raise CatalogError("flux unit 'e-/s' needs the mosaic zero point (ZP_AB)")
-    path = Path(path)
-    t = _read_table(path)
-    if len(t) == 0:
-        raise CatalogError(f"catalogue {str(path)!r} is empty (no rows)")
-    avail = list(t.colnames)
-    lower = {c.lower(): c for c in avail}
-    missing = []
-    resolved = {}
-    for role, name in cols.items():
-        if name in avail:
-            resolved[role] = name
-        elif name.lower() in lower:
-            resolved[role] = lower[name.lower()]
-        else:
-            missing.append(f"{role}={name!r}")
-    if missing:
-        raise CatalogError(f"catalogue {str(path)!r} lacks column(s) {', '.join(missing)}; "
-                           f"available: {', '.join(avail)}")
-    data = {}
-    for role, name in resolved.items():
-        col = t[name]
-        if getattr(col, "dtype", np.dtype(object)).kind not in "fiu":
-            raise CatalogError(f"column {name!r} ({role}) is not numeric "
-                               f"(dtype {col.dtype}); sexagesimal positions are not accepted")
-        v = np.ma.filled(np.ma.asarray(col, dtype=float), np.nan)
-        data[role] = np.asarray(v, float)
-    keep = np.ones(len(t), bool)
-    bad = {role: int(np.sum(~np.isfinite(v))) for role, v in data.items()}
-    if any(bad.values()):
-        rows = ~np.all([np.isfinite(v) for v in data.values()], axis=0)
-        if not skip_invalid:
-            desc = ", ".join(f"{resolved[r]}: {n}" for r, n in bad.items() if n)
-            raise CatalogError(f"catalogue {str(path)!r} has {int(rows.sum())} row(s) with "
-                               f"NaN/inf values ({desc}); use skip_invalid (--skip-invalid) "
-                               "to drop them")
-        keep &= ~rows
-    ra, dec = data["ra"], data["dec"]
-    fin = keep
-    if np.any((ra[fin] < 0) | (ra[fin] >= 360)):
-        raise CatalogError(f"column {resolved['ra']!r} has values outside [0, 360) "
-                           f"(range {np.nanmin(ra):g} .. {np.nanmax(ra):g}); RA must be in degrees")
-    if np.any(np.abs(dec[fin]) > 90):
-        raise CatalogError(f"column {resolved['dec']!r} has values outside [-90, 90] "
-                           f"(range {np.nanmin(dec):g} .. {np.nanmax(dec):g}); "
-                           "Dec must be in degrees")
-    n_nonpos = 0
-    if "flux" in data:
-        f = data["flux"]
-        zp = zeropoint if unit == "e-/s" else FLUX_UNITS[unit]
-        with np.errstate(divide="ignore", invalid="ignore"):
-            mag = np.where(f > 0, zp - 2.5 * np.log10(np.where(f > 0, f, 1.0)), np.nan)
-        n_nonpos = int(np.sum(keep & (f <= 0)))
-        med = np.nanmedian(mag[keep]) if np.any(keep & np.isfinite(mag)) else np.nan
-        if np.isfinite(med) and not (_MAG_PLAUSIBLE[0] <= med <= _MAG_PLAUSIBLE[1]):
-            raise CatalogError(f"fluxes in column {resolved['flux']!r} give a median AB "
-                               f"magnitude of {med:.1f} with unit {unit!r}; check --flux-unit")
-    else:
-        mag = data["mag"]
-        m = mag[keep]
-        lo, hi = _MAG_PLAUSIBLE
-        if np.any((m < lo) | (m > hi)):
-            raise CatalogError(f"column {resolved['mag']!r} has values outside the plausible "
-                               f"AB range [{lo:g}, {hi:g}] (range {m.min():g} .. {m.max():g}); "
-                               "if it holds fluxes use --flux-col with --flux-unit")
-    n_out = 0
-    if field is not None:
-        wcs, (ny, nx) = field
-        x, y = wcs.all_world2pix(ra, dec, 0)
-        inside = (x >= -0.5) & (x <= nx - 0.5) & (y >= -0.5) & (y <= ny - 0.5)
-        out = keep & ~inside
-        n_out = int(out.sum())
-        if n_out == int(keep.sum()):
-            raise CatalogError(f"none of the {n_out} positions of catalogue {str(path)!r} falls "
-                               "on the mosaic (wrong field, or RA/Dec swapped?)")
-        if n_out and not skip_invalid:
-            raise CatalogError(f"{n_out} position(s) of catalogue {str(path)!r} fall outside "
-                               "the mosaic; use skip_invalid (--skip-invalid) to drop them")
-        keep &= inside
-    res = Table({"ra": ra[keep], "dec": dec[keep], "mag": mag[keep],
-                 "row": np.flatnonzero(keep)})
-    res["ra"].unit = res["dec"].unit = "deg"
-    res["mag"].unit = "mag"
-    res.meta.update({"source": str(path), "columns": resolved,
-                     "n_skipped": int(len(t) - keep.sum()), "n_outside": n_out,
-                     "n_nonpositive_flux": n_nonpos})
-    return res
+__all__ = ["FLUX_UNITS", "load_catalog", "load_truth", "image_map", "pixel_values",
+           "default_out_dir", "score_run", "score_pipeline_run", "score_main_args"]
 
 
 # --------------------------------------------------------------------------------------------
@@ -362,8 +200,46 @@ def _write_table(path: Path, t: Table) -> None:
         t.write(tmp, format="ascii.ecsv", overwrite=True)
 
 
+def default_out_dir(run_dir, catalog, band: str) -> Path:
+    """Where scores go by default: ``<run_dir>/score_<file stem>/<band>`` for a catalogue file,
+    ``<run_dir>/score_detections_<band>/<band>`` for the run's own detections (``catalog``
+    None; the pipeline's own ``<run_dir>/score/<band>`` is left alone),
+    ``<run_dir>/score_table/<band>`` for a Table."""
+    run_dir = Path(run_dir)
+    if catalog is None:
+        return run_dir / f"score_detections_{band}" / band
+    if isinstance(catalog, Table):
+        return run_dir / "score_table" / band
+    stem = Path(catalog).name.split(".")[0] or "catalog"
+    return run_dir / f"score_{stem}" / band
+
+
+def _magnitude_check_pairs(m, det, images, ix, iy, mag_img, truth) -> np.ndarray:
+    """Which matched pairs may test the magnitude scale: the truth image has no other truth
+    image within ISOLATION_ARCSEC brighter than its magnitude + 2.5, and the detection's
+    pixel carries no saturated / uncovered flag."""
+    from scipy.spatial import cKDTree
+
+    ti = m.truth_index
+    usable = np.ones(ti.size, bool)
+    if ti.size == 0:
+        return usable
+    tree = cKDTree(np.column_stack([ix, iy]))
+    near = tree.query_ball_point(np.column_stack([ix[ti], iy[ti]]),
+                                 ISOLATION_ARCSEC / truth["pixel_scale"])
+    for n, (i, nb) in enumerate(zip(ti, near)):
+        usable[n] = not any(j != i and mag_img[j] < mag_img[i] + 2.5 for j in nb)
+    dq, bits = truth.get("dq"), truth.get("dq_bits")
+    if dq is not None and bits:
+        x, y = truth["wcs"].all_world2pix(np.asarray(det["ra"], float)[m.det_index],
+                                          np.asarray(det["dec"], float)[m.det_index], 0)
+        usable &= (pixel_values(dq, x, y) & bits) == 0
+    return usable
+
+
 def score_run(run_dir, catalog, band: str, cfg: ScoreConfig | None = None, out_dir=None,
-              columns: dict | None = None, skip_invalid: bool = False, prov=None) -> dict:
+              columns: dict | None = None, skip_invalid: bool = False, prov=None,
+              drop_duplicates: bool = False, allow_flux_offset: bool = False) -> dict:
     """Score a detection catalogue against the truth of one band of a run.
 
     Parameters
@@ -377,11 +253,15 @@ def score_run(run_dir, catalog, band: str, cfg: ScoreConfig | None = None, out_d
         Band name.
     cfg : ScoreConfig, optional
     out_dir : str or Path, optional
-        Default ``<run_dir>/score``.
-    columns, skip_invalid :
+        Default :func:`default_out_dir`.
+    columns, skip_invalid, drop_duplicates :
         Passed to :func:`load_catalog`.
     prov : simfield.io.Provenance, optional
         Recorded in the summary.
+    allow_flux_offset : bool
+        Score a catalogue file whose bright matches are off the truth magnitudes
+        (:func:`simfield.score.catalog.check_magnitude_scale`, applied to catalogue files
+        only) instead of refusing it.
 
     Returns
     -------
@@ -394,8 +274,9 @@ def score_run(run_dir, catalog, band: str, cfg: ScoreConfig | None = None, out_d
     _validate_score(cfg)
     truth = load_truth(run_dir, band)
     run_dir = Path(run_dir)
-    out = Path(out_dir) if out_dir is not None else run_dir / "score"
+    out = Path(out_dir) if out_dir is not None else default_out_dir(run_dir, catalog, band)
     wcs, shape = truth["wcs"], truth["shape"]
+    from_file = catalog is not None and not isinstance(catalog, Table)
     if catalog is None:
         catalog = _own_detections(run_dir, band)
     if isinstance(catalog, Table):
@@ -406,7 +287,8 @@ def score_run(run_dir, catalog, band: str, cfg: ScoreConfig | None = None, out_d
                                    f"{', '.join(det.colnames)}")
         cat_name = det.meta.get("source", "<table>")
     else:
-        det = load_catalog(catalog, columns, skip_invalid, truth["zeropoint"], (wcs, shape))
+        det = load_catalog(catalog, columns, skip_invalid, truth["zeropoint"], (wcs, shape),
+                           drop_duplicates)
         cat_name = str(catalog)
     radius = match_radius(cfg.match_radius_arcsec, cfg.match_radius_fwhm, truth["psf_fwhm"])
     if not radius > 0:
@@ -425,6 +307,13 @@ def score_run(run_dir, catalog, band: str, cfg: ScoreConfig | None = None, out_d
                   float(ra0), float(dec0))
     img_src = np.asarray(images["source_id"], np.int64)
     mag_img = np.asarray(images[f"mag_{band}"], float)
+    mag_check = None
+    if from_file:  # refused here, before anything is written
+        col = det.meta.get("columns", {})
+        mag_check = check_magnitude_scale(
+            np.asarray(det["mag"], float)[m.det_index], mag_img[m.truth_index],
+            _magnitude_check_pairs(m, det, images, ix, iy, mag_img, truth),
+            col.get("mag", col.get("flux", "mag")), allow_flux_offset)
 
     # ---- per source: recovered if any image matched; observed quantities of the brightest image
     sid = np.asarray(sources["id"], np.int64)
@@ -506,26 +395,12 @@ def score_run(run_dir, catalog, band: str, cfg: ScoreConfig | None = None, out_d
                                                     det_mag[m.det_index], mag_edges)
 
     # ---- effective volume per (M_UV, z) bin: recovered fraction x comoving volume over the field
-    from .. import cosmo as _cosmo
-
-    area = float(nx * ny) * truth["pixel_scale"] ** 2
     if "abs_mag_uv" in sources.colnames:
-        M_edges = _edges(-24.0, -14.0, 1.0)
-        zb = np.asarray(cfg.z_bins, float)
-        c = _cosmo.default_cosmology()
-        vol = (c.comoving_volume(zb[1:]).value - c.comoving_volume(zb[:-1]).value) \
-            * area / (4 * np.pi * _cosmo.ARCSEC2_PER_SR)
-        absm = np.asarray(sources["abs_mag_uv"], float)
         sel = kind == "galaxy"
-        veff = metrics.binned_fraction_2d(absm[sel], z[sel], recovered[sel], M_edges, zb, lvl,
-                                          ("abs_mag_uv", "z"))
-        zi = np.searchsorted(zb, np.asarray(veff["z_lo"]), side="right") - 1
-        veff["volume_mpc3"] = vol[zi]
-        veff["v_eff_mpc3"] = np.nan_to_num(np.asarray(veff["fraction"], float)) * vol[zi]
-        veff.meta["note"] = ("V_eff = recovered fraction x comoving volume of the z bin over the "
-                             "mosaic area; lensed fields: the fraction already includes "
-                             "magnification, the area is the image-plane area")
-        tables["effective_volume"] = veff
+        tables["effective_volume"] = binned_effective_volume(
+            np.asarray(sources["abs_mag_uv"], float)[sel], z[sel], recovered[sel],
+            _edges(-24.0, -14.0, 1.0), cfg.z_bins, float(nx * ny) * truth["pixel_scale"] ** 2,
+            lvl)
 
     rec_t = Table({"id": sid, "kind": kind, "mag_obs": best_mag, "r_half_obs": r_obs,
                    "redshift": z, "magnification": mu_best, "recovered": recovered,
@@ -560,17 +435,27 @@ def score_run(run_dir, catalog, band: str, cfg: ScoreConfig | None = None, out_d
         "headline_fit": cfg.fit_model,
         "spike_angles_deg": [float(a) for a in angles],
         "catalog_rows_skipped": int(det.meta.get("n_skipped", 0)),
+        "catalog_duplicates_dropped": int(det.meta.get("n_duplicates", 0)),
+        "magnitude_check": mag_check,
     }
+    injected = fits.getheader(run_dir / f"mosaic_{band}.fits", "SCI").get("INJFROM")
+    if injected and from_file:
+        summary["injected_into"] = str(injected)
+        summary["purity_note"] = ("the truth holds only the injected sources: the image's own "
+                                  "objects in the catalogue count as unmatched detections")
+    # limits the headline fit may quote (metrics module rules); null with a reason otherwise
     head = fits_.get(cfg.fit_model)
-    if isinstance(head, metrics.CompletenessFit):
-        summary["m50"], summary["m50_err"] = head.m50, head.m50_err
-        summary["m90"], summary["m90_err"] = head.m90, head.m90_err
+    hd = head.as_dict() if isinstance(head, metrics.CompletenessFit) else {}
+    for key in ("m50", "m90"):
+        summary[key], summary[f"{key}_err"] = hd.get(key), hd.get(f"{key}_err")
+        summary[f"{key}_reason"] = hd.get(f"{key}_reason") if hd else f"no fit: {head}"
 
     # ---- write (all inputs are read and checked by now)
     out.mkdir(parents=True, exist_ok=True)
     for name, t in tables.items():
         t.meta["band"] = band
-        _write_table(out / f"{name}.ecsv", t)
+        t.meta["description"] = SCORE_TABLES[name]
+        _write_table(out / f"{name}.ecsv", describe(t, SCORE_COLUMNS))
     if cfg.report:
         from .report import make_report
 
@@ -602,20 +487,74 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("run_dir", help="run directory written by simfield")
     p.add_argument("--catalog", help="catalogue file (.fits, .ecsv, .csv); default the run's "
                                      "own detections_<band>.fits")
-    p.add_argument("--band", help="band name (default: the only or first mosaic in the run)")
+    p.add_argument("--band", help="band name (default: the run's detection band)")
     p.add_argument("--ra-col", default="ra", help="RA column (deg)")
     p.add_argument("--dec-col", default="dec", help="Dec column (deg)")
     g = p.add_mutually_exclusive_group()
-    g.add_argument("--mag-col", help="AB magnitude column (default 'mag')")
-    g.add_argument("--flux-col", help="flux column (see --flux-unit)")
+    g.add_argument("--mag-col", help="AB magnitude column (default 'mag'); NAME[i] picks "
+                                     "element i (0-based) of a column with several per row")
+    g.add_argument("--flux-col", help="flux column (see --flux-unit); NAME[i] as for --mag-col")
     p.add_argument("--flux-unit", default="nJy", choices=list(FLUX_UNITS),
                    help="unit of --flux-col")
     p.add_argument("--radius", type=float, help="match radius (arcsec)")
     p.add_argument("--skip-invalid", action="store_true",
                    help="drop rows with NaN/inf or outside the mosaic instead of refusing")
-    p.add_argument("--out", help="output directory (default <run_dir>/score)")
+    p.add_argument("--drop-duplicates", action="store_true",
+                   help="keep the first of rows within 1 milliarcsec of each other instead of "
+                        "refusing")
+    p.add_argument("--allow-flux-offset", action="store_true",
+                   help="score even if the bright matches' magnitudes are off the truth by "
+                        "more than 1 mag (or too few to check)")
+    p.add_argument("--out", help="output directory (default <run_dir>/score_<catalogue file "
+                                 "stem>/<band>; the run's own detections: "
+                                 "<run_dir>/score_detections_<band>/<band>)")
     p.add_argument("--no-report", action="store_true", help="skip report.html and plots")
     return p
+
+
+def run_scenario_of(run_dir: Path):
+    """The run's ``scenario.yaml`` as a Scenario, or None if absent or not readable."""
+    if not (run_dir / "scenario.yaml").is_file():
+        return None
+    from omegaconf import OmegaConf
+
+    from ..config import to_scenario
+
+    try:
+        return to_scenario(OmegaConf.load(run_dir / "scenario.yaml"))
+    except Exception:  # a scenario of another version: the caller falls back to defaults
+        return None
+
+
+def run_detection_band(run_dir: Path) -> tuple[str, str]:
+    """The band a run detected in, and where that was read (for the message).
+
+    From ``summary.json`` (``detections``), else ``scenario.yaml`` (detection bands of the
+    scenario, :attr:`simfield.config.Scenario.detection_bands`), else the only mosaic.
+
+    Raises
+    ------
+    CatalogError
+        None of these decides.
+    """
+    import json
+
+    try:
+        det = json.loads((run_dir / "summary.json").read_text()).get("detections") or {}
+    except (OSError, ValueError, AttributeError):
+        det = {}
+    if det:
+        return next(iter(det)), "the run's detection band"
+    sc = run_scenario_of(run_dir)
+    if sc is not None:
+        return sc.detection_bands[0], "the scenario's detection band"
+    found = sorted(p.name[len("mosaic_"):-len(".fits")] for p in run_dir.glob("mosaic_*.fits"))
+    if len(found) == 1:
+        return found[0], "the run's only mosaic"
+    if not found:
+        raise CatalogError(f"run directory {str(run_dir)!r} holds no mosaic_<band>.fits")
+    raise CatalogError(f"--band: not given and {str(run_dir)!r} records no detection band; "
+                       f"one of {', '.join(found)}")
 
 
 def score_main_args(argv: list[str]) -> int:
@@ -627,14 +566,9 @@ def score_main_args(argv: list[str]) -> int:
         run_dir = Path(a.run_dir)
         if not run_dir.is_dir():
             raise CatalogError(f"run directory {a.run_dir!r} does not exist")
-        band = a.band
-        if band is None:
-            found = sorted(p.name[len("mosaic_"):-len(".fits")]
-                           for p in run_dir.glob("mosaic_*.fits"))
-            if not found:
-                raise CatalogError(f"run directory {a.run_dir!r} holds no mosaic_<band>.fits")
-            band = found[0]
-        cfg = ScoreConfig()
+        band, why = (a.band, "given") if a.band else run_detection_band(run_dir)
+        sc = run_scenario_of(run_dir)  # the run's own score settings, where it has them
+        cfg = sc.score if sc is not None else ScoreConfig()
         if a.radius is not None:
             cfg.match_radius_arcsec = a.radius
         cfg.report = not a.no_report
@@ -644,11 +578,13 @@ def score_main_args(argv: list[str]) -> int:
             cols.update(flux=a.flux_col, flux_unit=a.flux_unit)
         else:
             cols["mag"] = a.mag_col or "mag"
-        summ = score_run(run_dir, a.catalog, band, cfg, a.out, cols, a.skip_invalid)
+        out = Path(a.out) if a.out else default_out_dir(run_dir, a.catalog, band)
+        summ = score_run(run_dir, a.catalog, band, cfg, out, cols, a.skip_invalid,
+                         drop_duplicates=a.drop_duplicates,
+                         allow_flux_offset=a.allow_flux_offset)
     except (ArgError, CatalogError, ConfigError) as exc:
         print(f"simfield-score: error: {exc}", file=sys.stderr)
         return 2
-    out = Path(a.out) if a.out else run_dir / "score"
-    print(f"simfield-score: {summ['n_matched']} of {summ['n_detections']} detections matched; "
-          f"results in {os.fspath(out)}")
+    print(f"simfield-score: band {band} ({why}); {summ['n_matched']} of "
+          f"{summ['n_detections']} detections matched; results in {os.fspath(out)}")
     return 0

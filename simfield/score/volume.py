@@ -27,6 +27,7 @@ __all__ = [
     "apparent_magnitude",
     "schechter",
     "effective_volume",
+    "binned_effective_volume",
     "expected_number",
     "poisson_at_most",
     "poisson_at_least",
@@ -128,6 +129,55 @@ def effective_volume(abs_mag, z_grid, completeness: Callable, area_arcsec2=None,
         p = np.broadcast_to(p, m_int.shape)
         out += wi * np.trapezoid(p * dvdz[None, :], z, axis=1)
     return out
+
+
+def binned_effective_volume(abs_mag, z, recovered, abs_mag_edges, z_edges,
+                            area_arcsec2: float, level: float = 0.683, cosmology=None):
+    """Recovered fraction x comoving volume per (M_UV, z) bin, from the truth sources.
+
+    Parameters
+    ----------
+    abs_mag : array_like (AB mag)
+        Rest-UV absolute magnitude of each truth galaxy.
+    z : array_like
+        Its redshift.
+    recovered : array_like of bool
+        Whether it was recovered.
+    abs_mag_edges : array_like (AB mag)
+    z_edges : array_like
+        Bin edges.
+    area_arcsec2 : float (arcsec^2)
+        Image-plane area of the mosaic.
+    level : float (0..1)
+        Level of the fractions' intervals.
+    cosmology : astropy cosmology, optional
+
+    Returns
+    -------
+    Table
+        One row per cell (:func:`simfield.score.metrics.binned_fraction_2d`) plus
+        ``volume_mpc3`` (comoving volume of the z bin over the area, Mpc^3) and ``v_eff_mpc3``
+        (fraction x volume, Mpc^3), masked (null) where the cell holds no source and the
+        fraction is undefined.
+    """
+    from astropy.table import MaskedColumn
+
+    from .metrics import binned_fraction_2d
+
+    c = cosmology or _cosmo.default_cosmology()
+    zb = np.asarray(z_edges, float)
+    vol = (c.comoving_volume(zb[1:]).value - c.comoving_volume(zb[:-1]).value) \
+        * area_arcsec2 / (4 * np.pi * _cosmo.ARCSEC2_PER_SR)
+    t = binned_fraction_2d(abs_mag, z, recovered, abs_mag_edges, zb, level, ("abs_mag_uv", "z"))
+    zi = np.searchsorted(zb, np.asarray(t["z_lo"]), side="right") - 1
+    frac = np.asarray(t["fraction"], float)
+    t["volume_mpc3"] = vol[zi]
+    t["v_eff_mpc3"] = MaskedColumn(np.nan_to_num(frac) * vol[zi], mask=~np.isfinite(frac))
+    t.meta["note"] = ("V_eff = recovered fraction x comoving volume of the z bin over the "
+                      "mosaic area, null where the bin holds no source; lensed fields: the "
+                      "fraction already includes magnification, the area is the image-plane "
+                      "area")
+    return t
 
 
 def expected_number(abs_mag_grid, z_grid, completeness: Callable, m_star, phi_star, alpha,
