@@ -11,7 +11,11 @@ quoted only when (:func:`fit_completeness`, rules in order):
    p-value P(chi2_dof > D) >= :data:`FIT_P_MIN` with dof = bins - fitted parameters (likelihood
    ratio, Wilks 1938, Ann. Math. Stat. 9, 60; binomial deviance, McCullagh & Nelder 1989,
    "Generalized Linear Models", sec. 4.4.3). Bins are 0.25 mag wide, merged with their fainter
-   neighbours until each holds at least :data:`BIN_MIN_N` sources;
+   neighbours until each holds at least :data:`BIN_MIN_N` sources. With thousands of sources
+   the test rejects any smooth two- or three-parameter form for departures far too small to
+   move a limit, so a fit also counts as describing the data when no such bin's fraction lies
+   both more than :data:`FIT_TOLERANCE` and more than 3 binomial sigma, sqrt(C (1 - C) / n),
+   from the curve (common practice: a limit is read off a curve that follows the points);
 2. the data cross the level: a bin wholly brighter than the limit has k/n >= the level and a bin
    wholly fainter has k/n <= the level (both with at least :data:`BIN_MIN_N` sources);
 3. its 1-sigma uncertainty is at most :data:`LIMIT_ERR_MAX` mag.
@@ -28,7 +32,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import optimize, special, stats
 
-__all__ = ["FIT_P_MIN", "BIN_MIN_N", "LIMIT_ERR_MAX", "GOF_STEP", "CompletenessFit",
+__all__ = ["FIT_P_MIN", "FIT_TOLERANCE", "BIN_MIN_N", "LIMIT_ERR_MAX", "GOF_STEP", "CompletenessFit",
            "completeness_model", "gof_bins", "binned_deviance", "fit_completeness"]
 
 
@@ -60,6 +64,9 @@ def _limit(model, c0, m_t, width, p):
 #: smallest goodness-of-fit p-value of a fit whose limits are quoted: a fit rejected at 1%
 #: does not describe the data (choice of this project)
 FIT_P_MIN = 0.01
+#: Largest |observed - fitted| completeness of a bin for a fit rejected by the deviance test
+#: to still describe the data (rule 1 of the module docstring).
+FIT_TOLERANCE = 0.05
 #: fewest sources per magnitude bin of the goodness-of-fit test and of the bracketing rule;
 #: the chi2 law of the deviance needs several expected counts per bin (McCullagh & Nelder
 #: 1989, sec. 4.4.3), and a fraction from fewer than 10 sources says little (common practice)
@@ -205,13 +212,15 @@ def binned_deviance(mag, detected, curve, edges):
     return float(max(dev, 0.0)), int(use.sum())
 
 
-def _limit_reason(value, err, p, frac, lo, hi, n, p_value, dof):
-    """Why a limit at level ``p`` cannot be quoted (None if it can); rules of the module."""
+def _limit_reason(value, err, p, frac, lo, hi, n, p_value, dof, max_resid=np.inf):
+    """Why a limit at level ``p`` cannot be quoted (None if it can); rules of the module.
+    ``max_resid``: largest significant |observed - fitted| fraction of a bin of BIN_MIN_N+
+    sources (rule 1)."""
     if dof < 1:
         return f"too few magnitude bins of {BIN_MIN_N}+ sources to test the fit ({dof} dof)"
-    if not p_value >= FIT_P_MIN:
+    if not (p_value >= FIT_P_MIN or max_resid <= FIT_TOLERANCE):
         return (f"the fit does not describe the data (binomial deviance p = {p_value:.2g} < "
-                f"{FIT_P_MIN:g}, {dof} dof)")
+                f"{FIT_P_MIN:g}, {dof} dof, and a bin lies {max_resid:.2f} (> 3 sigma) from the curve)")
     if not np.isfinite(value):
         return f"the fitted plateau never reaches {p:g}"
     full = n >= BIN_MIN_N
@@ -342,8 +351,17 @@ def fit_completeness(mag, detected, model: str = "logistic") -> CompletenessFit:
     nb = np.bincount(b, minlength=len(edges) - 1)
     with np.errstate(invalid="ignore", divide="ignore"):
         frac = np.bincount(b, weights=k, minlength=len(edges) - 1) / nb
+    curve = np.bincount(b, weights=completeness_model(m, model, c0, m_t, width),
+                        minlength=len(edges) - 1)
+    full = nb >= BIN_MIN_N
+    with np.errstate(invalid="ignore", divide="ignore"):
+        c_fit = curve / nb
+        resid = np.abs(frac - c_fit)
+        # a departure counts only if it is also significant (3 binomial sigma)
+        resid = np.where(resid > 3 * np.sqrt(c_fit * (1 - c_fit) / nb), resid, 0.0)[full]
+    max_resid = float(resid.max()) if resid.size else np.inf
     reasons = {p: _limit_reason(out[p][0], out[p][1], p, frac, edges[:-1], edges[1:], nb,
-                                p_value, dof) for p in (0.5, 0.9)}
+                                p_value, dof, max_resid) for p in (0.5, 0.9)}
     quoted = {p: (out[p] if reasons[p] is None else (np.nan, np.nan)) for p in (0.5, 0.9)}
     return CompletenessFit(model, float(c0), float(m_t), float(width), cov,
                            quoted[0.5][0], quoted[0.5][1], quoted[0.9][0], quoted[0.9][1],
