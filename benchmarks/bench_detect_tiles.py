@@ -63,13 +63,13 @@ def write_mosaic(run_dir: Path, size: int, n_sources: int, seed: int = 1) -> Non
     order = np.argsort(y)
     x, y, flux, sig, half = x[order], y[order], flux[order], sig[order], half[order]
     prov = Provenance(seed, "bench", "bench: detect tiles")
-    specs = [ImageSpec("SCI", (size, size), np.float32, hdr),
-             ImageSpec("WHT", (size, size), np.float32, hdr),
-             ImageSpec("EXP", (size, size), np.float32, hdr),
-             ImageSpec("DQ", (size, size), np.int32, [("FNODATA", 1, "no-data bit")])]
+    specs = [ImageSpec("IMAGE", (size, size), np.float32, hdr),
+             ImageSpec("INVVAR", (size, size), np.float32, hdr),
+             ImageSpec("EXPOSURE", (size, size), np.float32, hdr),
+             ImageSpec("FLAGS", (size, size), np.int32, [("FNODATA", 1, "no-data bit")])]
     rows = 500
     with section_files([(run_dir / f"mosaic_{BAND}.fits", specs, [])], prov) as (f,):
-        sci, wht, exp_ = f.array("SCI"), f.array("WHT"), f.array("EXP")
+        sci, wht, exp_ = f.array("IMAGE"), f.array("INVVAR"), f.array("EXPOSURE")
         for r0 in range(0, size, rows):
             r1 = min(size, r0 + rows)
             blk = SKY + rng.normal(0, NOISE, (r1 - r0, size))

@@ -100,8 +100,8 @@ def inject_main(argv: list[str] | None = None) -> None:
     p.add_argument("image", help="FITS image with a celestial WCS")
     p.add_argument("--band", required=True, help="the scenario band the image is taken in")
     p.add_argument("--psf", help="PSF image (FITS, PIXSCALE in arcsec); default: model PSF")
-    p.add_argument("--hdu", help="image HDU name or number (default: SCI or the first image)")
-    p.add_argument("--weight-hdu", help="inverse-variance HDU (default: WHT, else estimated)")
+    p.add_argument("--hdu", help="image HDU name or number (default: IMAGE, SCI or the first image)")
+    p.add_argument("--weight-hdu", help="inverse-variance HDU (default: INVVAR, WHT, else estimated)")
     p.add_argument("--zeropoint", type=float, help="AB magnitude of one image unit "
                    "(default: header ZP_AB)")
     p.add_argument("--out", help="output directory (default: outputs/inject_<image name>)")

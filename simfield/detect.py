@@ -317,11 +317,11 @@ def _detect_tile(job: _TileJob, tile):
     (ylo, y0, y1, yhi), (xlo, x0, x1, xhi) = tile
     ny, nx = job.shape
     win = (slice(ylo, yhi), slice(xlo, xhi))
-    mask = None if "DQ" not in job.maps else \
-        (_window(job.path, *job.maps["DQ"], win) & job.no_cov) != 0
+    mask = None if "FLAGS" not in job.maps else \
+        (_window(job.path, *job.maps["FLAGS"], win) & job.no_cov) != 0
     twcs = job.wcs if job.one else job.wcs.slice(win)
-    det = detect_sources(_window(job.path, *job.maps["SCI"], win).astype(float),
-                         _window(job.path, *job.maps["WHT"], win).astype(float),
+    det = detect_sources(_window(job.path, *job.maps["IMAGE"], win).astype(float),
+                         _window(job.path, *job.maps["INVVAR"], win).astype(float),
                          twcs, job.cfg, job.fwhm, job.zp, job.scale, exptime=job.exptime,
                          mask=mask, noise_table=job.noise_table)
     cat = det.catalog
@@ -358,7 +358,7 @@ def detect_mosaic(path, segm_out, cfg: DetectionConfig, psf_fwhm_arcsec: float,
                   progress: bool = False, workers: int = 1) -> Table:
     """Detect sources on a mosaic file tile by tile, in memory bounded by the tile size.
 
-    The mosaic (``SCI``, ``WHT`` and, if present, ``DQ`` extensions) is opened as a memory map
+    The mosaic (``IMAGE``, ``INVVAR`` and, if present, ``FLAGS`` extensions) is opened as a memory map
     and cut into square tiles: cores of at most ``core`` pixels a side covering the mosaic once
     (:func:`tile_bounds`; a mosaic not larger than one core is one tile and gives exactly the
     result of :func:`detect_sources` on the whole image, the reference implementation, which
@@ -380,10 +380,11 @@ def detect_mosaic(path, segm_out, cfg: DetectionConfig, psf_fwhm_arcsec: float,
     Parameters
     ----------
     path : path
-        Mosaic file (SCI in e-/s with a celestial WCS, ``ZP_AB`` and optionally ``EXPTIME`` in
-        its header; WHT in (e-/s)^-2; DQ int with ``DQNOCOVE``).
+        Mosaic file (IMAGE in e-/s with a celestial WCS, ``ZP_AB`` and optionally ``EXPTIME``
+        in its header; INVVAR in (e-/s)^-2 with the aperture noise table; FLAGS int with
+        ``FNODATA``).
     segm_out : simfield.io.SectionFile, ndarray of int32, shape (ny, nx), or None
-        Written with the segmentation labels (the catalogue ids): a SectionFile with a ``SEGM``
+        Written with the segmentation labels (the catalogue ids): a SectionFile with a ``SEGMAP``
         extension is written through a fresh memory map per section (so written pages leave
         the resident memory); None skips it.
     cfg : DetectionConfig
@@ -411,9 +412,9 @@ def detect_mosaic(path, segm_out, cfg: DetectionConfig, psf_fwhm_arcsec: float,
     check_range("core", core, 16, 1 << 20)
     check_range("margin", margin, 0, 1 << 20)
     with fits.open(path, memmap=True) as hl:
-        hdr = hl["SCI"].header
+        hdr = hl["IMAGE"].header
         maps = {}
-        for ext in ("SCI", "WHT", "DQ"):
+        for ext in ("IMAGE", "INVVAR", "FLAGS"):
             if ext in hl:
                 h = hl[ext].header
                 plain = float(h.get("BSCALE", 1)) == 1 and float(h.get("BZERO", 0)) == 0
@@ -422,18 +423,18 @@ def detect_mosaic(path, segm_out, cfg: DetectionConfig, psf_fwhm_arcsec: float,
                         "must be an uncompressed image extension without BSCALE/BZERO")
                 maps[ext] = (hl.fileinfo(hl.index_of(ext))["datLoc"],
                              (int(h["NAXIS2"]), int(h["NAXIS1"])), _FITS_DTYPE[h["BITPIX"]])
-        require("SCI" in maps and "WHT" in maps, "mosaic", str(path), "needs SCI and WHT")
+        require("IMAGE" in maps and "INVVAR" in maps, "mosaic", str(path), "needs IMAGE and INVVAR")
         # only pixels that no exposure reached are left out of detection (the other mosaic
         # flags say how well a value is measured, and it is still a measurement)
-        no_cov = int(hl["DQ"].header.get("FNODATA", 1)) if "DQ" in maps else 0
+        no_cov = int(hl["FLAGS"].header.get("FNODATA", 1)) if "FLAGS" in maps else 0
         from .noisecards import read_noise_factors
 
-        noise_table = read_noise_factors(hl["WHT"].header)
+        noise_table = read_noise_factors(hl["INVVAR"].header)
         wcs = WCS(hdr).celestial
         scale = float(np.sqrt(abs(np.linalg.det(wcs.pixel_scale_matrix))) * 3600.0)
         zp = float(hdr["ZP_AB"])
         exptime = float(hdr.get("EXPTIME", 0)) or None
-        ny, nx = maps["SCI"][1]
+        ny, nx = maps["IMAGE"][1]
         segm_file = segm_out if hasattr(segm_out, "array") else None
         box = max(8, int(round(cfg.background_box_arcsec / scale)))
         ty = tile_bounds(ny, core, margin, box)
@@ -454,7 +455,7 @@ def detect_mosaic(path, segm_out, cfg: DetectionConfig, psf_fwhm_arcsec: float,
             provisional.append((offset, labels, own, gx, gy))
             if seg is not None:
                 (_, y0, y1, _), (_, x0, x1, _) = yb, xb
-                out = segm_file.array("SEGM") if segm_file else segm_out
+                out = segm_file.array("SEGMAP") if segm_file else segm_out
                 out[y0:y1, x0:x1] = np.where(seg > 0, seg + offset, 0)
                 del out
             offset += n_labels
@@ -502,7 +503,7 @@ def detect_mosaic(path, segm_out, cfg: DetectionConfig, psf_fwhm_arcsec: float,
         if segm_out is not None:
             rows = max(1, (1 << 22) // max(nx, 1))  # ~16 MB of int32 per block
             for r0 in range(0, ny, rows):
-                out = segm_file.array("SEGM") if segm_file else segm_out
+                out = segm_file.array("SEGMAP") if segm_file else segm_out
                 out[r0:r0 + rows] = lut[np.asarray(out[r0:r0 + rows])]
                 del out
     return cat
@@ -512,7 +513,7 @@ def run_detection(run_dir, sc, bands, prov, progress: bool = False, workers: int
     """Run :func:`detect_mosaic` on each mosaic of a run directory; write
     ``detections_<band>.fits``.
 
-    The file holds the primary header (provenance, ``BAND``), the ``SEGM`` image (int32
+    The file holds the primary header (provenance, ``BAND``), the ``SEGMAP`` image (int32
     labels = catalogue ids, with the mosaic WCS; written by sections through a memory map, see
     :func:`simfield.io.section_files`) and the ``DETECTIONS`` table (appended last); read both
     by name.
@@ -547,12 +548,12 @@ def run_detection(run_dir, sc, bands, prov, progress: bool = False, workers: int
     for name in sc.detection_bands:
         mpath = run_dir / f"mosaic_{name}.fits"
         with fits.open(mpath, memmap=True) as hl:
-            hdr = hl["SCI"].header.copy()
-            shape = hl["SCI"].data.shape
+            hdr = hl["IMAGE"].header.copy()
+            shape = hl["IMAGE"].data.shape
         wcs = WCS(hdr).celestial
         with fits.open(run_dir / f"psf_{name}.fits") as hl:
             fwhm = float(hl["PSF_DET" if "PSF_DET" in hl else 1].header["FWHM"])
-        spec = ImageSpec("SEGM", shape, np.int32, wcs.to_header())
+        spec = ImageSpec("SEGMAP", shape, np.int32, wcs.to_header())
         out = run_dir / f"detections_{name}.fits"
         with section_files([(out, [spec], [("BAND", name, "simfield band name")])],
                            prov) as (sf,):

@@ -45,19 +45,32 @@ def read_image(path, hdu=None, zeropoint: float | None = None, weight_hdu=None):
     path : path
         FITS file.
     hdu : int or str, optional
-        The image HDU (default: ``SCI`` if present, else the first HDU with 2-D data).
+        The image HDU (default: ``IMAGE`` or ``SCI`` if present, else the first HDU with 2-D
+        data).
     zeropoint : float (AB mag), optional
         AB magnitude of one image unit; default the header's ``ZP_AB``.
     weight_hdu : int or str, optional
-        Inverse-variance HDU; default ``WHT`` if present, else a constant weight from the
-        sigma-clipped standard deviation of the image.
+        Inverse-variance HDU; default ``INVVAR`` (or ``WHT``) if present, else a constant
+        weight from the sigma-clipped standard deviation of the image.
+
+    Returns
+    -------
+    sci, wht : ndarray (image units, image units^-2)
+    wcs : astropy.wcs.WCS
+    zeropoint : float (AB mag)
+    header : astropy.io.fits.Header
+    noise_table : tuple or None
+        The weight header's aperture noise table (:mod:`simfield.noisecards`), if it has one:
+        detection scales its flux errors by it.
     """
     path = Path(path)
     if not path.is_file():
         raise CatalogError(f"image {str(path)!r} does not exist")
     with fits.open(path) as hl:
         if hdu is None:
-            hdu = "SCI" if "SCI" in hl else next(
+            # simfield's own layout first, then the common SCI / WHT convention
+            hdu = next((n for n in ("IMAGE", "SCI") if n in hl), None)
+            hdu = hdu if hdu is not None else next(
                 (i for i, h in enumerate(hl) if h.data is not None and h.data.ndim == 2), None)
         if hdu is None or hdu not in hl and not isinstance(hdu, int):
             raise CatalogError(f"{path.name}: no 2-D image HDU found (hdu={hdu!r})")
@@ -73,10 +86,14 @@ def read_image(path, hdu=None, zeropoint: float | None = None, weight_hdu=None):
         if zp is None or not np.isfinite(zp):
             raise CatalogError(f"{path.name}[{hdu}]: no ZP_AB keyword; give the AB magnitude "
                                f"of one image unit with --zeropoint")
-        if weight_hdu is None and "WHT" in hl:
-            weight_hdu = "WHT"
+        if weight_hdu is None:
+            weight_hdu = next((n for n in ("INVVAR", "WHT") if n in hl), None)
+        noise = None
         if weight_hdu is not None:
+            from .noisecards import read_noise_factors
+
             wht = np.asarray(hl[weight_hdu].data, float)
+            noise = read_noise_factors(hl[weight_hdu].header)
             if wht.shape != sci.shape:
                 raise CatalogError(f"{path.name}[{weight_hdu}]: shape {wht.shape} differs "
                                    f"from the image {sci.shape}")
@@ -84,7 +101,7 @@ def read_image(path, hdu=None, zeropoint: float | None = None, weight_hdu=None):
             good = np.isfinite(sci)
             _, _, std = sigma_clipped_stats(sci[good], sigma=3.0)
             wht = np.where(good, 1.0 / std**2, 0.0)
-    return sci, wht, wcs, float(zp), header
+    return sci, wht, wcs, float(zp), header, noise
 
 
 def read_psf(path, scale_arcsec: float) -> np.ndarray:
@@ -156,7 +173,7 @@ def inject_into_image(image_path, sc: Scenario, band: str, out_dir, psf_path=Non
     if band not in names:
         raise CatalogError(f"band {band!r} is not a band of the scenario ({', '.join(names)})")
     b = bands[names.index(band)]
-    sci, wht, wcs, zp, header = read_image(image_path, hdu, zeropoint, weight_hdu)
+    sci, wht, wcs, zp, header, noise = read_image(image_path, hdu, zeropoint, weight_hdu)
     jac = _pixel_jacobian(wcs)
     scale = float(np.sqrt(abs(np.linalg.det(jac))))
     psf = (read_psf(psf_path, scale) if psf_path is not None else
@@ -215,12 +232,17 @@ def inject_into_image(image_path, sc: Scenario, band: str, out_dir, psf_path=Non
             h.header[k] = (v, c)
         return h
 
-    write_fits(out / f"mosaic_{band}.fits", [img(injected, "SCI"), img(wht, "WHT", "")], prov,
-               cards)
+    weight = img(wht, "INVVAR", "")
+    if noise is not None:  # the input's aperture noise table still describes the image
+        from .noisecards import noise_cards
+
+        for k, v, c in noise_cards(*noise):
+            weight.header[k] = (v, c)
+    write_fits(out / f"mosaic_{band}.fits", [img(injected, "IMAGE"), weight], prov, cards)
     # segmentation of the injected light alone: above 1 sigma of the image's noise
     _, _, std = sigma_clipped_stats(sci[wht > 0], sigma=3.0)
     seg = dominant_source(stamps, rate, np.asarray(sources["id"]), sci.shape, psf, std)
-    write_fits(out / f"truth_image_{band}.fits", [img(model, "SCI"), img(seg, "SEGM", "")],
+    write_fits(out / f"truth_image_{band}.fits", [img(model, "IMAGE"), img(seg, "SEGMAP", "")],
                prov, cards)
     ph = fits.ImageHDU(psf.astype(np.float32), name="PSF_DET")
     ph.header["PIXSCALE"] = (scale, "[arcsec] PSF pixel")
@@ -241,8 +263,10 @@ def inject_into_image(image_path, sc: Scenario, band: str, out_dir, psf_path=Non
 
     # detect on the original and on the injected image; keep only new detections
     exptime = float(header.get("EXPTIME", 0.0)) or None
-    before = detect_sources(sci, wht, wcs, sc.detection, fwhm, zp, scale, exptime).catalog
-    after = detect_sources(injected, wht, wcs, sc.detection, fwhm, zp, scale, exptime).catalog
+    before = detect_sources(sci, wht, wcs, sc.detection, fwhm, zp, scale, exptime,
+                            noise_table=noise).catalog
+    after = detect_sources(injected, wht, wcs, sc.detection, fwhm, zp, scale, exptime,
+                           noise_table=noise).catalog
     r = sc.score.match_radius_arcsec
     if len(before) and len(after):
         m = match_sky(np.asarray(after["ra"]), np.asarray(after["dec"]),

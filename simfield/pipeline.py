@@ -39,7 +39,7 @@ __all__ = ["RunResult", "run_scenario", "make_bands", "SEGMENTATION_NSIGMA"]
 
 log = logging.getLogger("simfield")
 
-#: A mosaic pixel belongs to a truth source in the SEGM map where that source contributes the
+#: A mosaic pixel belongs to a truth source in the SEGMAP map where that source contributes the
 #: most light and at least this many times the sky-limited noise of one mosaic pixel.
 SEGMENTATION_NSIGMA = 1.0
 
@@ -363,8 +363,8 @@ def _render_tile(ctx: _TileContext, i: int) -> dict:
             seg = _resample_ids(seg_scene, tile.sgrid, tile.mgrid)
             del seg_scene
             f = ctx.files[f"truth_image_{b.name}.fits"]
-            f.array("SCI")[msec] = sample_scene(scene, tile.sgrid, tile.mgrid)
-            f.array("SEGM")[msec] = seg
+            f.array("IMAGE")[msec] = sample_scene(scene, tile.sgrid, tile.mgrid)
+            f.array("SEGMAP")[msec] = seg
         sky = b.sky_rate(area, tel.pixel_scale_arcsec)
 
         def exposures():
@@ -398,8 +398,9 @@ def _render_tile(ctx: _TileContext, i: int) -> dict:
         scene = None  # the closure above holds it until here
         with timer("mosaic"):
             f = ctx.files[f"mosaic_{b.name}.fits"]
-            for name in ("sci", "wht", "exp", "dq"):
-                f.array(name.upper())[msec] = getattr(mosaic, name)
+            for name, ext in (("sci", "IMAGE"), ("wht", "INVVAR"), ("exp", "EXPOSURE"),
+                              ("dq", "FLAGS")):
+                f.array(ext)[msec] = getattr(mosaic, name)
             ctx.files[f"truth_image_{b.name}.fits"].array("ARTEFACT")[msec] = artefacts
         del mosaic, seg
     if ctx.lens is not None:
@@ -466,7 +467,7 @@ def _band_depth(sc: Scenario, b: Band, psf_core, files: dict, mgrid: Grid) -> di
     The empty-sky apertures are placed over the whole written mosaic at once (memory maps of
     its files), so nothing here depends on the tiling. ``aperture_noise`` compares, at the
     depth's radius and at the noise table's radii 2 and 10 pixels, the scatter of aperture
-    sums of mosaic minus truth image with the files' statement F(r) sqrt(sum 1/WHT).
+    sums of mosaic minus truth image with the files' statement F(r) sqrt(sum 1/INVVAR).
     """
     from .noisecards import noise_factor, read_noise_factors
     from .optics.psf import effective_psf
@@ -480,8 +481,8 @@ def _band_depth(sc: Scenario, b: Band, psf_core, files: dict, mgrid: Grid) -> di
     ee = float(np.interp(r_ap, eff.ee_radii_arcsec, eff.ee_values))
     sky = b.sky_rate(tel.collecting_area_m2, tel.pixel_scale_arcsec)
     mf, tf = files[f"mosaic_{b.name}.fits"], files[f"truth_image_{b.name}.fits"]
-    sci, wht = mf.array("SCI", "r"), mf.array("WHT", "r")
-    truth, segm = tf.array("SCI", "r"), tf.array("SEGM", "r")
+    sci, wht = mf.array("IMAGE", "r"), mf.array("INVVAR", "r")
+    truth, segm = tf.array("IMAGE", "r"), tf.array("SEGMAP", "r")
     with np.errstate(divide="ignore"):
         var = _LazyInverse(wht)
     table = read_noise_factors(_noise_header(mf))
@@ -529,10 +530,10 @@ class _LazyInverse:
 
 
 def _noise_header(f) -> fits.Header:
-    """The WHT extension's header of a section file being written (its noise table)."""
+    """The INVVAR extension's header of a section file being written (its noise table)."""
     with open(f.path, "rb") as fh:
         hl = fits.open(fh, memmap=False, lazy_load_hdus=True)
-        return hl["WHT"].header.copy()
+        return hl["INVVAR"].header.copy()
 
 
 def _write_exposure_section(f, e, tile, k: int, mgrid: Grid) -> None:
@@ -542,7 +543,7 @@ def _write_exposure_section(f, e, tile, k: int, mgrid: Grid) -> None:
 
     y0, y1, x0, x1 = tile.exposures[k]
     own = owned_pixels(tile, k, mgrid)
-    for name, data in (("SCI", e.sci), ("VAR", e.var), ("DQ", e.dq)):
+    for name, data in (("IMAGE", e.sci), ("VARIANCE", e.var), ("FLAGS", e.dq)):
         view = f.array(name)[y0:y1, x0:x1]
         view[own] = data[own]
 
@@ -579,11 +580,11 @@ def _image_files(out: Path, sc: Scenario, bands: list[Band], mgrid: Grid, egrids
         ncards = noise_cards(nc.radii_pix, nc.factors, nc.factor_inf)
         k = nc.rho.shape[0]
         items.append((out / f"mosaic_{b.name}.fits", [
-            ImageSpec("SCI", mgrid.shape, np.float32, hdr(mgrid, "electron/s", mcards)),
-            ImageSpec("WHT", mgrid.shape, np.float32,
+            ImageSpec("IMAGE", mgrid.shape, np.float32, hdr(mgrid, "electron/s", mcards)),
+            ImageSpec("INVVAR", mgrid.shape, np.float32,
                       hdr(mgrid, "s2/electron2", mcards + ncards)),
-            ImageSpec("EXP", mgrid.shape, np.float32, hdr(mgrid, "s")),
-            ImageSpec("DQ", mgrid.shape, np.int32, hdr(mgrid, "", dq_cards)),
+            ImageSpec("EXPOSURE", mgrid.shape, np.float32, hdr(mgrid, "s")),
+            ImageSpec("FLAGS", mgrid.shape, np.int32, hdr(mgrid, "", dq_cards)),
             ImageSpec("NOISECOR", (k, k), np.float32,
                       [("NCDESC", "correlation of pixel noise at lags (centre: 0)", "")]
                       + ncards)], mcards))
@@ -592,16 +593,16 @@ def _image_files(out: Path, sc: Scenario, bands: list[Band], mgrid: Grid, egrids
                      ("SEGTHR", float(SEGMENTATION_NSIGMA * sigma), "[electron/s] threshold"),
                      seg_note]
         items.append((out / f"truth_image_{b.name}.fits", [
-            ImageSpec("SCI", mgrid.shape, np.float32, hdr(mgrid, "electron/s", cards)),
-            ImageSpec("SEGM", mgrid.shape, np.int32, hdr(mgrid, "", seg_cards)),
+            ImageSpec("IMAGE", mgrid.shape, np.float32, hdr(mgrid, "electron/s", cards)),
+            ImageSpec("SEGMAP", mgrid.shape, np.int32, hdr(mgrid, "", seg_cards)),
             ImageSpec("ARTEFACT", mgrid.shape, np.int16, hdr(mgrid, "", art_cards))], cards))
         if srv.write_exposures:
             ecards = cards + [("EXPTIME", srv.exposure_time_s, "[s] exposure time")]
             for k, g in enumerate(egrids):
                 items.append((out / "exposures" / f"exp_{b.name}_{k:02d}.fits", [
-                    ImageSpec("SCI", g.shape, np.float32, hdr(g, "electron/s", ecards)),
-                    ImageSpec("VAR", g.shape, np.float32, hdr(g, "electron2/s2")),
-                    ImageSpec("DQ", g.shape, np.int32,
+                    ImageSpec("IMAGE", g.shape, np.float32, hdr(g, "electron/s", ecards)),
+                    ImageSpec("VARIANCE", g.shape, np.float32, hdr(g, "electron2/s2")),
+                    ImageSpec("FLAGS", g.shape, np.int32,
                               hdr(g, "", survey.flag_header_cards("exposure")))], ecards))
     return items
 
@@ -797,7 +798,7 @@ def _band_cards(b: Band, zp: float):
     return [("BAND", b.name, "simfield band name"),
             ("PIVOT", round(b.pivot_nm, 4), "[nm] pivot wavelength"),
             ("ZP_AB", round(zp, 5), "[mag] AB magnitude of 1 e-/s"),
-            ("PHOTFNJY", float(ab_to_njy(zp)), "[nJy] flux density giving 1 e-/s")]
+            ("FLUXNJY", float(ab_to_njy(zp)), "[nJy] flux density giving 1 e-/s")]
 
 
 def _image_hdu(data, name, grid: Grid, bunit: str, cards=()) -> fits.ImageHDU:

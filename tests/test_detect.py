@@ -142,14 +142,14 @@ def _seam_field(noise=0.0, seed=11):
 
 
 def _write_mosaic(path, g, sci, wht):
-    """A mosaic file as the survey stage writes it (SCI, WHT, DQ with the no-data bit)."""
+    """A mosaic file as the survey stage writes it (IMAGE, INVVAR, FLAGS with the no-data bit)."""
     from astropy.io import fits
 
     h = g.wcs.to_header()
     h["ZP_AB"], h["EXPTIME"] = ZP, 1e4
-    dq = fits.ImageHDU(np.zeros(sci.shape, np.int32), h, "DQ")
+    dq = fits.ImageHDU(np.zeros(sci.shape, np.int32), h, "FLAGS")
     dq.header["FNODATA"] = 1
-    fits.HDUList([fits.PrimaryHDU(), fits.ImageHDU(sci, h, "SCI"), fits.ImageHDU(wht, h, "WHT"),
+    fits.HDUList([fits.PrimaryHDU(), fits.ImageHDU(sci, h, "IMAGE"), fits.ImageHDU(wht, h, "INVVAR"),
                   dq]).writeto(path)
 
 
@@ -206,7 +206,7 @@ def test_detection_tiles_in_worker_processes_give_the_same_result(tmp_path):
 
 def test_run_detection_writes_segm_with_global_ids_by_sections(tmp_path, monkeypatch,
                                                                 scenario_factory):
-    """run_detection with small tile constants writes a SEGM (mosaic WCS) whose label at each
+    """run_detection with small tile constants writes a SEGMAP (mosaic WCS) whose label at each
     kept detection's centroid pixel is that detection's id, and every footprint pixel of the
     untiled photutils segmentation carries the id of the same object."""
     from astropy.io import fits
@@ -226,8 +226,8 @@ def test_run_detection_writes_segm_with_global_ids_by_sections(tmp_path, monkeyp
     with fits.open(tmp_path / "detections_b36.fits") as hl:
         assert hl[0].header["BAND"] == "b36" and hl[0].header["SIMFSEED"] == 3
         cat = hl["DETECTIONS"].data
-        segm = np.asarray(hl["SEGM"].data)
-        assert_allclose(detect.WCS(hl["SEGM"].header).wcs.crval, g.wcs.wcs.crval, rtol=1e-12)
+        segm = np.asarray(hl["SEGMAP"].data)
+        assert_allclose(detect.WCS(hl["SEGMAP"].header).wcs.crval, g.wcs.wcs.crval, rtol=1e-12)
         assert hl["DETECTIONS"].header["NTILES"] == 9
     assert counts["b36"] == len(cat)
     ids = np.asarray(cat["id"])
@@ -255,7 +255,7 @@ def test_one_tile_mosaic_gives_exactly_detect_sources(tmp_path):
     g, sci, wht, x, y = _seam_field(0.003)
     _write_mosaic(tmp_path / "m.fits", g, sci, wht)
     # as run_detection always did: WCS and pixel scale read back from the file's header
-    w = WCS(fits.getheader(tmp_path / "m.fits", "SCI"))
+    w = WCS(fits.getheader(tmp_path / "m.fits", "IMAGE"))
     scale = float(np.sqrt(abs(np.linalg.det(w.pixel_scale_matrix))) * 3600.0)
     ref = detect_sources(sci, wht, w, CFG_TILES, FWHM, ZP, scale, exptime=1e4)
     segm = np.zeros(sci.shape, np.int32)

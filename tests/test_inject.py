@@ -69,7 +69,7 @@ def test_injected_light_sits_at_truth_positions_with_truth_flux(injected):
     practice)."""
     out, _ = injected
     src = Table.read(out / "truth.fits", hdu="SOURCES")
-    model = fits.getdata(out / "truth_image_b23.fits", "SCI").astype(float)
+    model = fits.getdata(out / "truth_image_b23.fits", "IMAGE").astype(float)
     rate = 10 ** (-0.4 * (src["mag_b23"] - 28.0))
     m = 30  # pixels; sources straddling the box edge make the comparison a bracket
     box = model[m:300 - m, m:320 - m].sum()

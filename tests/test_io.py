@@ -22,34 +22,34 @@ def test_sections_read_back_through_astropy(tmp_path):
     g = Grid(70, 45, 0.04, 150.0, 2.0)
     hdr = g.wcs.to_header()
     hdr["BUNIT"] = "electron/s"
-    specs = [ImageSpec("SCI", g.shape, np.float32, hdr), ImageSpec("DQ", g.shape, np.int32,
+    specs = [ImageSpec("IMAGE", g.shape, np.float32, hdr), ImageSpec("FLAGS", g.shape, np.int32,
                                                                     [("BUNIT", "", "bits")])]
     rng = np.random.default_rng(0)
     sci = rng.normal(size=g.shape).astype(np.float32)
     dq = rng.integers(0, 64, g.shape).astype(np.int32)
     with section_files([(tmp_path / "m.fits", specs, [("BAND", "b10", "band")])], PROV) as (f,):
         for y0 in range(0, g.ny, 20):  # in strips, as tiles do
-            f.array("SCI")[y0:y0 + 20, :30] = sci[y0:y0 + 20, :30]
-            f.array("SCI")[y0:y0 + 20, 30:] = sci[y0:y0 + 20, 30:]
-        f.array("DQ")[:] = dq
+            f.array("IMAGE")[y0:y0 + 20, :30] = sci[y0:y0 + 20, :30]
+            f.array("IMAGE")[y0:y0 + 20, 30:] = sci[y0:y0 + 20, 30:]
+        f.array("FLAGS")[:] = dq
     with fits.open(tmp_path / "m.fits") as hl:
         hl.verify("exception")
-        assert_array_equal(hl["SCI"].data, sci)
-        assert_array_equal(hl["DQ"].data, dq)
+        assert_array_equal(hl["IMAGE"].data, sci)
+        assert_array_equal(hl["FLAGS"].data, dq)
         assert hl[0].header["BAND"] == "b10" and hl[0].header["SIMFSEED"] == 3
-        assert hl["SCI"].header["BUNIT"] == "electron/s"
-        w = WCS(hl["SCI"].header)
+        assert hl["IMAGE"].header["BUNIT"] == "electron/s"
+        w = WCS(hl["IMAGE"].header)
         assert np.allclose(w.all_pix2world(3.0, 4.0, 0), g.pixel_to_sky(3.0, 4.0), atol=1e-10)
     assert list(tmp_path.iterdir()) == [tmp_path / "m.fits"]
 
 
 def test_failure_leaves_no_file(tmp_path):
     """An error inside the block removes every partly written file (common practice)."""
-    specs = [ImageSpec("SCI", (10, 10), np.float32)]
+    specs = [ImageSpec("IMAGE", (10, 10), np.float32)]
     with pytest.raises(RuntimeError, match="stop"):
         with section_files([(tmp_path / "a.fits", specs, []), (tmp_path / "b.fits", specs, [])],
                            PROV) as files:
-            files[0].array("SCI")[:] = 1.0
+            files[0].array("IMAGE")[:] = 1.0
             raise RuntimeError("stop")
     assert list(tmp_path.iterdir()) == []
 

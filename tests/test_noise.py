@@ -60,13 +60,13 @@ def _stated_factor(header, r):
 @pytest.mark.parametrize("radius", [3.0, 6.0])
 def test_empty_aperture_noise_matches_what_the_files_say(field, band, radius):
     """Robust scatter of photutils aperture sums on IMAGE minus the truth image, in empty sky,
-    agrees within 10% with F(r) sqrt(sum 1/WHT) from the written weight map and header."""
+    agrees within 10% with F(r) sqrt(sum 1/INVVAR) from the written weight map and header."""
     sc, run = field
     with fits.open(run / f"mosaic_{band}.fits") as m, fits.open(run / f"truth_image_{band}.fits") as t:
-        sci, wht = m["SCI"].data.astype(float), m["WHT"].data.astype(float)
-        header = m["WHT"].header
-        diff = sci - t["SCI"].data.astype(float)
-        bad = (wht <= 0) | ndimage.binary_dilation(t["SEGM"].data > 0, iterations=4)
+        sci, wht = m["IMAGE"].data.astype(float), m["INVVAR"].data.astype(float)
+        header = m["INVVAR"].header
+        diff = sci - t["IMAGE"].data.astype(float)
+        bad = (wht <= 0) | ndimage.binary_dilation(t["SEGMAP"].data > 0, iterations=4)
     var = np.where(wht > 0, 1.0 / np.where(wht > 0, wht, 1.0), 0.0)
     rng = np.random.default_rng(3)
     ny, nx = sci.shape
@@ -103,23 +103,23 @@ def test_mosaic_flags_a_few_percent_at_most(field):
     sc, run = field
     for band in BANDS:
         with fits.open(run / f"mosaic_{band}.fits") as m:
-            dq = m["DQ"].data
-            h = m["DQ"].header
+            dq = m["FLAGS"].data
+            h = m["FLAGS"].header
         assert (dq != 0).mean() <= 0.05
         assert {h["FNODATA"], h["FFEWEXP"], h["FSATUR"], h["FCRONLY"]} == {1, 2, 4, 8}
 
 
 def test_detector_pattern_does_not_repeat_with_the_dithers(tmp_path):
     """Hot pixels (10x the default density) and their IPC neighbours leave no peaks that repeat
-    at the dither offsets: peaks above 6 sigma in (IMAGE - truth) sqrt(WHT) at any dither
+    at the dither offsets: peaks above 6 sigma in (IMAGE - truth) sqrt(INVVAR) at any dither
     separation are no more common than at other separations of the same length (the
     statistic that exposed detector pixels seen once per exposure)."""
     sc = _field(tmp_path, "detector.hot_pixel_fraction=1e-3", bands=("b36",))
     run_scenario(sc, tmp_path / "run")
     with fits.open(tmp_path / "run" / "mosaic_b36.fits") as m, \
             fits.open(tmp_path / "run" / "truth_image_b36.fits") as t:
-        wht = m["WHT"].data.astype(float)
-        z = (m["SCI"].data - t["SCI"].data) * np.sqrt(wht)
+        wht = m["INVVAR"].data.astype(float)
+        z = (m["IMAGE"].data - t["IMAGE"].data) * np.sqrt(wht)
     pk = np.argwhere((z == ndimage.maximum_filter(z, 3)) & (z > 6) & (wht > 0))
     grids = sv.exposure_grids(sc.survey, sc.telescope, stream(sc.seed, "dither"))
     off = np.array([[g.eta0, g.xi0] for g in grids]) / sc.survey.mosaic_pixel_arcsec

@@ -48,10 +48,10 @@ def test_every_contract_file_is_written(run):
                 assert hl[0].header["SIMFSEED"] == sc.seed
                 assert len(hl[0].header["SIMFHASH"]) == 16
         with fits.open(out / f"mosaic_{band}.fits") as hl:
-            assert [h.name for h in hl[1:]] == ["SCI", "WHT", "EXP", "DQ", "NOISECOR"]
-            assert hl["SCI"].header["BUNIT"] == "electron/s"
-            assert hl["SCI"].header["EXPTIME"] > 0 and "ZP_AB" in hl["SCI"].header
-            assert WCS(hl["SCI"].header).wcs.ctype[0] == "RA---TAN"
+            assert [h.name for h in hl[1:]] == ["IMAGE", "INVVAR", "EXPOSURE", "FLAGS", "NOISECOR"]
+            assert hl["IMAGE"].header["BUNIT"] == "electron/s"
+            assert hl["IMAGE"].header["EXPTIME"] > 0 and "ZP_AB" in hl["IMAGE"].header
+            assert WCS(hl["IMAGE"].header).wcs.ctype[0] == "RA---TAN"
         with fits.open(out / f"psf_{band}.fits") as hl:
             assert hl["PSF"].header["PIXSCALE"] > 0 and hl["PSF"].header["PIVOT"] > 0
     for name in ("truth.fits", "bands.ecsv", "summary.json", COMPLETE_MARKER):
@@ -80,7 +80,7 @@ def test_truth_positions_round_trip_through_file_wcs(run):
     """Truth RA/Dec -> pixel with astropy's WCS read from the mosaic header gives x, y."""
     _, res = run
     img = Table.read(res.out_dir / "truth.fits", hdu="IMAGES")
-    w = WCS(fits.getheader(res.out_dir / "mosaic_b23.fits", "SCI"))
+    w = WCS(fits.getheader(res.out_dir / "mosaic_b23.fits", "IMAGE"))
     x, y = w.all_world2pix(img["ra"], img["dec"], 0)
     assert_allclose(x, img["x"], atol=1e-6)
     assert_allclose(y, img["y"], atol=1e-6)
@@ -91,7 +91,7 @@ def test_noiseless_scene_conserves_flux(run):
     _, res = run
     src = Table.read(res.out_dir / "truth.fits", hdu="SOURCES")
     with fits.open(res.out_dir / "truth_image_b23.fits") as hl:
-        img, zp = hl["SCI"].data.astype(float), hl["SCI"].header["ZP_AB"]
+        img, zp = hl["IMAGE"].data.astype(float), hl["IMAGE"].header["ZP_AB"]
     ny, nx = img.shape
     # sum inside a box 1.5" from the edges, sources whose light stays inside it
     m = 50  # mosaic pixels (1.5")
@@ -116,7 +116,7 @@ def test_star_light_centred_on_truth_position(tmp_path):
                         "detection.enabled=false")
     res = run_scenario(sc, tmp_path / "stars")
     src = Table.read(res.out_dir / "truth.fits", hdu="SOURCES")
-    img = fits.getdata(res.out_dir / "truth_image_b23.fits", "SCI").astype(float)
+    img = fits.getdata(res.out_dir / "truth_image_b23.fits", "IMAGE").astype(float)
     h, checked = 8, 0
     for s in src:
         x0, y0 = int(round(s["x"])), int(round(s["y"]))
@@ -137,9 +137,9 @@ def test_same_seed_identical_other_seed_different(run, tmp_path):
     sc, res = run
     again = run_scenario(small_scenario(tmp_path), tmp_path / "b")
     other = run_scenario(small_scenario(tmp_path, "seed=2"), tmp_path / "c")
-    a = fits.getdata(res.out_dir / "mosaic_b13.fits", "SCI")
-    assert np.array_equal(a, fits.getdata(again.out_dir / "mosaic_b13.fits", "SCI"))
-    assert not np.array_equal(a, fits.getdata(other.out_dir / "mosaic_b13.fits", "SCI"))
+    a = fits.getdata(res.out_dir / "mosaic_b13.fits", "IMAGE")
+    assert np.array_equal(a, fits.getdata(again.out_dir / "mosaic_b13.fits", "IMAGE"))
+    assert not np.array_equal(a, fits.getdata(other.out_dir / "mosaic_b13.fits", "IMAGE"))
 
 
 def test_lensed_run_lists_every_image_with_magnification(tmp_path):
@@ -182,8 +182,8 @@ def test_lensed_run_lists_every_image_with_magnification(tmp_path):
                                         "survey.height_arcsec=24", "detection.enabled=false",
                                         "survey.tile_pixels=150"), tmp_path / "lensed_tiled")
     for b in ("b13", "b23"):
-        one = fits.getdata(res.out_dir / f"truth_image_{b}.fits", "SCI")
-        many = fits.getdata(tiled.out_dir / f"truth_image_{b}.fits", "SCI")
+        one = fits.getdata(res.out_dir / f"truth_image_{b}.fits", "IMAGE")
+        many = fits.getdata(tiled.out_dir / f"truth_image_{b}.fits", "IMAGE")
         assert_allclose(many, one, rtol=0, atol=1e-5 * one.max())
 
 
@@ -200,7 +200,7 @@ def test_external_catalogue_scores_like_the_built_in_path(run, tmp_path):
     band = sc.detection_bands[0]
     own = json.loads((res.out_dir / "score" / band / "summary.json").read_text())
     with fits.open(res.out_dir / f"mosaic_{band}.fits") as hl:
-        sci, wht, hdr = hl["SCI"].data, hl["WHT"].data, hl["SCI"].header
+        sci, wht, hdr = hl["IMAGE"].data, hl["INVVAR"].data, hl["IMAGE"].header
     fwhm = fits.getheader(res.out_dir / f"psf_{band}.fits", "PSF_DET")["FWHM"]
     strict = replace(sc.detection, threshold_sigma=4.0)
     cat = detect_sources(sci, wht, WCS(hdr), strict, fwhm, hdr["ZP_AB"], 0.04).catalog
@@ -234,14 +234,14 @@ def test_tiling_changes_no_truth_and_leaves_no_seams(tmp_path):
     b = "b23"
     with fits.open(one.out_dir / f"truth_image_{b}.fits") as a, \
             fits.open(many.out_dir / f"truth_image_{b}.fits") as c:
-        sa, sc_ = a["SCI"].data, c["SCI"].data
+        sa, sc_ = a["IMAGE"].data, c["IMAGE"].data
         assert_allclose(sc_, sa, rtol=0, atol=1e-6 * sa.max())
-        assert np.array_equal(a["SEGM"].data, c["SEGM"].data)
+        assert np.array_equal(a["SEGMAP"].data, c["SEGMAP"].data)
     with fits.open(one.out_dir / f"mosaic_{b}.fits") as a, \
             fits.open(many.out_dir / f"mosaic_{b}.fits") as c:
-        for ext in ("SCI", "WHT"):
+        for ext in ("IMAGE", "INVVAR"):
             assert_allclose(c[ext].data, a[ext].data, rtol=1e-5, atol=1e-6 * a[ext].data.max())
-        for ext in ("EXP", "DQ"):
+        for ext in ("EXPOSURE", "FLAGS"):
             assert np.array_equal(c[ext].data, a[ext].data)
 
 
@@ -259,9 +259,9 @@ def test_written_exposures_are_whole_and_consistent_with_their_wcs(tmp_path):
     star = stars[np.argmin(stars["mag_b23"])]
     for f in files:
         with fits.open(f) as hl:
-            var, sci = hl["VAR"].data, hl["SCI"].data
+            var, sci = hl["VARIANCE"].data, hl["IMAGE"].data
             assert np.all(var > 0) and np.all(np.isfinite(sci))
-            x, y = WCS(hl["SCI"].header).all_world2pix(star["ra"], star["dec"], 0)
+            x, y = WCS(hl["IMAGE"].header).all_world2pix(star["ra"], star["dec"], 0)
         ix, iy = int(round(float(x))), int(round(float(y)))
         cut = sci[iy - 3:iy + 4, ix - 3:ix + 4] - np.median(sci)
         yy, xx = np.mgrid[iy - 3:iy + 4, ix - 3:ix + 4]

@@ -373,5 +373,5 @@ def test_killed_run_leaves_whole_files_and_rerun_succeeds(tiny_run, tmp_path):
     assert (run / COMPLETE_MARKER).is_file()
     assert len(_check_final_files(run)) > 3
     assert not list(run.rglob("*.part"))
-    np.testing.assert_array_equal(fits.getdata(run / "mosaic_b17.fits", "SCI"),
-                                  fits.getdata(tiny_run / "mosaic_b17.fits", "SCI"))
+    np.testing.assert_array_equal(fits.getdata(run / "mosaic_b17.fits", "IMAGE"),
+                                  fits.getdata(tiny_run / "mosaic_b17.fits", "IMAGE"))

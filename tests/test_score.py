@@ -312,11 +312,11 @@ def _make_run(path, seed=5):
     sci[20:23, 250:253] += 1.0  # an artefact, flagged
     hdr = g.wcs.to_header()
     hdr["ZP_AB"], hdr["EXPTIME"], hdr["BUNIT"] = ZP, 1e4, "electron/s"
-    fits.HDUList([fits.PrimaryHDU(), fits.ImageHDU(sci.astype(np.float32), hdr, "SCI"),
-                  fits.ImageHDU(wht.astype(np.float32), hdr, "WHT"),
-                  fits.ImageHDU(dq, hdr, "DQ")]).writeto(path / f"mosaic_{BAND}.fits")
-    fits.HDUList([fits.PrimaryHDU(), fits.ImageHDU(img.astype(np.float32), hdr, "SCI"),
-                  fits.ImageHDU(segm, hdr, "SEGM")]).writeto(path / f"truth_image_{BAND}.fits")
+    fits.HDUList([fits.PrimaryHDU(), fits.ImageHDU(sci.astype(np.float32), hdr, "IMAGE"),
+                  fits.ImageHDU(wht.astype(np.float32), hdr, "INVVAR"),
+                  fits.ImageHDU(dq, hdr, "FLAGS")]).writeto(path / f"mosaic_{BAND}.fits")
+    fits.HDUList([fits.PrimaryHDU(), fits.ImageHDU(img.astype(np.float32), hdr, "IMAGE"),
+                  fits.ImageHDU(segm, hdr, "SEGMAP")]).writeto(path / f"truth_image_{BAND}.fits")
     py, px = np.mgrid[-40:41, -40:41]
     # Gaussian core, r^-3 diffraction halo (Born & Wolf sec. 8.5 envelope), spikes on the axes
     psf = np.exp(-(px**2 + py**2) / (2 * psf_sig**2)) + 1e-3 / (np.hypot(px, py) + 3) ** 3 + \
@@ -534,8 +534,8 @@ def test_load_truth_maps_images_and_reads_them_like_astropy(run_dir):
 
     path, _ = run_dir
     t = load_truth(path, BAND)
-    for key, fname, ext in (("sci", "mosaic", "SCI"), ("dq", "mosaic", "DQ"),
-                            ("segm", "truth_image", "SEGM")):
+    for key, fname, ext in (("sci", "mosaic", "IMAGE"), ("dq", "mosaic", "FLAGS"),
+                            ("segm", "truth_image", "SEGMAP")):
         assert isinstance(t[key], np.memmap), key
         assert t[key].dtype.itemsize == 4, key
         ref = fits.getdata(path / f"{fname}_{BAND}.fits", ext)
@@ -543,7 +543,7 @@ def test_load_truth_maps_images_and_reads_them_like_astropy(run_dir):
     assert t["shape"] == (300, 300)
     rng = np.random.default_rng(2)
     x, y = rng.uniform(-3, 303, 50), rng.uniform(-3, 303, 50)
-    ref = fits.getdata(path / f"truth_image_{BAND}.fits", "SEGM")
+    ref = fits.getdata(path / f"truth_image_{BAND}.fits", "SEGMAP")
     ix, iy = np.clip(np.round(x).astype(int), 0, 299), np.clip(np.round(y).astype(int), 0, 299)
     assert_array_equal(pixel_values(t["segm"], x, y), ref[iy, ix])
 
@@ -554,9 +554,9 @@ def test_flagged_pixel_makes_an_unmatched_detection_an_artefact(tmp_path):
     value was measured (a repaired cosmic ray) does not make one."""
     g, *_ = _make_run(tmp_path)
     with fits.open(tmp_path / f"mosaic_{BAND}.fits", mode="update") as hl:
-        hl["DQ"].data[100, 260] = 8  # only cosmic-ray-repaired pixels contributed
+        hl["FLAGS"].data[100, 260] = 8  # only cosmic-ray-repaired pixels contributed
     with fits.open(tmp_path / f"truth_image_{BAND}.fits", mode="update") as hl:
-        art = np.zeros(hl["SCI"].data.shape, np.int16)
+        art = np.zeros(hl["IMAGE"].data.shape, np.int16)
         art[100, 40] = 2  # saturated in an exposure
         hl.append(fits.ImageHDU(art, name="ARTEFACT"))
     ra, dec = g.pixel_to_sky(np.array([40.0, 260.0]), np.array([100.0, 100.0]))
@@ -575,7 +575,7 @@ def test_colour_preview_is_the_strided_whole_image_preview(run_dir):
 
     path, _ = run_dir
     rgb, used = _colour_preview(path, max_side=70)
-    full = np.nan_to_num(fits.getdata(path / f"mosaic_{BAND}.fits", "SCI").astype(float))
+    full = np.nan_to_num(fits.getdata(path / f"mosaic_{BAND}.fits", "IMAGE").astype(float))
     c = full[::5, ::5]  # ceil(300 / 70) = 5
     med = np.median(c)
     mad = 1.4826 * np.median(np.abs(c - med))

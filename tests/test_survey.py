@@ -276,13 +276,13 @@ def test_mosaic_hdus_verify():
     hdus = fits.HDUList(sv.mosaic_hdus(m, mg, band="b17", zeropoint=27.9,
                                        header={"SEED": 3}))
     hdus.verify("exception")
-    assert hdus["SCI"].header["BUNIT"] == "electron/s"
-    assert hdus["SCI"].header["EXPTIME"] == 4000.0
+    assert hdus["IMAGE"].header["BUNIT"] == "electron/s"
+    assert hdus["IMAGE"].header["EXPTIME"] == 4000.0
     # the mosaic flag bits under the keys the pipeline's files use and detection reads
-    dq = hdus["DQ"].header
+    dq = hdus["FLAGS"].header
     assert (dq["FNODATA"], dq["FFEWEXP"], dq["FSATUR"], dq["FCRONLY"]) == (
         sv.MOSAIC_NO_DATA, sv.MOSAIC_FEW_EXPOSURES, sv.MOSAIC_SATURATED, sv.MOSAIC_CR_ONLY)
-    w = WCS(hdus["SCI"].header)
+    w = WCS(hdus["IMAGE"].header)
     assert_allclose(w.all_pix2world([[3.0, 7.0]], 0), mg.wcs.all_pix2world([[3.0, 7.0]], 0),
                     rtol=0, atol=1e-12)
 

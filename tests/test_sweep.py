@@ -322,7 +322,7 @@ def _sci(path: Path) -> np.ndarray:
     from astropy.io import fits
 
     with fits.open(path) as hl:
-        return np.array(hl["SCI"].data)
+        return np.array(hl["IMAGE"].data)
 
 
 @pytest.fixture(scope="module")

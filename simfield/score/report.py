@@ -80,7 +80,7 @@ def _colour_preview(run_dir: Path, max_side: int = 800):
         return None, []
     pick = [names[0], names[len(names) // 2], names[-1]] if len(names) >= 3 else \
         (names + names * 3)[:3]
-    chans = [image_map(run_dir / f"mosaic_{n}.fits", "SCI") for n in pick]
+    chans = [image_map(run_dir / f"mosaic_{n}.fits", "IMAGE") for n in pick]
     step = max(1, int(np.ceil(max(chans[0].shape) / max_side)))
     rgb = []
     for c in chans[::-1]:  # reddest band as red

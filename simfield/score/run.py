@@ -68,7 +68,7 @@ def image_map(path, name: str) -> np.ndarray:
     path : str or Path
         FITS file.
     name : str
-        Extension name (e.g. ``SCI``, ``SEGM``, ``DQ``).
+        Extension name (e.g. ``IMAGE``, ``SEGMAP``, ``FLAGS``).
 
     Returns
     -------
@@ -129,15 +129,15 @@ def load_truth(run_dir, band: str) -> dict:
         raise CatalogError(f"run directory {str(run_dir)!r} does not exist")
     mpath = _need(run_dir / f"mosaic_{band}.fits")
     with fits.open(mpath, memmap=True) as hl:
-        hdr = hl["SCI"].header.copy()
+        hdr = hl["IMAGE"].header.copy()
         dq_bits = None
-        if "DQ" in hl:  # a run without an artefact truth map: saturated or no data
-            h = hl["DQ"].header
+        if "FLAGS" in hl:  # a run without an artefact truth map: saturated or no data
+            h = hl["FLAGS"].header
             dq_bits = int(h.get("FSATUR", 4)) | int(h.get("FNODATA", 1))
-    sci = image_map(mpath, "SCI")
-    dq = image_map(mpath, "DQ") if dq_bits is not None else None
+    sci = image_map(mpath, "IMAGE")
+    dq = image_map(mpath, "FLAGS") if dq_bits is not None else None
     if "ZP_AB" not in hdr:
-        raise CatalogError(f"{mpath.name} has no ZP_AB keyword in its SCI header")
+        raise CatalogError(f"{mpath.name} has no ZP_AB keyword in its IMAGE header")
     wcs = WCS(hdr).celestial
     scale = float(np.sqrt(abs(np.linalg.det(wcs.pixel_scale_matrix))) * 3600.0)
     tpath = _need(run_dir / "truth.fits")
@@ -158,9 +158,9 @@ def load_truth(run_dir, band: str) -> dict:
     ti = run_dir / f"truth_image_{band}.fits"
     if ti.is_file():
         with fits.open(ti, memmap=True) as hl:
-            has_segm, has_art = "SEGM" in hl, "ARTEFACT" in hl
+            has_segm, has_art = "SEGMAP" in hl, "ARTEFACT" in hl
         if has_segm:
-            segm = image_map(ti, "SEGM")
+            segm = image_map(ti, "SEGMAP")
         if has_art:  # the truth knows every artefact pixel: any bit makes an artefact
             dq, dq_bits = image_map(ti, "ARTEFACT"), -1
     psf, fwhm = None, None
@@ -438,7 +438,7 @@ def score_run(run_dir, catalog, band: str, cfg: ScoreConfig | None = None, out_d
         "catalog_duplicates_dropped": int(det.meta.get("n_duplicates", 0)),
         "magnitude_check": mag_check,
     }
-    injected = fits.getheader(run_dir / f"mosaic_{band}.fits", "SCI").get("INJFROM")
+    injected = fits.getheader(run_dir / f"mosaic_{band}.fits", "IMAGE").get("INJFROM")
     if injected and from_file:
         summary["injected_into"] = str(injected)
         summary["purity_note"] = ("the truth holds only the injected sources: the image's own "

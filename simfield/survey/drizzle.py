@@ -234,7 +234,8 @@ class _FlagCounter:
 
 def mosaic_hdus(mosaic: Mosaic, grid: Grid, band: str = "", zeropoint: float | None = None,
                 header: dict | None = None) -> list:
-    """FITS HDUs of a mosaic: an empty primary and SCI, WHT, EXP, DQ image extensions.
+    """FITS HDUs of a mosaic: an empty primary and IMAGE, INVVAR, EXPOSURE, FLAGS image
+    extensions.
 
     Parameters
     ----------
@@ -264,16 +265,16 @@ def mosaic_hdus(mosaic: Mosaic, grid: Grid, band: str = "", zeropoint: float | N
     prim.header["EXPTIME"] = (float(mosaic.exp.max()) if mosaic.exp.size else 0.0,
                               "[s] maximum summed exposure time")
     wcs_header = grid.wcs.to_header()
-    units = {"SCI": ("electron/s", mosaic.sci.astype(np.float32)),
-             "WHT": ("s2/electron2", mosaic.wht.astype(np.float32)),
-             "EXP": ("s", mosaic.exp.astype(np.float32)),
-             "DQ": ("", mosaic.dq.astype(np.int32))}
+    units = {"IMAGE": ("electron/s", mosaic.sci.astype(np.float32)),
+             "INVVAR": ("s2/electron2", mosaic.wht.astype(np.float32)),
+             "EXPOSURE": ("s", mosaic.exp.astype(np.float32)),
+             "FLAGS": ("", mosaic.dq.astype(np.int32))}
     hdus = [prim]
     for name, (unit, data) in units.items():
         h = fits.ImageHDU(data=data, header=wcs_header.copy(), name=name)
         if unit:
             h.header["BUNIT"] = unit
-        if name == "DQ":
+        if name == "FLAGS":
             for key, bit, comment in flag_header_cards("mosaic"):
                 h.header[key] = (bit, comment)
         h.header["EXPTIME"] = (float(mosaic.exp.max()) if mosaic.exp.size else 0.0,
