@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import dataclasses
 import hashlib
+import importlib.resources
 import os
 import typing
 from dataclasses import dataclass, field
@@ -22,7 +23,12 @@ from omegaconf.errors import ConfigKeyError, MissingMandatoryValue, ValidationEr
 
 from .errors import ConfigError, check_range, require
 
+#: The Hydra configuration folder: the repository's ``conf/``, installed as package data
+#: ``simfield.conf`` (so it is found from any directory, editable install or not).
+CONF_DIR = str(importlib.resources.files("simfield.conf"))
+
 __all__ = [
+    "CONF_DIR",
     "BandConfig",
     "PupilConfig",
     "PSFConfig",
