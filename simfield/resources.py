@@ -5,27 +5,32 @@ the expected source count), no stage imports it. :func:`estimate` predicts a sce
 resources without drawing or writing anything; :func:`check_run` refuses (ConfigError naming
 the key to change) a run that would fail or exceed ``limits`` after work had started.
 
-Calibration (2026-12-02, 2-core development machine; ``du -sb`` of the run directory, peak =
-summed PSS of the run and its workers sampled every 0.25 s, GNU time's max RSS alongside):
+Calibration (2026-12-02, 2-core development machine, ``simfield`` under GNU time; disk =
+``du -sb`` of the run folder, peak = summed PSS of the run and its workers sampled every
+0.25 s; max RSS of the largest process in brackets):
 
-=========================  ===========  ===========  ===========  ==========
-run                        disk (du)    estimate     peak PSS     estimate
-=========================  ===========  ===========  ===========  ==========
-``survey=quick``           36.3 MB      36.3 MB      0.36 GB      0.36 GB
-``+ write_exposures``      58.0 MB      58.0 MB      0.36 GB      0.36 GB
-default, ``workers=1``     795 MB       797 MB       0.80 GB      0.80 GB
-default (2 tile procs)     795 MB       797 MB       1.21 GB      1.32 GB
-=========================  ===========  ===========  ===========  ==========
+==============================================  =========  =========  ===============  =======
+run                                             disk       estimate   peak PSS (RSS)   estim.
+==============================================  =========  =========  ===============  =======
+8" x 8", one band (tests/test_resources.py)     4.81 MB    4.77 MB    --               0.34 GB
+``survey=quick``                                36.3 MB    36.3 MB    0.36 (0.38) GB   0.36 GB
+``survey=quick survey.write_exposures=true``    58.0 MB    57.9 MB    0.36 (0.38) GB   0.36 GB
+default, ``workers=1``                          795 MB     796 MB     1.15 (1.37) GB   1.18 GB
+default (2 tile processes)                      795 MB     796 MB     1.21 (1.23) GB   1.18 GB
+60" x 60", 4 tiles of 750^2, 2 procs, no det.  286 MB     286 MB     0.60 (0.36) GB   0.60 GB
+==============================================  =========  =========  ===============  =======
 
-Disk is the image bytes (exact: every extension's pixels times its type's size, plus the
-measured header blocks), the PSF files (their stamp sizes), and per-source and per-band
-constants for the tables, the score folder and the small files, fitted to these runs (within
-1% here). Memory is a base (interpreter, libraries, PSFs: fitted) plus, per tile process,
-:data:`TILE_BYTES_PER_SCENE_PIXEL` times its scene window's pixels, or per detection process
-:data:`DETECTION_BYTES_PER_PIXEL` times its tile's mosaic pixels (the larger phase counts);
-fitted to the quick and ``workers=1`` runs, it overestimates the two-process run by 9% (the
-workers share the parent's pages, which PSS splits) and is meant as an upper guide: expect
-within ~30% elsewhere.
+Disk is the image bytes (exact: each extension's pixels times its type's size, plus the
+measured header blocks; the 60" run was not used in the fit and agrees to 0.03%), the PSF
+files (their stamp sizes) and constants for the truth table, the score folder (its mosaic
+preview grows with the mosaic up to a cap) and the small files, fitted to the other runs.
+Memory is a base (interpreter, libraries, PSFs) plus the parent's share per mosaic pixel,
+plus the larger of the tile phase (processes x :data:`TILE_BYTES_PER_SCENE_PIXEL` x the scene
+window of a tile) and the detection phase (processes x :data:`DETECTION_BYTES_PER_PIXEL` x
+the mosaic pixels of a detection tile). Each coefficient rests on one or two of these runs (the
+default run's peak is its one detection tile; the 60" run's its two tile processes), so
+expect it within ~10% for fields like these and treat it as a guide (~30%) for other tile
+sizes, source densities and many processes.
 """
 
 from __future__ import annotations
@@ -48,7 +53,7 @@ BASE_MEMORY_BYTES = 0.33e9
 #: Memory the parent grows by per mosaic pixel of one band (sources, mapped file pages).
 PARENT_BYTES_PER_MOSAIC_PIXEL = 16.0
 #: Memory of one tile's rendering per scene pixel of its window (all bands in turn).
-TILE_BYTES_PER_SCENE_PIXEL = 23.0
+TILE_BYTES_PER_SCENE_PIXEL = 32.0
 #: Memory of one detection tile per mosaic pixel (photutils segmentation and catalogue;
 #: 1.2-1.6 GB for a 3584^2 tile in DEVELOPERS.md, 1.54 GB here).
 DETECTION_BYTES_PER_PIXEL = 120.0
@@ -56,8 +61,9 @@ _FITS_BLOCK = 2880
 _HEADER_BLOCKS = {"mosaic": 12, "truth_image": 9, "exposure": 9, "detections": 5}
 _TABLE_BYTES_PER_SOURCE = 150.0  # truth.fits, per expected candidate source
 _DETECTION_BYTES_PER_SOURCE = 25.0  # detection catalogue, per expected candidate source
-_SCORE_BYTES = 2.0e6  # score/<band>/: tables, plots and report page
-_SMALL_BYTES = 0.6e6  # psf.png, bands.ecsv, summary.json, scenario.yaml, logs
+# score/<band>/ (tables, plots, report page): grows with the mosaic's preview up to a cap
+_SCORE_BYTES, _SCORE_BYTES_PER_PIXEL, _SCORE_PREVIEW_PIXELS = 0.3e6, 7.5, 2.8e5
+_SMALL_BYTES, _SMALL_BYTES_PER_BAND = 0.05e6, 0.11e6  # psf.png, tables, logs
 _PSF_OVERHEAD = 1.048  # psf_<band>.fits over its two stamps (effective PSF, headers)
 _SCORE_FILES = 20
 _RUN_FILES = 11  # 8 run files + Hydra's 3 bookkeeping files
@@ -174,9 +180,10 @@ def estimate(sc: Scenario, galaxies: float | None = None) -> Estimate:
                            + _DETECTION_BYTES_PER_SOURCE * sources)
     n_files += n_det_bands
     if sc.score.enabled and n_det_bands:
-        disk += n_det_bands * _SCORE_BYTES
+        disk += n_det_bands * (_SCORE_BYTES + _SCORE_BYTES_PER_PIXEL
+                               * min(npix, _SCORE_PREVIEW_PIXELS))
         n_files += n_det_bands * _SCORE_FILES
-    disk += _TABLE_BYTES_PER_SOURCE * sources + _SMALL_BYTES
+    disk += _TABLE_BYTES_PER_SOURCE * sources + _SMALL_BYTES + _SMALL_BYTES_PER_BAND * nb
 
     tiles_mem = tile_procs * TILE_BYTES_PER_SCENE_PIXEL * window
     detect_mem = det_procs * DETECTION_BYTES_PER_PIXEL * det_tile
