@@ -511,7 +511,9 @@ def _validate_score(s: ScoreConfig) -> None:
     check_range("score.match_radius_arcsec", s.match_radius_arcsec, 0, 10, lo_open=True)
     check_range("score.mag_min", s.mag_min, 0, 50)
     check_range("score.mag_max", s.mag_max, s.mag_min, 50, lo_open=True)
-    check_range("score.reference_mag", s.reference_mag, s.mag_min, s.mag_max)
+    require(s.mag_min <= s.reference_mag <= s.mag_max, "score.reference_mag", s.reference_mag,
+            f"must be in [{s.mag_min:g}, {s.mag_max:g}] (score.mag_min..score.mag_max: purity "
+            "is quoted in the bin holding it)")
     check_range("score.mag_step", s.mag_step, 0, s.mag_max - s.mag_min, lo_open=True)
     check_range("score.interval", s.interval, 0, 1, lo_open=True, hi_open=True)
     check_range("score.match_radius_fwhm", s.match_radius_fwhm, 0, 20)
