@@ -175,38 +175,49 @@ def _base(hy, conf_dir: str, config_name: str, groups: list):
     return _BASES[key]
 
 
-def _jobs(hy, conf_dir: str, config_name: str, texts: list[str], parsed: list,
-          multirun: bool):
-    """Composed configuration (without its ``hydra`` node) of every job of the command line."""
+def _split_groups(hy, parsed: list) -> tuple[list, list]:
+    """(preset overrides, value overrides), as Hydra's defaults list tells them apart."""
+    repo = hy.config_loader.repository
+    groups, values = [], []
+    for o in parsed:
+        is_group = o.key_or_group == "hydra.searchpath" or repo.group_exists(o.key_or_group)
+        (groups if is_group else values).append(o)
+    return groups, values
+
+
+def _compose(hy, conf_dir: str, config_name: str, parsed: list):
+    """One job's configuration: its presets composed (remembered), then its value overrides
+    applied with Hydra's own function, in order, as Hydra's composition does."""
     import copy
 
     from hydra._internal.config_loader_impl import ConfigLoaderImpl
-    from hydra.types import RunMode
+
+    groups, values = _split_groups(hy, parsed)
+    cfg = copy.deepcopy(_base(hy, conf_dir, config_name, groups))
+    ConfigLoaderImpl._apply_overrides_to_config(values, cfg)
+    return cfg
+
+
+def _jobs(hy, conf_dir: str, config_name: str, texts: list[str], parsed: list,
+          multirun: bool):
+    """Composed configuration (without its ``hydra`` node) of every job of the command line."""
     from omegaconf import OmegaConf, open_dict
 
-    repo = hy.config_loader.repository
-    is_group = [o.key_or_group == "hydra.searchpath" or repo.group_exists(o.key_or_group)
-                for o in parsed]
-    groups = [o for o, g in zip(parsed, is_group) if g]
-    values = [o for o, g in zip(parsed, is_group) if not g]
-    sweeps = [o for o in parsed if o.is_sweep_override()]
-    base = _base(hy, conf_dir, config_name, groups)
-    mode = OmegaConf.select(base, "hydra.mode")
+    groups, values = _split_groups(hy, parsed)
+    mode = OmegaConf.select(_base(hy, conf_dir, config_name, groups), "hydra.mode")
     for o in values:
         if o.key_or_group == "hydra.mode" and not o.is_sweep_override():
             mode = o.value()
+    sweeps = [o for o in parsed if o.is_sweep_override()]
     if multirun or str(mode) in ("MULTIRUN", "RunMode.MULTIRUN"):
-        jobs = [hy.compose_config(config_name, job, run_mode=RunMode.RUN,
-                                  with_log_configuration=False)
-                for job in _sweep_jobs(hy, config_name, texts)]
+        jobs = [_parse_overrides(job) for job in _sweep_jobs(hy, config_name, texts)]
     elif sweeps:
         raise ConfigError(sweeps[0].key_or_group, _split(sweeps[0].input_line)[1],
                           "is a sweep: run it with -m (or give a single value)")
     else:
-        cfg = copy.deepcopy(base)
-        ConfigLoaderImpl._apply_overrides_to_config(values, cfg)
-        jobs = [cfg]
-    for cfg in jobs:
+        jobs = [parsed]
+    for job in jobs:
+        cfg = _compose(hy, conf_dir, config_name, job)
         with open_dict(cfg):
             del cfg["hydra"]  # its interpolations resolve only inside a Hydra run
         yield cfg
