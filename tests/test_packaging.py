@@ -37,7 +37,8 @@ def test_wheel_holds_every_module_and_config_file(wheel):
     configs = {"simfield/conf/" + str(p.relative_to(ROOT / "conf"))
                for p in (ROOT / "conf").rglob("*.yaml")}
     assert len(configs) > 15
-    assert not modules - names, sorted(modules - names)
+    assert not modules - names, \
+        f"{sorted(modules - names)}: list their package in [tool.setuptools] packages"
     assert not configs - names, sorted(configs - names)
 
 
