@@ -8,15 +8,15 @@
 
 from __future__ import annotations
 
-import contextlib
 import logging
-import shutil
 import sys
 from pathlib import Path
 
-__all__ = ["main", "score_main", "collect_main", "inject_main"]
+from ._preflight import preflight
+from .config import CONF_DIR
+from .errors import ConfigError
 
-CONF_DIR = str(Path(__file__).resolve().parent.parent / "conf")
+__all__ = ["main", "score_main", "collect_main", "inject_main", "preflight", "refusal_line"]
 
 log = logging.getLogger("simfield")
 
@@ -26,36 +26,24 @@ def _fail(prog: str, msg: str, code: int = 2):
     sys.exit(code)
 
 
-def _discard_empty_run_dir(run_dir: Path) -> None:
-    """Remove a run directory that holds nothing but Hydra's own bookkeeping."""
-    if not run_dir.is_dir():
-        return
-    own = {".hydra", "main.log", "cli.log", "simfield.log"}
-    if all(p.name in own for p in run_dir.iterdir()):
-        shutil.rmtree(run_dir, ignore_errors=True)
-        # and the date folder Hydra made for it, if that is now empty
-        with contextlib.suppress(OSError):
-            run_dir.parent.rmdir()
+def refusal_line(exc: ConfigError) -> str:
+    """``<key>: <value> <what is allowed>``, on one line."""
+    value = repr(exc.value) if isinstance(exc.value, str) or exc.value is None else exc.value
+    return " ".join(f"{exc.key}: {value} {exc.allowed}".split())
 
 
 def _task(cfg) -> None:
-    """Hydra task: validate, then run one scenario into the job's output directory."""
+    """Hydra task: run one (already validated, see :func:`preflight`) scenario into the job's
+    output directory."""
     from hydra.core.hydra_config import HydraConfig
-
-    from .config import to_scenario
-    from .errors import ConfigError
-
-    run_dir = Path(HydraConfig.get().runtime.output_dir)
-    try:
-        sc = to_scenario(cfg)
-    except ConfigError as exc:
-        _discard_empty_run_dir(run_dir)
-        _fail("simfield", str(exc))
     from hydra.types import RunMode
 
+    from .config import to_scenario
     from .pipeline import run_scenario
     from .sweep import plan_job, remove_partial_files, write_job_record
 
+    run_dir = Path(HydraConfig.get().runtime.output_dir)
+    sc = to_scenario(cfg)
     hc = HydraConfig.get()
     plan = plan_job(sc, list(hc.overrides.task), run_dir, hc.mode == RunMode.MULTIRUN)
     if plan.skip:
@@ -71,12 +59,41 @@ def _task(cfg) -> None:
               f"{d['predicted_5sigma']:.2f} (predicted)")
 
 
+def _print_estimate(argv: list[str]) -> None:
+    from .resources import check_run, estimate
+
+    scenarios = preflight(argv, check=False)
+    for i, sc in enumerate(scenarios):
+        print(f"simfield: estimate{f' of job {i}' if len(scenarios) > 1 else ''} (nothing run)")
+        for line in estimate(sc).lines():
+            print(f"  {line}")
+        try:
+            check_run(sc)
+            print(f"  within limits.disk_gb={sc.limits.disk_gb:g} and "
+                  f"limits.memory_gb={sc.limits.memory_gb:g}")
+        except ConfigError as exc:
+            print(f"  would be refused: {refusal_line(exc)}")
+
+
 def main() -> None:
-    """``simfield [overrides]``: run the configured scenario (Hydra command line)."""
+    """``simfield [overrides]``: run the configured scenario (Hydra command line).
+
+    Every job of the command line is composed and validated first (:func:`preflight`); a bad
+    setting is refused with one line on stderr and status 2 before Hydra writes anything.
+    ``simfield --estimate [overrides]`` prints the resources each job would take and exits.
+    """
     import hydra
 
     from .config import register_configs
 
+    argv = sys.argv[1:]
+    try:
+        if "--estimate" in argv:
+            _print_estimate([a for a in argv if a != "--estimate"])
+            return
+        preflight(argv)
+    except ConfigError as exc:
+        _fail("simfield", refusal_line(exc))
     register_configs()
     wrapped = hydra.main(version_base=None, config_path=CONF_DIR, config_name="config")(_task)
     wrapped()

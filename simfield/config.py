@@ -11,8 +11,11 @@ from __future__ import annotations
 
 import dataclasses
 import hashlib
+import importlib.resources
+import os
 import typing
 from dataclasses import dataclass, field
+from pathlib import Path
 from typing import Any
 
 from omegaconf import MISSING, DictConfig, OmegaConf
@@ -20,7 +23,12 @@ from omegaconf.errors import ConfigKeyError, MissingMandatoryValue, ValidationEr
 
 from .errors import ConfigError, check_range, require
 
+#: The Hydra configuration folder: the repository's ``conf/``, installed as package data
+#: ``simfield.conf`` (so it is found from any directory, editable install or not).
+CONF_DIR = str(importlib.resources.files("simfield.conf"))
+
 __all__ = [
+    "CONF_DIR",
     "BandConfig",
     "PupilConfig",
     "PSFConfig",
@@ -32,12 +40,16 @@ __all__ = [
     "SurveyConfig",
     "DetectionConfig",
     "ScoreConfig",
+    "LimitsConfig",
     "Scenario",
     "register_configs",
     "to_scenario",
     "validate",
     "config_hash",
     "to_yaml",
+    "default_cache_dir",
+    "schema_type",
+    "check_raw_value",
 ]
 
 
@@ -86,7 +98,9 @@ class PSFConfig:
     n_wavelengths: int = 9  #: monochromatic PSFs per band
     reference_beta: float = -2.0  #: reference spectrum f_lambda ~ lambda^beta for band weighting
     jitter_mas: float = 5.0  #: pointing jitter rms per axis (milliarcsec)
-    cache_dir: str = "outputs/.psf_cache"
+    #: disk cache of computed PSFs; empty: the per-user cache, ``$XDG_CACHE_HOME/simfield/psf``
+    #: or else ``~/.cache/simfield/psf`` (see :func:`default_cache_dir`)
+    cache_dir: str = ""
 
 
 @dataclass
@@ -270,6 +284,15 @@ class ScoreConfig:
     fit_model: str = "logistic"  #: logistic | erf: headline completeness-limit fit
 
 
+@dataclass
+class LimitsConfig:
+    """Largest estimated resources a run may take (see :mod:`simfield.resources`); a run whose
+    estimate exceeds one is refused before it starts, naming the key that raises the limit."""
+
+    disk_gb: float = 20.0  #: files written into the run directory (GB, 1e9 bytes)
+    memory_gb: float = 12.0  #: peak memory of the run and its worker processes (GB)
+
+
 # --------------------------------------------------------------------------------------------
 @dataclass
 class Scenario:
@@ -285,6 +308,7 @@ class Scenario:
     survey: SurveyConfig = MISSING
     detection: DetectionConfig = field(default_factory=DetectionConfig)
     score: ScoreConfig = field(default_factory=ScoreConfig)
+    limits: LimitsConfig = field(default_factory=LimitsConfig)
 
     @property
     def band_names(self) -> list[str]:
@@ -361,7 +385,8 @@ def _validate_telescope(t: TelescopeConfig) -> None:
     check_range("telescope.psf.jitter_mas", s.jitter_mas, 0, 1000)
     check_range("telescope.psf.reference_beta", s.reference_beta, -10, 10)
     check_range("telescope.psf.bright_mag", s.bright_mag, 0, 40)
-    require(bool(s.cache_dir), "telescope.psf.cache_dir", s.cache_dir, "must be a directory path")
+    require("\0" not in s.cache_dir, "telescope.psf.cache_dir", s.cache_dir,
+            "must be a directory path (empty: the per-user cache)")
     check_range("telescope.pupil.strut_offset_m", p.strut_offset_m, -t.diameter_m / 2,
                 t.diameter_m / 2)
 
@@ -391,8 +416,7 @@ def _validate_population(p: PopulationConfig, bands: list[str]) -> None:
 def _validate_lens(lens: LensConfig, z_max: float) -> None:
     require(lens.kind in ("none", "cluster"), "lens.kind", lens.kind,
             "must be one of: none, cluster")
-    if lens.kind == "none":
-        return
+    # checked whether or not a lens is used, so a setting is never silently ignored
     check_range("lens.redshift", lens.redshift, 0, z_max, lo_open=True, hi_open=True)
     check_range("lens.reference_redshift", lens.reference_redshift, lens.redshift, 30,
                 lo_open=True)
@@ -467,6 +491,8 @@ def _validate_survey(s: SurveyConfig) -> None:
 def _validate_detection(d: DetectionConfig, bands: list[str]) -> None:
     for i, b in enumerate(d.bands):
         require(b in bands, f"detection.bands.{i}", b, f"must be one of: {', '.join(bands)}")
+    require(len(set(d.bands)) == len(d.bands), "detection.bands", list(d.bands),
+            "must not list a band twice")
     check_range("detection.threshold_sigma", d.threshold_sigma, 0, 1000, lo_open=True)
     check_range("detection.npixels", d.npixels, 1, 10000)
     check_range("detection.kernel_fwhm_arcsec", d.kernel_fwhm_arcsec, 0, 10)
@@ -487,7 +513,9 @@ def _validate_score(s: ScoreConfig) -> None:
     check_range("score.match_radius_arcsec", s.match_radius_arcsec, 0, 10, lo_open=True)
     check_range("score.mag_min", s.mag_min, 0, 50)
     check_range("score.mag_max", s.mag_max, s.mag_min, 50, lo_open=True)
-    check_range("score.reference_mag", s.reference_mag, 0, 50)
+    require(s.mag_min <= s.reference_mag <= s.mag_max, "score.reference_mag", s.reference_mag,
+            f"must be in [{s.mag_min:g}, {s.mag_max:g}] (score.mag_min..score.mag_max: purity "
+            "is quoted in the bin holding it)")
     check_range("score.mag_step", s.mag_step, 0, s.mag_max - s.mag_min, lo_open=True)
     check_range("score.interval", s.interval, 0, 1, lo_open=True, hi_open=True)
     check_range("score.match_radius_fwhm", s.match_radius_fwhm, 0, 20)
@@ -507,11 +535,22 @@ def _validate_score(s: ScoreConfig) -> None:
             "must be one of: logistic, erf")
 
 
+def _validate_limits(lim: LimitsConfig) -> None:
+    check_range("limits.disk_gb", lim.disk_gb, 0, 1e6, lo_open=True)
+    check_range("limits.memory_gb", lim.memory_gb, 0, 1e5, lo_open=True)
+
+
+def _validate_names(sc: Scenario) -> None:
+    for key, name in (("telescope.name", sc.telescope.name), ("survey.name", sc.survey.name)):
+        require(bool(str(name).strip()), key, name, "must be a non-empty name")
+
+
 def validate(sc: Scenario) -> Scenario:
     """Check every value of ``sc``; raise :class:`ConfigError` on the first bad one."""
     require(isinstance(sc.seed, int) and sc.seed >= 0, "seed", sc.seed,
             "must be a non-negative integer")
     check_range("workers", sc.workers, 0, 256)
+    _validate_names(sc)
     _validate_telescope(sc.telescope)
     bands = sc.band_names
     _validate_population(sc.population, bands)
@@ -520,6 +559,7 @@ def validate(sc: Scenario) -> Scenario:
     _validate_survey(sc.survey)
     _validate_detection(sc.detection, bands)
     _validate_score(sc.score)
+    _validate_limits(sc.limits)
     return sc
 
 
@@ -533,6 +573,7 @@ def to_scenario(cfg: DictConfig | dict[str, Any]) -> Scenario:
         data = OmegaConf.to_container(cfg, resolve=True)
     else:
         data = dict(cfg)
+        _check_raw_booleans(data)  # a DictConfig has converted them already
     data.pop("hydra", None)
     schema = OmegaConf.structured(Scenario)
     try:
@@ -551,7 +592,52 @@ def to_scenario(cfg: DictConfig | dict[str, Any]) -> Scenario:
             key = next(iter(_paths_ending(data, key, getattr(exc, "value", None))), key)
         msg = str(exc).splitlines()[0]
         raise ConfigError(key, getattr(exc, "value", None), f"is not accepted: {msg}") from None
-    return validate(sc)
+    validate(sc)
+    if not sc.telescope.psf.cache_dir:
+        sc.telescope.psf.cache_dir = str(default_cache_dir() / "psf")
+    return sc
+
+
+def default_cache_dir() -> Path:
+    """The per-user cache folder: ``$XDG_CACHE_HOME/simfield``, else ``~/.cache/simfield``."""
+    base = os.environ.get("XDG_CACHE_HOME") or os.path.join(os.path.expanduser("~"), ".cache")
+    return Path(base) / "simfield"
+
+
+def schema_type(key: str) -> Any:
+    """The schema's type of dotted ``key`` (list items by index), or None if it has none."""
+    cls: Any = Scenario
+    for part in key.split("."):
+        origin = typing.get_origin(cls)
+        if origin in (list, tuple):
+            if not part.isdigit():
+                return None
+            cls = typing.get_args(cls)[0]
+            continue
+        if not dataclasses.is_dataclass(cls):
+            return None
+        cls = typing.get_type_hints(cls).get(part)
+        if cls is None:
+            return None
+    return cls
+
+
+def check_raw_value(key: str, value: Any) -> None:
+    """Refuse a value OmegaConf would silently convert: a boolean key given anything but
+    true/false (OmegaConf turns 2 or "yes" into True). Raises :class:`ConfigError`."""
+    if schema_type(key) is bool:
+        require(isinstance(value, bool), key, value, "must be true or false")
+
+
+def _check_raw_booleans(data: Any, prefix: str = "") -> None:
+    items = (data.items() if isinstance(data, dict) else
+             enumerate(data) if isinstance(data, list) else ())
+    for k, v in items:
+        path = f"{prefix}.{k}" if prefix else str(k)
+        if isinstance(v, (dict, list)):
+            _check_raw_booleans(v, path)
+        else:
+            check_raw_value(path, v)
 
 
 def _lookup(data: dict, key: str) -> Any:

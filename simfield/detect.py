@@ -349,7 +349,10 @@ def _map_detect(job: _TileJob, tiles: list, workers: int):
     if n <= 1:
         yield from (_detect_tile(job, t) for t in tiles)
         return
-    with ProcessPoolExecutor(n, mp_context=multiprocessing.get_context("fork")) as pool:
+    from ._procs import die_with_parent
+
+    with ProcessPoolExecutor(n, mp_context=multiprocessing.get_context("fork"),
+                             initializer=die_with_parent, initargs=(os.getpid(),)) as pool:
         yield from pool.map(partial(_detect_tile, job), tiles)
 
 

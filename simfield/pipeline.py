@@ -25,6 +25,7 @@ from astropy.io import fits
 from astropy.table import Table
 
 from . import __version__
+from ._procs import die_with_parent
 from .bands import Band, ab_to_njy, make_band, njy_to_ab
 from .config import Scenario, config_hash, to_yaml
 from .grid import Grid
@@ -294,7 +295,8 @@ def _map_tiles(ctx: _TileContext, workers: int, progress: bool = False) -> list[
     global _CTX
     _CTX = ctx
     try:
-        with ProcessPoolExecutor(n, mp_context=multiprocessing.get_context("fork")) as pool:
+        with ProcessPoolExecutor(n, mp_context=multiprocessing.get_context("fork"),
+                                 initializer=die_with_parent, initargs=(os.getpid(),)) as pool:
             return list(tqdm(pool.map(_tile_worker, range(n_tiles)), **bar))
     finally:
         _CTX = None

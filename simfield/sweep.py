@@ -71,7 +71,7 @@ SEED_MODULUS = 2**31
 
 #: Overrides that change how a job runs, not what it simulates: left out of the job seed, so
 #: e.g. re-running a sweep with ``workers=1`` on another machine gives the same fields.
-EXECUTION_KEYS = ("workers", "telescope.psf.cache_dir")
+EXECUTION_KEYS = ("workers", "telescope.psf.cache_dir", "limits.disk_gb", "limits.memory_gb")
 
 #: Per-job record written into each multirun job directory.
 JOB_RECORD = "job.json"

@@ -1,13 +1,11 @@
 """Shared fixtures: compose scenarios from conf/ without the command line."""
 
-from pathlib import Path
-
 import pytest
 from hydra import compose, initialize_config_dir
 
-from simfield.config import register_configs, to_scenario
+from simfield.config import CONF_DIR, register_configs, to_scenario
 
-CONF = str(Path(__file__).resolve().parent.parent / "conf")
+CONF = CONF_DIR
 
 
 def make_scenario(*overrides: str):

@@ -43,7 +43,8 @@ def injected(tmp_path_factory):
                        "population.uniform_mag_max=23", "population.uniform_density_arcmin2=80",
                        "population.z_min=5", "population.z_max=8", "population.clumpy=false", "population.star_density_arcmin2=100", "population.star_mag_min=21",
                        "population.star_mag_max=23",
-                       "score.report=false", "score.mag_min=20", "score.mag_max=26")
+                       "score.report=false", "score.mag_min=20", "score.mag_max=26",
+                       "score.reference_mag=24")
     summary = inject_into_image(tmp / "user.fits", sc, "b23", tmp / "out", tmp / "psf.fits")
     return tmp / "out", summary
 

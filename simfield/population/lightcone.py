@@ -25,14 +25,14 @@ from ..bands import Band
 from ..config import PopulationConfig
 from ..cosmo import angular_diameter_distance, default_cosmology
 from ..errors import ConfigError, require
-from .luminosity import draw_redshift_magnitude, uv_lf_parameters
+from .luminosity import draw_redshift_magnitude, expected_counts, uv_lf_parameters
 from .morphology import Morphology, draw_morphology
 from .seds import (BETA_SCATTER, band_magnitudes, band_weight_matrix, evolved_probability,
                    galaxy_fnu, rest_fnu_shape, sed_parameters_from_deviates, uv_slope_relation,
                    wave_grid)
 from .stars import draw_stars, star_band_magnitudes
 
-__all__ = ["make_population", "selection_band_index", "COLUMN_UNITS"]
+__all__ = ["make_population", "expected_galaxies", "selection_band_index", "COLUMN_UNITS"]
 
 #: Units of the table columns (unit strings as astropy writes them).
 COLUMN_UNITS = {
@@ -146,7 +146,8 @@ def _check_inputs(pop, bands, xi, eta):
                 "must be (lo, hi) with hi > lo (arcsec)")
 
 
-def _galaxies_from_lf(pop, phot, area, rng, cosmo):
+def _lf_weight(pop, phot):
+    """(envelope, weight(z, M)): the fraction of galaxies at (z, M) that could pass the limit."""
     env = _Envelope(phot, pop.z_min, pop.z_max, pop.mag_limit)
 
     def weight(z, m):
@@ -155,6 +156,35 @@ def _galaxies_from_lf(pop, phot, area, rng, cosmo):
         ok_sf, ok_ev = env.passes(z, m)
         return (1.0 - p) * ok_sf + p * ok_ev
 
+    return env, weight
+
+
+def expected_galaxies(pop: PopulationConfig, bands: list[Band], area_arcsec2: float,
+                      cosmo=None) -> float:
+    """Mean number of candidate galaxies :func:`make_population` draws over ``area_arcsec2``
+    (the number it compares with ``pop.max_sources``), without drawing any.
+
+    Parameters
+    ----------
+    pop : PopulationConfig
+    bands : list of Band
+    area_arcsec2 : float (arcsec^2)
+        Solid angle the sources are spread over.
+    cosmo : astropy cosmology, optional
+        Default :func:`simfield.cosmo.default_cosmology`.
+    """
+    if pop.mode == "uniform":
+        return pop.uniform_density_arcmin2 * area_arcsec2 / 3600.0
+    cosmo = cosmo or default_cosmology()
+    phot = _Photometry(bands, selection_band_index(pop, bands),
+                       _Distances(pop.z_min, pop.z_max, cosmo))
+    _, weight = _lf_weight(pop, phot)
+    return expected_counts(pop.z_min, pop.z_max, pop.abs_mag_faint, area_arcsec2, cosmo=cosmo,
+                           weight=weight)
+
+
+def _galaxies_from_lf(pop, phot, area, rng, cosmo):
+    env, weight = _lf_weight(pop, phot)
     try:
         draw = draw_redshift_magnitude(pop.z_min, pop.z_max, pop.abs_mag_faint, area, rng,
                                        weight=weight, cosmo=cosmo,

@@ -1,0 +1,246 @@
+"""What a run will take before it starts: pixels, files, disk and memory; refusals up front.
+
+An edge module like :mod:`simfield.pipeline`: it may call the stages' pure functions (grids,
+the expected source count), no stage imports it. :func:`estimate` predicts a scenario's
+resources without drawing or writing anything; :func:`check_run` refuses (ConfigError naming
+the key to change) a run that would fail or exceed ``limits`` after work had started.
+
+Calibration (2026-12-02, 2-core development machine, ``simfield`` under GNU time; disk =
+``du -sb`` of the run folder, peak = summed PSS of the run and its workers sampled every
+0.25 s; max RSS of the largest process in brackets):
+
+==============================================  =========  =========  ===============  =======
+run                                             disk       estimate   peak PSS (RSS)   estim.
+==============================================  =========  =========  ===============  =======
+8" x 8", one band (tests/test_resources.py)     4.81 MB    4.77 MB    --               0.34 GB
+``survey=quick``                                36.3 MB    36.3 MB    0.36 (0.38) GB   0.36 GB
+``survey=quick survey.write_exposures=true``    58.0 MB    57.9 MB    0.36 (0.38) GB   0.36 GB
+default, ``workers=1``                          795 MB     796 MB     1.15 (1.37) GB   1.18 GB
+default (2 tile processes)                      795 MB     796 MB     1.21 (1.23) GB   1.18 GB
+60" x 60", 4 tiles of 750^2, 2 procs, no det.  286 MB     286 MB     0.60 (0.36) GB   0.60 GB
+==============================================  =========  =========  ===============  =======
+
+Disk is the image bytes (exact: each extension's pixels times its type's size, plus the
+measured header blocks; the 60" run was not used in the fit and agrees to 0.03%), the PSF
+files (their stamp sizes) and constants for the truth table, the score folder (its mosaic
+preview grows with the mosaic up to a cap) and the small files, fitted to the other runs.
+Memory is a base (interpreter, libraries, PSFs) plus the parent's share per mosaic pixel,
+plus the larger of the tile phase (processes x :data:`TILE_BYTES_PER_SCENE_PIXEL` x the scene
+window of a tile) and the detection phase (processes x :data:`DETECTION_BYTES_PER_PIXEL` x
+the mosaic pixels of a detection tile). Each coefficient rests on one or two of these runs (the
+default run's peak is its one detection tile; the 60" run's its two tile processes), so
+expect it within ~10% for fields like these and treat it as a guide (~30%) for other tile
+sizes, source densities and many processes.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+from dataclasses import dataclass
+from pathlib import Path
+
+from .config import Scenario
+from .errors import ConfigError, require
+
+__all__ = ["Estimate", "estimate", "check_run", "check_cache_dir", "BASE_MEMORY_BYTES",
+           "PARENT_BYTES_PER_MOSAIC_PIXEL", "TILE_BYTES_PER_SCENE_PIXEL",
+           "DETECTION_BYTES_PER_PIXEL"]
+
+GB = 1e9
+#: Memory of the parent before any tile (interpreter, numpy/astropy/galsim/photutils, PSFs).
+BASE_MEMORY_BYTES = 0.33e9
+#: Memory the parent grows by per mosaic pixel of one band (sources, mapped file pages).
+PARENT_BYTES_PER_MOSAIC_PIXEL = 16.0
+#: Memory of one tile's rendering per scene pixel of its window (all bands in turn).
+TILE_BYTES_PER_SCENE_PIXEL = 32.0
+#: Memory of one detection tile per mosaic pixel (photutils segmentation and catalogue;
+#: 1.2-1.6 GB for a 3584^2 tile in DEVELOPERS.md, 1.54 GB here).
+DETECTION_BYTES_PER_PIXEL = 120.0
+_FITS_BLOCK = 2880
+_HEADER_BLOCKS = {"mosaic": 12, "truth_image": 9, "exposure": 9, "detections": 5}
+_TABLE_BYTES_PER_SOURCE = 150.0  # truth.fits, per expected candidate source
+_DETECTION_BYTES_PER_SOURCE = 25.0  # detection catalogue, per expected candidate source
+# score/<band>/ (tables, plots, report page): grows with the mosaic's preview up to a cap
+_SCORE_BYTES, _SCORE_BYTES_PER_PIXEL, _SCORE_PREVIEW_PIXELS = 0.3e6, 7.5, 2.8e5
+_SMALL_BYTES, _SMALL_BYTES_PER_BAND = 0.05e6, 0.11e6  # psf.png, tables, logs
+_PSF_OVERHEAD = 1.048  # psf_<band>.fits over its two stamps (effective PSF, headers)
+_SCORE_FILES = 20
+_RUN_FILES = 11  # 8 run files + Hydra's 3 bookkeeping files
+_DETECTION_CORE, _DETECTION_MARGIN = 3072, 256  # simfield.detect.TILE_CORE_PIX, TILE_MARGIN_PIX
+_TILE_MARGIN_ARCSEC = 4.0  # scene window beyond the tile: core PSF, lensing grid, padding
+
+
+@dataclass(frozen=True)
+class Estimate:
+    """Predicted resources of one run (see the module docstring for the calibration)."""
+
+    mosaic_pixels: int  #: per band
+    detector_pixels: int  #: per exposure and band
+    scene_window_pixels: int  #: largest tile's scene window
+    n_tiles: int
+    tile_processes: int
+    detection_processes: int
+    expected_sources: float  #: candidate galaxies + stars (before the exact magnitude cut)
+    n_files: int
+    disk_bytes: float
+    memory_bytes: float
+
+    def lines(self) -> list[str]:
+        """Human-readable summary, one item per line."""
+        return [
+            f"mosaic: {self.mosaic_pixels:,} pixels per band; exposures: "
+            f"{self.detector_pixels:,} detector pixels each",
+            f"tiles: {self.n_tiles} (scene window up to {self.scene_window_pixels:,} pixels), "
+            f"{self.tile_processes} tile and {self.detection_processes} detection processes",
+            f"sources: ~{self.expected_sources:,.0f} expected",
+            f"files: {self.n_files}",
+            f"disk: {self.disk_bytes / GB:.3g} GB",
+            f"peak memory: {self.memory_bytes / GB:.3g} GB",
+        ]
+
+
+def _processes(workers: int, n: int) -> int:
+    return max(1, min(n, os.cpu_count() or 1) if workers == 0 else min(workers, n))
+
+
+_GALAXIES: dict[str, float] = {}  # expected galaxies by (population, bands, area)
+
+
+def _expected_galaxies(sc: Scenario, area_arcsec2: float) -> float:
+    """Candidate galaxies expected over ``area_arcsec2`` (remembered: ~0.2 s each)."""
+    from .pipeline import make_bands
+    from .population.lightcone import expected_galaxies
+
+    key = repr((sc.population, sc.telescope.bands, area_arcsec2))
+    if key not in _GALAXIES:
+        if len(_GALAXIES) > 256:
+            _GALAXIES.clear()
+        _GALAXIES[key] = expected_galaxies(sc.population, make_bands(sc), area_arcsec2)
+    return _GALAXIES[key]
+
+
+def _population_area(sc: Scenario) -> float:
+    from .pipeline import FIELD_MARGIN_ARCSEC
+
+    s = sc.survey
+    return (s.width_arcsec + 2 * FIELD_MARGIN_ARCSEC) * (s.height_arcsec + 2 * FIELD_MARGIN_ARCSEC)
+
+
+def estimate(sc: Scenario, galaxies: float | None = None) -> Estimate:
+    """Predict the pixels, files, disk bytes and peak memory of running ``sc``.
+
+    Parameters
+    ----------
+    sc : Scenario
+        A validated scenario.
+    galaxies : float, optional
+        Expected candidate galaxies, if already computed (else from the luminosity function).
+
+    Returns
+    -------
+    Estimate
+    """
+    from .survey import mosaic_grid, scene_grid
+    from .survey import _detector_size  # noqa: PLC2701 (pure geometry, no randomness)
+
+    tel, srv = sc.telescope, sc.survey
+    nb, n_exp = len(tel.bands), srv.n_exposures
+    n_det_bands = len(sc.detection_bands) if sc.detection.enabled else 0
+    mg, sg = mosaic_grid(srv), scene_grid(srv, tel)
+    nx, ny = _detector_size(srv, tel)
+    npix, ndet = mg.nx * mg.ny, nx * ny
+    if galaxies is None:
+        galaxies = _expected_galaxies(sc, _population_area(sc))
+    stars = srv.width_arcsec * srv.height_arcsec * sc.population.star_density_arcmin2 / 3600.0
+    sources = galaxies + stars
+
+    # tiles: ceil(n / tile_pixels) nearly equal parts per axis (simfield.survey.plan_tiles)
+    tx, ty = math.ceil(mg.nx / srv.tile_pixels), math.ceil(mg.ny / srv.tile_pixels)
+    side = max(mg.nx / tx, mg.ny / ty) * mg.scale + 2 * _TILE_MARGIN_ARCSEC  # arcsec
+    window = min(sg.nx * sg.ny, math.ceil(side / sg.scale) ** 2)
+    n_tiles = tx * ty
+    tile_procs = _processes(sc.workers, n_tiles)
+    dt = [math.ceil(n / _DETECTION_CORE) for n in (mg.nx, mg.ny)]
+    det_tile = math.prod(min(n, math.ceil(n / k) + 2 * _DETECTION_MARGIN)
+                         for n, k in zip((mg.nx, mg.ny), dt))
+    det_procs = _processes(sc.workers, dt[0] * dt[1]) if n_det_bands else 0
+
+    block = _FITS_BLOCK
+    psf_pix = sum((2 * math.ceil(r / sg.scale) + 1) ** 2
+                  for r in (tel.psf.core_radius_arcsec, tel.psf.spike_radius_arcsec))
+    disk = nb * (16 * npix + _HEADER_BLOCKS["mosaic"] * block      # SCI WHT EXP DQ
+                 + 8 * npix + _HEADER_BLOCKS["truth_image"] * block  # SCI SEGM
+                 + 4 * _PSF_OVERHEAD * psf_pix)
+    n_files = _RUN_FILES + 3 * nb
+    if srv.write_exposures:
+        disk += nb * n_exp * (12 * ndet + _HEADER_BLOCKS["exposure"] * block)  # SCI VAR DQ
+        n_files += nb * n_exp
+    disk += n_det_bands * (4 * npix + _HEADER_BLOCKS["detections"] * block
+                           + _DETECTION_BYTES_PER_SOURCE * sources)
+    n_files += n_det_bands
+    if sc.score.enabled and n_det_bands:
+        disk += n_det_bands * (_SCORE_BYTES + _SCORE_BYTES_PER_PIXEL
+                               * min(npix, _SCORE_PREVIEW_PIXELS))
+        n_files += n_det_bands * _SCORE_FILES
+    disk += _TABLE_BYTES_PER_SOURCE * sources + _SMALL_BYTES + _SMALL_BYTES_PER_BAND * nb
+
+    tiles_mem = tile_procs * TILE_BYTES_PER_SCENE_PIXEL * window
+    detect_mem = det_procs * DETECTION_BYTES_PER_PIXEL * det_tile
+    memory = BASE_MEMORY_BYTES + PARENT_BYTES_PER_MOSAIC_PIXEL * npix + max(tiles_mem, detect_mem)
+    return Estimate(npix, ndet, window, n_tiles, tile_procs, det_procs, sources, n_files,
+                    float(disk), float(memory))
+
+
+def check_cache_dir(key: str, path: str | os.PathLike) -> None:
+    """Refuse ``path`` unless it is, or can be created as, a writable folder (creates nothing).
+
+    The nearest existing ancestor must be a writable, searchable directory on a file system
+    that holds files (pseudo file systems such as /proc report no blocks).
+    """
+    p = Path(path).expanduser().absolute()
+    if p.exists():
+        require(p.is_dir(), key, str(path), "must be a folder (it is a file)")
+    anc = p
+    while not anc.exists():
+        anc = anc.parent
+    require(anc.is_dir(), key, str(path), f"cannot be created: {anc} is not a folder")
+    st = os.statvfs(anc)
+    writable = os.access(anc, os.W_OK | os.X_OK) and st.f_blocks > 0 \
+        and not st.f_flag & os.ST_RDONLY
+    require(writable, key, str(path), f"must be a writable folder ({anc} is not writable)")
+
+
+def check_run(sc: Scenario) -> Estimate:
+    """Refuse, before any work, a run that would fail later or exceed ``sc.limits``.
+
+    Checks the expected source count against ``population.max_sources``, that the PSF cache
+    folder can be written, and the estimated disk and memory against ``limits.disk_gb`` and
+    ``limits.memory_gb``. Raises :class:`~simfield.errors.ConfigError` naming the key.
+
+    Returns
+    -------
+    Estimate
+    """
+    pop = sc.population
+    galaxies = _expected_galaxies(sc, _population_area(sc))
+    if galaxies > pop.max_sources:
+        raise ConfigError("population.max_sources", pop.max_sources,
+                          f"is too small: {galaxies:.0f} sources expected over the field; "
+                          "raise it, or shrink survey.width_arcsec / survey.height_arcsec, "
+                          "or lower population.mag_limit")
+    check_cache_dir("telescope.psf.cache_dir", sc.telescope.psf.cache_dir)
+    est = estimate(sc, galaxies)
+    lim = sc.limits
+    if est.disk_bytes > lim.disk_gb * GB:
+        raise ConfigError("limits.disk_gb", lim.disk_gb,
+                          f"is exceeded: the run would write ~{est.disk_bytes / GB:.3g} GB; "
+                          f"raise limits.disk_gb (e.g. limits.disk_gb="
+                          f"{math.ceil(est.disk_bytes / GB * 1.2)}) or make the run smaller")
+    if est.memory_bytes > lim.memory_gb * GB:
+        raise ConfigError("limits.memory_gb", lim.memory_gb,
+                          f"is exceeded: the run would need ~{est.memory_bytes / GB:.3g} GB; "
+                          f"raise limits.memory_gb (e.g. limits.memory_gb="
+                          f"{math.ceil(est.memory_bytes / GB * 1.2)}), or lower workers or "
+                          "survey.tile_pixels")
+    return est
