@@ -10,6 +10,7 @@ times in s, areas in m^2.
 from __future__ import annotations
 
 import dataclasses
+import math
 import hashlib
 import importlib.resources
 import os
@@ -520,6 +521,9 @@ def _validate_score(s: ScoreConfig) -> None:
     check_range("score.interval", s.interval, 0, 1, lo_open=True, hi_open=True)
     check_range("score.match_radius_fwhm", s.match_radius_fwhm, 0, 20)
     for key, edges in (("score.size_bins_arcsec", s.size_bins_arcsec), ("score.z_bins", s.z_bins)):
+        for j, e in enumerate(edges):
+            require(isinstance(e, (int, float)) and not isinstance(e, bool) and math.isfinite(e),
+                    f"{key}[{j}]", e, "must be a finite number (a bin edge)")
         require(len(edges) >= 2 and all(b > a for a, b in zip(edges, edges[1:]))
                 and edges[0] >= 0, key, list(edges),
                 "must list at least two increasing, non-negative bin edges")

@@ -70,19 +70,34 @@ class Detections:
     background: np.ndarray
 
 
+def _segment_flags(seg: np.ndarray, labels: np.ndarray, flags) -> np.ndarray:
+    """OR of ``flags`` over the pixels of each segment ``labels`` (0 without flags)."""
+    out = np.zeros(labels.size, np.int32)
+    if flags is None or labels.size == 0:
+        return out
+    flags = np.asarray(flags)
+    n = int(seg.max()) + 1
+    for bit in range(16):
+        on = (flags & (1 << bit)) != 0
+        if on.any():
+            hit = np.bincount(seg[on].ravel(), minlength=n) > 0
+            out |= np.where(hit[labels], 1 << bit, 0).astype(np.int32)
+    return out
+
+
 def _columns_empty(meta) -> Table:
     t = Table(names=("id", "x", "y", "ra", "dec", "flux", "flux_err", "flux_njy", "mag",
                      "mag_err", "flux_aper", "flux_aper_err", "mag_aper", "flux_iso",
                      "flux_iso_err", "area", "snr", "a_arcsec", "b_arcsec", "theta_deg",
-                     "kron_radius"),
-              dtype=[int] + [float] * 20)
+                     "kron_radius", "flags"),
+              dtype=[int] + [float] * 20 + [np.int32])
     t.meta.update(meta)
     return t
 
 
 def detect_sources(sci, wht, wcs: WCS, cfg: DetectionConfig, psf_fwhm_arcsec: float,
                    zeropoint: float, pixel_scale_arcsec: float, exptime: float | None = None,
-                   mask=None, noise_table=None) -> Detections:
+                   mask=None, noise_table=None, flags=None) -> Detections:
     """Detect and measure sources on one mosaic.
 
     Parameters
@@ -106,6 +121,9 @@ def detect_sources(sci, wht, wcs: WCS, cfg: DetectionConfig, psf_fwhm_arcsec: fl
         electrons per e-/s) is added to the flux errors.
     mask : ndarray of bool, optional
         Pixels to ignore (e.g. data-quality flags set).
+    flags : ndarray of int, optional
+        The mosaic's flag image: each detection's ``flags`` column is the OR of the flags of
+        the pixels of its segment (a saturated or partly missing star says so).
     noise_table : tuple or None
         The mosaic's aperture noise table (:func:`simfield.noisecards.read_noise_factors`):
         every flux error is multiplied by the factor F at the radius of its footprint
@@ -121,7 +139,8 @@ def detect_sources(sci, wht, wcs: WCS, cfg: DetectionConfig, psf_fwhm_arcsec: fl
         ``flux_aper``, ``flux_aper_err`` in the circular aperture (e-/s); ``mag_aper``;
         ``flux_iso``, ``flux_iso_err`` isophotal (e-/s); ``area`` isophotal area (pixels);
         ``snr`` = flux / flux_err; ``a_arcsec``, ``b_arcsec``, ``theta_deg`` moments ellipse;
-        ``kron_radius`` in first-moment radii), the segmentation image and the background.
+        ``kron_radius`` in first-moment radii; ``flags`` OR of the mosaic flags over the
+        segment), the segmentation image and the background.
     """
     from photutils.background import Background2D, MedianBackground
     from photutils.segmentation import (SourceCatalog, deblend_sources, make_2dgaussian_kernel)
@@ -224,6 +243,7 @@ def detect_sources(sci, wht, wcs: WCS, cfg: DetectionConfig, psf_fwhm_arcsec: fl
     t["b_arcsec"] = np.asarray(cat.semiminor_axis.value, float) * pixel_scale_arcsec
     t["theta_deg"] = np.asarray(cat.orientation.value, float)
     t["kron_radius"] = np.asarray(cat.kron_radius.value, float)
+    t["flags"] = _segment_flags(segm.data, np.asarray(cat.labels, int), flags)
     # e-/s columns carry no astropy unit (FITS has no "electron"); FLUXUNIT in meta says it
     units = {"x": "pix", "y": "pix", "ra": "deg", "dec": "deg",
              "flux_njy": "nJy", "mag": "mag", "mag_err": "mag", "mag_aper": "mag",
@@ -317,13 +337,13 @@ def _detect_tile(job: _TileJob, tile):
     (ylo, y0, y1, yhi), (xlo, x0, x1, xhi) = tile
     ny, nx = job.shape
     win = (slice(ylo, yhi), slice(xlo, xhi))
-    mask = None if "FLAGS" not in job.maps else \
-        (_window(job.path, *job.maps["FLAGS"], win) & job.no_cov) != 0
+    flags = None if "FLAGS" not in job.maps else _window(job.path, *job.maps["FLAGS"], win)
+    mask = None if flags is None else (flags & job.no_cov) != 0
     twcs = job.wcs if job.one else job.wcs.slice(win)
     det = detect_sources(_window(job.path, *job.maps["IMAGE"], win).astype(float),
                          _window(job.path, *job.maps["INVVAR"], win).astype(float),
                          twcs, job.cfg, job.fwhm, job.zp, job.scale, exptime=job.exptime,
-                         mask=mask, noise_table=job.noise_table)
+                         mask=mask, noise_table=job.noise_table, flags=flags)
     cat = det.catalog
     gx = np.asarray(cat["x"], float) + xlo
     gy = np.asarray(cat["y"], float) + ylo

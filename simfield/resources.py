@@ -58,7 +58,7 @@ TILE_BYTES_PER_SCENE_PIXEL = 32.0
 #: 1.2-1.6 GB for a 3584^2 tile in DEVELOPERS.md, 1.54 GB here).
 DETECTION_BYTES_PER_PIXEL = 120.0
 _FITS_BLOCK = 2880
-_HEADER_BLOCKS = {"mosaic": 12, "truth_image": 9, "exposure": 9, "detections": 5}
+_HEADER_BLOCKS = {"mosaic": 14, "truth_image": 9, "exposure": 9, "detections": 5}
 _TABLE_BYTES_PER_SOURCE = 150.0  # truth.fits, per expected candidate source
 _DETECTION_BYTES_PER_SOURCE = 25.0  # detection catalogue, per expected candidate source
 # score/<band>/ (tables, plots, report page): grows with the mosaic's preview up to a cap
@@ -142,7 +142,7 @@ def estimate(sc: Scenario, galaxies: float | None = None) -> Estimate:
     Estimate
     """
     from .survey import mosaic_grid, scene_grid
-    from .survey import _detector_size  # noqa: PLC2701 (pure geometry, no randomness)
+    from .survey.grids import _detector_size  # noqa: PLC2701 (pure geometry, no randomness)
 
     tel, srv = sc.telescope, sc.survey
     nb, n_exp = len(tel.bands), srv.n_exposures
@@ -169,12 +169,12 @@ def estimate(sc: Scenario, galaxies: float | None = None) -> Estimate:
     block = _FITS_BLOCK
     psf_pix = sum((2 * math.ceil(r / sg.scale) + 1) ** 2
                   for r in (tel.psf.core_radius_arcsec, tel.psf.spike_radius_arcsec))
-    disk = nb * (16 * npix + _HEADER_BLOCKS["mosaic"] * block      # SCI WHT EXP DQ
-                 + 8 * npix + _HEADER_BLOCKS["truth_image"] * block  # SCI SEGM
+    disk = nb * (16 * npix + _HEADER_BLOCKS["mosaic"] * block  # IMAGE INVVAR EXPOSURE FLAGS
+                 + 10 * npix + _HEADER_BLOCKS["truth_image"] * block  # IMAGE SEGMAP ARTEFACT
                  + 4 * _PSF_OVERHEAD * psf_pix)
     n_files = _RUN_FILES + 3 * nb
     if srv.write_exposures:
-        disk += nb * n_exp * (12 * ndet + _HEADER_BLOCKS["exposure"] * block)  # SCI VAR DQ
+        disk += nb * n_exp * (12 * ndet + _HEADER_BLOCKS["exposure"] * block)  # IMAGE VARIANCE FLAGS
         n_files += nb * n_exp
     disk += n_det_bands * (4 * npix + _HEADER_BLOCKS["detections"] * block
                            + _DETECTION_BYTES_PER_SOURCE * sources)

@@ -263,3 +263,26 @@ def test_reported_numbers_do_not_depend_on_the_tiling(tmp_path):
                 assert v == pytest.approx(b["score"][band][k], abs=1e-6, nan_ok=True), k
             else:
                 assert v == b["score"][band][k], k
+
+
+def test_detections_carry_the_flags_of_their_footprint():
+    """A source whose footprint holds a saturated pixel says so in its ``flags`` column (no
+    silent flux loss); a clean source has flags 0."""
+    from astropy.wcs import WCS
+
+    from simfield.config import DetectionConfig
+    from simfield.detect import detect_sources
+    from simfield.grid import Grid
+
+    g = Grid(nx=120, ny=120, scale=0.04, ra0=150.0, dec0=2.0)
+    yy, xx = np.mgrid[0:120, 0:120]
+    sci = sum(5.0 * np.exp(-((xx - x) ** 2 + (yy - y) ** 2) / (2 * 2.0 ** 2))
+              for x, y in ((30, 30), (90, 90)))
+    sci = sci + np.random.default_rng(0).normal(0, 0.01, sci.shape)
+    flags = np.zeros(sci.shape, np.int32)
+    flags[30, 30] = sv.MOSAIC_SATURATED
+    det = detect_sources(sci, np.full(sci.shape, 1e4), WCS(g.wcs.to_header()), DetectionConfig(),
+                         0.2, 28.0, 0.04, flags=flags).catalog
+    assert len(det) == 2
+    near = np.hypot(det["x"] - 30, det["y"] - 30) < 3
+    assert det["flags"][near][0] == sv.MOSAIC_SATURATED and det["flags"][~near][0] == 0
