@@ -19,6 +19,7 @@ from astropy.io import fits
 from astropy.table import Table
 
 from ..bands import make_band
+from ..columns import table_hdu
 from ..errors import CatalogError
 from ..io import write_fits
 from .fit import PhotozResult, fit_photoz, interval_quantiles
@@ -105,14 +106,12 @@ def fit_run(out_dir, sc, prov) -> dict:
              ("NTEMPL", len(tset.names), "templates fitted"),
              ("BANDS", ",".join(used), "bands fitted (flux_<band> of PHOTOMETRY)"),
              ("DZ1PZ", cfg.dz_over_1pz, "redshift grid step in ln(1+z)")]
-    hdu = fits.BinTableHDU(table, name="PHOTOZ")
-    for i, name in enumerate(table.colnames, start=1):
-        hdu.header[f"TTYPE{i}"] = (name, table[name].description[:60])
+    hdu = table_hdu(table, "PHOTOZ")
     pz = fits.ImageHDU(res.pz, name="PZ")
     pz.header["BUNIT"] = ("1", "P(z) per unit redshift; row i = PHOTOZ row i")
     zg = Table({"z": z})
     zg["z"].description = "redshift of PZ column j (uniform in ln(1+z))"
-    write_fits(out / "photoz.fits", [hdu, pz, fits.BinTableHDU(zg, name="ZGRID")], prov, cards)
+    write_fits(out / "photoz.fits", [hdu, pz, table_hdu(zg, "ZGRID")], prov, cards)
     return {"n_objects": int(len(table)), "n_templates": len(tset.names), "n_z": int(z.size),
             "bands": used, "fit_time_s": round(dt, 3),
             "n_p_gt_half": {cut_column(c): int(np.sum(p > 0.5)) for c, p in res.p_gt.items()}}
