@@ -269,11 +269,14 @@ class PhotozConfig:
     z_cuts: list[float] = field(
         default_factory=lambda: [5.5, 6.5, 7.5, 9.5, 12.5])  #: P(z > cut) columns p_gt_<cut>
     prior: str = "none"  #: none | luminosity (population's UV luminosity function x dV/dz)
-    betas: list[float] = field(
-        default_factory=lambda: [-2.8, -2.4, -2.0, -1.6, -1.2, -0.8, -0.4])  #: star-forming UV slopes
-    a_v: list[float] = field(
-        default_factory=lambda: [0.5, 1.0, 2.0, 3.0, 4.0])  #: dusty templates' A_V (mag, Calzetti)
-    line_ew_nm: list[float] = field(default_factory=list)  #: rest EW of [OIII]+H beta (nm); []: no line templates
+    #: star-forming UV slopes
+    betas: list[float] = field(default_factory=lambda: [-2.8, -2.4, -2.0, -1.6, -1.2, -0.8, -0.4])
+    sf_breaks: list[float] = field(
+        default_factory=lambda: [1.1, 1.25, 1.45])  #: star-forming 380 nm break strengths
+    #: dusty templates' V-band attenuation A_V (mag, Calzetti et al. 2000)
+    a_v: list[float] = field(default_factory=lambda: [0.5, 1.0, 2.0, 3.0, 4.0])
+    #: rest equivalent widths of [OIII] + H beta of line-emitter templates (nm); []: none
+    line_ew_nm: list[float] = field(default_factory=list)
 
 
 @dataclass
@@ -547,6 +550,10 @@ def _validate_photoz(p: PhotozConfig) -> None:
     require(len(p.betas) > 0, "photoz.betas", list(p.betas), "must list at least one UV slope")
     for j, b in enumerate(p.betas):
         check_range(f"photoz.betas.{j}", b, -4, 3)
+    require(len(p.sf_breaks) > 0, "photoz.sf_breaks", list(p.sf_breaks),
+            "must list at least one break strength")
+    for j, k in enumerate(p.sf_breaks):
+        check_range(f"photoz.sf_breaks.{j}", k, 1, 5)
     for j, a in enumerate(p.a_v):
         check_range(f"photoz.a_v.{j}", a, 0, 10)
     for j, e in enumerate(p.line_ew_nm):

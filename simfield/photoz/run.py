@@ -96,7 +96,8 @@ def fit_run(out_dir, sc, prov) -> dict:
     bands = [make_band(b.name, b.center_nm, b.width_nm, b.throughput, b.sky_mjy_sr)
              for b in sc.telescope.bands if b.name in used]
     z = redshift_grid(cfg.z_min, cfg.z_max, cfg.dz_over_1pz)
-    tset = build_templates(bands, z, default_families(cfg.betas, cfg.a_v, cfg.line_ew_nm))
+    tset = build_templates(bands, z, default_families(cfg.betas, cfg.a_v, cfg.line_ew_nm,
+                                                         cfg.sf_breaks))
     t0 = time.perf_counter()
     res = fit_photoz(flux, err, tset, cfg.z_cuts,
                      make_prior(cfg.prior, z, sc.population.abs_mag_faint))
