@@ -107,12 +107,23 @@ def _fit_chunk(flux, w, tflat, tflat2, nt, nz, z, prior):
     wf = w * flux
     sff = np.sum(wf * flux, axis=1)
     sft = wf @ tflat.T  # (c, n_t n_z)
-    stt = w @ tflat2.T
-    amp = np.where(stt > 0, np.maximum(sft / np.where(stt > 0, stt, 1.0), 0.0), 0.0)
-    chi2 = np.maximum(sff[:, None] - amp * sft, 0.0)
+    stt = w @ tflat2.T  # 0 only where every used band of the template is 0, and then sft = 0
+    pos = stt > 0
+    amp = None
+    if prior is not None:
+        amp = np.divide(np.maximum(sft, 0.0), stt, out=np.zeros_like(sft), where=pos)
+    # chi2 = sff - a sft with a = max(sft, 0) / stt
+    np.maximum(sft, 0.0, out=sft)
+    sft *= sft
+    np.divide(sft, stt, out=sft, where=pos)
+    sft[~pos] = 0.0
+    chi2 = np.subtract(sff[:, None], sft, out=sft)
+    np.maximum(chi2, 0.0, out=chi2)
     best = np.argmin(chi2, axis=1)
     chi2_best = chi2[np.arange(chi2.shape[0]), best]
-    like = np.exp(-0.5 * (chi2 - chi2_best[:, None])).reshape(-1, nt, nz)
+    chi2 -= chi2_best[:, None]
+    chi2 *= -0.5
+    like = np.exp(chi2, out=chi2).reshape(-1, nt, nz)
     if prior is not None:
         like = like * prior(amp.reshape(-1, nt, nz), z)
     return like.sum(axis=1), chi2_best, best // nz
