@@ -109,6 +109,29 @@ def test_calzetti_k_v_is_rv_and_dusty_template_colours():
     assert_allclose(dusty / base, 10 ** (-0.4 * 2.0 * (k - k[0]) / 4.05), rtol=1e-10)
 
 
+def test_line_templates_follow_equivalent_width():
+    """Lines of rest equivalent width W on a flat f_nu continuum raise the photon-weighted
+    band mean by sum_j W_obs,j T(lambda_j) / lambda_j / int T dlambda / lambda (definition of
+    the equivalent width, common practice; denominator by scipy.integrate.simpson): z = 6 puts
+    [OIII] 495.9/500.7 and H beta on the flat top of a 3200-3800 nm band, H alpha and [OII]
+    outside it. Tolerance 1e-3: the lines are Gaussians sampled on the 1/200 ln-lambda grid."""
+    from simfield.photoz.lines import add_lines
+
+    band = make_band("wide", 3500, 600, 0.5)
+    z, ew = 6.0, 60.0
+
+    def fam(w):
+        return ["flat+lines"], add_lines(w[None], np.ones((1,) + w.shape), ew)
+
+    got = build_templates([band], np.array([z]), [fam]).flux[0, 0, 0]
+    lam = np.linspace(band.wave[0], band.wave[-1], 200001)
+    den = integrate.simpson(np.interp(lam, band.wave, band.throughput) / lam, x=lam)
+    # shares of the [OIII] + H beta complex: 0.6, 0.2, 0.2 (simfield.photoz.lines docstring)
+    num = sum(s * ew * (1 + z) * 0.5 / (lam * (1 + z))
+              for s, lam in ((0.6, 500.7), (0.2, 495.9), (0.2, 486.1)))
+    assert_allclose(got, 1.0 + num / den, rtol=1e-3)
+
+
 # ------------------------------------------------------------------------------- the fit
 def test_amplitudes_and_chi2_match_scipy_nnls(tset):
     """The analytic clipped amplitude equals scipy.optimize.nnls for one template and z, so
