@@ -16,7 +16,8 @@ import re
 
 from astropy.table import Table
 
-__all__ = ["TRUTH_COLUMNS", "IMAGE_COLUMNS", "SCORE_COLUMNS", "SCORE_TABLES", "describe",
+__all__ = ["TRUTH_COLUMNS", "IMAGE_COLUMNS", "SCORE_COLUMNS", "SCORE_TABLES",
+           "PHOTOMETRY_COLUMNS", "describe",
            "describe_fits_header", "table_hdu"]
 
 _POS = {
@@ -104,6 +105,21 @@ SCORE_COLUMNS = {
     "magnification": ("", "|magnification| of the brightest image"),
     "recovered": ("", "whether any image of the source was matched"),
     "det_row": ("", "catalogue row of the matched detection (0-based), -1 if none"),
+}
+
+#: (unit, description) of the columns of photometry.fits (HDU PHOTOMETRY)
+PHOTOMETRY_COLUMNS = {
+    **_POS,
+    "id": ("", "detection id (DETECTIONS.id of the detection band)"),
+    "flux_{band}": ("nJy", "PSF-matched aperture flux in {band}, corrected to total by the "
+                           "target PSF's encircled energy; use for colours"),
+    "flux_err_{band}": ("nJy", "1-sigma error of flux_{band}, with the noise correlation of "
+                               "the mosaic and of the matching kernel"),
+    "flux_native_{band}": ("nJy", "native-resolution aperture flux in {band}, corrected to "
+                                  "total by the band's own encircled energy"),
+    "flux_native_err_{band}": ("nJy", "1-sigma error of flux_native_{band}: F(r) sqrt(sum "
+                                      "1/INVVAR) / EE"),
+    "flags_{band}": ("", "OR of the mosaic FLAGS of {band} over the aperture"),
 }
 
 #: what each score table holds (``meta["description"]`` of ``<name>.ecsv``)
