@@ -19,6 +19,7 @@ from ..columns import PHOTOMETRY_COLUMNS, describe, table_hdu
 from ..errors import CatalogError
 from ..io import Provenance, write_fits
 from ..noisecards import noise_factor, read_noise_factors
+from .encircled import blur_widths, effective_ee
 from .forced import BLOCK_PIXELS, aperture_sums
 from .kernels import matched_noise_ratio, matching_kernel
 
@@ -55,7 +56,7 @@ def target_band(psfs: dict[str, PSFInfo], match_to: str = "") -> str:
 
 
 def measure_catalog(det: Table, mosaics: dict[str, Path], psfs: dict[str, PSFInfo],
-                    radius_arcsec: float, match_to: str = "",
+                    radius_arcsec: float, match_to: str = "", drop_arcsec: float = 0.0,
                     block: int = BLOCK_PIXELS) -> Table:
     """Forced photometry of every row of ``det`` in every band.
 
@@ -69,6 +70,9 @@ def measure_catalog(det: Table, mosaics: dict[str, Path], psfs: dict[str, PSFInf
         Aperture radius.
     match_to : str
         Target band of the PSF matching; empty: the broadest PSF.
+    drop_arcsec : float (arcsec)
+        Width of the drizzle drop (a box; 0 for none), for the aperture corrections
+        (:mod:`.encircled`).
     block : int (mosaic pixels)
         Side of the blocks the mosaics are read in (does not change the result).
 
@@ -76,13 +80,14 @@ def measure_catalog(det: Table, mosaics: dict[str, Path], psfs: dict[str, PSFInf
     -------
     Table
         Columns of :data:`simfield.columns.PHOTOMETRY_COLUMNS` (nJy); meta
-        ``MATCHTO``, ``APER_AS`` and per band ``NOISR_<band>`` (matched / native noise).
+        ``MATCHTO``, ``APER_AS`` and per band ``PBANDnn`` (name) and ``PNOISnn`` (matched over
+        native aperture noise, sqrt(R) of :func:`.kernels.matched_noise_ratio`), nn from 01.
     """
     target = target_band(psfs, match_to)
     tp = psfs[target]
     out = Table({k: np.asarray(det[k]) for k in ("id", "ra", "dec", "x", "y")})
     out.meta.update(MATCHTO=target, APER_AS=float(radius_arcsec))
-    for b, path in mosaics.items():
+    for i, (b, path) in enumerate(mosaics.items(), start=1):
         with fits.open(path) as hl:
             hdr = hl["IMAGE"].header
             pix = float(proj_plane_pixel_scales(WCS(hdr))[0] * 3600.0)
@@ -95,13 +100,15 @@ def measure_catalog(det: Table, mosaics: dict[str, Path], psfs: dict[str, PSFInf
         ratio = 1.0 if kernel is None else matched_noise_ratio(rho, kernel, r_pix)
         s = aperture_sums(path, out["x"], out["y"], r_pix, kernel, block)
         err = float(noise_factor(table, r_pix)) * np.sqrt(s.var)
-        ee_b, ee_t = psfs[b].encircled(radius_arcsec), tp.encircled(radius_arcsec)
+        widths = (drop_arcsec, pix, pix)  # drop, mosaic pixel, aperture on pixels
+        ee_b, ee_t = (effective_ee(p, radius_arcsec, widths) for p in (psfs[b], tp))
         out[f"flux_{b}"] = s.matched * fluxnjy / ee_t
         out[f"flux_err_{b}"] = err * np.sqrt(ratio) * fluxnjy / ee_t
         out[f"flux_native_{b}"] = s.native * fluxnjy / ee_b
         out[f"flux_native_err_{b}"] = err * fluxnjy / ee_b
         out[f"flags_{b}"] = s.flags
-        out.meta[f"NOISR_{b}"] = round(float(np.sqrt(ratio)), 5)
+        out.meta[f"PBAND{i:02d}"] = b
+        out.meta[f"PNOIS{i:02d}"] = round(float(np.sqrt(ratio)), 5)
     return describe(out, PHOTOMETRY_COLUMNS)
 
 
@@ -132,7 +139,9 @@ def measure_run(run_dir, sc, prov: Provenance) -> dict:
     psfs = {b: read_psf(run_dir / f"psf_{b}.fits") for b in bands}
     mosaics = {b: run_dir / f"mosaic_{b}.fits" for b in bands}
     cfg = sc.photometry
-    t = measure_catalog(det, mosaics, psfs, cfg.aperture_radius_arcsec, cfg.match_to)
+    drop = blur_widths(sc.telescope.pixel_scale_arcsec, sc.survey.pixfrac,
+                       sc.survey.drizzle_kernel, 0.0)[0]
+    t = measure_catalog(det, mosaics, psfs, cfg.aperture_radius_arcsec, cfg.match_to, drop)
     t.meta["DETBAND"] = detband
     write_fits(run_dir / "photometry.fits", [table_hdu(t, "PHOTOMETRY")], prov,
                [("DETBAND", detband, "band of the detection catalogue"),
@@ -147,4 +156,5 @@ def measure_run(run_dir, sc, prov: Provenance) -> dict:
     return {"n_rows": len(t), "detection_band": detband, "match_to": t.meta["MATCHTO"],
             "aperture_radius_arcsec": float(cfg.aperture_radius_arcsec), "bands": bands,
             "median_snr": {b: median_snr(b) for b in bands},
-            "noise_ratio": {b: t.meta[f"NOISR_{b}"] for b in bands}}
+            "noise_ratio": {t.meta[f"PBAND{i:02d}"]: t.meta[f"PNOIS{i:02d}"]
+                            for i in range(1, len(bands) + 1)}}
