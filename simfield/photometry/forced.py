@@ -1,7 +1,7 @@
 """Forced circular-aperture sums on a written mosaic, native and PSF-matched, block by block.
 
-The mosaic is read in square blocks of ``block`` pixels (memory maps, so memory grows with the
-block, not the field). Each block is read with a margin of the kernel's half-size plus the
+The mosaic is read in square blocks of ``block`` pixels (memory maps: only a block's pages are
+read, so memory grows with the block, not the field). Each block is read with a margin of the kernel's half-size plus the
 aperture radius, convolved with the matching kernel (zero beyond the mosaic's edges, as for a
 convolution of the whole mosaic), and the apertures of the positions whose nearest pixel lies
 in the block are summed on the native and the convolved pixels. Every aperture thus sees
@@ -83,10 +83,10 @@ def aperture_sums(path, x, y, radius_pix: float, kernel: np.ndarray | None,
             y0, x0 = max(by * block - pad, 0), max(bx * block - pad, 0)
             y1, x1 = min((by + 1) * block + pad, ny), min((bx + 1) * block + pad, nx)
             win = (slice(y0, y1), slice(x0, x1))
-            img = np.nan_to_num(hl["IMAGE"].section[win].astype(float))
-            wht = hl["INVVAR"].section[win].astype(float)
+            img = np.nan_to_num(hl["IMAGE"].data[win].astype(float))
+            wht = hl["INVVAR"].data[win].astype(float)
             var = np.where(wht > 0, 1.0 / np.where(wht > 0, wht, 1.0), 0.0)
-            flg = hl["FLAGS"].section[win].astype(np.int32)
+            flg = hl["FLAGS"].data[win].astype(np.int32)
             masks = CircularAperture(np.column_stack([x[sel] - x0, y[sel] - y0]),
                                      radius_pix).to_mask(method="exact")
             slices = [m.get_overlap_slices(img.shape) for m in masks]
