@@ -102,7 +102,8 @@ def _sources(n=12, seed=4):
     g = np.linspace(30, NPIX - 30, 4)
     x, y = np.meshgrid(g, g[:3])
     x, y = x.ravel()[:n] + rng.uniform(-0.5, 0.5, n), y.ravel()[:n] + rng.uniform(-0.5, 0.5, n)
-    return Table({"id": np.arange(1, n + 1), "x": x, "y": y, "ra": np.zeros(n), "dec": np.zeros(n)})
+    return Table({"id": np.arange(1, n + 1), "x": x, "y": y, "ra": np.zeros(n),
+                  "dec": np.zeros(n)})
 
 
 def _synthetic(folder, flux_njy, noise_sigma=0.0, seed=5):
@@ -135,6 +136,14 @@ def test_point_source_comes_back_at_its_flux_in_every_band(tmp_path):
         np.testing.assert_allclose(t[f"flux_{b}"], f, rtol=0.01)
     # the correction matters: uncorrected matched apertures would be ~17% low
     assert psfs["bc"].encircled(RADIUS) < 0.85
+
+
+def test_narrower_target_refused(tmp_path):
+    """Matching to a PSF narrower than another band's would deconvolve: refused, naming the
+    key, the value and the broader bands, before anything is measured."""
+    det, mosaics, psfs = _synthetic(tmp_path, {b: 10.0 for b in SIGMAS})
+    with pytest.raises(ConfigError, match=r"photometry\.match_to='bb' .*narrower.*bc"):
+        measure_catalog(det, mosaics, psfs, RADIUS, match_to="bb")
 
 
 def test_blocks_do_not_change_the_result(tmp_path):
@@ -237,7 +246,8 @@ def test_errors_match_empty_sky(run, band):
     out = res.out_dir
     t = Table.read(out / "photometry.fits", hdu="PHOTOMETRY")
     r_pix = t.meta["APER_AS"] / 0.04
-    with fits.open(out / f"mosaic_{band}.fits") as m, fits.open(out / f"truth_image_{band}.fits") as tr:
+    with (fits.open(out / f"mosaic_{band}.fits") as m,
+          fits.open(out / f"truth_image_{band}.fits") as tr):
         diff = m["IMAGE"].data.astype(float) - tr["IMAGE"].data.astype(float)
         wht = m["INVVAR"].data.astype(float)
         factor = _stated_factor(m["INVVAR"].header, r_pix)

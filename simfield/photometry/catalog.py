@@ -16,10 +16,10 @@ from astropy.wcs import WCS
 from astropy.wcs.utils import proj_plane_pixel_scales
 
 from ..columns import PHOTOMETRY_COLUMNS, describe, table_hdu
-from ..errors import CatalogError
+from ..errors import CatalogError, ConfigError
 from ..io import Provenance, write_fits
 from ..noisecards import noise_factor, read_noise_factors
-from .encircled import blur_widths, effective_ee
+from .encircled import drop_width, effective_ee
 from .forced import BLOCK_PIXELS, aperture_sums
 from .kernels import matched_noise_ratio, matching_kernel
 
@@ -85,6 +85,11 @@ def measure_catalog(det: Table, mosaics: dict[str, Path], psfs: dict[str, PSFInf
     """
     target = target_band(psfs, match_to)
     tp = psfs[target]
+    broader = [b for b in mosaics if psfs[b].fwhm > tp.fwhm * 1.001]
+    if broader:  # matching to a narrower PSF would deconvolve
+        raise ConfigError("photometry.match_to", match_to,
+                          f"has FWHM {tp.fwhm:.4g} arcsec, narrower than band(s) "
+                          f"{', '.join(broader)}: choose the broadest or leave it empty")
     out = Table({k: np.asarray(det[k]) for k in ("id", "ra", "dec", "x", "y")})
     out.meta.update(MATCHTO=target, APER_AS=float(radius_arcsec))
     for i, (b, path) in enumerate(mosaics.items(), start=1):
@@ -139,8 +144,8 @@ def measure_run(run_dir, sc, prov: Provenance) -> dict:
     psfs = {b: read_psf(run_dir / f"psf_{b}.fits") for b in bands}
     mosaics = {b: run_dir / f"mosaic_{b}.fits" for b in bands}
     cfg = sc.photometry
-    drop = blur_widths(sc.telescope.pixel_scale_arcsec, sc.survey.pixfrac,
-                       sc.survey.drizzle_kernel, 0.0)[0]
+    drop = drop_width(sc.telescope.pixel_scale_arcsec, sc.survey.pixfrac,
+                      sc.survey.drizzle_kernel)
     t = measure_catalog(det, mosaics, psfs, cfg.aperture_radius_arcsec, cfg.match_to, drop)
     t.meta["DETBAND"] = detband
     write_fits(run_dir / "photometry.fits", [table_hdu(t, "PHOTOMETRY")], prov,

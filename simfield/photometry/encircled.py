@@ -20,17 +20,15 @@ from __future__ import annotations
 import numpy as np
 from photutils.aperture import CircularAperture
 
-__all__ = ["blur_widths", "effective_ee"]
+__all__ = ["drop_width", "effective_ee"]
 
 
-def blur_widths(pixel_arcsec: float, pixfrac: float, kernel: str,
-                mosaic_pixel_arcsec: float) -> tuple[float, ...]:
-    """Widths (arcsec) of the boxes between ``PSF_DET`` and an aperture on the mosaic: the
-    drizzle drop (``square``/``turbo``: pixfrac x pixel; ``gaussian``: the box of the same
-    variance as its FWHM = pixfrac x pixel; ``point``/``lanczos3``: none) and the mosaic pixel
-    twice (module docstring)."""
-    drop = {"square": 1.0, "turbo": 1.0, "gaussian": np.sqrt(12) / 2.3548}.get(kernel, 0.0)
-    return (drop * pixfrac * pixel_arcsec, mosaic_pixel_arcsec, mosaic_pixel_arcsec)
+def drop_width(pixel_arcsec: float, pixfrac: float, kernel: str) -> float:
+    """Width (arcsec) of the box standing for the drizzle drop: ``square``/``turbo``: pixfrac x
+    the detector pixel; ``gaussian``: the box of the variance of a Gaussian of FWHM pixfrac x
+    pixel; ``point``/``lanczos3``: 0 (no drop)."""
+    scale = {"square": 1.0, "turbo": 1.0, "gaussian": np.sqrt(12) / 2.3548}.get(kernel, 0.0)
+    return float(scale * pixfrac * pixel_arcsec)
 
 
 def _aperture_share(img: np.ndarray, radius_pix: float) -> float:
@@ -48,7 +46,7 @@ def effective_ee(psf, radius_arcsec: float, widths=()) -> float:
         ``PSF_DET`` image and pixel (arcsec), and the file's EE table.
     radius_arcsec : float (arcsec)
     widths : sequence of float (arcsec)
-        Boxes the mosaic adds (:func:`blur_widths`); empty: the file's EE.
+        Boxes the mosaic adds (drop, mosaic pixel, mosaic pixel again); empty: the file's EE.
     """
     ee = psf.encircled(radius_arcsec)
     widths = [w for w in widths if w > 0]

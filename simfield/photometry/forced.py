@@ -1,12 +1,13 @@
 """Forced circular-aperture sums on a written mosaic, native and PSF-matched, block by block.
 
-The mosaic is read in square blocks of ``block`` pixels (memory maps: only a block's pages are
-read, so memory grows with the block, not the field). Each block is read with a margin of the kernel's half-size plus the
-aperture radius, convolved with the matching kernel (zero beyond the mosaic's edges, as for a
-convolution of the whole mosaic), and the apertures of the positions whose nearest pixel lies
-in the block are summed on the native and the convolved pixels. Every aperture thus sees
-exactly the pixels a whole-mosaic convolution would give it, so the result does not depend on
-the block size nor on how the mosaic was made (up to floating-point rounding of the FFTs).
+The mosaic is read in square blocks of ``block`` pixels (memory maps: only a block's pages
+are read, so memory grows with the block, not the field). Each block is read with a margin of
+the kernel's half-size plus the aperture radius, convolved with the matching kernel (zero
+beyond the mosaic's edges, as for a convolution of the whole mosaic), and the apertures of the
+positions whose nearest pixel lies in the block are summed on the native and the convolved
+pixels. Every aperture thus sees exactly the pixels a whole-mosaic convolution would give it,
+so the result does not depend on the block size nor on how the mosaic was made (up to
+floating-point rounding of the FFTs).
 """
 
 from __future__ import annotations
