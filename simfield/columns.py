@@ -16,7 +16,8 @@ import re
 
 from astropy.table import Table
 
-__all__ = ["TRUTH_COLUMNS", "IMAGE_COLUMNS", "SCORE_COLUMNS", "SCORE_TABLES", "describe",
+__all__ = ["TRUTH_COLUMNS", "IMAGE_COLUMNS", "SCORE_COLUMNS", "SCORE_TABLES",
+           "PHOTOMETRY_COLUMNS", "describe",
            "describe_fits_header", "table_hdu"]
 
 _POS = {
@@ -106,6 +107,22 @@ SCORE_COLUMNS = {
     "det_row": ("", "catalogue row of the matched detection (0-based), -1 if none"),
 }
 
+#: (unit, description) of the columns of photometry.fits (HDU PHOTOMETRY)
+PHOTOMETRY_COLUMNS = {
+    **_POS,
+    "id": ("", "detection id (DETECTIONS.id of the detection band)"),
+    # the longer patterns first: "flux_{band}" would also match "flux_native_err_b10"
+    "flux_native_err_{band}": ("nJy", "1-sigma error of flux_native_{band}: F(r) sqrt(sum "
+                                      "1/INVVAR) / EE"),
+    "flux_native_{band}": ("nJy", "native-resolution aperture flux in {band}, corrected to "
+                                  "total by the band's own encircled energy"),
+    "flux_err_{band}": ("nJy", "1-sigma error of flux_{band}, with the noise correlation of "
+                               "the mosaic and of the matching kernel"),
+    "flux_{band}": ("nJy", "PSF-matched aperture flux in {band}, corrected to total by the "
+                           "target PSF's encircled energy; use for colours"),
+    "flags_{band}": ("", "OR of the mosaic FLAGS of {band} over the aperture"),
+}
+
 #: what each score table holds (``meta["description"]`` of ``<name>.ecsv``)
 SCORE_TABLES = {
     "completeness_mag": "fraction of truth galaxies recovered per bin of observed magnitude",
@@ -168,7 +185,8 @@ def describe_fits_header(header, t: Table) -> None:
     for i, name in enumerate(t.colnames, start=1):
         desc = t[name].description
         if desc and header.get(f"TTYPE{i}") == name:
-            header.comments[f"TTYPE{i}"] = desc[:47]
+            # an 80-character card: keyword, "= ", the quoted name (>= 20 wide), " / "
+            header.comments[f"TTYPE{i}"] = desc[:min(47, 67 - max(len(name) + 2, 20))]
 
 
 def table_hdu(t: Table, name: str):

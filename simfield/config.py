@@ -40,6 +40,7 @@ __all__ = [
     "DetectorConfig",
     "SurveyConfig",
     "DetectionConfig",
+    "PhotometryConfig",
     "PhotozConfig",
     "ScoreConfig",
     "LimitsConfig",
@@ -280,6 +281,20 @@ class PhotozConfig:
 
 
 @dataclass
+class PhotometryConfig:
+    """Forced multi-band photometry of the detections (:mod:`simfield.photometry`)."""
+
+    enabled: bool = True
+    #: circular aperture radius (arcsec); 0.2" is ~1.5 x the broadest default PSF FWHM (b36,
+    #: 0.136"): it holds ~80% of that band's light (its first dark ring), so the aperture
+    #: correction is small and flat in radius, while the sky in it stays ~2x smaller than at 2 x
+    #: FWHM (README, photometry.fits)
+    aperture_radius_arcsec: float = 0.2
+    #: band every other band's PSF is matched to; empty: the broadest PSF (largest FWHM)
+    match_to: str = ""
+
+
+@dataclass
 class ScoreConfig:
     """Scoring of a detection catalogue against the truth."""
 
@@ -329,6 +344,7 @@ class Scenario:
     detector: DetectorConfig = MISSING
     survey: SurveyConfig = MISSING
     detection: DetectionConfig = field(default_factory=DetectionConfig)
+    photometry: PhotometryConfig = field(default_factory=PhotometryConfig)
     photoz: PhotozConfig = field(default_factory=PhotozConfig)
     score: ScoreConfig = field(default_factory=ScoreConfig)
     limits: LimitsConfig = field(default_factory=LimitsConfig)
@@ -560,6 +576,13 @@ def _validate_photoz(p: PhotozConfig) -> None:
         check_range(f"photoz.line_ew_nm.{j}", e, 0, 1000, lo_open=True)
 
 
+def _validate_photometry(p: PhotometryConfig, bands: list[str]) -> None:
+    check_range("photometry.aperture_radius_arcsec", p.aperture_radius_arcsec, 0, 10,
+                lo_open=True)
+    require(p.match_to == "" or p.match_to in bands, "photometry.match_to", p.match_to,
+            f"must be empty (the broadest PSF) or one of: {', '.join(bands)}")
+
+
 def _validate_score(s: ScoreConfig) -> None:
     check_range("score.match_radius_arcsec", s.match_radius_arcsec, 0, 10, lo_open=True)
     check_range("score.mag_min", s.mag_min, 0, 50)
@@ -612,6 +635,7 @@ def validate(sc: Scenario) -> Scenario:
     _validate_detector(sc.detector)
     _validate_survey(sc.survey)
     _validate_detection(sc.detection, bands)
+    _validate_photometry(sc.photometry, bands)
     _validate_photoz(sc.photoz)
     _validate_score(sc.score)
     _validate_limits(sc.limits)

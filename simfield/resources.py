@@ -58,9 +58,11 @@ TILE_BYTES_PER_SCENE_PIXEL = 32.0
 #: 1.2-1.6 GB for a 3584^2 tile in DEVELOPERS.md, 1.54 GB here).
 DETECTION_BYTES_PER_PIXEL = 120.0
 _FITS_BLOCK = 2880
-_HEADER_BLOCKS = {"mosaic": 14, "truth_image": 9, "exposure": 9, "detections": 5}
+_HEADER_BLOCKS = {"mosaic": 14, "truth_image": 9, "exposure": 9, "detections": 5,
+                  "photometry": 8}
 _TABLE_BYTES_PER_SOURCE = 150.0  # truth.fits, per expected candidate source
 _DETECTION_BYTES_PER_SOURCE = 25.0  # detection catalogue, per expected candidate source
+_PHOTOMETRY_BYTES_PER_SOURCE_BAND = 6.0  # photometry.fits: 5 columns of 4-8 bytes per band
 # score/<band>/ (tables, plots, report page): grows with the mosaic's preview up to a cap
 _SCORE_BYTES, _SCORE_BYTES_PER_PIXEL, _SCORE_PREVIEW_PIXELS = 0.3e6, 7.5, 2.8e5
 _SMALL_BYTES, _SMALL_BYTES_PER_BAND = 0.05e6, 0.11e6  # psf.png, tables, logs
@@ -179,6 +181,10 @@ def estimate(sc: Scenario, galaxies: float | None = None) -> Estimate:
     disk += n_det_bands * (4 * npix + _HEADER_BLOCKS["detections"] * block
                            + _DETECTION_BYTES_PER_SOURCE * sources)
     n_files += n_det_bands
+    if sc.photometry.enabled and n_det_bands:
+        disk += (_HEADER_BLOCKS["photometry"] * block
+                 + _PHOTOMETRY_BYTES_PER_SOURCE_BAND * nb * sources)
+        n_files += 1
     if sc.score.enabled and n_det_bands:
         disk += n_det_bands * (_SCORE_BYTES + _SCORE_BYTES_PER_PIXEL
                                * min(npix, _SCORE_PREVIEW_PIXELS))
