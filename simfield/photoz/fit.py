@@ -169,7 +169,7 @@ def fit_photoz(flux, flux_err, templates: TemplateSet, z_cuts: Sequence[float] =
     area = _cdf(pz, z)[:, -1]
     pz /= np.where(area > 0, area, 1.0)[:, None]
     cdf = _cdf(pz, z)
-    p_gt = {float(c): 1.0 - _interp_rows(c, z, cdf) for c in z_cuts}
+    p_gt = {float(c): np.clip(1.0 - _interp_rows(c, z, cdf), 0.0, 1.0) for c in z_cuts}
     return PhotozResult(
         z=z, pz=pz.astype(np.float32), z_best=z[np.argmax(pz, axis=1)],
         z_lo=_quantile(cdf, z, interval_quantiles[0]),
