@@ -418,6 +418,7 @@ def score_run(run_dir, catalog, band: str, cfg: ScoreConfig | None = None, out_d
                            drop_duplicates)
         cat_name = str(catalog)
     radius, images, ix, iy, m = match_to_truth(truth, det, cfg)
+    sources = truth["sources"]
     ny, nx = shape
     img_src = np.asarray(images["source_id"], np.int64)
     mag_img = np.asarray(images[f"mag_{band}"], float)
