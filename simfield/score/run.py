@@ -595,6 +595,14 @@ def _parser() -> argparse.ArgumentParser:
                                  "stem>/<band>; the run's own detections: "
                                  "<run_dir>/score_detections_<band>/<band>)")
     p.add_argument("--no-report", action="store_true", help="skip report.html and plots")
+    s = p.add_mutually_exclusive_group()
+    s.add_argument("--select-col", help="boolean column: the catalogue's own high-redshift "
+                                        "selection, scored for each sample's window of the "
+                                        "run's selection group (--sample)")
+    s.add_argument("--zphot-col", help="redshift column: selected where it lies in each "
+                                       "sample's window")
+    p.add_argument("--sample", action="append", help="sample of the run's selection group "
+                                                     "(repeatable; default all)")
     return p
 
 
@@ -664,6 +672,8 @@ def score_main_args(argv: list[str]) -> int:
             cols.update(flux=a.flux_col, flux_unit=a.flux_unit)
         else:
             cols["mag"] = a.mag_col or "mag"
+        if a.select_col or a.zphot_col:
+            return _selection_main(a, run_dir, band, sc, cols)
         out = Path(a.out) if a.out else default_out_dir(run_dir, a.catalog, band)
         summ = score_run(run_dir, a.catalog, band, cfg, out, cols, a.skip_invalid,
                          drop_duplicates=a.drop_duplicates,
@@ -673,4 +683,26 @@ def score_main_args(argv: list[str]) -> int:
         return 2
     print(f"simfield-score: band {band} ({why}); {summ['n_matched']} of "
           f"{summ['n_detections']} detections matched; results in {os.fspath(out)}")
+    return 0
+
+
+def _selection_main(a, run_dir: Path, band: str, sc, cols: dict) -> int:
+    """``--select-col`` / ``--zphot-col``: score the catalogue's selection (writes
+    ``<run_dir>/selection_<catalogue stem>/<sample>/`` or ``--out/<sample>``)."""
+    import sys
+
+    from ..selection.run import score_catalogue_selection
+
+    opt = "--select-col" if a.select_col else "--zphot-col"
+    if not a.catalog:
+        raise CatalogError(f"{opt} needs --catalog (a multi-band catalogue file)")
+    if sc is None:
+        raise CatalogError(f"{opt}: run directory {str(run_dir)!r} has no readable "
+                           f"scenario.yaml (its samples and bands)")
+    sc.score.report = sc.selection.report = not a.no_report
+    res = score_catalogue_selection(run_dir, a.catalog, sc, band, a.select_col, a.zphot_col,
+                                    a.sample, a.out, {"ra": cols["ra"], "dec": cols["dec"]})
+    print("simfield-score: selection " + "; ".join(
+        f"{k}: {v['n_selected']} selected, {v['contamination']['in_window']} in window"
+        for k, v in res.items()), file=sys.stdout)
     return 0
