@@ -601,48 +601,56 @@ def _validate_score(s: ScoreConfig) -> None:
 
 def _validate_condition(c: ConditionConfig, key: str, bands: list[str], names: list[str],
                         plain: set) -> None:
-    allowed = ", ".join(bands)
     require(c.kind in CONDITION_KINDS, f"{key}.kind", c.kind,
             f"must be one of {', '.join(CONDITION_KINDS)}")
-    for j, b in enumerate(list(c.bands) + list(c.slope_bands)):
-        k = f"{key}.bands.{j}" if j < len(c.bands) else f"{key}.slope_bands.{j - len(c.bands)}"
-        require(b in bands, k, b, f"must be one of the bands {allowed}")
+    for j, b in enumerate(c.bands):
+        require(b in bands, f"{key}.bands.{j}", b, f"must be one of the bands {', '.join(bands)}")
+    for j, b in enumerate(c.slope_bands):
+        require(b in bands, f"{key}.slope_bands.{j}", b,
+                f"must be one of the bands {', '.join(bands)}")
     for k, v in (("above", c.above), ("below", c.below)):
         if v is not None:
             check_range(f"{key}.{k}", v, -100, 100)
+    check_range(f"{key}.slope", c.slope, -20, 20)
+    check_range(f"{key}.limit_sigma", c.limit_sigma, 0, 100, lo_open=True)
+    check_range(f"{key}.z_cut", c.z_cut, 0, 30)
     if c.kind == "exclude":
+        listed = ", ".join(f"{n} ({key.split('.conditions')[0].rsplit('.', 1)[0]}.{i}.name)"
+                           for i, n in enumerate(names))
         require(c.sample in names, f"{key}.sample", c.sample,
-                f"must name another sample: one of {', '.join(names) or '(none)'}")
+                f"must name another sample: one of {listed or '(none)'}")
         require(c.sample in plain, f"{key}.sample", c.sample,
                 "must name a sample without exclude conditions of its own")
         return
     if c.kind == "photoz":
-        check_range(f"{key}.z_cut", c.z_cut, 0, 30)
-        require(c.above is not None, f"{key}.above", c.above,
+        require(c.above is not None and 0 <= c.above <= 1, f"{key}.above", c.above,
                 "must be the least P(z > z_cut), in [0, 1]")
-        check_range(f"{key}.above", c.above, 0, 1)
         return
     require(c.above is not None or c.below is not None, f"{key}.above", c.above,
-            "or below must be given")
+            f"or {key}.below must be given")
     if c.above is not None and c.below is not None:
-        require(c.above < c.below, f"{key}.below", c.below, f"must be > above ({c.above:g})")
+        require(c.above < c.below, f"{key}.below", c.below,
+                f"must be > {key}.above ({c.above:g})")
     if c.kind == "colour":
         require(len(c.bands) == 2 and c.bands[0] != c.bands[1], f"{key}.bands", list(c.bands),
                 "must be two different bands [a, b] (colour m_a - m_b)")
         require(len(c.slope_bands) in (0, 2), f"{key}.slope_bands", list(c.slope_bands),
                 "must be empty or two bands [c, d]")
-        check_range(f"{key}.slope", c.slope, -20, 20)
-        check_range(f"{key}.limit_sigma", c.limit_sigma, 0, 100, lo_open=True)
     else:
         require(len(c.bands) >= 1, f"{key}.bands", list(c.bands), "must list at least one band")
 
 
 def _validate_selection(s: SelectionConfig, bands: list[str], z_max: float = 30.0) -> None:
     check_range("selection.abs_mag_min", s.abs_mag_min, -30, 0)
-    check_range("selection.abs_mag_max", s.abs_mag_max, s.abs_mag_min, 0, lo_open=True)
-    check_range("selection.abs_mag_step", s.abs_mag_step, 0, s.abs_mag_max - s.abs_mag_min,
-                lo_open=True)
-    check_range("selection.z_step", s.z_step, 0, z_max, lo_open=True)
+    check_range("selection.abs_mag_max", s.abs_mag_max, -30, 0)
+    require(s.abs_mag_max > s.abs_mag_min, "selection.abs_mag_max", s.abs_mag_max,
+            f"must be > selection.abs_mag_min ({s.abs_mag_min:g})")
+    check_range("selection.abs_mag_step", s.abs_mag_step, 0, 30, lo_open=True)
+    require(s.abs_mag_step <= s.abs_mag_max - s.abs_mag_min, "selection.abs_mag_step",
+            s.abs_mag_step, "must be at most selection.abs_mag_max - selection.abs_mag_min")
+    check_range("selection.z_step", s.z_step, 0, 30, lo_open=True)
+    require(s.z_step <= z_max, "selection.z_step", s.z_step,
+            f"must be at most population.z_max ({z_max:g})")
     check_range("selection.interval", s.interval, 0, 1, lo_open=True, hi_open=True)
     names = [p.name for p in s.samples]
     plain = {p.name for p in s.samples if all(c.kind != "exclude" for c in p.conditions)}
@@ -652,11 +660,11 @@ def _validate_selection(s: SelectionConfig, bands: list[str], z_max: float = 30.
                 f"{key}.name", p.name, "must be a name of letters, digits and _")
         require(names.count(p.name) == 1, f"{key}.name", p.name, "must be unique")
         check_range(f"{key}.z_min", p.z_min, 0, 30)
-        check_range(f"{key}.z_max", p.z_max, p.z_min, 30, lo_open=True)
+        check_range(f"{key}.z_max", p.z_max, 0, 30)
+        require(p.z_max > p.z_min, f"{key}.z_max", p.z_max, f"must be > {key}.z_min ({p.z_min:g})")
         require(len(p.conditions) > 0, f"{key}.conditions", [], "must hold at least one condition")
         for j, c in enumerate(p.conditions):
             _validate_condition(c, f"{key}.conditions.{j}", bands, names, plain)
-
 
 def _validate_limits(lim: LimitsConfig) -> None:
     check_range("limits.disk_gb", lim.disk_gb, 0, 1e6, lo_open=True)
