@@ -108,13 +108,15 @@ def make_report(out_dir, sample, bands, det, selected, cls, tables: dict, summar
     # ---- S(z) at several M_UV
     comp = tables["completeness"]
     fig, ax = plt.subplots(figsize=(7, 4))
-    mlo = np.unique(np.asarray(comp["abs_mag_uv_lo"], float))
+    lo_col = np.asarray(comp["abs_mag_uv_lo"], float)
+    mlo = np.unique(lo_col)
     for m in mlo[::max(1, mlo.size // 4)]:
-        r = (np.asarray(comp["abs_mag_uv_lo"], float) == m) & (np.asarray(comp["n"]) > 0)
+        r = (lo_col == m) & (np.asarray(comp["n"]) > 0)
+        mhi = float(np.asarray(comp["abs_mag_uv_hi"], float)[lo_col == m][0])
         zm = 0.5 * (np.asarray(comp["z_lo"])[r] + np.asarray(comp["z_hi"])[r])
         f = np.asarray(comp["fraction"], float)[r]
         lo, hi = np.asarray(comp["fraction_lo"])[r], np.asarray(comp["fraction_hi"])[r]
-        ax.errorbar(zm, f, yerr=[f - lo, hi - f], fmt="o-", ms=3, label=f"M_UV {m:g}..{m + 1:g}")
+        ax.errorbar(zm, f, yerr=[f - lo, hi - f], fmt="o-", ms=3, label=f"M_UV {m:g}..{mhi:g} (AB)")
     ax.axvspan(z0, z1, color="0.9", zorder=0, label="target window")
     ax.set(xlabel="true redshift z", ylabel="S = P(detected and selected) (n cells below)",
            ylim=(-0.03, 1.03))

@@ -158,9 +158,8 @@ def score_sample(sample, selected, det: Table, truth: dict, matched: dict, sel_c
     dict
         The summary written to ``summary.json``.
     """
-    from ..io import write_json, write_table
+    from ..io import atomic_path, write_json, write_table
     from ..population.luminosity import uv_luminosity_function
-    from ..score.run import _write_table
 
     phi = phi or uv_luminosity_function
     name, z_window = sample.name, (float(sample.z_min), float(sample.z_max))
@@ -175,7 +174,9 @@ def score_sample(sample, selected, det: Table, truth: dict, matched: dict, sel_c
     detsel = (dfs >= 0) & selected[np.maximum(dfs, 0)]
     gal = matched["has_img"] & np.isin(kind, GALAXY_KINDS)
     me = _edges(sel_cfg.abs_mag_min, sel_cfg.abs_mag_max, sel_cfg.abs_mag_step)
+    # regular z bins, split at the window's edges so the window is a union of bins
     ze = _edges(0.0, max(z_max, z_window[1]) + sel_cfg.z_step, sel_cfg.z_step)
+    ze = np.unique(np.round(np.concatenate([ze, z_window]), 9))
     comp = binned_fraction_2d(M[gal], z[gal], detsel[gal], me, ze, lvl, ("abs_mag_uv", "z"))
     frac = np.asarray(comp["fraction"], float).reshape(me.size - 1, ze.size - 1)
 
@@ -254,7 +255,8 @@ def score_sample(sample, selected, det: Table, truth: dict, matched: dict, sel_c
         if prov is not None:
             write_table(out / f"{key}.ecsv", t, prov)
         else:
-            _write_table(out / f"{key}.ecsv", t)
+            with atomic_path(out / f"{key}.ecsv") as tmp:
+                t.write(tmp, format="ascii.ecsv", overwrite=True)
     if sel_cfg.report:
         from .report import make_report
 
