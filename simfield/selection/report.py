@@ -109,21 +109,31 @@ def make_report(out_dir, sample, bands, det, selected, cls, tables: dict, summar
     comp = tables["completeness"]
     fig, ax = plt.subplots(figsize=(7, 4))
     lo_col = np.asarray(comp["abs_mag_uv_lo"], float)
+    n_col, k_col = np.asarray(comp["n"]), np.asarray(comp["k"])
+    zc = 0.5 * (np.asarray(comp["z_lo"], float) + np.asarray(comp["z_hi"], float))
     mlo = np.unique(lo_col)
-    for m in mlo[::max(1, mlo.size // 4)]:
-        r = (lo_col == m) & (np.asarray(comp["n"]) > 0)
+    # the (up to) four M_UV bins with the most truth galaxies inside the window
+    n_win = [n_col[(lo_col == m) & (zc >= z0) & (zc <= z1)].sum() for m in mlo]
+    for m in sorted(mlo[np.argsort(n_win)[::-1][:4]]):
+        r = (lo_col == m) & (n_col > 0)
         mhi = float(np.asarray(comp["abs_mag_uv_hi"], float)[lo_col == m][0])
-        zm = 0.5 * (np.asarray(comp["z_lo"])[r] + np.asarray(comp["z_hi"])[r])
+        zm = zc[r]
         f = np.asarray(comp["fraction"], float)[r]
         lo, hi = np.asarray(comp["fraction_lo"])[r], np.asarray(comp["fraction_hi"])[r]
-        ax.errorbar(zm, f, yerr=[f - lo, hi - f], fmt="o-", ms=3, label=f"M_UV {m:g}..{mhi:g} (AB)")
+        line = ax.errorbar(zm, f, yerr=[f - lo, hi - f], fmt="o-", ms=3, elinewidth=0.6,
+                           label=f"M_UV {m:g}..{mhi:g} (AB)")
+        for zi, fi, ki, ni in zip(zm, f, k_col[r], n_col[r]):
+            if ki > 0:
+                ax.annotate(f"{ki}/{ni}", (zi, fi), fontsize=6, color=line[0].get_color(),
+                            xytext=(2, 2), textcoords="offset points")
     ax.axvspan(z0, z1, color="0.9", zorder=0, label="target window")
-    ax.set(xlabel="true redshift z", ylabel="S = P(detected and selected) (n cells below)",
+    ax.set(xlabel="true redshift z", ylabel="S = P(detected and selected)",
            ylim=(-0.03, 1.03))
     ax.legend(fontsize=7)
     figs.append(("Selection completeness S(z)", _save(fig, out / "completeness_z.png"),
-                 "Points: k/n of the truth galaxies per cell; bars: Jeffreys intervals "
-                 "(they contain their point); counts n, k in completeness.ecsv."))
+                 "Points: k/n of the truth galaxies per (M_UV, z) cell, labelled k/n where k > 0; "
+                 "bars: Jeffreys intervals (they contain their point); every cell's n and k in "
+                 "completeness.ecsv."))
 
     # ---- colour-colour diagram
     axes = _colour_axes(sample)
@@ -140,8 +150,9 @@ def make_report(out_dir, sample, bands, det, selected, cls, tables: dict, summar
             zt = np.linspace(0.1, 15.0, 300)
             for fam, ls in zip(FAMILIES, ("-", "--", ":")):
                 mt = band_tracks(bands, zt, fam)
-                yc = mt[:, names.index(y[0])] - mt[:, names.index(y[1])]
-                xc = mt[:, names.index(x[0])] - mt[:, names.index(x[1])]
+                with np.errstate(invalid="ignore"):  # inf - inf where both bands drop out
+                    yc = mt[:, names.index(y[0])] - mt[:, names.index(y[1])]
+                    xc = mt[:, names.index(x[0])] - mt[:, names.index(x[1])]
                 ax.plot(xc, np.minimum(yc, 3.9), "k", ls=ls, lw=0.8, label=f"{fam} track")
                 w = (zt >= z0) & (zt <= z1)
                 ax.plot(xc[w], np.minimum(yc[w], 3.9), "g", ls=ls, lw=2.5)

@@ -83,8 +83,9 @@ def colour_tracks(bands, z, families=FAMILIES, abs_mag_uv: float = -20.0) -> dic
     out = {}
     for fam in families:
         m = band_tracks(bands, z, fam, abs_mag_uv)
-        out[fam] = {f"{a}-{b}": m[:, i] - m[:, i + 1] for i, (a, b) in
-                    enumerate(zip(names[:-1], names[1:]))}
+        with np.errstate(invalid="ignore"):  # inf - inf (NaN) where both bands drop out
+            out[fam] = {f"{a}-{b}": m[:, i] - m[:, i + 1] for i, (a, b) in
+                        enumerate(zip(names[:-1], names[1:]))}
     return out
 
 
