@@ -322,3 +322,23 @@ def test_cli_select_col_refuses_a_missing_column(tmp_path, capsys):
     assert rc == 0
     s = json.loads((tmp_path / "selection_mine" / "all" / "summary.json").read_text())
     assert s["n_selected"] == 1 and s["contamination"]["in_window"] == 1
+
+
+def test_cli_zphot_col_selects_inside_the_window(tmp_path, capsys):
+    """--zphot-col: selected where the catalogue's redshift lies in the sample's window
+    (hand-made redshifts: one of eight detections at z 7.1, inside [6.5, 7.5])."""
+    sc = _select_everything(make_scenario())
+    _make_run(tmp_path, sc)
+    from simfield.config import to_yaml
+    (tmp_path / "scenario.yaml").write_text(to_yaml(sc))
+    cat = Table.read(tmp_path / "photometry.fits", hdu="PHOTOMETRY")
+    cat["zp"] = [7.1, 1.5, 0.1, 2.0, 0.3, 9.0, 3.0, 5.0]
+    cat.write(tmp_path / "zcat.fits")
+    rc = score_main_args([str(tmp_path), "--catalog", str(tmp_path / "zcat.fits"), "--band",
+                          BAND, "--zphot-col", "zp", "--sample", "all", "--no-report"])
+    assert rc == 0, capsys.readouterr().err
+    s = json.loads((tmp_path / "selection_zcat" / "all" / "summary.json").read_text())
+    assert s["n_selected"] == 1 and s["contamination"]["in_window"] == 1
+    rc = score_main_args([str(tmp_path), "--catalog", str(tmp_path / "zcat.fits"), "--band",
+                          BAND, "--zphot-col", "zp", "--sample", "z99"])
+    assert rc == 2 and "--sample: 'z99' is not a sample" in capsys.readouterr().err
