@@ -40,6 +40,7 @@ __all__ = [
     "DetectorConfig",
     "SurveyConfig",
     "DetectionConfig",
+    "PhotozConfig",
     "ScoreConfig",
     "ConditionConfig",
     "SampleConfig",
@@ -260,6 +261,26 @@ class DetectionConfig:
     kron_factor: float = 2.5  #: Kron aperture = kron_factor x first-moment radius
     kron_min_radius: float = 1.4  #: smallest Kron radius (in first-moment radii)
 
+@dataclass
+class PhotozConfig:
+    """Photometric redshifts by template fitting of ``photometry.fits`` (simfield.photoz)."""
+
+    enabled: bool = True
+    z_min: float = 0.0  #: redshift grid, uniform in ln(1 + z)
+    z_max: float = 20.0
+    dz_over_1pz: float = 0.01  #: grid step in ln(1 + z), i.e. dz / (1 + z)
+    z_cuts: list[float] = field(
+        default_factory=lambda: [5.5, 6.5, 7.5, 9.5, 12.5])  #: P(z > cut) columns p_gt_<cut>
+    prior: str = "none"  #: none | luminosity (population's UV luminosity function x dV/dz)
+    #: star-forming UV slopes
+    betas: list[float] = field(default_factory=lambda: [-2.8, -2.4, -2.0, -1.6, -1.2, -0.8, -0.4])
+    sf_breaks: list[float] = field(
+        default_factory=lambda: [1.1, 1.25, 1.45])  #: star-forming 380 nm break strengths
+    #: dusty templates' V-band attenuation A_V (mag, Calzetti et al. 2000)
+    a_v: list[float] = field(default_factory=lambda: [0.5, 1.0, 2.0, 3.0, 4.0])
+    #: rest equivalent widths of [OIII] + H beta of line-emitter templates (nm); []: none
+    line_ew_nm: list[float] = field(default_factory=list)
+
 
 @dataclass
 class ScoreConfig:
@@ -366,6 +387,7 @@ class Scenario:
     detector: DetectorConfig = MISSING
     survey: SurveyConfig = MISSING
     detection: DetectionConfig = field(default_factory=DetectionConfig)
+    photoz: PhotozConfig = field(default_factory=PhotozConfig)
     score: ScoreConfig = field(default_factory=ScoreConfig)
     selection: SelectionConfig = field(default_factory=SelectionConfig)
     limits: LimitsConfig = field(default_factory=LimitsConfig)
@@ -569,6 +591,34 @@ def _validate_detection(d: DetectionConfig, bands: list[str]) -> None:
     check_range("detection.kron_factor", d.kron_factor, 0, 10, lo_open=True)
     check_range("detection.kron_min_radius", d.kron_min_radius, 0, 10)
 
+_PHOTOZ_PRIORS = ("none", "luminosity")
+
+
+def _validate_photoz(p: PhotozConfig) -> None:
+    check_range("photoz.z_min", p.z_min, 0, 30)
+    check_range("photoz.z_max", p.z_max, p.z_min, 30, lo_open=True)
+    check_range("photoz.dz_over_1pz", p.dz_over_1pz, 0, 0.2, lo_open=True)
+    n_z = math.log((1 + p.z_max) / (1 + p.z_min)) / p.dz_over_1pz
+    require(n_z <= 20000, "photoz.dz_over_1pz", p.dz_over_1pz,
+            f"gives {n_z:.0f} grid points from photoz.z_min to photoz.z_max: at most 20000")
+    for j, c in enumerate(p.z_cuts):
+        require(isinstance(c, (int, float)) and not isinstance(c, bool) and p.z_min < c < p.z_max,
+                f"photoz.z_cuts.{j}", c, f"must be a redshift inside the grid "
+                f"(photoz.z_min={p.z_min:g}, photoz.z_max={p.z_max:g})")
+    require(p.prior in _PHOTOZ_PRIORS, "photoz.prior", p.prior,
+            f"must be one of: {', '.join(_PHOTOZ_PRIORS)}")
+    require(len(p.betas) > 0, "photoz.betas", list(p.betas), "must list at least one UV slope")
+    for j, b in enumerate(p.betas):
+        check_range(f"photoz.betas.{j}", b, -4, 3)
+    require(len(p.sf_breaks) > 0, "photoz.sf_breaks", list(p.sf_breaks),
+            "must list at least one break strength")
+    for j, k in enumerate(p.sf_breaks):
+        check_range(f"photoz.sf_breaks.{j}", k, 1, 5)
+    for j, a in enumerate(p.a_v):
+        check_range(f"photoz.a_v.{j}", a, 0, 10)
+    for j, e in enumerate(p.line_ew_nm):
+        check_range(f"photoz.line_ew_nm.{j}", e, 0, 1000, lo_open=True)
+
 
 def _validate_score(s: ScoreConfig) -> None:
     check_range("score.match_radius_arcsec", s.match_radius_arcsec, 0, 10, lo_open=True)
@@ -689,6 +739,7 @@ def validate(sc: Scenario) -> Scenario:
     _validate_detector(sc.detector)
     _validate_survey(sc.survey)
     _validate_detection(sc.detection, bands)
+    _validate_photoz(sc.photoz)
     _validate_score(sc.score)
     _validate_selection(sc.selection, bands, sc.population.z_max)
     _validate_limits(sc.limits)

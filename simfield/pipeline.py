@@ -236,6 +236,12 @@ def run_scenario(sc: Scenario, out_dir: str | Path, progress: bool = False) -> R
 
             summary["detections"] = run_detection(out, sc, bands, prov, progress, sc.workers)
             files.extend(out / f"detections_{b}.fits" for b in summary["detections"])
+    if sc.photoz.enabled and (out / "photometry.fits").exists():
+        with timer("photoz"):
+            from .photoz import fit_run
+
+            summary["photoz"] = fit_run(out, sc, prov)
+            files.append(out / "photoz.fits")
     if sc.score.enabled and sc.detection.enabled:
         with timer("score"):
             from .score.run import score_pipeline_run
