@@ -690,7 +690,8 @@ def _validate_condition(c: ConditionConfig, key: str, bands: list[str], names: l
         require(len(c.bands) >= 1, f"{key}.bands", list(c.bands), "must list at least one band")
 
 
-def _validate_selection(s: SelectionConfig, bands: list[str], z_max: float = 30.0) -> None:
+def _validate_selection(s: SelectionConfig, bands: list[str], z_max: float = 30.0,
+                        photoz: PhotozConfig | None = None) -> None:
     check_range("selection.abs_mag_min", s.abs_mag_min, -30, 0)
     check_range("selection.abs_mag_max", s.abs_mag_max, -30, 0)
     require(s.abs_mag_max > s.abs_mag_min, "selection.abs_mag_max", s.abs_mag_max,
@@ -715,6 +716,13 @@ def _validate_selection(s: SelectionConfig, bands: list[str], z_max: float = 30.
         require(len(p.conditions) > 0, f"{key}.conditions", [], "must hold at least one condition")
         for j, c in enumerate(p.conditions):
             _validate_condition(c, f"{key}.conditions.{j}", bands, names, plain)
+            if c.kind == "photoz" and photoz is not None:
+                ck = f"{key}.conditions.{j}"
+                require(photoz.enabled, f"{ck}.kind", c.kind,
+                        "needs photometric redshifts: photoz.enabled=true")
+                require(any(abs(c.z_cut - zc) < 1e-9 for zc in photoz.z_cuts), f"{ck}.z_cut",
+                        c.z_cut, f"must be one of photoz.z_cuts "
+                                 f"({', '.join(f'{zc:g}' for zc in photoz.z_cuts)})")
 
 def _validate_limits(lim: LimitsConfig) -> None:
     check_range("limits.disk_gb", lim.disk_gb, 0, 1e6, lo_open=True)
@@ -741,7 +749,7 @@ def validate(sc: Scenario) -> Scenario:
     _validate_detection(sc.detection, bands)
     _validate_photoz(sc.photoz)
     _validate_score(sc.score)
-    _validate_selection(sc.selection, bands, sc.population.z_max)
+    _validate_selection(sc.selection, bands, sc.population.z_max, sc.photoz)
     _validate_limits(sc.limits)
     return sc
 

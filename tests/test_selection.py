@@ -342,3 +342,19 @@ def test_cli_zphot_col_selects_inside_the_window(tmp_path, capsys):
     rc = score_main_args([str(tmp_path), "--catalog", str(tmp_path / "zcat.fits"), "--band",
                           BAND, "--zphot-col", "zp", "--sample", "z99"])
     assert rc == 2 and "--sample: 'z99' is not a sample" in capsys.readouterr().err
+
+
+def test_photoz_condition_refused_up_front_without_its_cut_or_photoz():
+    """A P(z > c) condition needs photoz enabled and c among photoz.z_cuts (the columns
+    photoz.fits will hold): refused when the scenario is validated, naming the key."""
+    sc = make_scenario()
+    cond = ConditionConfig(kind="photoz", z_cut=7.0, above=0.8)
+    sc.selection.samples[0].conditions.append(cond)
+    from simfield.config import validate
+    with pytest.raises(ConfigError, match=r"conditions\.5\.z_cut=7\.0 must be one of photoz"):
+        validate(sc)
+    cond.z_cut = sc.photoz.z_cuts[1]
+    validate(sc)
+    sc.photoz.enabled = False
+    with pytest.raises(ConfigError, match=r"conditions\.5\.kind='photoz' needs photometric"):
+        validate(sc)
