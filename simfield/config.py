@@ -17,7 +17,7 @@ import os
 import typing
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import Any, Optional
 
 from omegaconf import MISSING, DictConfig, OmegaConf
 from omegaconf.errors import ConfigKeyError, MissingMandatoryValue, ValidationError
@@ -43,6 +43,9 @@ __all__ = [
     "PhotometryConfig",
     "PhotozConfig",
     "ScoreConfig",
+    "ConditionConfig",
+    "SampleConfig",
+    "SelectionConfig",
     "LimitsConfig",
     "Scenario",
     "register_configs",
@@ -321,6 +324,61 @@ class ScoreConfig:
     fit_model: str = "logistic"  #: logistic | erf: headline completeness-limit fit
 
 
+# --------------------------------------------------------------------------------------------
+# selection of high-redshift samples
+# --------------------------------------------------------------------------------------------
+#: kinds of selection conditions (see :class:`ConditionConfig`)
+CONDITION_KINDS = ("colour", "snr", "photoz", "exclude")
+
+
+@dataclass
+class ConditionConfig:
+    """One condition of a sample (every condition of a sample must hold).
+
+    - ``colour``: m_a - m_b (``bands: [a, b]``, AB mag) ``above`` and/or ``below`` a value,
+      plus ``slope`` x (m_c - m_d) with ``slope_bands: [c, d]``; band a's flux is replaced by
+      its ``limit_sigma`` upper limit where it is below that S/N (common practice);
+    - ``snr``: flux / flux_err in every band of ``bands`` ``above`` and/or ``below`` a value
+      ("not detected above 2 sigma": ``below: 2``);
+    - ``photoz``: P(z > ``z_cut``) >= ``above`` (needs ``photoz.fits``);
+    - ``exclude``: not selected by the sample named ``sample`` (disjoint samples).
+    """
+
+    kind: str = MISSING  #: colour | snr | photoz | exclude
+    bands: list[str] = field(default_factory=list)
+    above: Optional[float] = None
+    below: Optional[float] = None
+    slope: float = 0.0  #: colour: the threshold grows by slope x (m_c - m_d)
+    slope_bands: list[str] = field(default_factory=list)  #: colour: [c, d]
+    limit_sigma: float = 1.0  #: colour: upper limit of band a where its S/N is below this
+    z_cut: float = 0.0  #: photoz: P(z > z_cut)
+    sample: str = ""  #: exclude: name of the other sample
+
+
+@dataclass
+class SampleConfig:
+    """A high-redshift sample: its name, target redshift window and conditions."""
+
+    name: str = MISSING
+    z_min: float = MISSING  #: target window (truth redshift), inclusive
+    z_max: float = MISSING
+    conditions: list[ConditionConfig] = field(default_factory=list)
+
+
+@dataclass
+class SelectionConfig:
+    """Colour / S/N / photometric-redshift samples applied to ``photometry.fits`` and scored."""
+
+    enabled: bool = True
+    samples: list[SampleConfig] = field(default_factory=list)
+    abs_mag_min: float = -24.0  #: M_UV bins of S(M_UV, z) and V_eff (AB)
+    abs_mag_max: float = -16.0
+    abs_mag_step: float = 1.0
+    z_step: float = 0.25  #: redshift bin width of S(M_UV, z), from 0 to population.z_max
+    interval: float = 0.683  #: central credible level of the Jeffreys intervals
+    report: bool = True
+
+
 @dataclass
 class LimitsConfig:
     """Largest estimated resources a run may take (see :mod:`simfield.resources`); a run whose
@@ -347,6 +405,7 @@ class Scenario:
     photometry: PhotometryConfig = field(default_factory=PhotometryConfig)
     photoz: PhotozConfig = field(default_factory=PhotozConfig)
     score: ScoreConfig = field(default_factory=ScoreConfig)
+    selection: SelectionConfig = field(default_factory=SelectionConfig)
     limits: LimitsConfig = field(default_factory=LimitsConfig)
 
     @property
@@ -372,6 +431,7 @@ def register_configs() -> None:
 
     cs = ConfigStore.instance()
     cs.store(name="scenario_schema", node=Scenario)
+    cs.store(group="selection", name="selection_schema", node=SelectionConfig)
 
 
 # --------------------------------------------------------------------------------------------
@@ -612,6 +672,81 @@ def _validate_score(s: ScoreConfig) -> None:
             "must be one of: logistic, erf")
 
 
+def _validate_condition(c: ConditionConfig, key: str, bands: list[str], names: list[str],
+                        plain: set) -> None:
+    require(c.kind in CONDITION_KINDS, f"{key}.kind", c.kind,
+            f"must be one of {', '.join(CONDITION_KINDS)}")
+    for j, b in enumerate(c.bands):
+        require(b in bands, f"{key}.bands.{j}", b, f"must be one of the bands {', '.join(bands)}")
+    for j, b in enumerate(c.slope_bands):
+        require(b in bands, f"{key}.slope_bands.{j}", b,
+                f"must be one of the bands {', '.join(bands)}")
+    for k, v in (("above", c.above), ("below", c.below)):
+        if v is not None:
+            check_range(f"{key}.{k}", v, -100, 100)
+    check_range(f"{key}.slope", c.slope, -20, 20)
+    check_range(f"{key}.limit_sigma", c.limit_sigma, 0, 100, lo_open=True)
+    check_range(f"{key}.z_cut", c.z_cut, 0, 30)
+    if c.kind == "exclude":
+        listed = ", ".join(f"{n} ({key.split('.conditions')[0].rsplit('.', 1)[0]}.{i}.name)"
+                           for i, n in enumerate(names))
+        require(c.sample in names, f"{key}.sample", c.sample,
+                f"must name another sample: one of {listed or '(none)'}")
+        require(c.sample in plain, f"{key}.sample", c.sample,
+                "must name a sample without exclude conditions of its own")
+        return
+    if c.kind == "photoz":
+        require(c.above is not None and 0 <= c.above <= 1, f"{key}.above", c.above,
+                "must be the least P(z > z_cut), in [0, 1]")
+        return
+    require(c.above is not None or c.below is not None, f"{key}.above", c.above,
+            f"or {key}.below must be given")
+    if c.above is not None and c.below is not None:
+        require(c.above < c.below, f"{key}.below", c.below,
+                f"must be > {key}.above ({c.above:g})")
+    if c.kind == "colour":
+        require(len(c.bands) == 2 and c.bands[0] != c.bands[1], f"{key}.bands", list(c.bands),
+                "must be two different bands [a, b] (colour m_a - m_b)")
+        require(len(c.slope_bands) in (0, 2), f"{key}.slope_bands", list(c.slope_bands),
+                "must be empty or two bands [c, d]")
+    else:
+        require(len(c.bands) >= 1, f"{key}.bands", list(c.bands), "must list at least one band")
+
+
+def _validate_selection(s: SelectionConfig, bands: list[str], z_max: float = 30.0,
+                        photoz: PhotozConfig | None = None) -> None:
+    check_range("selection.abs_mag_min", s.abs_mag_min, -30, 0)
+    check_range("selection.abs_mag_max", s.abs_mag_max, -30, 0)
+    require(s.abs_mag_max > s.abs_mag_min, "selection.abs_mag_max", s.abs_mag_max,
+            f"must be > selection.abs_mag_min ({s.abs_mag_min:g})")
+    check_range("selection.abs_mag_step", s.abs_mag_step, 0, 30, lo_open=True)
+    require(s.abs_mag_step <= s.abs_mag_max - s.abs_mag_min, "selection.abs_mag_step",
+            s.abs_mag_step, "must be at most selection.abs_mag_max - selection.abs_mag_min")
+    check_range("selection.z_step", s.z_step, 0, 30, lo_open=True)
+    require(s.z_step <= z_max, "selection.z_step", s.z_step,
+            f"must be at most population.z_max ({z_max:g})")
+    check_range("selection.interval", s.interval, 0, 1, lo_open=True, hi_open=True)
+    names = [p.name for p in s.samples]
+    plain = {p.name for p in s.samples if all(c.kind != "exclude" for c in p.conditions)}
+    for i, p in enumerate(s.samples):
+        key = f"selection.samples.{i}"
+        require(bool(str(p.name).strip()) and str(p.name).replace("_", "").isalnum(),
+                f"{key}.name", p.name, "must be a name of letters, digits and _")
+        require(names.count(p.name) == 1, f"{key}.name", p.name, "must be unique")
+        check_range(f"{key}.z_min", p.z_min, 0, 30)
+        check_range(f"{key}.z_max", p.z_max, 0, 30)
+        require(p.z_max > p.z_min, f"{key}.z_max", p.z_max, f"must be > {key}.z_min ({p.z_min:g})")
+        require(len(p.conditions) > 0, f"{key}.conditions", [], "must hold at least one condition")
+        for j, c in enumerate(p.conditions):
+            _validate_condition(c, f"{key}.conditions.{j}", bands, names, plain)
+            if c.kind == "photoz" and photoz is not None:
+                ck = f"{key}.conditions.{j}"
+                require(photoz.enabled, f"{ck}.kind", c.kind,
+                        "needs photometric redshifts: photoz.enabled=true")
+                require(any(abs(c.z_cut - zc) < 1e-9 for zc in photoz.z_cuts), f"{ck}.z_cut",
+                        c.z_cut, f"must be one of photoz.z_cuts "
+                                 f"({', '.join(f'{zc:g}' for zc in photoz.z_cuts)})")
+
 def _validate_limits(lim: LimitsConfig) -> None:
     check_range("limits.disk_gb", lim.disk_gb, 0, 1e6, lo_open=True)
     check_range("limits.memory_gb", lim.memory_gb, 0, 1e5, lo_open=True)
@@ -638,6 +773,7 @@ def validate(sc: Scenario) -> Scenario:
     _validate_photometry(sc.photometry, bands)
     _validate_photoz(sc.photoz)
     _validate_score(sc.score)
+    _validate_selection(sc.selection, bands, sc.population.z_max, sc.photoz)
     _validate_limits(sc.limits)
     return sc
 

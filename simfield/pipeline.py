@@ -254,6 +254,12 @@ def run_scenario(sc: Scenario, out_dir: str | Path, progress: bool = False) -> R
 
             summary["score"] = score_pipeline_run(out, sc, prov)
             files.extend(out / "score" / b / "summary.json" for b in summary["score"])
+    if sc.selection.enabled and (out / "photometry.fits").exists():
+        with timer("selection"):
+            from .selection import score_run_selection
+
+            summary["selection"] = score_run_selection(out, sc, prov)
+            files.extend(out / "selection" / s / "summary.json" for s in summary["selection"])
 
     summary["timings_s"] = dict(res.timings)
     files.append(write_json(out / "summary.json", summary, prov))

@@ -42,7 +42,8 @@ from .match import match_radius, match_sky
 from .volume import binned_effective_volume
 
 __all__ = ["FLUX_UNITS", "load_catalog", "load_truth", "image_map", "pixel_values",
-           "default_out_dir", "score_run", "score_pipeline_run", "score_main_args"]
+           "default_out_dir", "match_to_truth", "source_recovery",
+           "false_detection_causes", "score_run", "score_pipeline_run", "score_main_args"]
 
 
 # --------------------------------------------------------------------------------------------
@@ -237,6 +238,132 @@ def _magnitude_check_pairs(m, det, images, ix, iy, mag_img, truth) -> np.ndarray
     return usable
 
 
+def match_to_truth(truth: dict, det, cfg: ScoreConfig):
+    """Match a catalogue to the truth images on the mosaic (one to one, :func:`match_sky`).
+
+    Parameters
+    ----------
+    truth : dict
+        From :func:`load_truth`.
+    det : Table
+        Catalogue with ``ra``, ``dec`` (deg).
+    cfg : ScoreConfig
+        Match radius settings.
+
+    Returns
+    -------
+    radius : float (arcsec)
+    images : Table
+        Truth images on the mosaic.
+    ix, iy : ndarray (0-based mosaic pixels)
+        Their positions.
+    m : MatchResult
+        Rows of ``images`` against rows of ``det``.
+    """
+    radius = match_radius(cfg.match_radius_arcsec, cfg.match_radius_fwhm, truth["psf_fwhm"])
+    if not radius > 0:
+        raise ConfigError("score.match_radius_arcsec", radius, "must be > 0")
+    images = truth["images"]
+    ix, iy = np.asarray(images["x"], float), np.asarray(images["y"], float)
+    ny, nx = truth["shape"]
+    on = (ix >= -0.5) & (ix <= nx - 0.5) & (iy >= -0.5) & (iy <= ny - 0.5)
+    images = images[on]
+    ix, iy = ix[on], iy[on]
+    ra0, dec0 = truth["wcs"].wcs.crval
+    m = match_sky(images["ra"], images["dec"], det["ra"], det["dec"], radius,
+                  float(ra0), float(dec0))
+    return radius, images, ix, iy, m
+
+
+def source_recovery(source_id, img_source, img_mag, m):
+    """Per truth source: recovered (any image matched), its brightest image, its detection.
+
+    Parameters
+    ----------
+    source_id : ndarray of int
+        Truth source ids (SOURCES ``id``).
+    img_source : ndarray of int
+        Source id of each truth image on the mosaic.
+    img_mag : ndarray (AB mag)
+        Observed magnitude of each image.
+    m : MatchResult
+        Images against detections.
+
+    Returns
+    -------
+    recovered : ndarray of bool
+    best_img : ndarray of int
+        Row of the brightest image on the mosaic, -1 if none.
+    det_for_src : ndarray of int
+        Matched detection row, -1 if none.
+    """
+    pos = {int(s): i for i, s in enumerate(source_id)}
+    row = np.array([pos.get(int(s), -1) for s in img_source], np.int64)
+    ns = len(source_id)
+    recovered = np.zeros(ns, bool)
+    recovered[row[(m.truth_to_det >= 0) & (row >= 0)]] = True
+    best_img = np.full(ns, -1, np.int64)
+    order = np.argsort(img_mag)[::-1]  # faintest first, so the brightest is written last
+    ok = row[order] >= 0
+    best_img[row[order][ok]] = order[ok]
+    det_for_src = np.full(ns, -1, np.int64)
+    mi = m.truth_index
+    det_for_src[row[mi][row[mi] >= 0]] = m.det_index[row[mi] >= 0]
+    return recovered, best_img, det_for_src
+
+
+def false_detection_causes(truth: dict, det, cfg: ScoreConfig, m, ix, iy, img_source, img_mag,
+                           source_id, kind, recovered):
+    """Likely cause of every unmatched detection (:func:`metrics.classify_false_detections`,
+    then the truth's artefact map at the detections' pixels, which wins).
+
+    Parameters
+    ----------
+    truth : dict
+        From :func:`load_truth`.
+    det : Table
+        Catalogue with ``ra``, ``dec`` (deg).
+    cfg : ScoreConfig
+    m : MatchResult
+    ix, iy : ndarray (0-based mosaic pixels)
+        Truth images on the mosaic.
+    img_source : ndarray of int
+    img_mag : ndarray (AB mag)
+    source_id, kind, recovered : ndarray
+        Per truth source: id, kind, recovered flag.
+
+    Returns
+    -------
+    cause : ndarray of str
+        Per detection, ``""`` when matched.
+    dx, dy : ndarray (0-based mosaic pixels)
+        Detection positions.
+    angles : list of float (deg)
+        Spike directions used.
+    """
+    wcs = truth["wcs"]
+    dx, dy = wcs.all_world2pix(np.asarray(det["ra"], float), np.asarray(det["dec"], float), 0)
+    angles = list(cfg.spike_angles_deg)
+    if not angles and truth["psf"] is not None:
+        angles = list(metrics.measure_spike_angles(truth["psf"]))
+    rec_by_id = {int(s): bool(r) for s, r in zip(source_id, recovered)}
+    star_img = np.isin(img_source, source_id[kind == "star"])
+    # the truth segmentation is a memory map: only the detections' pixels are read. The DQ
+    # rule ("artefact") comes first and wins, so it is applied afterwards from the DQ values at
+    # those pixels alone, which gives the same causes as passing a masked DQ image.
+    cause = metrics.classify_false_detections(
+        dx, dy, m.det_to_truth, ix, iy, img_source, img_mag, star_img, rec_by_id,
+        truth["pixel_scale"], truth_segm=truth["segm"], dq=None, spike_angles_deg=angles,
+        bright_star_mag=cfg.bright_star_mag, spike_ref_mag=cfg.spike_ref_mag,
+        spike_length_arcsec=cfg.spike_length_arcsec, halo_radius_arcsec=cfg.halo_radius_arcsec,
+        spike_half_width_deg=cfg.spike_half_width_deg,
+        blend_radius_arcsec=cfg.blend_radius_arcsec)
+    if truth["dq"] is not None and len(dx):
+        flagged = (pixel_values(truth["dq"], dx, dy) & truth["dq_bits"]) != 0
+        cause[flagged & (m.det_to_truth < 0)] = "artefact"
+    return cause, dx, dy, angles
+
+
 def score_run(run_dir, catalog, band: str, cfg: ScoreConfig | None = None, out_dir=None,
               columns: dict | None = None, skip_invalid: bool = False, prov=None,
               drop_duplicates: bool = False, allow_flux_offset: bool = False) -> dict:
@@ -290,21 +417,9 @@ def score_run(run_dir, catalog, band: str, cfg: ScoreConfig | None = None, out_d
         det = load_catalog(catalog, columns, skip_invalid, truth["zeropoint"], (wcs, shape),
                            drop_duplicates)
         cat_name = str(catalog)
-    radius = match_radius(cfg.match_radius_arcsec, cfg.match_radius_fwhm, truth["psf_fwhm"])
-    if not radius > 0:
-        raise ConfigError("score.match_radius_arcsec", radius, "must be > 0")
-
-    # ---- truth images on the mosaic
-    images = truth["images"]
+    radius, images, ix, iy, m = match_to_truth(truth, det, cfg)
     sources = truth["sources"]
-    ix, iy = np.asarray(images["x"], float), np.asarray(images["y"], float)
     ny, nx = shape
-    on = (ix >= -0.5) & (ix <= nx - 0.5) & (iy >= -0.5) & (iy <= ny - 0.5)
-    images = images[on]
-    ix, iy = ix[on], iy[on]
-    ra0, dec0 = wcs.wcs.crval
-    m = match_sky(images["ra"], images["dec"], det["ra"], det["dec"], radius,
-                  float(ra0), float(dec0))
     img_src = np.asarray(images["source_id"], np.int64)
     mag_img = np.asarray(images[f"mag_{band}"], float)
     mag_check = None
@@ -317,17 +432,9 @@ def score_run(run_dir, catalog, band: str, cfg: ScoreConfig | None = None, out_d
 
     # ---- per source: recovered if any image matched; observed quantities of the brightest image
     sid = np.asarray(sources["id"], np.int64)
-    pos = {int(s): i for i, s in enumerate(sid)}
-    row = np.array([pos.get(int(s), -1) for s in img_src], np.int64)
     ns = len(sources)
-    recovered = np.zeros(ns, bool)
-    recovered[row[(m.truth_to_det >= 0) & (row >= 0)]] = True
-    best_mag = np.full(ns, np.nan)
-    best_img = np.full(ns, -1, np.int64)
-    order = np.argsort(mag_img)[::-1]  # faintest first, so the brightest is written last
-    ok = row[order] >= 0
-    best_mag[row[order][ok]] = mag_img[order][ok]
-    best_img[row[order][ok]] = order[ok]
+    recovered, best_img, det_for_src = source_recovery(sid, img_src, mag_img, m)
+    best_mag = np.where(best_img >= 0, mag_img[np.maximum(best_img, 0)], np.nan)
     has_img = best_img >= 0
     kind = np.asarray(sources["kind"]).astype(str)
     gal = has_img & (kind != "star")
@@ -339,10 +446,6 @@ def score_run(run_dir, catalog, band: str, cfg: ScoreConfig | None = None, out_d
     sb = metrics.mean_surface_brightness(best_mag, r_obs)
     z = np.asarray(sources["redshift"], float) if "redshift" in sources.colnames else \
         np.full(ns, np.nan)
-    det_for_src = np.full(ns, -1, np.int64)
-    mi = m.truth_index
-    det_for_src[row[mi][row[mi] >= 0]] = m.det_index[row[mi] >= 0]
-
     lvl = cfg.interval
     mag_edges = _edges(cfg.mag_min, cfg.mag_max, cfg.mag_step)
     tables = {
@@ -365,25 +468,8 @@ def score_run(run_dir, catalog, band: str, cfg: ScoreConfig | None = None, out_d
     tables["purity_mag"] = metrics.binned_fraction(det_mag, matched, mag_edges, lvl, "mag")
 
     # ---- causes of false detections
-    dx, dy = wcs.all_world2pix(np.asarray(det["ra"], float), np.asarray(det["dec"], float), 0)
-    angles = list(cfg.spike_angles_deg)
-    if not angles and truth["psf"] is not None:
-        angles = list(metrics.measure_spike_angles(truth["psf"]))
-    rec_by_id = {int(s): bool(r) for s, r in zip(sid, recovered)}
-    star_img = np.isin(img_src, sid[kind == "star"])
-    # the truth segmentation is a memory map: only the detections' pixels are read. The DQ
-    # rule ("artefact") comes first and wins, so it is applied afterwards from the DQ values at
-    # those pixels alone, which gives the same causes as passing a masked DQ image.
-    cause = metrics.classify_false_detections(
-        dx, dy, m.det_to_truth, ix, iy, img_src, mag_img, star_img, rec_by_id,
-        truth["pixel_scale"], truth_segm=truth["segm"], dq=None, spike_angles_deg=angles,
-        bright_star_mag=cfg.bright_star_mag, spike_ref_mag=cfg.spike_ref_mag,
-        spike_length_arcsec=cfg.spike_length_arcsec, halo_radius_arcsec=cfg.halo_radius_arcsec,
-        spike_half_width_deg=cfg.spike_half_width_deg,
-        blend_radius_arcsec=cfg.blend_radius_arcsec)
-    if truth["dq"] is not None and len(dx):
-        flagged = (pixel_values(truth["dq"], dx, dy) & truth["dq_bits"]) != 0
-        cause[flagged & (m.det_to_truth < 0)] = "artefact"
+    cause, dx, dy, angles = false_detection_causes(truth, det, cfg, m, ix, iy, img_src, mag_img,
+                                                   sid, kind, recovered)
     un = ~matched
     false_t = Table({"row": np.flatnonzero(un), "ra": np.asarray(det["ra"], float)[un],
                      "dec": np.asarray(det["dec"], float)[un], "x": dx[un], "y": dy[un],
@@ -509,6 +595,14 @@ def _parser() -> argparse.ArgumentParser:
                                  "stem>/<band>; the run's own detections: "
                                  "<run_dir>/score_detections_<band>/<band>)")
     p.add_argument("--no-report", action="store_true", help="skip report.html and plots")
+    s = p.add_mutually_exclusive_group()
+    s.add_argument("--select-col", help="boolean column: the catalogue's own high-redshift "
+                                        "selection, scored for each sample's window of the "
+                                        "run's selection group (--sample)")
+    s.add_argument("--zphot-col", help="redshift column: selected where it lies in each "
+                                       "sample's window")
+    p.add_argument("--sample", action="append", help="sample of the run's selection group "
+                                                     "(repeatable; default all)")
     return p
 
 
@@ -578,6 +672,8 @@ def score_main_args(argv: list[str]) -> int:
             cols.update(flux=a.flux_col, flux_unit=a.flux_unit)
         else:
             cols["mag"] = a.mag_col or "mag"
+        if a.select_col or a.zphot_col:
+            return _selection_main(a, run_dir, band, sc, cols)
         out = Path(a.out) if a.out else default_out_dir(run_dir, a.catalog, band)
         summ = score_run(run_dir, a.catalog, band, cfg, out, cols, a.skip_invalid,
                          drop_duplicates=a.drop_duplicates,
@@ -587,4 +683,26 @@ def score_main_args(argv: list[str]) -> int:
         return 2
     print(f"simfield-score: band {band} ({why}); {summ['n_matched']} of "
           f"{summ['n_detections']} detections matched; results in {os.fspath(out)}")
+    return 0
+
+
+def _selection_main(a, run_dir: Path, band: str, sc, cols: dict) -> int:
+    """``--select-col`` / ``--zphot-col``: score the catalogue's selection (writes
+    ``<run_dir>/selection_<catalogue stem>/<sample>/`` or ``--out/<sample>``)."""
+    import sys
+
+    from ..selection.run import score_catalogue_selection
+
+    opt = "--select-col" if a.select_col else "--zphot-col"
+    if not a.catalog:
+        raise CatalogError(f"{opt} needs --catalog (a multi-band catalogue file)")
+    if sc is None:
+        raise CatalogError(f"{opt}: run directory {str(run_dir)!r} has no readable "
+                           f"scenario.yaml (its samples and bands)")
+    sc.score.report = sc.selection.report = not a.no_report
+    res = score_catalogue_selection(run_dir, a.catalog, sc, band, a.select_col, a.zphot_col,
+                                    a.sample, a.out, {"ra": cols["ra"], "dec": cols["dec"]})
+    print("simfield-score: selection " + "; ".join(
+        f"{k}: {v['n_selected']} selected, {v['contamination']['in_window']} in window"
+        for k, v in res.items()), file=sys.stdout)
     return 0

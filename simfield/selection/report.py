@@ -1,0 +1,224 @@
+"""Self-contained HTML report of one sample's selection, with its PNG plots beside it.
+
+Sections: headline numbers, S(z) curves at several M_UV with their Jeffreys intervals, a
+colour-colour diagram with the template tracks (:mod:`simfield.selection.tracks`), the region
+the sample's colour conditions select and the truth classes of the selected detections, the
+truth-redshift distribution of the selection against the target window, and expected versus
+observed counts per M_UV bin. Images are embedded as base64 PNG.
+"""
+
+from __future__ import annotations
+
+import base64
+import html
+import io as _io
+from pathlib import Path
+
+import numpy as np
+
+__all__ = ["make_report"]
+
+_CLASS_COLOURS = {"in_window": "#2ca02c", "lowz_galaxy": "#d62728", "higher_z_galaxy": "#8c564b",
+                  "dusty": "#ff7f0e", "quiescent": "#e377c2", "star": "#17becf",
+                  "dwarf": "#bcbd22", "member": "#9467bd", "icl": "#7f7f7f", "noise": "#1f77b4",
+                  "blend": "#aec7e8", "shred": "#ffbb78", "spike": "#ff9896", "artefact": "#c7c7c7"}
+
+
+def _save(fig, path: Path) -> str:
+    from ..io import atomic_path
+    import matplotlib.pyplot as plt
+
+    buf = _io.BytesIO()
+    fig.savefig(buf, format="png", dpi=90, bbox_inches="tight")
+    plt.close(fig)
+    with atomic_path(path) as tmp:
+        tmp.write_bytes(buf.getvalue())
+    return base64.b64encode(buf.getvalue()).decode("ascii")
+
+
+def _colour_axes(sample):
+    """(y colour bands, x colour bands) of the first two colour conditions sharing a band."""
+    cols = [tuple(c.bands) for c in sample.conditions if c.kind == "colour"]
+    for i, y in enumerate(cols):
+        for x in cols[i + 1:]:
+            if y[1] == x[0]:
+                return y, x
+    return None
+
+
+def _region(sample, y, x, ys, xs):
+    """Mask of the colour conditions over only these bands, on a grid of (x, y) colours."""
+    from astropy.table import Table
+
+    from .cuts import condition_mask
+
+    yy, xx = np.meshgrid(ys, xs, indexing="ij")
+    t = Table()
+    for b, f in ((y[1], np.ones(yy.size)), (y[0], 10 ** (-0.4 * yy.ravel())),
+                 (x[1], 10 ** (0.4 * xx.ravel()))):
+        t[f"flux_{b}"], t[f"flux_err_{b}"] = f, np.full(yy.size, 1e-9)
+    ok = np.ones(yy.size, bool)
+    for c in sample.conditions:
+        if c.kind == "colour" and set(c.bands) | set(c.slope_bands) <= {y[0], y[1], x[1]}:
+            ok &= condition_mask(t, c)
+    return ok.reshape(yy.shape)
+
+
+def _colour(det, a, b):
+    with np.errstate(divide="ignore", invalid="ignore"):
+        fa, fb = np.asarray(det[f"flux_{a}"], float), np.asarray(det[f"flux_{b}"], float)
+        return np.where((fa > 0) & (fb > 0), -2.5 * np.log10(fa / fb), np.nan)
+
+
+def make_report(out_dir, sample, bands, det, selected, cls, tables: dict, summary: dict) -> Path:
+    """Write ``report.html`` and its PNG plots into ``out_dir``.
+
+    Parameters
+    ----------
+    out_dir : str or Path
+    sample : SampleConfig
+        Name, window and conditions (colour conditions make the colour-colour diagram).
+    bands : sequence of simfield.bands.Band or None
+        Bands for the template tracks (None: no tracks).
+    det : Table
+        Catalogue, ``flux_<b>`` in nJy.
+    selected : ndarray of bool
+        Per detection.
+    cls : ndarray of str
+        Class of each selected detection.
+    tables, summary : dict
+        From :func:`simfield.selection.score.score_sample`.
+
+    Returns
+    -------
+    Path
+        The report.
+    """
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    from ..io import write_text
+
+    out = Path(out_dir)
+    z0, z1 = summary["z_window"]
+    figs = []
+
+    # ---- S(z) at several M_UV
+    comp = tables["completeness"]
+    fig, ax = plt.subplots(figsize=(7, 4))
+    lo_col = np.asarray(comp["abs_mag_uv_lo"], float)
+    n_col, k_col = np.asarray(comp["n"]), np.asarray(comp["k"])
+    zc = 0.5 * (np.asarray(comp["z_lo"], float) + np.asarray(comp["z_hi"], float))
+    mlo = np.unique(lo_col)
+    # the (up to) four M_UV bins with the most truth galaxies inside the window
+    n_win = [n_col[(lo_col == m) & (zc >= z0) & (zc <= z1)].sum() for m in mlo]
+    for m in sorted(mlo[np.argsort(n_win)[::-1][:4]]):
+        r = (lo_col == m) & (n_col > 0)
+        mhi = float(np.asarray(comp["abs_mag_uv_hi"], float)[lo_col == m][0])
+        zm = zc[r]
+        f = np.asarray(comp["fraction"], float)[r]
+        lo, hi = np.asarray(comp["fraction_lo"])[r], np.asarray(comp["fraction_hi"])[r]
+        line = ax.errorbar(zm, f, yerr=[f - lo, hi - f], fmt="o-", ms=3, elinewidth=0.6,
+                           label=f"M_UV {m:g}..{mhi:g} (AB)")
+        for zi, fi, ki, ni in zip(zm, f, k_col[r], n_col[r]):
+            if ki > 0:
+                ax.annotate(f"{ki}/{ni}", (zi, fi), fontsize=6, color=line[0].get_color(),
+                            xytext=(2, 2), textcoords="offset points")
+    ax.axvspan(z0, z1, color="0.9", zorder=0, label="target window")
+    ax.set(xlabel="true redshift z", ylabel="S = P(detected and selected)",
+           ylim=(-0.03, 1.03))
+    ax.legend(fontsize=7)
+    figs.append(("Selection completeness S(z)", _save(fig, out / "completeness_z.png"),
+                 "Points: k/n of the truth galaxies per (M_UV, z) cell, labelled k/n where k > 0; "
+                 "bars: Jeffreys intervals (they contain their point); every cell's n and k in "
+                 "completeness.ecsv."))
+
+    # ---- colour-colour diagram
+    axes = _colour_axes(sample)
+    if axes is not None:
+        y, x = axes
+        fig, ax = plt.subplots(figsize=(6, 5))
+        ys, xs = np.linspace(-1.5, 4.0, 221), np.linspace(-1.0, 2.5, 141)
+        ax.contourf(xs, ys, _region(sample, y, x, ys, xs).astype(float), levels=[0.5, 1.5],
+                    colors=["#2ca02c"], alpha=0.15)
+        if bands is not None:
+            from .tracks import FAMILIES, band_tracks
+
+            names = [b.name for b in bands]
+            zt = np.linspace(0.1, 15.0, 300)
+            for fam, ls in zip(FAMILIES, ("-", "--", ":")):
+                mt = band_tracks(bands, zt, fam)
+                with np.errstate(invalid="ignore"):  # inf - inf where both bands drop out
+                    yc = mt[:, names.index(y[0])] - mt[:, names.index(y[1])]
+                    xc = mt[:, names.index(x[0])] - mt[:, names.index(x[1])]
+                ax.plot(xc, np.minimum(yc, 3.9), "k", ls=ls, lw=0.8, label=f"{fam} track")
+                w = (zt >= z0) & (zt <= z1)
+                ax.plot(xc[w], np.minimum(yc[w], 3.9), "g", ls=ls, lw=2.5)
+        yc, xc = _colour(det, *y), _colour(det, *x)
+        ax.plot(xc[~selected], yc[~selected], ".", color="0.75", ms=2, label="not selected")
+        for c in np.unique(cls):
+            s = cls == c
+            ax.plot(xc[selected][s], yc[selected][s], "o", ms=4, color=_CLASS_COLOURS.get(c),
+                    label=f"{c} ({int(s.sum())})")
+        ax.set(xlabel=f"{x[0]} - {x[1]} (AB mag)", ylabel=f"{y[0]} - {y[1]} (AB mag)",
+               xlim=(xs[0], xs[-1]), ylim=(ys[0], ys[-1]))
+        ax.legend(fontsize=6, loc="upper right")
+        figs.append(("Colour-colour diagram", _save(fig, out / "colour_colour.png"),
+                     "Shaded: the region the colour conditions on these bands select; lines: "
+                     "template tracks z 0.1-15 (thick green inside the window); points: "
+                     "measured colours (fluxes > 0 only), selected ones by truth class with "
+                     "counts."))
+
+    # ---- redshift distribution and counts
+    zd = tables["redshift_distribution"]
+    vol = tables["effective_volume"]
+    fig, (a1, a2) = plt.subplots(1, 2, figsize=(10, 4))
+    a1.bar(zd["z_lo"], zd["n_selected"], width=np.asarray(zd["z_hi"]) - np.asarray(zd["z_lo"]),
+           align="edge", color="#1f77b4")
+    a1.axvspan(z0, z1, color="g", alpha=0.15, label="target window")
+    a1.set(xlabel="truth redshift of selected detections", ylabel="selected detections (count)")
+    a1.legend(fontsize=7)
+    comp_k = np.asarray(comp["k"]).reshape(len(vol), -1)
+    mm = 0.5 * (np.asarray(vol["abs_mag_uv_lo"]) + np.asarray(vol["abs_mag_uv_hi"]))
+    a2.step(mm, vol["n_expected"], where="mid", label="expected (S x phi x V)")
+    a2.plot(mm, comp_k.sum(axis=1), "ko", ms=4, label="observed (truth galaxies selected)")
+    a2.set(xlabel="true M_UV (AB mag)", ylabel="selected galaxies per M_UV bin (count)")
+    a2.legend(fontsize=7)
+    figs.append(("Redshift distribution and counts", _save(fig, out / "counts.png"),
+                 "Left: truth redshifts of the matched selected detections. Right: expected "
+                 "versus observed selected galaxies, all z bins."))
+
+    cw = summary["counts_window"]
+    rows = [("sample", summary["sample"]), ("target window", f"{z0:g} <= z <= {z1:g}"),
+            ("selected detections", summary["n_selected"]),
+            ("purity (in window / selected)",
+             "n/a" if summary["purity"] is None else
+             f"{summary['purity']:.3f} ({summary['contamination']['in_window']} of "
+             f"{summary['n_selected']})"),
+            ("contamination", ", ".join(f"{k}: {v}" for k, v in summary["contamination"].items()
+                                        if v)),
+            ("in window: observed / expected", f"{cw['n_observed']} / {cw['n_expected']:.2f}"),
+            ("Poisson P(N = obs), P(N = 0)", f"{cw['p_equal']:.3g}, {cw['p_zero']:.3g}"),
+            ("source-plane area (arcsec^2)", f"{summary['area_source_arcsec2']:.1f}")]
+    table = "\n".join(f"<tr><th>{html.escape(str(a))}</th><td>{html.escape(str(b))}</td></tr>"
+                      for a, b in rows)
+    body = "\n".join(
+        f"<h2>{html.escape(t)}</h2>\n<img src=\"data:image/png;base64,{b64}\" "
+        f"alt=\"{html.escape(t)}\">\n<p class=\"cap\">{html.escape(cap)}</p>"
+        for t, b64, cap in figs)
+    name = html.escape(summary["sample"])
+    page = f"""<!DOCTYPE html>
+<html lang="en"><head><meta charset="utf-8"><title>simfield selection: {name}</title>
+<style>body{{font-family:sans-serif;max-width:1100px;margin:2em auto;color:#222}}
+table{{border-collapse:collapse}}th,td{{padding:3px 10px;border-bottom:1px solid #ddd;
+text-align:left}}img{{max-width:100%}}.cap{{color:#666;font-size:90%}}</style></head>
+<body><h1>simfield selection, sample {name}</h1>
+<table>{table}</table>
+{body}
+</body></html>
+"""
+    path = out / "report.html"
+    write_text(path, page)
+    return path
