@@ -1,16 +1,20 @@
-"""The truth table of all sources of a field: light-cone galaxies and foreground stars.
+"""The truth table of all sources of a field: light-cone galaxies, stars and contaminants.
 
 ``make_population`` draws, in this order from one generator: galaxies (redshift and rest-UV
-magnitude from :mod:`.luminosity`, or the uniform injection mode), their templates and spectra
-(:mod:`.seds`), their shapes (:mod:`.morphology`), the stars (:mod:`.stars`), and positions
-uniform over the given tangent-plane ranges.
+magnitude from :mod:`.luminosity`, or the uniform injection mode), their templates, emission
+lines and spectra (:mod:`.seds`, :mod:`.lines`), their shapes (:mod:`.morphology`), the stars
+(:mod:`.stars`), positions uniform over the given tangent-plane ranges; then the contaminant
+families, each with its positions: dusty and quiescent galaxies (:mod:`.contaminants`) and
+cool dwarfs (:mod:`.dwarfs`). The families come last, so they leave the light cone's draws
+unchanged.
 
 Only galaxies whose apparent magnitude in the selection band could pass ``mag_limit`` are drawn:
 for every redshift the brightest selection-band colour each template can have (its parameters at
 their extreme deviates, which are clipped at 4 sigma; the band flux grows with the optical slope
 and the break and is convex in beta, so the ends of each range bound it) gives the faintest
 M_UV that can still pass, with a 0.05 mag margin; galaxies beyond that are never drawn, the rest
-are cut exactly on their synthetic magnitude.
+are cut exactly on their synthetic magnitude. With emission lines on, the star-forming envelope
+carries the lines at their largest equivalent width (the +3 sigma clip of the draw).
 """
 
 from __future__ import annotations
