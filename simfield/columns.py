@@ -16,8 +16,8 @@ import re
 
 from astropy.table import Table
 
-__all__ = ["POINT_KINDS", "TRUTH_COLUMNS", "IMAGE_COLUMNS", "SCORE_COLUMNS", "SCORE_TABLES", "describe",
-           "describe_fits_header", "table_hdu"]
+__all__ = ["POINT_KINDS", "TRUTH_COLUMNS", "IMAGE_COLUMNS", "SCORE_COLUMNS", "SCORE_TABLES",
+           "describe", "describe_fits_header", "table_hdu"]
 
 _POS = {
     "ra": ("deg", "right ascension (ICRS)"),

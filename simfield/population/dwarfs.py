@@ -36,7 +36,8 @@ import numpy as np
 from ..bands import Band
 from .stars import draw_star_magnitudes
 
-__all__ = ["DWARF_COLOURS", "ANCHOR_NM", "VEGA_TO_AB", "J_LIKE_NM", "Dwarfs", "spectral_type_name",
+__all__ = ["DWARF_COLOURS", "ANCHOR_NM", "VEGA_TO_AB", "J_LIKE_NM", "CLASS_RANGES", "Dwarfs",
+           "spectral_type_name",
            "dwarf_teff", "anchor_ab_magnitudes", "dwarf_fnu", "dwarf_band_magnitudes",
            "j_like_band", "draw_spectral_types", "draw_dwarfs"]
 

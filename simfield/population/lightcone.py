@@ -29,9 +29,9 @@ from ..config import PopulationConfig
 from ..cosmo import default_cosmology
 from ..errors import ConfigError, require
 from ._photometry import Distances, Photometry
+from ._table import GALAXY_DEFAULTS, POINT_DEFAULTS, galaxy_columns, stack_families
 from .contaminants import draw_dusty, draw_quiescent
 from .dwarfs import draw_dwarfs, dwarf_band_magnitudes
-from ._table import GALAXY_DEFAULTS, POINT_DEFAULTS, galaxy_columns, stack_families
 from .lines import LineParameters, draw_halpha_ew
 from .luminosity import draw_redshift_magnitude, expected_counts, uv_lf_parameters
 from .morphology import Morphology, draw_morphology
