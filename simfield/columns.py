@@ -16,7 +16,7 @@ import re
 
 from astropy.table import Table
 
-__all__ = ["POINT_KINDS", "TRUTH_COLUMNS", "IMAGE_COLUMNS", "SCORE_COLUMNS", "SCORE_TABLES",
+__all__ = ["SOURCE_KINDS", "POINT_KINDS", "TRUTH_COLUMNS", "IMAGE_COLUMNS", "SCORE_COLUMNS", "SCORE_TABLES",
            "describe", "describe_fits_header", "table_hdu"]
 
 _POS = {
@@ -28,6 +28,8 @@ _POS = {
     "y_arcsec": ("arcsec", "tangent-plane offset eta (north) from the field centre"),
 }
 
+#: every ``kind`` of the SOURCES table
+SOURCE_KINDS = ("galaxy", "star", "dwarf", "dusty", "quiescent", "member", "icl")
 #: SOURCES kinds drawn as points (no shape) and never counted as galaxies
 POINT_KINDS = ("star", "dwarf")
 

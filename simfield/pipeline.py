@@ -27,7 +27,7 @@ from astropy.table import Table
 from . import __version__
 from ._procs import die_with_parent
 from .bands import Band, ab_to_njy, make_band, njy_to_ab
-from .columns import POINT_KINDS
+from .columns import POINT_KINDS, SOURCE_KINDS
 from .config import Scenario, config_hash, to_yaml
 from .grid import Grid
 from .io import (COMPLETE_MARKER, Provenance, section_files, write_fits, write_json, write_table,
@@ -224,8 +224,7 @@ def run_scenario(sc: Scenario, out_dir: str | Path, progress: bool = False) -> R
         "n_sources": int(len(sources)),
         "n_galaxies": int(np.sum(sources["kind"] == "galaxy")),
         "n_stars": int(np.sum(sources["kind"] == "star")),
-        "n_per_kind": {str(k): int(np.sum(sources["kind"] == k))
-                       for k in np.unique(np.asarray(sources["kind"]))},
+        "n_per_kind": {k: int(np.sum(sources["kind"] == k)) for k in SOURCE_KINDS},
         "n_images": int(len(images)),
         "n_multiply_imaged": int(np.sum(np.asarray(sources["n_images"]) > 1)),
         "field_arcmin2": srv.width_arcsec * srv.height_arcsec / 3600.0,

@@ -15,6 +15,7 @@ Comparison to other sources (each check names its own):
 from __future__ import annotations
 
 import dataclasses
+import json
 
 import galsim
 import numpy as np
@@ -377,6 +378,10 @@ def test_quick_run_has_every_kind_renders_them_and_scores_galaxies_only(tmp_path
     src = Table.read(out / "truth.fits", hdu="SOURCES")
     kinds = np.asarray(src["kind"]).astype(str)
     assert {"galaxy", "star", "dwarf", "dusty", "quiescent"} <= set(kinds)
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["n_per_kind"]["dwarf"] == int(np.sum(kinds == "dwarf")) > 0
+    assert set(summary["n_per_kind"]) == {"galaxy", "star", "dwarf", "dusty", "quiescent",
+                                          "member", "icl"}
     assert src["spectral_type"].unit is None or str(src["spectral_type"].unit) == ""
     assert str(src["ew_halpha"].unit) == "Angstrom" and str(src["dust_av"].unit) == "mag"
 
