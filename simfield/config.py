@@ -145,6 +145,7 @@ class PopulationConfig:
     dwarf_mag_min: float = 20.0  #: J-like band (pivot nearest 1248 nm) magnitude range (AB)
     dwarf_mag_max: float = 29.0
     dwarf_count_slope: float = 0.1  #: d log10 N / dm of the dwarf counts (dex/mag)
+    #: relative numbers of M7-M9.5, L0-L9.5 and T0-T8 dwarfs
     dwarf_type_fractions: list[float] = field(default_factory=lambda: [0.6, 0.25, 0.15])
     dusty_density_arcmin2: float = 0.5  #: dusty galaxies per arcmin^2 in the magnitude range
     dusty_mag_min: float = 21.0  #: selection-band magnitude range (AB)
