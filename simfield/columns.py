@@ -16,9 +16,8 @@ import re
 
 from astropy.table import Table
 
-__all__ = ["TRUTH_COLUMNS", "IMAGE_COLUMNS", "SCORE_COLUMNS", "SCORE_TABLES",
-           "PHOTOMETRY_COLUMNS", "describe",
-           "describe_fits_header", "table_hdu"]
+__all__ = ["SOURCE_KINDS", "POINT_KINDS", "TRUTH_COLUMNS", "IMAGE_COLUMNS", "SCORE_COLUMNS",
+           "SCORE_TABLES", "PHOTOMETRY_COLUMNS", "describe", "describe_fits_header", "table_hdu"]
 
 _POS = {
     "ra": ("deg", "right ascension (ICRS)"),
@@ -29,14 +28,22 @@ _POS = {
     "y_arcsec": ("arcsec", "tangent-plane offset eta (north) from the field centre"),
 }
 
+#: every ``kind`` of the SOURCES table
+SOURCE_KINDS = ("galaxy", "star", "dwarf", "dusty", "quiescent", "member", "icl")
+#: SOURCES kinds drawn as points (no shape) and never counted as galaxies
+POINT_KINDS = ("star", "dwarf")
+
 #: (unit, description) of the truth tables' columns (SOURCES and IMAGES of truth.fits);
 #: patterns with ``{band}`` match any band name
 TRUTH_COLUMNS = {
     **_POS,
     "id": ("", "source id (1-based)"),
-    "kind": ("", "galaxy, star, member (cluster galaxy) or icl (intracluster light)"),
+    "kind": ("", "galaxy (light cone), star, dwarf (cool M/L/T dwarf star), dusty (dusty "
+                 "star-forming galaxy), quiescent (strong-Balmer-break galaxy), member "
+                 "(cluster galaxy) or icl (intracluster light)"),
     "redshift": ("", "redshift"),
-    "abs_mag_uv": ("mag", "rest-frame UV (150 nm) absolute AB magnitude; NaN for stars"),
+    "abs_mag_uv": ("mag", "rest-frame UV (150 nm) absolute AB magnitude before dust; NaN for "
+                          "stars and dwarfs"),
     "mag_{band}": ("mag", "intrinsic (unlensed) AB magnitude in band {band}"),
     "r_half": ("arcsec", "intrinsic half-light radius along the major axis"),
     "r_half_kpc": ("kpc", "half-light radius (proper)"),
@@ -46,11 +53,21 @@ TRUTH_COLUMNS = {
     "beta_uv": ("", "rest-UV slope of f_lambda ~ lambda^beta"),
     "beta_opt": ("", "rest-optical slope of f_lambda ~ lambda^beta"),
     "break_strength": ("", "strength of the Balmer / 400 nm break"),
-    "template": ("", "spectral family: starforming, evolved or star"),
+    "template": ("", "spectral family: starforming, evolved, star, dusty, quiescent or dwarf"),
     "knot_fraction": ("", "fraction of the light in star-forming knots"),
     "n_knots": ("", "number of star-forming knots"),
     "knot_seed": ("", "seed of the knots' positions"),
-    "teff": ("K", "effective temperature of a star; NaN for galaxies"),
+    "teff": ("K", "effective temperature of a star or dwarf; NaN for galaxies"),
+    "spectral_type": ("", "dwarf spectral type as a number: M0 = 10, L0 = 20, T0 = 30 (L5.5 = "
+                          "25.5); NaN otherwise"),
+    "dust_av": ("mag", "V-band attenuation (Calzetti et al. 2000 curve); 0 for dust-free "
+                       "galaxies, NaN for point sources"),
+    "ew_halpha": ("Angstrom", "rest-frame equivalent width of Halpha; 0 without lines, NaN "
+                              "for point sources"),
+    "ew_oiii_hbeta": ("Angstrom", "rest-frame equivalent width of Hbeta + [OIII] 495.9 + "
+                                  "500.7; 0 without lines, NaN for point sources"),
+    "ew_oii": ("Angstrom", "rest-frame equivalent width of [OII] 372.7; 0 without lines, NaN "
+                           "for point sources"),
     "sigma_kms": ("km / s", "velocity dispersion of a cluster member"),
     "magnification": ("", "lensing magnification (IMAGES: signed, of the image; SOURCES: sum "
                           "of |mu| over the images)"),

@@ -145,6 +145,34 @@ class PopulationConfig:
     star_count_slope: float = 0.15  #: slope of the star counts d log10 N / dm (dex/mag)
     clumpy: bool = True  #: star-forming knots in blue, large galaxies
     max_sources: int = 200000  #: refuse fields expecting more candidate sources than this
+    # contaminant families (simfield.population.dwarfs / .contaminants / .lines)
+    dwarf_density_arcmin2: float = 0.3  #: cool dwarfs per arcmin^2 in the J-like band's range
+    dwarf_mag_min: float = 20.0  #: J-like band (pivot nearest 1248 nm) magnitude range (AB)
+    dwarf_mag_max: float = 29.0
+    dwarf_count_slope: float = 0.1  #: d log10 N / dm of the dwarf counts (dex/mag)
+    #: relative numbers of M7-M9.5, L0-L9.5 and T0-T8 dwarfs
+    dwarf_type_fractions: list[float] = field(default_factory=lambda: [0.6, 0.25, 0.15])
+    dusty_density_arcmin2: float = 0.5  #: dusty galaxies per arcmin^2 in the magnitude range
+    dusty_mag_min: float = 21.0  #: selection-band magnitude range (AB)
+    dusty_mag_max: float = 27.0
+    dusty_z_min: float = 1.0
+    dusty_z_max: float = 4.0
+    dusty_av_median: float = 2.0  #: median V-band attenuation (mag)
+    dusty_av_sigma_dex: float = 0.2  #: log-normal scatter of A_V (dex)
+    quiescent_density_arcmin2: float = 0.3  #: quiescent galaxies per arcmin^2 in the range
+    quiescent_mag_min: float = 21.0  #: selection-band magnitude range (AB)
+    quiescent_mag_max: float = 27.0
+    quiescent_z_min: float = 2.0
+    quiescent_z_max: float = 5.0
+    quiescent_break: float = 2.6  #: median flux ratio across the Balmer break
+    emission_lines: bool = True  #: nebular lines in star-forming and dusty galaxies
+    ew_halpha_a: float = 20.0  #: rest EW(Halpha) = a (1+z)^slope (Angstrom)
+    ew_halpha_slope: float = 1.8
+    ew_halpha_z_cap: float = 6.0  #: EW(Halpha) held constant beyond this redshift
+    ew_scatter_dex: float = 0.25  #: log-normal scatter of EW(Halpha) (dex)
+    ew_halpha_max: float = 1500.0  #: largest rest EW(Halpha) drawn (Angstrom)
+    oiii_hbeta_ratio: float = 4.0  #: [OIII] 500.7 / Hbeta flux ratio
+    oii_hbeta_ratio: float = 1.5  #: [OII] 372.7 / Hbeta flux ratio
 
 
 # --------------------------------------------------------------------------------------------
@@ -510,6 +538,37 @@ def _validate_population(p: PopulationConfig, bands: list[str]) -> None:
     check_range("population.star_mag_max", p.star_mag_max, p.star_mag_min, 40)
     check_range("population.star_count_slope", p.star_count_slope, -1, 1)
     check_range("population.max_sources", p.max_sources, 1, 1e8)
+    _validate_contaminants(p)
+
+
+def _validate_contaminants(p: PopulationConfig) -> None:
+    for fam in ("dwarf", "dusty", "quiescent"):
+        check_range(f"population.{fam}_density_arcmin2", getattr(p, f"{fam}_density_arcmin2"),
+                    0, 1e3)
+        lo = getattr(p, f"{fam}_mag_min")
+        check_range(f"population.{fam}_mag_min", lo, 10, 40)
+        check_range(f"population.{fam}_mag_max", getattr(p, f"{fam}_mag_max"), lo, 40,
+                    lo_open=True)
+    check_range("population.dwarf_count_slope", p.dwarf_count_slope, -1, 1)
+    fr = list(p.dwarf_type_fractions)
+    require(len(fr) == 3 and all(f == f and 0 <= f for f in fr) and sum(fr) > 0,
+            "population.dwarf_type_fractions", fr,
+            "must be 3 numbers >= 0 (M7-M9.5, L, T) with a positive sum")
+    check_range("population.dusty_z_min", p.dusty_z_min, 0.5, 6)
+    check_range("population.dusty_z_max", p.dusty_z_max, p.dusty_z_min + 0.5, 6)
+    check_range("population.dusty_av_median", p.dusty_av_median, 0.3, 6)
+    check_range("population.dusty_av_sigma_dex", p.dusty_av_sigma_dex, 0, 1)
+    check_range("population.quiescent_z_min", p.quiescent_z_min, 0.5, 8)
+    check_range("population.quiescent_z_max", p.quiescent_z_max, p.quiescent_z_min, 8,
+                lo_open=True)
+    check_range("population.quiescent_break", p.quiescent_break, 1.8, 3.5)
+    check_range("population.ew_halpha_a", p.ew_halpha_a, 0, 1000)
+    check_range("population.ew_halpha_slope", p.ew_halpha_slope, 0, 4)
+    check_range("population.ew_halpha_z_cap", p.ew_halpha_z_cap, 0, 20)
+    check_range("population.ew_scatter_dex", p.ew_scatter_dex, 0, 1)
+    check_range("population.ew_halpha_max", p.ew_halpha_max, 0, 5000)
+    check_range("population.oiii_hbeta_ratio", p.oiii_hbeta_ratio, 0, 20)
+    check_range("population.oii_hbeta_ratio", p.oii_hbeta_ratio, 0, 20)
 
 
 def _validate_lens(lens: LensConfig, z_max: float) -> None:

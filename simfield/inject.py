@@ -27,6 +27,7 @@ from astropy.stats import sigma_clipped_stats
 from astropy.table import Table
 from astropy.wcs import WCS
 
+from .columns import POINT_KINDS
 from .config import Scenario, config_hash, to_yaml
 from .errors import CatalogError
 from .grid import Grid
@@ -210,8 +211,9 @@ def inject_into_image(image_path, sc: Scenario, band: str, out_dir, psf_path=Non
     # draw in image pixels: profile (xi, eta) -> pixel frame, J = scale * (d(xi,eta)/d(x,y))^-1
     frame = (scale * np.linalg.inv(jac)).ravel()
     kinds = np.asarray(sources["kind"]).astype(str)
+    point = np.isin(kinds, POINT_KINDS)
     stamps = draw_stamps(
-        ((i, None if kinds[i] == "star" else make_profile(row, sc.seed).transform(*frame),
+        ((i, None if point[i] else make_profile(row, sc.seed).transform(*frame),
           float(row["x"]), float(row["y"]), np.nan_to_num(float(row["r_half"])) / scale)
          for i, row in enumerate(sources)), scale)
     rate = np.nan_to_num(10 ** (-0.4 * (np.asarray(sources[f"mag_{band}"], float) - zp)))

@@ -27,6 +27,7 @@ from astropy.table import Table
 from . import __version__
 from ._procs import die_with_parent
 from .bands import Band, ab_to_njy, make_band, njy_to_ab
+from .columns import POINT_KINDS, SOURCE_KINDS
 from .config import Scenario, config_hash, to_yaml
 from .grid import Grid
 from .io import (COMPLETE_MARKER, Provenance, section_files, write_fits, write_json, write_table,
@@ -223,6 +224,7 @@ def run_scenario(sc: Scenario, out_dir: str | Path, progress: bool = False) -> R
         "n_sources": int(len(sources)),
         "n_galaxies": int(np.sum(sources["kind"] == "galaxy")),
         "n_stars": int(np.sum(sources["kind"] == "star")),
+        "n_per_kind": {k: int(np.sum(sources["kind"] == k)) for k in SOURCE_KINDS},
         "n_images": int(len(images)),
         "n_multiply_imaged": int(np.sum(np.asarray(sources["n_images"]) > 1)),
         "field_arcmin2": srv.width_arcsec * srv.height_arcsec / 3600.0,
@@ -724,7 +726,7 @@ def _draw_tile(ctx: _TileContext, acc_box, acc_grid: Grid, bright_box,
     wanted = (near(acc_box, cap) | (bright_any & near(bright_box, cap)) | (kinds == "icl"))
     for i in np.nonzero(~lensed & wanted)[0]:
         box = bright_box if bright_any[i] else acc_box
-        if kinds[i] == "star":
+        if kinds[i] in POINT_KINDS:
             st = point_stamp(xpix[i], ypix[i], int(i))
             if overlaps(box, st.iy0, st.ix0, 2):
                 stamps.append(st)

@@ -29,7 +29,7 @@ from simfield import cosmo as sf_cosmo
 from simfield.bands import Band, ab_to_njy, make_band, njy_to_ab
 from simfield.config import PopulationConfig
 from simfield.errors import ConfigError
-from simfield.population import lightcone, luminosity, morphology, seds, stars
+from simfield.population import _photometry, lightcone, luminosity, morphology, seds, stars
 from simfield.population import make_population, make_profile
 
 C_KMS = const.c.to(u.km / u.s).value
@@ -73,7 +73,7 @@ def test_distance_modulus_and_volume_hogg(z):
 def test_tabulated_distances_match_astropy():
     """The light cone's spline of D_A agrees with astropy to 1e-5 mag in DM (reference library)."""
     cd = sf_cosmo.default_cosmology()
-    tab = lightcone._Distances(0.2, 15.0, cd)
+    tab = _photometry.Distances(0.2, 15.0, cd)
     z = np.linspace(0.2, 15.0, 777)
     assert_allclose(tab.dm(z), cd.distmod(z).value, atol=1e-5)
     assert_allclose(tab.d_a(z), cd.angular_diameter_distance(z).value, rtol=1e-5)

@@ -1,8 +1,11 @@
-"""population stage of simfield: light-cone galaxies and foreground stars -> truth table.
+"""population stage of simfield: light-cone galaxies, foreground stars, contaminants -> truth.
 
 Modules: :mod:`.luminosity` (evolving rest-UV Schechter function, light-cone sampling),
 :mod:`.seds` (templates, IGM, synthetic photometry), :mod:`.morphology` (Sersic shapes, sizes,
 knots, GalSim profiles), :mod:`.stars` (foreground stars), :mod:`.lightcone` (the truth table).
+Contaminant families: :mod:`.dwarfs` (cool M/L/T dwarfs), :mod:`.contaminants` (dusty and
+quiescent galaxies), :mod:`.dust` (Calzetti et al. 2000 attenuation), :mod:`.lines` (nebular
+emission lines).
 """
 
 from .lightcone import COLUMN_UNITS, make_population, selection_band_index

@@ -1,16 +1,20 @@
-"""The truth table of all sources of a field: light-cone galaxies and foreground stars.
+"""The truth table of all sources of a field: light-cone galaxies, stars and contaminants.
 
 ``make_population`` draws, in this order from one generator: galaxies (redshift and rest-UV
-magnitude from :mod:`.luminosity`, or the uniform injection mode), their templates and spectra
-(:mod:`.seds`), their shapes (:mod:`.morphology`), the stars (:mod:`.stars`), and positions
-uniform over the given tangent-plane ranges.
+magnitude from :mod:`.luminosity`, or the uniform injection mode), their templates, emission
+lines and spectra (:mod:`.seds`, :mod:`.lines`), their shapes (:mod:`.morphology`), the stars
+(:mod:`.stars`), positions uniform over the given tangent-plane ranges; then the contaminant
+families, each with its positions: dusty and quiescent galaxies (:mod:`.contaminants`) and
+cool dwarfs (:mod:`.dwarfs`). The families come last, so they leave the light cone's draws
+unchanged.
 
 Only galaxies whose apparent magnitude in the selection band could pass ``mag_limit`` are drawn:
 for every redshift the brightest selection-band colour each template can have (its parameters at
 their extreme deviates, which are clipped at 4 sigma; the band flux grows with the optical slope
 and the break and is convex in beta, so the ends of each range bound it) gives the faintest
 M_UV that can still pass, with a 0.05 mag margin; galaxies beyond that are never drawn, the rest
-are cut exactly on their synthetic magnitude.
+are cut exactly on their synthetic magnitude. With emission lines on, the star-forming envelope
+carries the lines at their largest equivalent width (the +3 sigma clip of the draw).
 """
 
 from __future__ import annotations
@@ -18,18 +22,21 @@ from __future__ import annotations
 from typing import Sequence
 
 import numpy as np
-from astropy.table import Column, Table
-from scipy.interpolate import CubicSpline
+from astropy.table import Table
 
 from ..bands import Band
 from ..config import PopulationConfig
-from ..cosmo import angular_diameter_distance, default_cosmology
+from ..cosmo import default_cosmology
 from ..errors import ConfigError, require
+from ._photometry import Distances, Photometry
+from ._table import GALAXY_DEFAULTS, POINT_DEFAULTS, galaxy_columns, stack_families
+from .contaminants import draw_dusty, draw_quiescent
+from .dwarfs import draw_dwarfs, dwarf_band_magnitudes
+from .lines import LineParameters, draw_halpha_ew
 from .luminosity import draw_redshift_magnitude, expected_counts, uv_lf_parameters
 from .morphology import Morphology, draw_morphology
-from .seds import (BETA_SCATTER, band_magnitudes, band_weight_matrix, evolved_probability,
-                   galaxy_fnu, rest_fnu_shape, sed_parameters_from_deviates, uv_slope_relation,
-                   wave_grid)
+from .seds import (BETA_SCATTER, evolved_probability, rest_fnu_shape,
+                   sed_parameters_from_deviates, uv_slope_relation)
 from .stars import draw_stars, star_band_magnitudes
 
 __all__ = ["make_population", "expected_galaxies", "selection_band_index", "COLUMN_UNITS"]
@@ -37,9 +44,9 @@ __all__ = ["make_population", "expected_galaxies", "selection_band_index", "COLU
 #: Units of the table columns (unit strings as astropy writes them).
 COLUMN_UNITS = {
     "x_arcsec": "arcsec", "y_arcsec": "arcsec", "abs_mag_uv": "mag", "r_half": "arcsec",
-    "r_half_kpc": "kpc", "position_angle": "deg", "teff": "K",
+    "r_half_kpc": "kpc", "position_angle": "deg", "teff": "K", "dust_av": "mag",
+    "ew_halpha": "Angstrom", "ew_oiii_hbeta": "Angstrom", "ew_oii": "Angstrom",
 }
-_CHUNK = 4096  # galaxies per spectrum batch (4096 x ~400 wavelengths ~ 13 MB)
 _MARGIN_MAG = 0.05  # safety margin of the pre-selection envelope (mag)
 _ENVELOPE_BETAS = np.linspace(-3.2, 0.5, 16)
 
@@ -54,53 +61,10 @@ def selection_band_index(pop: PopulationConfig, bands: Sequence[Band]) -> int:
     return int(np.argmax([b.pivot_nm for b in bands]))
 
 
-class _Distances:
-    """Angular-diameter distance and distance modulus by a cubic spline of ln D_A in ln(1+z),
-    tabulated once per call from the astropy cosmology (300 nodes: < 1e-5 mag)."""
-
-    def __init__(self, z_lo, z_hi, cosmo):
-        u = np.linspace(np.log1p(0.9 * z_lo), np.log1p(1.01 * z_hi), 300)
-        self._spline = CubicSpline(u, np.log(angular_diameter_distance(np.expm1(u), cosmo)))
-
-    def d_a(self, z):
-        """D_A (Mpc)."""
-        return np.exp(self._spline(np.log1p(z)))
-
-    def dm(self, z):
-        """DM = 5 log10(D_A (1+z)^2 / 10 pc) (mag)."""
-        return 5.0 * np.log10(self.d_a(z) * (1.0 + z) ** 2) + 25.0
-
-
-class _Photometry:
-    """Wavelength grid, band weights and distances shared by every spectrum of one call."""
-
-    def __init__(self, bands, sel, dist):
-        self.wave = wave_grid(bands)
-        self.weights = band_weight_matrix(self.wave, bands)
-        self.sel = sel
-        self.dist = dist
-        used = self.weights[:, sel] > 0
-        self.sel_wave = self.wave[used]
-        self.sel_weights = self.weights[used][:, [sel]]
-
-    def mags(self, z, m_uv, beta, brk, beta_opt, selection_only=False):
-        """Band magnitudes (n, n_band), or (n, 1) in the selection band only; in batches."""
-        wave, w = (self.sel_wave, self.sel_weights) if selection_only else \
-            (self.wave, self.weights)
-        out = np.empty((len(z), w.shape[1]))
-        dm = self.dist.dm(z)
-        for s in range(0, len(z), _CHUNK):
-            sl = slice(s, s + _CHUNK)
-            f = galaxy_fnu(wave, z[sl], m_uv[sl], beta[sl], brk[sl], beta_opt[sl],
-                           dist_mod=dm[sl])
-            out[sl] = band_magnitudes(wave, f, [], weights=w)
-        return out
-
-
 class _Envelope:
     """Faintest colour (m_sel - m_1500) each template can have, on a redshift grid."""
 
-    def __init__(self, phot: _Photometry, z_min, z_max, mag_limit):
+    def __init__(self, phot: Photometry, z_min, z_max, mag_limit):
         self.z = np.linspace(z_min, z_max, max(60, int(np.ceil((z_max - z_min) / 0.05)) + 1))
         self.mag_limit = mag_limit
         nz, nb = self.z.size, _ENVELOPE_BETAS.size
@@ -110,7 +74,10 @@ class _Envelope:
         bb = np.tile(_ENVELOPE_BETAS, nz)
         bo = np.clip(bb + 0.8, -2.2, 0.5) + 0.15 * 4.0
         br = np.full(zz.size, 10.0 ** (np.log10(1.25) + 0.08 * 4.0))
-        k_sf = phot.mags(zz, np.zeros(zz.size), bb, br, bo, True)[:, 0].reshape(nz, nb)
+        # lines at their largest equivalent width (the +3 sigma clip of draw_halpha_ew)
+        ew = draw_halpha_ew(zz, phot.lines, np.full(zz.size, 3.0)) if phot.lines else None
+        k_sf = phot.mags(zz, np.zeros(zz.size), bb, br, bo, True,
+                         ew_halpha=ew)[:, 0].reshape(nz, nb)
         k_sf -= m_flat[:, None]
         # redder-or-equal betas could all occur: running minimum along beta
         self.k_sf = np.minimum.accumulate(k_sf, axis=1)
@@ -137,6 +104,23 @@ class _Envelope:
         k_ev = np.minimum(self.k_ev[a], self.k_ev[b])
         lim = self.mag_limit + _MARGIN_MAG
         return m_uv + m_flat + k_sf < lim, m_uv + m_flat + k_ev < lim
+
+
+def line_parameters(pop: PopulationConfig):
+    """The emission-line model of ``pop`` (:class:`.lines.LineParameters`), None if off."""
+    if not pop.emission_lines:
+        return None
+    return LineParameters(ew_a=pop.ew_halpha_a, ew_slope=pop.ew_halpha_slope,
+                          z_cap=pop.ew_halpha_z_cap, scatter_dex=pop.ew_scatter_dex,
+                          ew_max=pop.ew_halpha_max, oiii_hbeta=pop.oiii_hbeta_ratio,
+                          oii_hbeta=pop.oii_hbeta_ratio)
+
+
+def _photometry(pop, bands, sel, cosmo):
+    """Photometry over the redshifts of every family (the distance spline's range)."""
+    z_lo = min(pop.z_min, pop.dusty_z_min, pop.quiescent_z_min)
+    z_hi = max(pop.z_max, pop.dusty_z_max, pop.quiescent_z_max)
+    return Photometry(bands, sel, Distances(z_lo, z_hi, cosmo), line_parameters(pop))
 
 
 def _check_inputs(pop, bands, xi, eta):
@@ -176,8 +160,7 @@ def expected_galaxies(pop: PopulationConfig, bands: list[Band], area_arcsec2: fl
     if pop.mode == "uniform":
         return pop.uniform_density_arcmin2 * area_arcsec2 / 3600.0
     cosmo = cosmo or default_cosmology()
-    phot = _Photometry(bands, selection_band_index(pop, bands),
-                       _Distances(pop.z_min, pop.z_max, cosmo))
+    phot = _photometry(pop, bands, selection_band_index(pop, bands), cosmo)
     _, weight = _lf_weight(pop, phot)
     return expected_counts(pop.z_min, pop.z_max, pop.abs_mag_faint, area_arcsec2, cosmo=cosmo,
                            weight=weight)
@@ -200,11 +183,22 @@ def _galaxies_from_lf(pop, phot, area, rng, cosmo):
     p_ev = np.divide(p * ok_ev, w, out=np.zeros_like(w), where=w > 0)
     evolved = rng.random(z.size) < p_ev
     sed = sed_parameters_from_deviates(z, m, evolved, rng.standard_normal((3, z.size)))
-    m_sel = phot.mags(z, m, sed.beta, sed.break_strength, sed.beta_opt, True)[:, 0]
+    ew = _halpha_ew(phot, z, evolved, rng)
+    m_sel = phot.mags(z, m, sed.beta, sed.break_strength, sed.beta_opt, True,
+                      ew_halpha=ew)[:, 0]
     keep = (w > 0) & (m_sel < pop.mag_limit)
     z, m = z[keep], m[keep]
-    mags = phot.mags(z, m, sed.beta[keep], sed.break_strength[keep], sed.beta_opt[keep])
-    return z, m, evolved[keep], sed, keep, mags, draw.expected
+    mags = phot.mags(z, m, sed.beta[keep], sed.break_strength[keep], sed.beta_opt[keep],
+                     ew_halpha=ew[keep])
+    return z, m, evolved[keep], sed, keep, mags, draw.expected, ew[keep]
+
+
+def _halpha_ew(phot, z, evolved, rng):
+    """Rest EW(Halpha) (Angstrom) of the light cone's galaxies: 0 for evolved ones or when
+    the line model is off (then nothing is drawn)."""
+    if phot.lines is None:
+        return np.zeros(z.size)
+    return np.where(evolved, 0.0, draw_halpha_ew(z, phot.lines, rng.standard_normal(z.size)))
 
 
 def _galaxies_uniform(pop, phot, area, rng, cosmo, bands):
@@ -224,21 +218,24 @@ def _galaxies_uniform(pop, phot, area, rng, cosmo, bands):
     m = mag - phot.dist.dm(z) + 2.5 * np.log10(1.0 + z)
     evolved = rng.random(n) < evolved_probability(z, m, uv_lf_parameters(z).m_star)
     dev = rng.standard_normal((3, n))
+    ew = _halpha_ew(phot, z, evolved, rng)
     # M_UV such that the selection-band magnitude is the drawn one; beta depends weakly on M_UV
     # (d beta / d M ~ -0.2), so a few fixed-point steps converge to < 1e-4 mag
     for _ in range(4):
         sed = sed_parameters_from_deviates(z, m, evolved, dev)
-        m_sel = phot.mags(z, m, sed.beta, sed.break_strength, sed.beta_opt, True)[:, 0]
+        m_sel = phot.mags(z, m, sed.beta, sed.break_strength, sed.beta_opt, True,
+                          ew_halpha=ew)[:, 0]
         m = m + (mag - m_sel)
     sed = sed_parameters_from_deviates(z, m, evolved, dev)
-    mags = phot.mags(z, m, sed.beta, sed.break_strength, sed.beta_opt)
+    mags = phot.mags(z, m, sed.beta, sed.break_strength, sed.beta_opt, ew_halpha=ew)
     keep = np.ones(n, dtype=bool)
-    return z, m, evolved, sed, keep, mags, expected
+    return z, m, evolved, sed, keep, mags, expected, ew
 
 
 def make_population(pop: PopulationConfig, bands: list[Band], field_xi_arcsec: tuple,
                     field_eta_arcsec: tuple, rng: np.random.Generator, cosmo=None) -> Table:
-    """All sources of a field (galaxies, then stars) as an astropy Table.
+    """All sources of a field as an astropy Table: light-cone galaxies, stars, then the
+    contaminant families (dusty and quiescent galaxies, cool dwarfs).
 
     Parameters
     ----------
@@ -256,24 +253,26 @@ def make_population(pop: PopulationConfig, bands: list[Band], field_xi_arcsec: t
     Returns
     -------
     astropy.table.Table
-        Columns: id (1..N), kind (galaxy/star), x_arcsec, y_arcsec (xi, eta; arcsec),
-        redshift, abs_mag_uv (AB, rest 1500 A; NaN for stars), mag_<band> (intrinsic AB),
-        r_half (arcsec), r_half_kpc, sersic_n, axis_ratio, position_angle (deg east of north),
-        beta_uv, beta_opt, break_strength, template (starforming/evolved/star), knot_fraction,
-        n_knots, knot_seed, teff (K, stars; NaN for galaxies).
+        Columns: id (1..N), kind (galaxy/star/dusty/quiescent/dwarf), x_arcsec, y_arcsec
+        (xi, eta; arcsec), redshift, abs_mag_uv (AB, rest 1500 A, before dust; NaN for
+        stars), mag_<band> (intrinsic AB), r_half (arcsec), r_half_kpc, sersic_n, axis_ratio,
+        position_angle (deg east of north), beta_uv, beta_opt, break_strength, template
+        (starforming/evolved/star/dusty/quiescent/dwarf), knot_fraction, n_knots, knot_seed,
+        teff (K; stars and dwarfs), spectral_type (dwarfs: M0 = 10, L0 = 20, T0 = 30), dust_av
+        (mag), ew_halpha, ew_oiii_hbeta, ew_oii (rest EWs, Angstrom; NaN for point sources).
     """
     _check_inputs(pop, bands, field_xi_arcsec, field_eta_arcsec)
     cosmo = cosmo or default_cosmology()
     sel = selection_band_index(pop, bands)
     (x0, x1), (y0, y1) = field_xi_arcsec, field_eta_arcsec
     area = (x1 - x0) * (y1 - y0)
-    phot = _Photometry(bands, sel, _Distances(pop.z_min, pop.z_max, cosmo))
+    phot = _photometry(pop, bands, sel, cosmo)
     if pop.mode == "uniform":
-        z, m, evolved, sed, keep, mags, expected = _galaxies_uniform(pop, phot, area, rng, cosmo,
-                                                                     bands)
+        z, m, evolved, sed, keep, mags, expected, ew = _galaxies_uniform(pop, phot, area, rng,
+                                                                         cosmo, bands)
     else:
-        z, m, evolved, sed, keep, mags, expected = _galaxies_from_lf(pop, phot, area, rng, cosmo)
-    ng = z.size
+        z, m, evolved, sed, keep, mags, expected, ew = _galaxies_from_lf(pop, phot, area, rng,
+                                                                         cosmo)
     shape = rest_fnu_shape(550.0, sed.beta[keep], sed.break_strength[keep], sed.beta_opt[keep])
     morph: Morphology = draw_morphology(z, m, evolved, rng, clumpy=pop.clumpy,
                                         abs_mag_opt=m - 2.5 * np.log10(shape),
@@ -283,35 +282,36 @@ def make_population(pop: PopulationConfig, bands: list[Band], field_xi_arcsec: t
     ns = stars.mag.size
     star_mags = star_band_magnitudes(stars.mag, stars.teff, bands, sel) if ns else \
         np.zeros((0, len(bands)))
-    n = ng + ns
+    n = z.size + ns
     x = x0 + (x1 - x0) * rng.random(n)
     y = y0 + (y1 - y0) * rng.random(n)
-
-    nan_s = np.full(ns, np.nan)
-    cat = lambda g, s: np.concatenate([np.asarray(g, dtype=float), s])  # noqa: E731
-    t = Table()
-    t["id"] = np.arange(1, n + 1, dtype=np.int64)
-    t["kind"] = np.array(["galaxy"] * ng + ["star"] * ns, dtype="U6")
-    t["x_arcsec"] = x
-    t["y_arcsec"] = y
-    t["redshift"] = cat(z, np.zeros(ns))
-    t["abs_mag_uv"] = cat(m, nan_s)
-    for i, b in enumerate(bands):
-        t[f"mag_{b.name}"] = Column(np.concatenate([mags[:, i], star_mags[:, i]]), unit="mag")
-    t["r_half"] = cat(morph.r_half, np.zeros(ns))
-    t["r_half_kpc"] = cat(morph.r_half_kpc, np.zeros(ns))
-    t["sersic_n"] = cat(morph.sersic_n, nan_s)
-    t["axis_ratio"] = cat(morph.axis_ratio, np.ones(ns))
-    t["position_angle"] = cat(morph.position_angle, np.zeros(ns))
-    t["beta_uv"] = cat(sed.beta[keep], nan_s)
-    t["beta_opt"] = cat(sed.beta_opt[keep], nan_s)
-    t["break_strength"] = cat(sed.break_strength[keep], nan_s)
-    t["template"] = np.concatenate([np.where(evolved, "evolved", "starforming"),
-                                    np.full(ns, "star")]).astype("U11")
-    t["knot_fraction"] = cat(morph.knot_fraction, np.zeros(ns))
-    t["n_knots"] = np.concatenate([morph.n_knots, np.zeros(ns, dtype=int)]).astype(np.int32)
-    t["knot_seed"] = np.concatenate([morph.knot_seed, np.zeros(ns, dtype=int)]).astype(np.int64)
-    t["teff"] = cat(np.full(ng, np.nan), stars.teff)
+    families = [
+        ("galaxy", np.where(evolved, "evolved", "starforming"), z.size, mags,
+         galaxy_columns(phot, z, m, sed.beta[keep], sed.beta_opt[keep],
+                        sed.break_strength[keep], morph, ew), GALAXY_DEFAULTS),
+        ("star", "star", ns, star_mags, {"teff": stars.teff}, POINT_DEFAULTS),
+    ]
+    # contaminant families, drawn after the light cone and the stars (whose draws they leave
+    # unchanged), each followed by its positions
+    xs, ys = [x], [y]
+    for kind, fam in (("dusty", draw_dusty(pop, phot, area, rng, phot.lines)),
+                      ("quiescent", draw_quiescent(pop, phot, area, rng))):
+        families.append((kind, kind, fam.z.size, fam.mags,
+                         galaxy_columns(phot, fam.z, fam.abs_mag_uv, fam.beta, fam.beta_opt,
+                                        fam.break_strength, fam.morph, fam.ew_halpha,
+                                        fam.dust_av), GALAXY_DEFAULTS))
+        xs.append(x0 + (x1 - x0) * rng.random(fam.z.size))
+        ys.append(y0 + (y1 - y0) * rng.random(fam.z.size))
+    dw = draw_dwarfs(pop.dwarf_density_arcmin2, pop.dwarf_mag_min, pop.dwarf_mag_max,
+                     pop.dwarf_count_slope, pop.dwarf_type_fractions, area, rng)
+    nd = dw.mag.size
+    families.append(("dwarf", "dwarf", nd,
+                     dwarf_band_magnitudes(dw.mag, dw.spectral_type, bands) if nd else
+                     np.zeros((0, len(bands))),
+                     {"teff": dw.teff, "spectral_type": dw.spectral_type}, POINT_DEFAULTS))
+    xs.append(x0 + (x1 - x0) * rng.random(nd))
+    ys.append(y0 + (y1 - y0) * rng.random(nd))
+    t = stack_families(families, bands, np.concatenate(xs), np.concatenate(ys))
     for name, unit in COLUMN_UNITS.items():
         t[name].unit = unit
     sel_name = bands[sel].name

@@ -28,6 +28,7 @@ from typing import Any, Mapping, Optional
 import galsim
 import numpy as np
 
+from ..columns import POINT_KINDS
 from ..cosmo import angular_diameter_distance
 
 __all__ = [
@@ -156,7 +157,8 @@ def make_profile(row: Mapping[str, Any], rng_seed: Optional[int] = None) -> gals
     Galaxies: a Sersic profile truncated at :data:`TRUNCATION_RADII` half-light radii
     (half-light radius and unit flux of the truncated profile), plus, if ``knot_fraction`` > 0,
     ``n_knots`` Gaussian knots placed by ``galsim.RandomKnots``; then sheared to ``axis_ratio``
-    at ``position_angle`` (east of north). Stars: ``galsim.DeltaFunction``.
+    at ``position_angle`` (east of north). Point sources (kinds ``star`` and ``dwarf``):
+    ``galsim.DeltaFunction``.
 
     Parameters
     ----------
@@ -167,7 +169,7 @@ def make_profile(row: Mapping[str, Any], rng_seed: Optional[int] = None) -> gals
         Extra seed (e.g. the scenario's) mixed with the row's ``knot_seed`` for the knot
         positions; by default ``knot_seed`` alone.
     """
-    if row["kind"] == "star":
+    if row["kind"] in POINT_KINDS:
         return galsim.DeltaFunction(flux=1.0)
     r = float(row["r_half"])
     n = float(np.clip(row["sersic_n"], *SERSIC_N_RANGE))

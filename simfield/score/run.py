@@ -33,7 +33,7 @@ from astropy.table import Table
 from astropy.wcs import WCS
 
 from .._argparse import ArgError, OneLineParser
-from ..columns import SCORE_COLUMNS, SCORE_TABLES, describe
+from ..columns import POINT_KINDS, SCORE_COLUMNS, SCORE_TABLES, describe
 from ..config import ScoreConfig, _validate_score
 from ..errors import CatalogError, ConfigError
 from . import metrics
@@ -347,7 +347,7 @@ def false_detection_causes(truth: dict, det, cfg: ScoreConfig, m, ix, iy, img_so
     if not angles and truth["psf"] is not None:
         angles = list(metrics.measure_spike_angles(truth["psf"]))
     rec_by_id = {int(s): bool(r) for s, r in zip(source_id, recovered)}
-    star_img = np.isin(img_source, source_id[kind == "star"])
+    star_img = np.isin(img_source, source_id[np.isin(kind, POINT_KINDS)])
     # the truth segmentation is a memory map: only the detections' pixels are read. The DQ
     # rule ("artefact") comes first and wins, so it is applied afterwards from the DQ values at
     # those pixels alone, which gives the same causes as passing a masked DQ image.
@@ -437,7 +437,7 @@ def score_run(run_dir, catalog, band: str, cfg: ScoreConfig | None = None, out_d
     best_mag = np.where(best_img >= 0, mag_img[np.maximum(best_img, 0)], np.nan)
     has_img = best_img >= 0
     kind = np.asarray(sources["kind"]).astype(str)
-    gal = has_img & (kind != "star")
+    gal = has_img & ~np.isin(kind, POINT_KINDS)
     mu_img = np.abs(np.asarray(images["magnification"], float))
     mu_best = np.where(has_img, mu_img[np.maximum(best_img, 0)], np.nan)
     r_half = np.asarray(sources["r_half"], float) if "r_half" in sources.colnames else \
