@@ -551,7 +551,8 @@ def _validate_contaminants(p: PopulationConfig) -> None:
                     lo_open=True)
     check_range("population.dwarf_count_slope", p.dwarf_count_slope, -1, 1)
     fr = list(p.dwarf_type_fractions)
-    require(len(fr) == 3 and all(f == f and 0 <= f for f in fr) and sum(fr) > 0,
+    require(len(fr) == 3 and all(isinstance(f, (int, float)) and not isinstance(f, bool)
+                                 and math.isfinite(f) and f >= 0 for f in fr) and sum(fr) > 0,
             "population.dwarf_type_fractions", fr,
             "must be 3 numbers >= 0 (M7-M9.5, L, T) with a positive sum")
     check_range("population.dusty_z_min", p.dusty_z_min, 0.5, 6)
@@ -735,11 +736,13 @@ def _validate_condition(c: ConditionConfig, key: str, bands: list[str], names: l
                         plain: set) -> None:
     require(c.kind in CONDITION_KINDS, f"{key}.kind", c.kind,
             f"must be one of {', '.join(CONDITION_KINDS)}")
+    hint = " (selection=none, or samples of your own, for another band set)"
     for j, b in enumerate(c.bands):
-        require(b in bands, f"{key}.bands.{j}", b, f"must be one of the bands {', '.join(bands)}")
+        require(b in bands, f"{key}.bands.{j}", b,
+                f"must be one of the bands {', '.join(bands)}{hint}")
     for j, b in enumerate(c.slope_bands):
         require(b in bands, f"{key}.slope_bands.{j}", b,
-                f"must be one of the bands {', '.join(bands)}")
+                f"must be one of the bands {', '.join(bands)}{hint}")
     for k, v in (("above", c.above), ("below", c.below)):
         if v is not None:
             check_range(f"{key}.{k}", v, -100, 100)

@@ -6,6 +6,7 @@ the value and what is allowed into one message, so a command-line user reads one
 
 from __future__ import annotations
 
+import numbers
 from typing import Any
 
 __all__ = ["SimfieldError", "ConfigError", "CatalogError", "require", "check_range"]
@@ -52,9 +53,11 @@ def check_range(key: str, value: float, lo: float | None = None, hi: float | Non
                 lo_open: bool = False, hi_open: bool = False) -> None:
     """Check ``lo <= value <= hi`` (open ends with ``lo_open``/``hi_open``).
 
-    Raises :class:`ConfigError` naming ``key``, ``value`` and the allowed range. NaN is
-    always refused.
+    Raises :class:`ConfigError` naming ``key``, ``value`` and the allowed range. NaN and
+    anything that is not a real number (a list, a string, a boolean) are always refused.
     """
+    if isinstance(value, bool) or not isinstance(value, numbers.Real):
+        raise ConfigError(key, value, "must be a number")
     bad = value != value  # NaN
     if lo is not None:
         bad |= value <= lo if lo_open else value < lo

@@ -244,7 +244,8 @@ def run_scenario(sc: Scenario, out_dir: str | Path, progress: bool = False) -> R
 
             summary["photometry"] = measure_run(out, sc, prov)
             files.append(out / "photometry.fits")
-    if sc.photoz.enabled and (out / "photometry.fits").exists():
+    # photometric redshifts need colours: at least two bands
+    if sc.photoz.enabled and len(bands) >= 2 and (out / "photometry.fits").exists():
         with timer("photoz"):
             from .photoz import fit_run
 

@@ -148,6 +148,7 @@ def test_killed_run_takes_its_workers_with_it(tmp_path):
     """kill -9 of a run with two tile processes: no worker is alive 5 s later."""
     args = ["survey=quick", "survey.tile_pixels=200", "workers=2", "score.report=false",
             "telescope.bands=[{name:b17,center_nm:1700,width_nm:380}]",
+            "selection=none",
             "telescope.psf.n_wavelengths=3", f"telescope.psf.cache_dir={tmp_path / 'psf'}",
             f"hydra.run.dir={tmp_path / 'run'}"]
     proc = subprocess.Popen([*SIMFIELD, *args], cwd=tmp_path, stdout=subprocess.DEVNULL,

@@ -28,6 +28,7 @@ ROOT = Path(__file__).resolve().parent.parent
 TINY = [
     "survey=quick", "survey.width_arcsec=8", "survey.height_arcsec=8",
     "telescope.bands=[{name:b17,center_nm:1700,width_nm:380,throughput:0.4,sky_mjy_sr:0.18}]",
+    "selection=none",
     "telescope.psf.n_wavelengths=3", "score.report=false",
 ]
 

@@ -14,6 +14,7 @@ Units: deg, nJy, AB mag.
 
 from __future__ import annotations
 
+import logging
 from pathlib import Path
 
 import numpy as np
@@ -21,6 +22,8 @@ from astropy.table import Table, join
 
 from ..errors import CatalogError
 from .cuts import apply_samples, check_columns
+
+log = logging.getLogger("simfield")
 
 __all__ = ["load_photometry", "score_run_selection", "score_catalogue_selection"]
 
@@ -92,6 +95,15 @@ def score_run_selection(run_dir, sc, prov=None) -> dict:
     """
     samples = list(sc.selection.samples)
     det, band = load_photometry(run_dir, _needs_photoz(samples))
+    # validation checked the samples against the configured bands; a scenario whose bands were
+    # changed afterwards (from Python) skips the samples it cannot evaluate, and says so
+    bands = set(sc.band_names)
+    usable = [s for s in samples
+              if all(set(c.bands) | set(c.slope_bands) <= bands for c in s.conditions)]
+    for s in samples:
+        if s not in usable:
+            log.warning("selection: sample %s skipped: the run lacks the bands it needs", s.name)
+    samples = usable
     check_columns(det, samples, "photometry.fits (+ photoz.fits)")
     masks = {k: v[0] for k, v in apply_samples(det, samples).items()}
     return _score_all(run_dir, det, band, masks, samples, sc, Path(run_dir) / "selection", prov)
