@@ -139,6 +139,11 @@ class PopulationConfig:
     uniform_mag_min: float = 24.0  #: uniform mode: apparent magnitude range (AB)
     uniform_mag_max: float = 31.0
     uniform_density_arcmin2: float = 50.0  #: uniform mode: sources per arcmin^2
+    #: uniform mode: draw uniform in ``mag`` (selection-band apparent magnitude) or in
+    #: ``abs_mag`` (rest-UV M_UV, to fill the cells of a selection function S(M_UV, z))
+    uniform_in: str = "mag"
+    uniform_abs_mag_min: float = -23.0  #: uniform_in abs_mag: M_UV range (AB)
+    uniform_abs_mag_max: float = -17.0
     star_density_arcmin2: float = 3.0  #: foreground stars per arcmin^2 brighter than star_mag_max
     star_mag_min: float = 16.0
     star_mag_max: float = 30.0
@@ -533,6 +538,11 @@ def _validate_population(p: PopulationConfig, bands: list[str]) -> None:
     check_range("population.uniform_mag_max", p.uniform_mag_max, p.uniform_mag_min, 40,
                 lo_open=True)
     check_range("population.uniform_density_arcmin2", p.uniform_density_arcmin2, 0, 1e5)
+    require(p.uniform_in in ("mag", "abs_mag"), "population.uniform_in", p.uniform_in,
+            "must be one of: mag, abs_mag")
+    check_range("population.uniform_abs_mag_min", p.uniform_abs_mag_min, -30, -5)
+    check_range("population.uniform_abs_mag_max", p.uniform_abs_mag_max, p.uniform_abs_mag_min,
+                -5, lo_open=True)
     check_range("population.star_density_arcmin2", p.star_density_arcmin2, 0, 1e4)
     check_range("population.star_mag_min", p.star_mag_min, 5, 40)
     check_range("population.star_mag_max", p.star_mag_max, p.star_mag_min, 40)

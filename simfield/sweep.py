@@ -645,6 +645,15 @@ def collect_main_args(argv: list[str]) -> int:
     plots = [] if a.no_plots else plot_sweep(t, out)
     print(f"{prog}: {len(t)} jobs, swept: {', '.join(t.meta['swept']) or 'nothing'} -> "
           f"{out / 'sweep.ecsv'} and {len(plots)} plots")
+    # selection functions: the (M_UV, z) cells of every complete job added up
+    from .selection.combine import combine_completeness
+
+    done = [root / j for j, c in zip(t["job"], t["complete"]) if c]
+    for name, s in combine_completeness(done).items():
+        with atomic_path(out / f"selection_{name}_completeness.ecsv") as tmp:
+            s.write(tmp, format="ascii.ecsv", overwrite=True)
+        print(f"{prog}: sample {name}: S(M_UV, z) from {s['n_jobs'][0]} jobs, "
+              f"{int(s['n'].sum())} truth galaxies -> {out / f'selection_{name}_completeness.ecsv'}")
     if inc:
         print(f"{prog}: note: {len(inc)} incomplete jobs left out ({', '.join(inc)}); relaunch "
               f"the sweep with the same hydra.sweep.dir to finish them", file=sys.stderr)

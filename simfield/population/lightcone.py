@@ -213,15 +213,19 @@ def _galaxies_uniform(pop, phot, area, rng, cosmo, bands):
         raise ConfigError("population.max_sources", pop.max_sources,
                           f"is too small: {expected:.0f} sources expected")
     n = int(rng.poisson(expected))
-    mag = pop.uniform_mag_min + (pop.uniform_mag_max - pop.uniform_mag_min) * rng.random(n)
+    by_abs = pop.uniform_in == "abs_mag"
+    lo, hi = ((pop.uniform_abs_mag_min, pop.uniform_abs_mag_max) if by_abs
+              else (pop.uniform_mag_min, pop.uniform_mag_max))
+    mag = lo + (hi - lo) * rng.random(n)
     z = pop.z_min + (pop.z_max - pop.z_min) * rng.random(n)
-    m = mag - phot.dist.dm(z) + 2.5 * np.log10(1.0 + z)
+    m = mag if by_abs else mag - phot.dist.dm(z) + 2.5 * np.log10(1.0 + z)
     evolved = rng.random(n) < evolved_probability(z, m, uv_lf_parameters(z).m_star)
     dev = rng.standard_normal((3, n))
     ew = _halpha_ew(phot, z, evolved, rng)
-    # M_UV such that the selection-band magnitude is the drawn one; beta depends weakly on M_UV
-    # (d beta / d M ~ -0.2), so a few fixed-point steps converge to < 1e-4 mag
-    for _ in range(4):
+    # uniform in apparent magnitude: M_UV such that the selection-band magnitude is the drawn
+    # one; beta depends weakly on M_UV (d beta / d M ~ -0.2), so a few fixed-point steps
+    # converge to < 1e-4 mag
+    for _ in range(0 if by_abs else 4):
         sed = sed_parameters_from_deviates(z, m, evolved, dev)
         m_sel = phot.mags(z, m, sed.beta, sed.break_strength, sed.beta_opt, True,
                           ew_halpha=ew)[:, 0]
