@@ -190,6 +190,28 @@ def make_report(out_dir, sample, bands, det, selected, cls, tables: dict, summar
                  "Left: truth redshifts of the matched selected detections. Right: expected "
                  "versus observed selected galaxies, all z bins."))
 
+    if "pz" in det.colnames and det.meta.get("pz_grid") and selected.any():
+        # P(z) of what the sample selected: the contaminants' shapes say why they got in
+        zg = np.asarray(det.meta["pz_grid"], float)
+        pz = np.asarray(det["pz"], float)[selected]
+        fig, ax = plt.subplots(figsize=(7, 4))
+        shown = set()
+        for row, c in zip(pz, cls):
+            if not np.all(np.isfinite(row)):
+                continue
+            inw = c == "in_window"
+            label = None if c in shown else f"{c} ({int(np.sum(cls == c))})"
+            shown.add(c)
+            ax.plot(zg, row, lw=1.4 if inw else 0.8, ls="-" if inw else "--",
+                    color=_CLASS_COLOURS.get(c, "0.4"), alpha=0.8, label=label)
+        ax.axvspan(z0, z1, color="g", alpha=0.12, label="target window")
+        ax.set(xlabel="redshift z", ylabel="P(z) (per unit z)", xlim=(0, zg.max()))
+        ax.legend(fontsize=7)
+        figs.append(("P(z) of the selected detections", _save(fig, out / "pz_selected.png"),
+                     "Photometric-redshift P(z) (photoz.fits) of every selected detection, by "
+                     "its truth class (solid: in the target window; dashed: contaminants); the "
+                     "count of each class in the legend."))
+
     cw = summary["counts_window"]
     rows = [("sample", summary["sample"]), ("target window", f"{z0:g} <= z <= {z1:g}"),
             ("selected detections", summary["n_selected"]),

@@ -47,8 +47,16 @@ def load_photometry(run_dir, need_photoz: bool = False):
     pz = run_dir / "photoz.fits"
     if pz.is_file():
         z = Table.read(pz, hdu="PHOTOZ")
+        from astropy.io import fits
+
+        with fits.open(pz) as hl:  # P(z) rows go along, for the report's contaminant panel
+            if "PZ" in hl and "ZGRID" in hl and hl["PZ"].data is not None \
+                    and len(hl["PZ"].data) == len(z):
+                z["pz"] = np.asarray(hl["PZ"].data, np.float32)
+                t.meta["pz_grid"] = [float(v) for v in Table(hl["ZGRID"].data).columns[0]]
         t["_order"] = np.arange(len(t))
-        t = join(t, z, keys="id", join_type="left", table_names=["", "photoz"])
+        t = join(t, z, keys="id", join_type="left", table_names=["", "photoz"],
+                 metadata_conflicts="silent")
         t.sort("_order")
         t.remove_column("_order")
         t.meta["photoz"] = True
