@@ -297,3 +297,30 @@ def test_abs_flux_scale_irrelevant(tset):
     f = ab_to_njy(np.array([[29.0, 28.5, 28.2, 28.0, 28.1]]))
     e = np.full_like(f, 3.0)
     assert_allclose(fit_photoz(f, e, tset).pz, fit_photoz(7 * f, 7 * e, tset).pz, rtol=1e-4)
+
+
+def test_dwarf_star_fit_finds_the_type_and_matches_nnls():
+    """Noiseless photometry of a cool dwarf of the population's own model is fitted by its own
+    spectral type with chi2 ~ 0, and a galaxy's chi2 against the dwarf templates equals the
+    non-negative least squares of scipy.optimize.nnls for each template."""
+    from scipy.optimize import nnls
+
+    from simfield.bands import make_band
+    from simfield.photoz.stars import DWARF_TYPES, dwarf_templates, fit_stars
+
+    bands = [make_band(n, c, w, 0.4, 0.2) for n, c, w in
+             (("b10", 1000, 220), ("b13", 1300, 290), ("b17", 1700, 380), ("b23", 2300, 520),
+              ("b36", 3600, 800))]
+    t = dwarf_templates(bands)
+    truth = [3, 10, 18]  # M, L and T types
+    flux = 50.0 * t[truth]
+    err = np.full(flux.shape, 0.5)
+    chi2, best = fit_stars(flux, err, t)
+    assert_allclose(best, DWARF_TYPES[truth])
+    assert np.all(chi2 < 1e-6)
+    rng = np.random.default_rng(4)
+    f = rng.normal(20.0, 5.0, (1, len(bands)))
+    e = np.full(f.shape, 2.0)
+    chi2, _ = fit_stars(f, e, t)
+    ref = min(nnls((t[k] / e[0])[:, None], f[0] / e[0])[1] ** 2 for k in range(len(t)))
+    assert_allclose(chi2[0], ref, rtol=1e-8)

@@ -103,6 +103,16 @@ def fit_run(out_dir, sc, prov) -> dict:
                      make_prior(cfg.prior, z, sc.population.abs_mag_faint))
     dt = time.perf_counter() - t0
     table = photoz_table(ids, res, tset.names)
+    from .stars import dwarf_templates, fit_stars
+
+    chi2_star, star_type = fit_stars(flux, err, dwarf_templates(bands))
+    table["chi2_star"] = chi2_star
+    table["chi2_star"].description = "smallest chi2 of the cool-dwarf star templates (z = 0)"
+    table["star_type"] = star_type
+    table["star_type"].description = "spectral type of that template (M0 = 10, L0 = 20, T0 = 30)"
+    table["star_like"] = chi2_star < np.asarray(res.chi2_best, float)
+    table["star_like"].description = ("a dwarf star fits better than any galaxy "
+                                       "(chi2_star < chi2_best)")
     cards = [("PRIOR", cfg.prior, "P(z) prior (none: flat in z)"),
              ("NTEMPL", len(tset.names), "templates fitted"),
              ("BANDS", ",".join(used), "bands fitted (flux_<band> of PHOTOMETRY)"),
@@ -115,4 +125,5 @@ def fit_run(out_dir, sc, prov) -> dict:
     write_fits(out / "photoz.fits", [hdu, pz, table_hdu(zg, "ZGRID")], prov, cards)
     return {"n_objects": int(len(table)), "n_templates": len(tset.names), "n_z": int(z.size),
             "bands": used, "fit_time_s": round(dt, 3),
-            "n_p_gt_half": {cut_column(c): int(np.sum(p > 0.5)) for c, p in res.p_gt.items()}}
+            "n_p_gt_half": {cut_column(c): int(np.sum(p > 0.5)) for c, p in res.p_gt.items()},
+            "n_star_like": int(np.sum(table["star_like"]))}
