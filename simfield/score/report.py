@@ -124,8 +124,6 @@ def make_report(out_dir, truth: dict, det, tables: dict, fits_: dict, summary: d
     import matplotlib.pyplot as plt
     from astropy.io import fits
 
-    from ..io import write_text
-
     out = Path(out_dir)
     run_dir = Path(truth["run_dir"])
     figs = []  # (title, base64, caption)
@@ -268,21 +266,30 @@ def make_report(out_dir, truth: dict, det, tables: dict, fits_: dict, summary: d
                      f"{v:.2f} +/- {summary[k + '_err']:.2f}" if v is not None else
                      f"not quoted: {summary.get(k + '_reason')}"))
     rows.append(("false detections", ", ".join(f"{k}: {v}" for k, v in counts.items())))
+    return write_page(out / "report.html", f"simfield score: {band}",
+                      f"simfield score, band {band}", rows, figs)
+
+
+def write_page(path, title: str, heading: str, rows, figs) -> Path:
+    """A self-contained HTML page: a table of (label, value) ``rows`` and the ``figs``
+    (title, base64 PNG, caption), written atomically to ``path``."""
+    from ..io import write_text
+
     table = "\n".join(f"<tr><th>{html.escape(str(a))}</th><td>{html.escape(str(b))}</td></tr>"
                       for a, b in rows)
     body = "\n".join(
-        f"<h2>{html.escape(t)}</h2>\n<img src=\"data:image/png;base64,{b64}\" alt=\"{html.escape(t)}\">"
-        f"\n<p class=\"cap\">{html.escape(cap)}</p>" for t, b64, cap in figs)
+        f"<h2>{html.escape(t)}</h2>\n<img src=\"data:image/png;base64,{b64}\" "
+        f"alt=\"{html.escape(t)}\">\n<p class=\"cap\">{html.escape(cap)}</p>"
+        for t, b64, cap in figs)
     page = f"""<!DOCTYPE html>
-<html lang="en"><head><meta charset="utf-8"><title>simfield score: {html.escape(band)}</title>
+<html lang="en"><head><meta charset="utf-8"><title>{html.escape(title)}</title>
 <style>body{{font-family:sans-serif;max-width:1100px;margin:2em auto;color:#222}}
 table{{border-collapse:collapse}}th,td{{padding:3px 10px;border-bottom:1px solid #ddd;
 text-align:left}}img{{max-width:100%}}.cap{{color:#666;font-size:90%}}</style></head>
-<body><h1>simfield score, band {html.escape(band)}</h1>
+<body><h1>{html.escape(heading)}</h1>
 <table>{table}</table>
 {body}
 </body></html>
 """
-    path = out / "report.html"
-    write_text(path, page)
-    return path
+    write_text(Path(path), page)
+    return Path(path)

@@ -10,7 +10,6 @@ observed counts per M_UV bin. Images are embedded as base64 PNG.
 from __future__ import annotations
 
 import base64
-import html
 import io as _io
 from pathlib import Path
 
@@ -99,7 +98,7 @@ def make_report(out_dir, sample, bands, det, selected, cls, tables: dict, summar
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
 
-    from ..io import write_text
+    from ..score.report import write_page
 
     out = Path(out_dir)
     z0, z1 = summary["z_window"]
@@ -224,23 +223,6 @@ def make_report(out_dir, sample, bands, det, selected, cls, tables: dict, summar
             ("in window: observed / expected", f"{cw['n_observed']} / {cw['n_expected']:.2f}"),
             ("Poisson P(N = obs), P(N = 0)", f"{cw['p_equal']:.3g}, {cw['p_zero']:.3g}"),
             ("source-plane area (arcsec^2)", f"{summary['area_source_arcsec2']:.1f}")]
-    table = "\n".join(f"<tr><th>{html.escape(str(a))}</th><td>{html.escape(str(b))}</td></tr>"
-                      for a, b in rows)
-    body = "\n".join(
-        f"<h2>{html.escape(t)}</h2>\n<img src=\"data:image/png;base64,{b64}\" "
-        f"alt=\"{html.escape(t)}\">\n<p class=\"cap\">{html.escape(cap)}</p>"
-        for t, b64, cap in figs)
-    name = html.escape(summary["sample"])
-    page = f"""<!DOCTYPE html>
-<html lang="en"><head><meta charset="utf-8"><title>simfield selection: {name}</title>
-<style>body{{font-family:sans-serif;max-width:1100px;margin:2em auto;color:#222}}
-table{{border-collapse:collapse}}th,td{{padding:3px 10px;border-bottom:1px solid #ddd;
-text-align:left}}img{{max-width:100%}}.cap{{color:#666;font-size:90%}}</style></head>
-<body><h1>simfield selection, sample {name}</h1>
-<table>{table}</table>
-{body}
-</body></html>
-"""
-    path = out / "report.html"
-    write_text(path, page)
-    return path
+    name = summary["sample"]
+    return write_page(out / "report.html", f"simfield selection: {name}",
+                      f"simfield selection, sample {name}", rows, figs)
