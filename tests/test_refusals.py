@@ -50,7 +50,9 @@ GROUPS = sorted(p.name for p in Path(CONF_DIR).iterdir()
                 if p.is_dir() and p.name not in ("hydra", "experiment", "__pycache__"))
 BANDS = [b["name"] for b in _CFG["telescope"]["bands"]]
 SECTIONS = ["telescope", "telescope.pupil", "telescope.psf", "telescope.bands.0", "population",
-            "lens", "lens.components.0", "detector", "survey", "detection", "score", "limits"]
+            "lens", "lens.components.0", "detector", "survey", "detection", "photometry",
+            "photoz", "score", "selection", "selection.samples.0",
+            "selection.samples.0.conditions.0", "limits"]
 
 word = st.text(alphabet="abcdefghijklmnopqrstuvwxyz_", min_size=1, max_size=6)
 
