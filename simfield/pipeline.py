@@ -230,6 +230,9 @@ def run_scenario(sc: Scenario, out_dir: str | Path, progress: bool = False) -> R
         "field_arcmin2": srv.width_arcsec * srv.height_arcsec / 3600.0,
         "depth_ab": depths,
     }
+    # provisional: the score and selection reports read the depths from it; rewritten whole
+    # at the end (COMPLETE, not this file, says a run finished)
+    write_json(out / "summary.json", summary, prov)
 
     # ---------------------------------------------------------------- detect and score
     if sc.detection.enabled:
