@@ -1,0 +1,122 @@
+"""Figures and report pages of a small run, checked by inspecting the matplotlib artists of the
+real figures (axes labels, titles, count annotations, scale bars, compasses) and the HTML."""
+
+from __future__ import annotations
+
+import re
+
+import numpy as np
+import pytest
+from astropy.io import fits
+
+from simfield.pipeline import run_scenario
+from tests.test_pipeline import small_scenario
+
+
+def _texts(fig, gid):
+    return [a for ax in fig.axes for a in ax.get_children() if getattr(a, "get_gid", None)
+            and a.get_gid() == gid]
+
+
+@pytest.fixture(scope="module")
+def figures(tmp_path_factory):
+    """Every figure the score and selection reports save, captured at ``_save``."""
+    import simfield.score.report as sr
+    import simfield.selection.report as selr
+
+    saved = {}
+    mp = pytest.MonkeyPatch()
+    for mod in (sr, selr):
+        orig = mod._save
+
+        def keep(fig, path, _orig=orig):
+            saved[str(path)] = fig
+            return _orig(fig, path)
+
+        mp.setattr(mod, "_save", keep)
+    tmp = tmp_path_factory.mktemp("report")
+    sc = small_scenario(tmp, "score.report=true", "selection.report=true")
+    try:
+        res = run_scenario(sc, tmp / "run")
+    finally:
+        mp.undo()
+    return res.out_dir, saved
+
+
+def _named(saved, name):
+    return [f for p, f in saved.items() if p.endswith("/" + name)]
+
+
+def test_every_axes_has_labels_and_title(figures):
+    """Every visible axes of every report figure has x and y labels and a title."""
+    _, saved = figures
+    assert saved
+    for path, fig in saved.items():
+        for ax in fig.axes:
+            if not ax.get_visible() or not ax.axison or ax.get_label() == "<colorbar>":
+                continue
+            assert ax.get_xlabel(), (path, "x label")
+            assert ax.get_ylabel(), (path, "y label")
+            assert ax.get_title(), (path, "title")
+            assert "seed" in ax.get_title() or "seed" in (fig._suptitle.get_text() if
+                                                         fig._suptitle else ""), path
+
+
+def test_fraction_plots_carry_counts(figures):
+    """Completeness and purity panels write k/n beside their points; bar charts their counts."""
+    _, saved = figures
+    for name in ("completeness_purity.png", "completeness_other.png", "false_causes.png"):
+        (fig,) = _named(saved, name)
+        for ax in fig.axes:
+            counts = [a for a in ax.get_children() if getattr(a, "get_gid", None)
+                      and a.get_gid() == "count"]
+            assert counts, (name, ax.get_title())
+    (fig,) = _named(saved, "completeness_purity.png")
+    assert re.fullmatch(r"\d+/\d+", _texts(fig, "count")[0].get_text())
+    text = " ".join(t.get_text() for ax in fig.axes for t in ax.texts)
+    assert "m50" in text and "m90" in text and "purity at" in text
+
+
+def test_sky_images_have_scale_bar_and_compass(figures):
+    """Preview, PSF panels and false-detection cut-outs carry a scale bar and N/E arrows."""
+    _, saved = figures
+    for name in ("preview.png", "psf.png", "false_examples.png"):
+        for fig in _named(saved, name):
+            for ax in fig.axes:
+                if not ax.images:
+                    continue
+                assert _texts(fig, "scale_bar") and [a for a in ax.get_children() if
+                                                     getattr(a, "get_gid", None) and
+                                                     a.get_gid() == "scale_bar"], name
+                labels = {a.get_text() for a in ax.texts if a.get_gid() == "compass"}
+                assert labels >= {"N", "E"}, name
+
+
+def test_compass_points_north_and_east_from_the_wcs(figures):
+    """The preview's N arrow points to +y and E to -x for roll 0 (astropy WCS of the mosaic)."""
+    out, saved = figures
+    (fig,) = _named(saved, "preview.png")
+    ax = fig.axes[0]
+    arrows = [a for a in ax.texts if a.get_gid() == "compass" and a.get_text() == ""]
+    vecs = [np.subtract(a.xy, a.xyann) for a in arrows]
+    from astropy.wcs import WCS
+
+    w = WCS(fits.getheader(next(out.glob("mosaic_*.fits")), "IMAGE"))
+    assert w.wcs.get_pc()[0, 0] < 0  # RA grows to -x: east left on this mosaic
+    assert vecs[0][1] > 0 and abs(vecs[0][0]) < 1e-6  # N up
+    assert vecs[1][0] < 0 and abs(vecs[1][1]) < 1e-6  # E left
+
+
+def test_report_page_has_header_and_contents(figures):
+    """The score page opens with the scenario, version, seed, hash and depth, then contents."""
+    out, _ = figures
+    page = next((out / "score").glob("*/report.html")).read_text()
+    hdr = fits.getheader(next(out.glob("mosaic_*.fits")), 0)
+    for field in ("simfield version", "seed", "configuration hash", "measured depth"):
+        assert field in page, field
+    assert str(hdr["SIMFHASH"]) in page and str(hdr["SIMFVER"]).strip() in page
+    assert "n/a" not in page.split("measured depth")[1][:80]
+    assert 'class="toc"' in page and page.count('href="#fig') >= 5
+    assert page.index("Contents") < page.index("<img")
+    for cap in re.findall(r'<p class="cap">(.*?)</p>', page):
+        assert cap.strip()
