@@ -178,7 +178,7 @@ def run_scenario(sc: Scenario, out_dir: str | Path, progress: bool = False) -> R
                                     effective_psf(psf_core[b.name], tel.pixel_scale_arcsec),
                                     b, prov))
         files.append(cached_psf_png(tel, [psf_wide[b.name] for b in bands], sc.seed,
-                                    out / "psf.png", cache))
+                                    out / "psf.png", cache, roll_deg=sc.survey.roll_deg))
 
     # ---------------------------------------------------------------- tiles
     from .survey import plan_tiles

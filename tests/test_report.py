@@ -120,3 +120,28 @@ def test_report_page_has_header_and_contents(figures):
     assert page.index("Contents") < page.index("<img")
     for cap in re.findall(r'<p class="cap">(.*?)</p>', page):
         assert cap.strip()
+
+
+def test_lens_picture(tmp_path):
+    """lens.png of a small lens: labels, title, field outline, halo centre, kpc scale, plain
+    colour-bar ticks (kpc per arcsec from astropy.cosmology, not the project's own)."""
+    from astropy.cosmology import FlatLambdaCDM
+
+    from simfield.lensing import write_lens_png
+    from simfield.lensing.profiles import SIE
+    from simfield.lensing.raytrace import Lens
+
+    cosmo = FlatLambdaCDM(H0=70, Om0=0.3, Tcmb0=2.725)
+    lens = Lens(0.4, (SIE(0.0, 0.0, 3.0, 0.7, 20.0),), cosmo)
+    fig = write_lens_png(lens, tmp_path / "lens.png", 20.0, 0.1)
+    ax = fig.axes[0]
+    assert ax.get_xlabel() and ax.get_ylabel() and ax.get_title()
+    labels = ax.get_legend_handles_labels()[1]
+    assert "field outline" in labels and "halo centre" in labels
+    (bar,) = [a for a in ax.get_children() if getattr(a, "get_gid", None)
+              and a.get_gid() == "scale_bar"]
+    kpc = cosmo.kpc_proper_per_arcmin(0.4).value / 60 * 4  # the 4" bar of a 20" field
+    text = bar.txt_label.get_text() if hasattr(bar, "txt_label") else ""
+    assert f"{kpc:.0f} kpc" in text, text
+    ticks = [t.get_text() for t in fig.axes[1].get_yticklabels()]
+    assert ticks and not any("times" in t or "^" in t for t in ticks), ticks

@@ -314,8 +314,10 @@ def critical_curves(lens: Lens, z_s: float, extent_arcsec, resolution_arcsec: fl
 
 
 def write_lens_png(lens: Lens, path, extent_arcsec=100.0, resolution_arcsec: float = 0.05,
-                   z_s: float | None = None) -> None:
-    """Save a picture of the convergence map with critical curves and caustics.
+                   z_s: float | None = None):
+    """Save a picture of the convergence map with critical curves and caustics, the field
+    outline, the halo centres, a scale bar in arcsec and kpc (at the lens redshift) and N/E
+    arrows (xi east, eta north); returns the (closed) Figure.
 
     Parameters
     ----------
@@ -356,8 +358,28 @@ def write_lens_png(lens: Lens, path, extent_arcsec=100.0, resolution_arcsec: flo
     ax.set_ylabel("eta (arcsec, north)")
     ax.set_title(f"convergence, critical curves, caustics\nz_l = {lens.redshift:g}, "
                  f"z_s = {z_s:g}", fontsize=10)
-    fig.colorbar(im, ax=ax, label="kappa")
-    if cc.critical:
-        ax.legend(loc="upper right", fontsize=8)
+    from matplotlib.patches import Rectangle
+    from matplotlib.ticker import LogLocator, ScalarFormatter
+
+    from .._plot import compass, roll_directions, scale_bar
+    ax.add_patch(Rectangle((xmin, ymin), xmax - xmin, ymax - ymin, fill=False, ec="tab:green",
+                           lw=1.5, ls="--", label="field outline"))
+    for i, comp in enumerate(lens.components):
+        if hasattr(comp, "x0"):
+            ax.plot(comp.x0, comp.y0, "x", color="tab:orange", ms=9, mew=2,
+                    label="halo centre" if i == 0 else None)
+    # physical scale at the lens redshift (the lens's astropy cosmology, kpc per arcsec)
+    kpc_per_arcsec = float(lens.cosmo.kpc_proper_per_arcmin(lens.redshift).value) / 60
+    side = xmax - xmin
+    bar = float(f"{side / 5:.0g}")
+    scale_bar(ax, bar, f'{bar:g}" = {bar * kpc_per_arcsec:.0f} kpc at z_l', colour="k")
+    compass(ax, *roll_directions(0.0), colour="k")
+    cb = fig.colorbar(im, ax=ax, label="convergence kappa (dimensionless)")
+    cb.ax.yaxis.set_major_locator(LogLocator(subs=(1.0, 2.0, 5.0)))
+    cb.ax.yaxis.set_major_formatter(ScalarFormatter())
+    cb.ax.yaxis.set_minor_formatter(ScalarFormatter())
+    cb.ax.yaxis.set_minor_locator(LogLocator(subs=()))
+    ax.legend(loc="upper right", fontsize=8)
     fig.savefig(path, dpi=120)
     plt.close(fig)
+    return fig
