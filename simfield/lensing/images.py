@@ -361,7 +361,7 @@ def write_lens_png(lens: Lens, path, extent_arcsec=100.0, resolution_arcsec: flo
     from matplotlib.patches import Rectangle
     from matplotlib.ticker import LogLocator, ScalarFormatter
 
-    from .._plot import compass, roll_directions, scale_bar
+    from .._plot import compass, scale_bar
     ax.add_patch(Rectangle((xmin, ymin), xmax - xmin, ymax - ymin, fill=False, ec="tab:green",
                            lw=1.5, ls="--", label="field outline"))
     for i, comp in enumerate(lens.components):
@@ -373,7 +373,7 @@ def write_lens_png(lens: Lens, path, extent_arcsec=100.0, resolution_arcsec: flo
     side = xmax - xmin
     bar = float(f"{side / 5:.0g}")
     scale_bar(ax, bar, f'{bar:g}" = {bar * kpc_per_arcsec:.0f} kpc at z_l', colour="k")
-    compass(ax, *roll_directions(0.0), colour="k")
+    compass(ax, (0.0, 1.0), (1.0, 0.0), colour="k")  # eta north, xi east (data axes)
     cb = fig.colorbar(im, ax=ax, label="convergence kappa (dimensionless)")
     cb.ax.yaxis.set_major_locator(LogLocator(subs=(1.0, 2.0, 5.0)))
     cb.ax.yaxis.set_major_formatter(ScalarFormatter())

@@ -119,19 +119,23 @@ def make_report(out_dir, sample, bands, det, selected, cls, tables: dict, summar
         zm = zc[r]
         f = np.asarray(comp["fraction"], float)[r]
         lo, hi = np.asarray(comp["fraction_lo"])[r], np.asarray(comp["fraction_hi"])[r]
-        line = ax.errorbar(zm, f, yerr=[f - lo, hi - f], fmt="o-", ms=3, elinewidth=0.6,
-                           label=f"M_UV {m:g}..{mhi:g} (AB)")
+        line = ax.plot(zm, f, "o-", ms=3, label=f"M_UV {m:g}..{mhi:g} (AB)")
+        # bars only for cells of at least 3 galaxies; smaller cells keep their point and count
+        big = n_col[r] >= 3
+        ax.errorbar(zm[big], f[big], yerr=[(f - lo)[big], (hi - f)[big]], fmt="none",
+                    elinewidth=0.6, ecolor=line[0].get_color())
         for zi, fi, ki, ni in zip(zm, f, k_col[r], n_col[r]):
-            if ki > 0:
-                ax.annotate(f"{ki}/{ni}", (zi, fi), fontsize=6, color=line[0].get_color(),
-                            xytext=(2, 2), textcoords="offset points")
+            ax.annotate(f"{ki}/{ni}", (zi, fi), fontsize=6, color=line[0].get_color(),
+                        xytext=(2, 2), textcoords="offset points", gid="count",
+                        alpha=1.0 if ni >= 3 else 0.5)
     ax.axvspan(z0, z1, color="0.9", zorder=0, label="target window")
     ax.set(xlabel="true redshift z", ylabel="S = P(detected and selected)",
-           ylim=(-0.03, 1.03))
+           ylim=(-0.03, 1.03), title=f"selection completeness S(z), sample {summary['sample']}")
     ax.legend(fontsize=7)
     figs.append(("Selection completeness S(z)", _save(fig, out / "completeness_z.png"),
-                 "Points: k/n of the truth galaxies per (M_UV, z) cell, labelled k/n where k > 0; "
-                 "bars: Jeffreys intervals (they contain their point); every cell's n and k in "
+                 "Points: k/n of the truth galaxies per (M_UV, z) cell, each labelled k/n (faint "
+                 "where n < 3); bars: Jeffreys intervals (they contain their point), drawn only "
+                 "for cells of 3 or more galaxies; every cell's n and k in "
                  "completeness.ecsv."))
 
     # ---- colour-colour diagram
