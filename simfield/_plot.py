@@ -62,7 +62,7 @@ def roll_directions(roll_deg: float) -> tuple[np.ndarray, np.ndarray]:
     return north, east
 
 
-def compass(ax, north, east, size: float = 0.1, colour: str = "w", origin=(0.2, 0.2)):
+def compass(ax, north, east, size: float = 0.1, colour: str = "w", origin=(0.25, 0.25)):
     """N and E arrows of ``size`` (axes fraction) from ``origin`` (axes fraction).
 
     ``north``, ``east`` are directions in data (x, y) coordinates; an axis drawn inverted

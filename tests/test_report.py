@@ -4,11 +4,13 @@ real figures (axes labels, titles, count annotations, scale bars, compasses) and
 from __future__ import annotations
 
 import re
+from pathlib import Path
 
 import numpy as np
 import pytest
 from astropy.io import fits
 
+from simfield.config import ConditionConfig, SampleConfig
 from simfield.pipeline import run_scenario
 from tests.test_pipeline import small_scenario
 
@@ -24,8 +26,18 @@ def figures(tmp_path_factory):
     import simfield.score.report as sr
     import simfield.selection.report as selr
 
+    from matplotlib.figure import Figure
+
     saved = {}
     mp = pytest.MonkeyPatch()
+    orig_savefig = Figure.savefig
+
+    def savefig(fig, fname, *a, **k):  # the cached PSF picture is saved straight from Figure
+        if "psf_picture" in str(fname):
+            saved["optics/psf_picture.png"] = fig
+        return orig_savefig(fig, fname, *a, **k)
+
+    mp.setattr(Figure, "savefig", savefig)
     for mod in (sr, selr):
         orig = mod._save
 
@@ -36,6 +48,8 @@ def figures(tmp_path_factory):
         mp.setattr(mod, "_save", keep)
     tmp = tmp_path_factory.mktemp("report")
     sc = small_scenario(tmp, "score.report=true", "selection.report=true")
+    sc.selection.samples = [SampleConfig(  # two bands: an S/N sample, no colour diagram
+        "bright", 0.0, 15.0, [ConditionConfig(kind="snr", bands=["b23"], above=3.0)])]
     try:
         res = run_scenario(sc, tmp / "run")
     finally:
@@ -48,9 +62,11 @@ def _named(saved, name):
 
 
 def test_every_axes_has_labels_and_title(figures):
-    """Every visible axes of every report figure has x and y labels and a title."""
+    """Every visible axes of every report figure (and the run's PSF picture) has x and y labels
+    and a title naming the seed (its own or the figure's)."""
     _, saved = figures
-    assert saved
+    assert {"psf_picture.png", "completeness_purity.png", "completeness_z.png"} <= \
+        {p.rsplit("/", 1)[-1] for p in saved}
     for path, fig in saved.items():
         for ax in fig.axes:
             if not ax.get_visible() or not ax.axison or ax.get_label() == "<colorbar>":
@@ -80,11 +96,11 @@ def test_fraction_plots_carry_counts(figures):
 def test_sky_images_have_scale_bar_and_compass(figures):
     """Preview, PSF panels and false-detection cut-outs carry a scale bar and N/E arrows."""
     _, saved = figures
-    for name in ("preview.png", "psf.png", "false_examples.png"):
+    for name in ("preview.png", "psf.png", "false_examples.png", "psf_picture.png"):
         for fig in _named(saved, name):
             for ax in fig.axes:
-                if not ax.images:
-                    continue
+                if not ax.images or ax.get_xlabel().endswith("(m)"):
+                    continue  # the pupil and wavefront panels are not on the sky
                 assert _texts(fig, "scale_bar") and [a for a in ax.get_children() if
                                                      getattr(a, "get_gid", None) and
                                                      a.get_gid() == "scale_bar"], name
@@ -120,6 +136,35 @@ def test_report_page_has_header_and_contents(figures):
     assert page.index("Contents") < page.index("<img")
     for cap in re.findall(r'<p class="cap">(.*?)</p>', page):
         assert cap.strip()
+
+
+def test_psf_picture_shows_a_flat_wavefront(figures):
+    """The wavefront panel is drawn for a pupil without wavefront error, saying "flat"."""
+    _, saved = figures
+    titles = [ax.get_title() for ax in saved["optics/psf_picture.png"].axes]
+    assert any("wavefront" in t and "flat" in t for t in titles), titles
+
+
+def test_selection_page_has_header_and_faint_small_cells(figures):
+    """The selection page has the run's header; S(z) draws error bars only for n >= 3 cells
+    but labels every cell k/n."""
+    out, saved = figures
+    page = next((out / "selection").glob("*/report.html")).read_text()
+    hdr = fits.getheader(next(out.glob("mosaic_*.fits")), 0)
+    assert str(hdr["SIMFHASH"]) in page and "measured depths" in page and 'class="toc"' in page
+    from astropy.table import Table
+
+    for path in [p for p in saved if p.endswith("completeness_z.png")]:
+        comp = Table.read(Path(path).with_name("completeness.ecsv"))
+        fig = saved[path]
+        labels = [a for a in fig.axes[0].texts if a.get_gid() == "count"]
+        assert labels and all(re.fullmatch(r"\d+/\d+", a.get_text()) for a in labels)
+        for a in labels:
+            k, n = (int(v) for v in a.get_text().split("/"))
+            assert (a.get_alpha() or 1.0) == (1.0 if n >= 3 else 0.5)
+        bars = sum(len(seg.get_segments()) for c in fig.axes[0].collections
+                   for seg in [c] if hasattr(c, "get_segments"))
+        assert bars <= int(np.sum(np.asarray(comp["n"]) >= 3))
 
 
 def test_lens_picture(tmp_path):

@@ -492,7 +492,8 @@ def cached_band_psf(tel: TelescopeConfig, band: Band, scale_arcsec: float,
 # picture
 # --------------------------------------------------------------------------------------------
 def write_psf_png(psfs: Sequence[PSFImage], pupil: Pupil, path: str | os.PathLike,
-                  dynamic_range: float = 1e7, roll_deg: float = 0.0) -> Path:
+                  dynamic_range: float = 1e7, roll_deg: float = 0.0,
+                  seed: int | None = None) -> Path:
     """PNG of the pupil amplitude, its wavefront error ("flat" when zero) and each PSF on a log
     stretch, with a scale bar and N/E arrows for a mosaic of roll ``roll_deg``.
 
@@ -506,6 +507,8 @@ def write_psf_png(psfs: Sequence[PSFImage], pupil: Pupil, path: str | os.PathLik
         The stretch spans peak / dynamic_range .. peak.
     roll_deg : float (deg)
         Roll of the mosaic grid the PSFs are drawn on (its +y east of north).
+    seed : int, optional
+        The run's seed, for the title.
     """
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
@@ -517,8 +520,9 @@ def write_psf_png(psfs: Sequence[PSFImage], pupil: Pupil, path: str | os.PathLik
     n = len(psfs) + first
     ncol = min(n, 3)
     nrow = int(np.ceil(n / ncol))
-    fig = Figure(figsize=(4.2 * ncol, 4.0 * nrow))
+    fig = Figure(figsize=(4.8 * ncol, 4.0 * nrow))
     FigureCanvasAgg(fig)
+    fig.suptitle("pupil, wavefront and PSFs" + (f", seed {seed}" if seed is not None else ""))
     ax = fig.add_subplot(nrow, ncol, 1)
     h = pupil.size * pupil.scale_m / 2.0
     ax.imshow(pupil.amplitude, origin="lower", cmap="gray", extent=(-h, h, -h, h),
@@ -581,7 +585,7 @@ def cached_psf_png(tel: TelescopeConfig, psfs: Sequence[PSFImage], seed: int,
         f"psf_picture_{h.hexdigest()[:20]}.png"
     if not cached.exists():
         write_psf_png(psfs, scenario_pupil(tel, seed, grid_size=pupil_grid), cached,
-                      roll_deg=roll_deg)
+                      roll_deg=roll_deg, seed=seed)
     path = Path(path)
     with atomic_path(path) as tmp:
         shutil.copyfile(cached, tmp)

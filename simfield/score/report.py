@@ -125,17 +125,24 @@ def run_header(run_dir, band: str | None = None) -> tuple[str, list]:
                        if lens.get("kind", "none") != "none" else ", no lens") + ".")
     else:
         sentence = "Scenario not recorded (no scenario.yaml in the run directory)."
-    depth = "n/a"
+    d = {}
     if (run_dir / "summary.json").is_file():
         d = json.loads((run_dir / "summary.json").read_text()).get("depth_ab", {})
-        if band in d and d[band].get("measured_5sigma") is not None:
-            depth = (f"{d[band]['measured_5sigma']:.2f} (5 sigma, "
-                     f"{d[band].get('aperture_radius_arcsec', float('nan')):g}\" radius aperture)")
+
+    def _depth(b):
+        v = d.get(b, {}).get("measured_5sigma")
+        return "n/a" if v is None else (
+            f"{v:.2f} (5 sigma, {d[b].get('aperture_radius_arcsec', float('nan')):g}\" "
+            "radius aperture)")
+
     rows = [("simfield version", hdr.get("SIMFVER", "n/a")),
             ("seed", hdr.get("SIMFSEED", "n/a")),
             ("configuration hash", hdr.get("SIMFHASH", "n/a"))]
     if band:
-        rows.append((f"measured depth of {band} (AB)", depth))
+        rows.append((f"measured depth of {band} (AB)", _depth(band)))
+    else:
+        rows.append(("measured depths (AB, 5 sigma)",
+                     ", ".join(f"{b}: {_depth(b).split(' ')[0]}" for b in names or d) or "n/a"))
     return sentence, rows
 
 
@@ -228,7 +235,7 @@ def make_report(out_dir, truth: dict, det, tables: dict, fits_: dict, summary: d
             ax.tick_params(labelsize=7)
             bar = float(f"{r / 2:.0g}")
             scale_bar(ax, bar, f"{bar:g}\"" if sc else f"{bar:g} pix")
-            compass(ax, north, east, size=0.15, origin=(0.18, 0.18))
+            compass(ax, north, east, size=0.15)
         fig.tight_layout()
         figs.append(("PSFs", _save(fig, out / "psf.png"),
                      "Wide PSF of each band on the mosaic's axes, log10 of PSF / peak from 1e-7 "
@@ -377,7 +384,7 @@ def make_report(out_dir, truth: dict, det, tables: dict, fits_: dict, summary: d
                 ax.set_ylabel("y (arcsec)", fontsize=7)
                 ax.tick_params(labelsize=6)
                 scale_bar(ax, 1.0, '1"')
-                compass(ax, north, east, size=0.15, origin=(0.2, 0.2))
+                compass(ax, north, east, size=0.15)
         fig.suptitle(run_title("false detections", band, seed), fontsize=9)
         fig.tight_layout()
         figs.append(("Examples of false detections", _save(fig, out / "false_examples.png"),
