@@ -190,3 +190,21 @@ def test_lens_picture(tmp_path):
     assert f"{kpc:.0f} kpc" in text, text
     ticks = [t.get_text() for t in fig.axes[1].get_yticklabels()]
     assert ticks and not any("times" in t or "^" in t for t in ticks), ticks
+
+
+def test_intervals_contain_their_points(figures):
+    """Every error bar of the completeness and purity panels spans its point (k = n included),
+    read back from the drawn line collections."""
+    _, saved = figures
+    (fig,) = _named(saved, "completeness_purity.png")
+    checked = 0
+    for ax in fig.axes:
+        for cont in ax.containers:
+            data_line, _, barcols = cont.lines
+            bars = barcols[0]
+            x, y = data_line.get_data()
+            for (xi, yi), seg in zip(zip(x, y), bars.get_segments()):
+                lo, hi = sorted(seg[:, 1])
+                assert lo - 1e-12 <= yi <= hi + 1e-12 and abs(seg[0, 0] - xi) < 1e-9
+                checked += 1
+    assert checked > 0

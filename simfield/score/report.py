@@ -48,7 +48,9 @@ def _plot_fraction(ax, x, t, ok, colour, label):
     (the Jeffreys interval holds k/n, so the bars reach the point, e.g. up to 1 at k = n)."""
     f = np.asarray(t["fraction"], float)[ok]
     lo, hi = np.asarray(t["fraction_lo"], float)[ok], np.asarray(t["fraction_hi"], float)[ok]
-    return ax.errorbar(x, f, yerr=[f - lo, hi - f], fmt="o", ms=3, color=colour, elinewidth=1.2,
+    # clipped at 0: rounding in the table must not turn a bar that ends at its point inward
+    return ax.errorbar(x, f, yerr=[np.clip(f - lo, 0, None), np.clip(hi - f, 0, None)], fmt="o",
+                       ms=3, color=colour, elinewidth=1.2,
                        ecolor=colour, alpha=0.8, label=label)
 
 
