@@ -790,7 +790,7 @@ def _write_lens_maps(out: Path, lens, sc: Scenario, mgrid: Grid, hx: float, hy: 
     t.meta["description"] = (f"critical curves (image plane) and caustics (source plane) for "
                              f"sources at z = {z_ref}; xi east, eta north")
     files.append(write_table(out / "critical_curves.ecsv", t, prov))
-    write_lens_png(lens, out / "lens.png", (-hx, hx, -hy, hy), 0.1, z_ref)
+    write_lens_png(lens, out / "lens.png", (-hx, hx, -hy, hy), 0.1, z_ref, seed=sc.seed)
     files.append(out / "lens.png")
     return files
 
