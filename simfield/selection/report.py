@@ -230,7 +230,8 @@ def make_report(out_dir, sample, bands, det, selected, cls, tables: dict, summar
                      "count of each class in the legend."))
 
     cw = summary["counts_window"]
-    rows = [("scenario", sentence), *id_rows, ("sample", summary["sample"]), ("target window", f"{z0:g} <= z <= {z1:g}"),
+    rows = [("scenario", sentence), *id_rows, ("sample", summary["sample"]),
+            ("target window", f"{z0:g} <= z <= {z1:g}"),
             ("selected detections", summary["n_selected"]),
             ("purity (in window / selected)",
              "n/a" if summary["purity"] is None else
