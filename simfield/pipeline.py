@@ -178,7 +178,7 @@ def run_scenario(sc: Scenario, out_dir: str | Path, progress: bool = False) -> R
                                     effective_psf(psf_core[b.name], tel.pixel_scale_arcsec),
                                     b, prov))
         files.append(cached_psf_png(tel, [psf_wide[b.name] for b in bands], sc.seed,
-                                    out / "psf.png", cache))
+                                    out / "psf.png", cache, roll_deg=sc.survey.roll_deg))
 
     # ---------------------------------------------------------------- tiles
     from .survey import plan_tiles
@@ -230,6 +230,9 @@ def run_scenario(sc: Scenario, out_dir: str | Path, progress: bool = False) -> R
         "field_arcmin2": srv.width_arcsec * srv.height_arcsec / 3600.0,
         "depth_ab": depths,
     }
+    # provisional: the score and selection reports read the depths from it; rewritten whole
+    # at the end (COMPLETE, not this file, says a run finished)
+    write_json(out / "summary.json", summary, prov)
 
     # ---------------------------------------------------------------- detect and score
     if sc.detection.enabled:
@@ -787,7 +790,7 @@ def _write_lens_maps(out: Path, lens, sc: Scenario, mgrid: Grid, hx: float, hy: 
     t.meta["description"] = (f"critical curves (image plane) and caustics (source plane) for "
                              f"sources at z = {z_ref}; xi east, eta north")
     files.append(write_table(out / "critical_curves.ecsv", t, prov))
-    write_lens_png(lens, out / "lens.png", (-hx, hx, -hy, hy), 0.1, z_ref)
+    write_lens_png(lens, out / "lens.png", (-hx, hx, -hy, hy), 0.1, z_ref, seed=sc.seed)
     files.append(out / "lens.png")
     return files
 

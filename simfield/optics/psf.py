@@ -62,6 +62,7 @@ _RAD_PER_ARCSEC = np.pi / 180.0 / 3600.0
 #: 3e-5 inside 1", 1 % at 3-5", 2 % at 5-7" and 4 % at the stamp edge.
 _PERIOD_FACTOR = 1.5
 _CACHE_VERSION = 2  # bump when the computation changes
+_PICTURE_VERSION = 2  # bump when the PSF picture changes
 _EE_INNER_PIX = 30  # encircled energy: pixels within this many of the centre are subsampled
 
 
@@ -491,8 +492,10 @@ def cached_band_psf(tel: TelescopeConfig, band: Band, scale_arcsec: float,
 # picture
 # --------------------------------------------------------------------------------------------
 def write_psf_png(psfs: Sequence[PSFImage], pupil: Pupil, path: str | os.PathLike,
-                  dynamic_range: float = 1e7) -> Path:
-    """PNG of the pupil amplitude (and wavefront error, if any) and each PSF on a log stretch.
+                  dynamic_range: float = 1e7, roll_deg: float = 0.0,
+                  seed: int | None = None) -> Path:
+    """PNG of the pupil amplitude, its wavefront error ("flat" when zero) and each PSF on a log
+    stretch, with a scale bar and N/E arrows for a mosaic of roll ``roll_deg``.
 
     Parameters
     ----------
@@ -502,17 +505,24 @@ def write_psf_png(psfs: Sequence[PSFImage], pupil: Pupil, path: str | os.PathLik
         Output file (written to a temporary name, then renamed).
     dynamic_range : float
         The stretch spans peak / dynamic_range .. peak.
+    roll_deg : float (deg)
+        Roll of the mosaic grid the PSFs are drawn on (its +y east of north).
+    seed : int, optional
+        The run's seed, for the title.
     """
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
 
+    from .._plot import compass, roll_directions, scale_bar
+
     with_opd = bool(np.any(pupil.opd_nm))
-    first = 2 if with_opd else 1
+    first = 2
     n = len(psfs) + first
     ncol = min(n, 3)
     nrow = int(np.ceil(n / ncol))
-    fig = Figure(figsize=(4.2 * ncol, 4.0 * nrow))
+    fig = Figure(figsize=(4.8 * ncol, 4.0 * nrow))
     FigureCanvasAgg(fig)
+    fig.suptitle("pupil, wavefront and PSFs" + (f", seed {seed}" if seed is not None else ""))
     ax = fig.add_subplot(nrow, ncol, 1)
     h = pupil.size * pupil.scale_m / 2.0
     ax.imshow(pupil.amplitude, origin="lower", cmap="gray", extent=(-h, h, -h, h),
@@ -520,13 +530,15 @@ def write_psf_png(psfs: Sequence[PSFImage], pupil: Pupil, path: str | os.PathLik
     ax.set_title(f"pupil, clear area {pupil.area_m2:.2f} m$^2$")
     ax.set_xlabel("x (m)")
     ax.set_ylabel("y (m)")
-    if with_opd:
-        ax = fig.add_subplot(nrow, ncol, 2)
-        opd = np.where(pupil.amplitude > 0.5, pupil.opd_nm, np.nan)
-        im = ax.imshow(opd, origin="lower", cmap="RdBu_r", extent=(-h, h, -h, h))
-        ax.set_title(f"wavefront error, rms {pupil.rms_wfe_nm:.1f} nm")
-        ax.set_xlabel("x (m)")
-        fig.colorbar(im, ax=ax, label="OPD (nm)", shrink=0.8)
+    ax = fig.add_subplot(nrow, ncol, 2)
+    opd = np.where(pupil.amplitude > 0.5, pupil.opd_nm, np.nan)
+    im = ax.imshow(opd, origin="lower", cmap="RdBu_r", extent=(-h, h, -h, h))
+    ax.set_title(f"wavefront error, rms {pupil.rms_wfe_nm:.1f} nm" if with_opd else
+                 "wavefront error: flat (0 nm)")
+    ax.set_xlabel("x (m)")
+    ax.set_ylabel("y (m)")
+    fig.colorbar(im, ax=ax, label="OPD (nm)", shrink=0.8)
+    north, east = roll_directions(roll_deg)
     for i, p in enumerate(psfs):
         ax = fig.add_subplot(nrow, ncol, i + 1 + first)
         r = p.radius_arcsec
@@ -535,7 +547,11 @@ def write_psf_png(psfs: Sequence[PSFImage], pupil: Pupil, path: str | os.PathLik
                        origin="lower", cmap="magma", extent=(-r, r, -r, r),
                        vmin=-np.log10(dynamic_range), vmax=0)
         ax.set_title(f"{p.band}: FWHM {p.fwhm_arcsec:.3f}\", Strehl {p.strehl:.2f}")
-        ax.set_xlabel("x (arcsec)")
+        ax.set_xlabel("x (arcsec, mosaic axis)")
+        ax.set_ylabel("y (arcsec, mosaic axis)")
+        bar = float(f"{r / 2:.0g}")
+        scale_bar(ax, bar, f'{bar:g}"')
+        compass(ax, north, east)
         fig.colorbar(im, ax=ax, label="log10(pixel / peak)", shrink=0.8)
     fig.tight_layout()
     path = Path(path)
@@ -546,17 +562,19 @@ def write_psf_png(psfs: Sequence[PSFImage], pupil: Pupil, path: str | os.PathLik
 
 def cached_psf_png(tel: TelescopeConfig, psfs: Sequence[PSFImage], seed: int,
                    path: str | os.PathLike, cache_dir: str | os.PathLike | None = None,
-                   pupil_grid: int = 512) -> Path:
+                   pupil_grid: int = 512, roll_deg: float = 0.0) -> Path:
     """:func:`write_psf_png` of ``psfs`` and the scenario's pupil, kept in the PSF disk cache.
 
     Drawing the picture takes seconds (matplotlib), longer than a small run's optics; the
     cached copy is named by a SHA-256 of the PSF images and what they are titled with, the
-    pupil settings, ``seed``, ``pupil_grid`` and the code version, and copied to ``path``
+    pupil settings, ``seed``, ``pupil_grid``, ``roll_deg`` (deg, the mosaic's roll that orients
+    the N/E arrows) and the code version, and copied to ``path``
     (through a temporary name, so a killed run leaves no partial file).
     """
     import shutil
 
-    h = hashlib.sha256(json.dumps({"version": _CACHE_VERSION,
+    h = hashlib.sha256(json.dumps({"version": _CACHE_VERSION, "picture": _PICTURE_VERSION,
+                                   "roll_deg": float(roll_deg),
                                    "pupil": dataclasses.asdict(tel.pupil), "seed": int(seed),
                                    "grid": int(pupil_grid)}, sort_keys=True,
                                   default=str).encode())
@@ -566,7 +584,8 @@ def cached_psf_png(tel: TelescopeConfig, psfs: Sequence[PSFImage], seed: int,
     cached = Path(cache_dir if cache_dir is not None else tel.psf.cache_dir) / \
         f"psf_picture_{h.hexdigest()[:20]}.png"
     if not cached.exists():
-        write_psf_png(psfs, scenario_pupil(tel, seed, grid_size=pupil_grid), cached)
+        write_psf_png(psfs, scenario_pupil(tel, seed, grid_size=pupil_grid), cached,
+                      roll_deg=roll_deg, seed=seed)
     path = Path(path)
     with atomic_path(path) as tmp:
         shutil.copyfile(cached, tmp)

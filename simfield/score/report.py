@@ -48,7 +48,9 @@ def _plot_fraction(ax, x, t, ok, colour, label):
     (the Jeffreys interval holds k/n, so the bars reach the point, e.g. up to 1 at k = n)."""
     f = np.asarray(t["fraction"], float)[ok]
     lo, hi = np.asarray(t["fraction_lo"], float)[ok], np.asarray(t["fraction_hi"], float)[ok]
-    return ax.errorbar(x, f, yerr=[f - lo, hi - f], fmt="o", ms=3, color=colour, elinewidth=1.2,
+    # clipped at 0: rounding in the table must not turn a bar that ends at its point inward
+    return ax.errorbar(x, f, yerr=[np.clip(f - lo, 0, None), np.clip(hi - f, 0, None)], fmt="o",
+                       ms=3, color=colour, elinewidth=1.2,
                        ecolor=colour, alpha=0.8, label=label)
 
 
@@ -91,6 +93,61 @@ def _colour_preview(run_dir: Path, max_side: int = 800):
     return np.dstack(rgb), pick[::-1]
 
 
+def run_header(run_dir, band: str | None = None) -> tuple[str, list]:
+    """The scenario in one sentence and the run's identity rows for a report's header.
+
+    Read from the mosaics' primary headers (``SIMFVER``, ``SIMFSEED``, ``SIMFHASH``),
+    ``scenario.yaml`` and the run's ``summary.json`` (measured depths, AB mag). Missing files
+    give "n/a" values, not errors (a score of an injection folder has no scenario).
+    """
+    import json
+
+    from astropy.io import fits
+
+    run_dir = Path(run_dir)
+    hdr = {}
+    mos = sorted(run_dir.glob("mosaic_*.fits"))
+    pick = run_dir / f"mosaic_{band}.fits" if band else (mos[0] if mos else None)
+    if pick is not None and pick.is_file():
+        hdr = fits.getheader(pick, 0)
+    sc = {}
+    if (run_dir / "scenario.yaml").is_file():
+        import yaml
+
+        sc = yaml.safe_load((run_dir / "scenario.yaml").read_text()) or {}
+    tel, srv, lens = sc.get("telescope", {}), sc.get("survey", {}), sc.get("lens", {})
+    names = [b.get("name") for b in tel.get("bands", [])]
+    if srv:
+        sentence = (f"Telescope '{tel.get('name', '?')}' ({tel.get('diameter_m', '?')} m), a "
+                    f"{srv.get('width_arcsec', '?'):g}\" x {srv.get('height_arcsec', '?'):g}\" "
+                    f"field, {srv.get('n_exposures', '?')} exposures of "
+                    f"{srv.get('exposure_time_s', '?'):g} s per band in {', '.join(names)}"
+                    + (f", scored in {band}" if band else "")
+                    + (f", lensed by a '{lens.get('kind')}' lens at z = {lens.get('redshift')}"
+                       if lens.get("kind", "none") != "none" else ", no lens") + ".")
+    else:
+        sentence = "Scenario not recorded (no scenario.yaml in the run directory)."
+    d = {}
+    if (run_dir / "summary.json").is_file():
+        d = json.loads((run_dir / "summary.json").read_text()).get("depth_ab", {})
+
+    def _depth(b):
+        v = d.get(b, {}).get("measured_5sigma")
+        return "n/a" if v is None else (
+            f"{v:.2f} (5 sigma, {d[b].get('aperture_radius_arcsec', float('nan')):g}\" "
+            "radius aperture)")
+
+    rows = [("simfield version", hdr.get("SIMFVER", "n/a")),
+            ("seed", hdr.get("SIMFSEED", "n/a")),
+            ("configuration hash", hdr.get("SIMFHASH", "n/a"))]
+    if band:
+        rows.append((f"measured depth of {band} (AB)", _depth(band)))
+    else:
+        rows.append(("measured depths (AB, 5 sigma)",
+                     ", ".join(f"{b}: {_depth(b).split(' ')[0]}" for b in names or d) or "n/a"))
+    return sentence, rows
+
+
 def make_report(out_dir, truth: dict, det, tables: dict, fits_: dict, summary: dict,
                 band: str) -> Path:
     """Write ``report.html`` and its PNG plots into ``out_dir``.
@@ -123,20 +180,41 @@ def make_report(out_dir, truth: dict, det, tables: dict, fits_: dict, summary: d
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
     from astropy.io import fits
+    from astropy.wcs import WCS
+
+    from .._plot import compass, count_labels, run_title, scale_bar, sky_directions
 
     out = Path(out_dir)
     run_dir = Path(truth["run_dir"])
     figs = []  # (title, base64, caption)
+    sentence, id_rows = run_header(run_dir, band)
+    seed = dict(id_rows).get("seed")
+    seed = None if seed == "n/a" else seed
+    mpath = run_dir / f"mosaic_{band}.fits"
+    wcs = WCS(fits.getheader(mpath, "IMAGE")) if mpath.is_file() else None
+    pix = float(truth["pixel_scale"])  # arcsec per mosaic pixel
+    if wcs is not None:
+        ny, nx = truth["sci"].shape
+        north, east = sky_directions(wcs, 0.5 * (nx - 1), 0.5 * (ny - 1))
+    else:
+        north, east = np.array([0.0, 1.0]), np.array([-1.0, 0.0])
 
     rgb, used = _colour_preview(run_dir)
     if rgb is not None:
+        ny, nx = truth["sci"].shape
         fig, ax = plt.subplots(figsize=(6, 6))
-        ax.imshow(rgb, origin="lower")
-        ax.set_title(f"colour preview (R, G, B = {', '.join(used)})")
-        ax.set_xticks([])
-        ax.set_yticks([])
+        ax.imshow(rgb, origin="lower", extent=(-0.5, nx - 0.5, -0.5, ny - 0.5))
+        ax.set_title(run_title(f"colour preview (R, G, B = {', '.join(used)})", None, seed))
+        ax.set_xlabel("x (mosaic pixels)")
+        ax.set_ylabel("y (mosaic pixels)")
+        side = nx * pix
+        bar = max(float(f"{side / 5:.0g}"), pix)  # a round ~1/5 of the field (arcsec)
+        scale_bar(ax, bar / pix, f'{bar:g}"')
+        compass(ax, north, east)
         figs.append(("Mosaic", _save(fig, out / "preview.png"),
-                     "asinh stretch; north up, east left for roll 0"))
+                     "Three bands on an asinh stretch (bluest as blue, reddest as red), every "
+                     "pixel a strided sample of the mosaic. Arrows: north and east from the "
+                     "mosaic's WCS; bar: angular scale."))
 
     psfs = []
     for n in _band_order(run_dir):
@@ -146,112 +224,178 @@ def make_report(out_dir, truth: dict, det, tables: dict, fits_: dict, summary: d
                 h = hl["PSF_WIDE"] if "PSF_WIDE" in hl else hl[1 if len(hl) > 1 else 0]
                 psfs.append((n, np.asarray(h.data, float), h.header.get("PIXSCALE")))
     if psfs:
-        fig, axes = plt.subplots(1, len(psfs), figsize=(2.6 * len(psfs), 2.8), squeeze=False)
+        fig, axes = plt.subplots(1, len(psfs), figsize=(2.8 * len(psfs), 3.1), squeeze=False)
         for ax, (n, img, sc) in zip(axes[0], psfs):
             v = np.log10(np.clip(img / img.max(), 1e-7, None))
-            ax.imshow(v, origin="lower", vmin=-7, vmax=0, cmap="magma")
-            ax.set_title(f"{n}" + (f" ({sc:.4g}\"/pix)" if sc else ""), fontsize=9)
-            ax.set_xticks([])
-            ax.set_yticks([])
-        figs.append(("PSFs", _save(fig, out / "psf.png"), "log10 of PSF / peak, 1e-7 .. 1"))
+            r = 0.5 * img.shape[1] * (sc or 1.0)
+            ax.imshow(v, origin="lower", vmin=-7, vmax=0, cmap="magma", extent=(-r, r, -r, r))
+            ax.set_title(run_title(n, None, seed) + (f"\n{sc:.4g}\"/pix" if sc else ""),
+                         fontsize=8)
+            unit = "arcsec" if sc else "pixels"
+            ax.set_xlabel(f"x ({unit})", fontsize=8)
+            ax.set_ylabel(f"y ({unit})", fontsize=8)
+            ax.tick_params(labelsize=7)
+            bar = float(f"{r / 2:.0g}")
+            scale_bar(ax, bar, f"{bar:g}\"" if sc else f"{bar:g} pix")
+            compass(ax, north, east, size=0.15)
+        fig.tight_layout()
+        figs.append(("PSFs", _save(fig, out / "psf.png"),
+                     "Wide PSF of each band on the mosaic's axes, log10 of PSF / peak from 1e-7 "
+                     "(black) to 1 (white); arrows: north and east."))
 
-    # completeness and purity vs magnitude
+    # ---- completeness (true magnitude) and purity (measured magnitude), one panel each
     cm, pm = tables["completeness_mag"], tables["purity_mag"]
-    fig, ax = plt.subplots(figsize=(7, 4.2))
-    for t, lab, col in ((cm, "completeness (true observed mag)", "k"),
-                        (pm, "purity (measured mag)", "tab:red")):
+    interval = str(cm.meta.get("interval", "intervals"))
+    fig, (ac, ap) = plt.subplots(1, 2, figsize=(12, 4.4), sharey=True)
+    for ax, t, col in ((ac, cm, "k"), (ap, pm, "tab:red")):
         ok = np.asarray(t["n"]) > 0
         x = np.asarray(t["mag_mid"])[ok]
-        _plot_fraction(ax, x, t, ok, col, lab)
+        _plot_fraction(ax, x, t, ok, col, "per bin (k/n beside each point)")
+        count_labels(ax, x, np.asarray(t["fraction"], float)[ok], np.asarray(t["k"])[ok],
+                     np.asarray(t["n"])[ok], col)
+        for lev in (0.5, 0.9):
+            ax.axhline(lev, color="0.85", lw=0.8, zorder=0)
+        ax.set_ylim(-0.02, 1.12)
     mm = np.linspace(float(cm["mag_lo"][0]), float(cm["mag_hi"][-1]), 300)
     for model, ls in (("logistic", "-"), ("erf", "--")):
         f = fits_.get(model)
         if isinstance(f, metrics.CompletenessFit):
-            quote = (f"m50 = {f.m50:.2f} +/- {f.m50_err:.2f}" if f.m50_reason is None else
-                     "m50 not quoted")
-            ax.plot(mm, f(mm), ls, color="0.4" if f.describes_data else "0.75",
-                    label=f"{model} fit (p = {f.p_value:.2g}): {quote}")
-    ax.axhline(0.5, color="0.8", lw=0.8)
-    ax.axhline(0.9, color="0.8", lw=0.8)
-    ax.set_xlabel(f"{band} AB magnitude")
-    ax.set_ylabel("fraction")
-    ax.set_ylim(-0.02, 1.05)
-    ax.legend(fontsize=8, loc="lower left")
+            ac.plot(mm, f(mm), ls, color="0.4" if f.describes_data else "0.75",
+                    label=f"{model} fit (p = {f.p_value:.2g})")
+    lines = []
+    for key, lev, ls in (("m50", 0.5, ":"), ("m90", 0.9, "-.")):
+        v = summary.get(key)
+        if v is not None:
+            ac.axvline(v, color="tab:blue", ls=ls, lw=1.2)
+            ac.annotate(f"{key} = {v:.2f}", (v, lev), xytext=(4, -12), textcoords="offset points",
+                        color="tab:blue", fontsize=8)
+            lines.append(f"{key} = {v:.2f} +/- {summary[key + '_err']:.2f}")
+        else:
+            lines.append(f"{key} not quoted: {summary.get(key + '_reason')}")
+    ac.text(0.98, 0.6, f"{summary['headline_fit']} fit:\n" + "\n".join(lines),
+            transform=ac.transAxes, ha="right", va="top", fontsize=8, color="tab:blue",
+            bbox={"fc": "w", "ec": "0.8"})
+    ref, pref = summary["reference_mag"], summary.get("purity_at_reference_mag")
+    ap.axvline(ref, color="tab:blue", ls=":", lw=1.2)
+    ap.text(0.02, 0.06, (f"purity at {band} = {ref:g}: {pref:.3f}" if pref is not None else
+                         f"purity at {band} = {ref:g}: not quoted: no detections in that bin"),
+            transform=ap.transAxes, fontsize=8, color="tab:blue", bbox={"fc": "w", "ec": "0.8"})
+    ac.set(xlabel=f"true observed {band} magnitude (AB mag)",
+           ylabel="completeness (fraction of truth galaxies)",
+           title=run_title("completeness against true magnitude", band, seed))
+    ap.set(xlabel=f"measured {band} magnitude (catalogue, AB mag)",
+           ylabel="purity (fraction of detections matched)",
+           title=run_title("purity against measured magnitude", band, seed))
+    ap.yaxis.set_tick_params(labelleft=True)
+    ac.legend(fontsize=7, loc="lower left")
+    ap.legend(fontsize=7, loc="lower right")
+    fig.tight_layout()
     figs.append(("Completeness and purity", _save(fig, out / "completeness_purity.png"),
-                 "bars: " + str(cm.meta.get("interval", "")) + "; fits in light grey fail "
-                 "the goodness-of-fit test"))
+                 "Left: fraction of the truth galaxies recovered, per bin of true observed "
+                 "magnitude; right: fraction of the detections matched to a truth image, per bin "
+                 "of measured magnitude. Labels k/n: recovered (matched) of all in the bin; "
+                 f"bars: {interval}. Blue lines: m50 and m90 of the headline fit and the "
+                 "reference magnitude of the purity; fits in light grey fail the goodness-of-fit "
+                 "test."))
 
-    fig, axes = plt.subplots(1, 3, figsize=(11, 3.2))
-    for ax, (key, col, lab, logx) in zip(axes, (
-            ("completeness_size", "r_half", "observed r_half (arcsec)", True),
-            ("completeness_z", "z", "redshift", False),
-            ("completeness_mu", "mu", "magnification |mu|", True))):
+    fig, axes = plt.subplots(1, 3, figsize=(12, 3.6))
+    for ax, (key, col, lab, logx, what) in zip(axes, (
+            ("completeness_size", "r_half", "observed r_half (arcsec)", True, "size"),
+            ("completeness_z", "z", "true redshift z", False, "redshift"),
+            ("completeness_mu", "mu", "magnification |mu|", True, "magnification"))):
         t = tables[key]
         ok = np.asarray(t["n"]) > 0
         lo, hi = np.asarray(t[f"{col}_lo"])[ok], np.asarray(t[f"{col}_hi"])[ok]
         x = np.sqrt(np.clip(lo, 1e-3, None) * hi) if logx else 0.5 * (lo + hi)
         _plot_fraction(ax, x, t, ok, "k", None)
+        count_labels(ax, x, np.asarray(t["fraction"], float)[ok], np.asarray(t["k"])[ok],
+                     np.asarray(t["n"])[ok])
         if logx:
             ax.set_xscale("log")
-        ax.set_xlabel(lab)
-        ax.set_ylim(-0.02, 1.05)
-    axes[0].set_ylabel("completeness")
+        ax.set(xlabel=lab, ylabel="completeness (fraction)", ylim=(-0.02, 1.12),
+               title=run_title(f"against {what}", band, seed))
+    fig.tight_layout()
     figs.append(("Completeness against size, redshift and magnification",
-                 _save(fig, out / "completeness_other.png"), "all magnitudes together"))
+                 _save(fig, out / "completeness_other.png"),
+                 "Fraction of the truth galaxies recovered per bin, all magnitudes together; "
+                 f"labels k/n as above, bars: {interval}."))
 
     ph = tables["photometry"]
     ok = np.asarray(ph["n"]) > 0
-    fig, ax = plt.subplots(figsize=(7, 3.2))
-    ax.errorbar(np.asarray(ph["mag_mid"])[ok], np.asarray(ph["median"])[ok],
-                yerr=np.asarray(ph["nmad"])[ok], fmt="o", ms=3, capsize=2)
+    measure = _flux_measure(det)
+    fig, ax = plt.subplots(figsize=(7, 3.6))
+    xm, ym = np.asarray(ph["mag_mid"])[ok], np.asarray(ph["median"])[ok]
+    ax.errorbar(xm, ym, yerr=np.asarray(ph["nmad"])[ok], fmt="o", ms=3, capsize=2)
+    for xi, yi, ni in zip(xm, ym, np.asarray(ph["n"])[ok]):
+        ax.annotate(f"{int(ni)}", (xi, yi), fontsize=6, xytext=(2, 3),
+                    textcoords="offset points", gid="count")
     ax.axhline(0, color="0.7")
-    ax.set_xlabel("true observed magnitude")
-    ax.set_ylabel("measured - true (mag)")
+    ax.set(xlabel=f"true observed {band} magnitude (AB mag)",
+           ylabel="measured - true (mag)",
+           title=run_title(f"photometric bias of {measure}", band, seed))
     figs.append(("Photometry", _save(fig, out / "photometry.png"),
-                 "median and 1.4826 x MAD per bin"))
+                 f"Measured magnitude: {measure}. Points: median of measured - true per bin of "
+                 "true magnitude over the matched detections; bars: 1.4826 x MAD; numbers: "
+                 "matches per bin."))
 
     ft = tables["false_detections"]
     counts = summary["false_detections"]
-    fig, ax = plt.subplots(figsize=(6, 3))
+    fig, ax = plt.subplots(figsize=(6, 3.4))
     names = list(metrics.FALSE_CAUSES)
-    ax.bar(names, [counts[n] for n in names], color=[_CAUSE_COLOURS[n] for n in names])
-    ax.set_ylabel("unmatched detections")
-    figs.append(("False detections by cause", _save(fig, out / "false_causes.png"), ""))
+    bars = ax.bar(names, [counts[n] for n in names], color=[_CAUSE_COLOURS[n] for n in names])
+    ax.bar_label(bars, fontsize=8, gid="count")
+    ax.set_ylim(0, 1.15 * max(1, max(counts.values())))
+    ax.set(xlabel="cause of the false detection", ylabel="unmatched detections (count)",
+           title=run_title(f"false detections by cause ({sum(counts.values())} of "
+                           f"{summary['n_detections']})", band, seed))
+    figs.append(("False detections by cause", _save(fig, out / "false_causes.png"),
+                 "Detections without a truth match, by the cause the scoring assigns "
+                 "(artefact: flagged pixels; spike: on a bright star's diffraction spike; "
+                 "shred: a piece of a matched source; blend: between sources; noise: the "
+                 "rest); the number of each on its bar."))
 
     sci = truth["sci"]
     ex = [(n, np.flatnonzero(np.asarray(ft["cause"]) == n)[:4]) for n in names]
     ex = [(n, i) for n, i in ex if i.size]
     if ex:
         ncol = max(i.size for _, i in ex)
-        fig, axes = plt.subplots(len(ex), ncol, figsize=(1.8 * ncol, 1.9 * len(ex)),
+        fig, axes = plt.subplots(len(ex), ncol, figsize=(2.2 * ncol, 2.4 * len(ex)),
                                  squeeze=False)
-        half = int(round(1.5 / truth["pixel_scale"]))
+        half = int(round(1.5 / pix))
         # display levels from a strided sample of ~1 Mpix of the memory-mapped mosaic
         step = _sample_step(sci.shape, 1e6)
         samp = np.asarray(sci[::step, ::step], float)
         samp = samp[np.isfinite(samp)]
         med = np.median(samp) if samp.size else 0.0
         mad = 1.4826 * np.median(np.abs(samp - med)) if samp.size else 1.0
-        for r, (n, idx) in enumerate(ex):
+        r = (half + 0.5) * pix
+        for row, (n, idx) in enumerate(ex):
             for c in range(ncol):
-                ax = axes[r, c]
-                ax.set_xticks([])
-                ax.set_yticks([])
+                ax = axes[row, c]
                 if c >= idx.size:
                     ax.axis("off")
                     continue
-                x0, y0 = int(round(ft["x"][idx[c]])), int(round(ft["y"][idx[c]]))
-                cut = np.asarray(sci[max(0, y0 - half):y0 + half + 1,
-                                     max(0, x0 - half):x0 + half + 1], float)
-                ax.imshow(_stretch(cut, med - 2 * mad, med + 100 * mad), origin="lower",
-                          cmap="gray")
-                ax.plot(min(half, x0), min(half, y0), "+", color=_CAUSE_COLOURS[n], ms=10)
-                if c == 0:
-                    ax.set_ylabel(n)
+                i = idx[c]
+                cut = _padded_cut(sci, float(ft["x"][i]), float(ft["y"][i]), half)
+                ax.imshow(_stretch(np.nan_to_num(cut, nan=med), med - 2 * mad, med + 100 * mad),
+                          origin="lower", cmap="gray", extent=(-r, r, -r, r))
+                ax.plot(0, 0, "+", color=_CAUSE_COLOURS[n], ms=10)
+                mag = float(ft["mag"][i])
+                ax.set_title(f"{n}: row {int(ft['row'][i])}\n{band} = {mag:.2f}", fontsize=7)
+                ax.set_xlabel("x (arcsec)", fontsize=7)
+                ax.set_ylabel("y (arcsec)", fontsize=7)
+                ax.tick_params(labelsize=6)
+                scale_bar(ax, 1.0, '1"')
+                compass(ax, north, east, size=0.15)
+        fig.suptitle(run_title("false detections", band, seed), fontsize=9)
+        fig.tight_layout()
         figs.append(("Examples of false detections", _save(fig, out / "false_examples.png"),
-                     "3 arcsec cut-outs of the mosaic, cross at the detection"))
+                     "Up to four per cause: 3\" cut-outs of the mosaic (asinh stretch, padded "
+                     "with the median at the mosaic's edges so every cut-out has one size), the "
+                     "cross at the detection; titles: cause, catalogue row and measured "
+                     "magnitude; arrows: north and east."))
 
-    rows = [("band", band), ("catalogue", summary["catalog"]),
+    rows = [("scenario", sentence), *id_rows, ("band", band), ("catalogue", summary["catalog"]),
             ("match radius (arcsec)", f"{summary['match_radius_arcsec']:.3g}"),
             ("truth galaxies on the mosaic", summary["n_truth_galaxies"]),
             ("detections", summary["n_detections"]), ("matched", summary["n_matched"])]
@@ -270,24 +414,59 @@ def make_report(out_dir, truth: dict, det, tables: dict, fits_: dict, summary: d
                       f"simfield score, band {band}", rows, figs)
 
 
+def _flux_measure(det) -> str:
+    """Which catalogue column the measured magnitudes come from, in words."""
+    cols = det.meta.get("columns") or {}
+    col = cols.get("flux") or cols.get("mag") if isinstance(cols, dict) else None
+    src = Path(str(det.meta.get("source", "")))
+    if src.name.startswith("detections_") and (col in (None, "mag")):
+        return "the Kron-aperture magnitude (detections 'mag')"
+    return f"catalogue column '{col or 'mag'}'"
+
+
+def _padded_cut(img, x: float, y: float, half: int) -> np.ndarray:
+    """The (2 half + 1)^2-pixel cut-out of ``img`` centred on pixel (x, y), NaN beyond the
+    image's edges (so cut-outs at the edges keep their size)."""
+    x0, y0 = int(round(x)), int(round(y))
+    ny, nx = img.shape
+    cut = np.full((2 * half + 1, 2 * half + 1), np.nan)
+    ya, yb = max(0, y0 - half), min(ny, y0 + half + 1)
+    xa, xb = max(0, x0 - half), min(nx, x0 + half + 1)
+    if ya < yb and xa < xb:
+        cut[ya - (y0 - half):yb - (y0 - half), xa - (x0 - half):xb - (x0 - half)] = \
+            np.asarray(img[ya:yb, xa:xb], float)
+    return cut
+
+
 def write_page(path, title: str, heading: str, rows, figs) -> Path:
-    """A self-contained HTML page: a table of (label, value) ``rows`` and the ``figs``
-    (title, base64 PNG, caption), written atomically to ``path``."""
+    """A self-contained HTML page: a header table of (label, value) ``rows``, a table of
+    contents, and the ``figs`` (title, base64 PNG, caption), each under its own anchor, written
+    atomically to ``path``. A row labelled ``"scenario"`` opens the page as a sentence."""
     from ..io import write_text
 
+    rows = list(rows)
+    lead = "".join(f"<p class=\"lead\">{html.escape(str(b))}</p>" for a, b in rows
+                   if a == "scenario")
     table = "\n".join(f"<tr><th>{html.escape(str(a))}</th><td>{html.escape(str(b))}</td></tr>"
-                      for a, b in rows)
+                      for a, b in rows if a != "scenario")
+    toc = "\n".join(f"<li><a href=\"#fig{i}\">{html.escape(t)}</a></li>"
+                    for i, (t, _, _) in enumerate(figs))
     body = "\n".join(
-        f"<h2>{html.escape(t)}</h2>\n<img src=\"data:image/png;base64,{b64}\" "
+        f"<h2 id=\"fig{i}\">{html.escape(t)}</h2>\n<img src=\"data:image/png;base64,{b64}\" "
         f"alt=\"{html.escape(t)}\">\n<p class=\"cap\">{html.escape(cap)}</p>"
-        for t, b64, cap in figs)
+        for i, (t, b64, cap) in enumerate(figs))
     page = f"""<!DOCTYPE html>
 <html lang="en"><head><meta charset="utf-8"><title>{html.escape(title)}</title>
 <style>body{{font-family:sans-serif;max-width:1100px;margin:2em auto;color:#222}}
 table{{border-collapse:collapse}}th,td{{padding:3px 10px;border-bottom:1px solid #ddd;
-text-align:left}}img{{max-width:100%}}.cap{{color:#666;font-size:90%}}</style></head>
+text-align:left}}img{{max-width:100%}}.cap{{color:#444;font-size:90%}}
+.lead{{font-size:110%}}</style></head>
 <body><h1>{html.escape(heading)}</h1>
-<table>{table}</table>
+<header>{lead}
+<table>{table}</table></header>
+<nav><h2>Contents</h2><ol class="toc">
+{toc}
+</ol></nav>
 {body}
 </body></html>
 """

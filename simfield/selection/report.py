@@ -69,7 +69,8 @@ def _colour(det, a, b):
         return np.where((fa > 0) & (fb > 0), -2.5 * np.log10(fa / fb), np.nan)
 
 
-def make_report(out_dir, sample, bands, det, selected, cls, tables: dict, summary: dict) -> Path:
+def make_report(out_dir, sample, bands, det, selected, cls, tables: dict, summary: dict,
+                run_dir=None) -> Path:
     """Write ``report.html`` and its PNG plots into ``out_dir``.
 
     Parameters
@@ -87,6 +88,8 @@ def make_report(out_dir, sample, bands, det, selected, cls, tables: dict, summar
         Class of each selected detection.
     tables, summary : dict
         From :func:`simfield.selection.score.score_sample`.
+    run_dir : str or Path, optional
+        The run, for the page's header (scenario, version, seed, hash, depths).
 
     Returns
     -------
@@ -98,11 +101,17 @@ def make_report(out_dir, sample, bands, det, selected, cls, tables: dict, summar
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
 
-    from ..score.report import write_page
+    from .._plot import run_title
+    from ..score.report import run_header, write_page
 
     out = Path(out_dir)
     z0, z1 = summary["z_window"]
     figs = []
+    sentence, id_rows = (run_header(run_dir) if run_dir is not None else
+                         ("Run not recorded (scored without its run directory).", []))
+    seed = dict(id_rows).get("seed")
+    seed = None if seed in (None, "n/a") else seed
+    name = summary["sample"]
 
     # ---- S(z) at several M_UV
     comp = tables["completeness"]
@@ -119,19 +128,24 @@ def make_report(out_dir, sample, bands, det, selected, cls, tables: dict, summar
         zm = zc[r]
         f = np.asarray(comp["fraction"], float)[r]
         lo, hi = np.asarray(comp["fraction_lo"])[r], np.asarray(comp["fraction_hi"])[r]
-        line = ax.errorbar(zm, f, yerr=[f - lo, hi - f], fmt="o-", ms=3, elinewidth=0.6,
-                           label=f"M_UV {m:g}..{mhi:g} (AB)")
+        line = ax.plot(zm, f, "o-", ms=3, label=f"M_UV {m:g}..{mhi:g} (AB)")
+        # bars only for cells of at least 3 galaxies; smaller cells keep their point and count
+        big = n_col[r] >= 3
+        ax.errorbar(zm[big], f[big], yerr=[(f - lo)[big], (hi - f)[big]], fmt="none",
+                    elinewidth=0.6, ecolor=line[0].get_color())
         for zi, fi, ki, ni in zip(zm, f, k_col[r], n_col[r]):
-            if ki > 0:
-                ax.annotate(f"{ki}/{ni}", (zi, fi), fontsize=6, color=line[0].get_color(),
-                            xytext=(2, 2), textcoords="offset points")
+            ax.annotate(f"{ki}/{ni}", (zi, fi), fontsize=6, color=line[0].get_color(),
+                        xytext=(2, 2), textcoords="offset points", gid="count",
+                        alpha=1.0 if ni >= 3 else 0.5)
     ax.axvspan(z0, z1, color="0.9", zorder=0, label="target window")
     ax.set(xlabel="true redshift z", ylabel="S = P(detected and selected)",
-           ylim=(-0.03, 1.03))
+           ylim=(-0.03, 1.03),
+           title=run_title(f"selection completeness S(z), sample {name}", None, seed))
     ax.legend(fontsize=7)
     figs.append(("Selection completeness S(z)", _save(fig, out / "completeness_z.png"),
-                 "Points: k/n of the truth galaxies per (M_UV, z) cell, labelled k/n where k > 0; "
-                 "bars: Jeffreys intervals (they contain their point); every cell's n and k in "
+                 "Points: k/n of the truth galaxies per (M_UV, z) cell, each labelled k/n (faint "
+                 "where n < 3); bars: Jeffreys intervals (they contain their point), drawn only "
+                 "for cells of 3 or more galaxies; every cell's n and k in "
                  "completeness.ecsv."))
 
     # ---- colour-colour diagram
@@ -162,7 +176,8 @@ def make_report(out_dir, sample, bands, det, selected, cls, tables: dict, summar
             ax.plot(xc[selected][s], yc[selected][s], "o", ms=4, color=_CLASS_COLOURS.get(c),
                     label=f"{c} ({int(s.sum())})")
         ax.set(xlabel=f"{x[0]} - {x[1]} (AB mag)", ylabel=f"{y[0]} - {y[1]} (AB mag)",
-               xlim=(xs[0], xs[-1]), ylim=(ys[0], ys[-1]))
+               xlim=(xs[0], xs[-1]), ylim=(ys[0], ys[-1]),
+               title=run_title(f"colour-colour diagram, sample {name}", None, seed))
         ax.legend(fontsize=6, loc="upper right")
         figs.append(("Colour-colour diagram", _save(fig, out / "colour_colour.png"),
                      "Shaded: the region the colour conditions on these bands select; lines: "
@@ -177,13 +192,15 @@ def make_report(out_dir, sample, bands, det, selected, cls, tables: dict, summar
     a1.bar(zd["z_lo"], zd["n_selected"], width=np.asarray(zd["z_hi"]) - np.asarray(zd["z_lo"]),
            align="edge", color="#1f77b4")
     a1.axvspan(z0, z1, color="g", alpha=0.15, label="target window")
-    a1.set(xlabel="truth redshift of selected detections", ylabel="selected detections (count)")
+    a1.set(xlabel="truth redshift of selected detections", ylabel="selected detections (count)",
+           title=run_title(f"redshifts of sample {name}", None, seed))
     a1.legend(fontsize=7)
     comp_k = np.asarray(comp["k"]).reshape(len(vol), -1)
     mm = 0.5 * (np.asarray(vol["abs_mag_uv_lo"]) + np.asarray(vol["abs_mag_uv_hi"]))
     a2.step(mm, vol["n_expected"], where="mid", label="expected (S x phi x V)")
     a2.plot(mm, comp_k.sum(axis=1), "ko", ms=4, label="observed (truth galaxies selected)")
-    a2.set(xlabel="true M_UV (AB mag)", ylabel="selected galaxies per M_UV bin (count)")
+    a2.set(xlabel="true M_UV (AB mag)", ylabel="selected galaxies per M_UV bin (count)",
+           title=run_title(f"expected and observed counts, sample {name}", None, seed))
     a2.legend(fontsize=7)
     figs.append(("Redshift distribution and counts", _save(fig, out / "counts.png"),
                  "Left: truth redshifts of the matched selected detections. Right: expected "
@@ -204,7 +221,8 @@ def make_report(out_dir, sample, bands, det, selected, cls, tables: dict, summar
             ax.plot(zg, row, lw=1.4 if inw else 0.8, ls="-" if inw else "--",
                     color=_CLASS_COLOURS.get(c, "0.4"), alpha=0.8, label=label)
         ax.axvspan(z0, z1, color="g", alpha=0.12, label="target window")
-        ax.set(xlabel="redshift z", ylabel="P(z) (per unit z)", xlim=(0, zg.max()))
+        ax.set(xlabel="redshift z", ylabel="P(z) (per unit z)", xlim=(0, zg.max()),
+               title=run_title(f"P(z) of the selected detections, sample {name}", None, seed))
         ax.legend(fontsize=7)
         figs.append(("P(z) of the selected detections", _save(fig, out / "pz_selected.png"),
                      "Photometric-redshift P(z) (photoz.fits) of every selected detection, by "
@@ -212,7 +230,8 @@ def make_report(out_dir, sample, bands, det, selected, cls, tables: dict, summar
                      "count of each class in the legend."))
 
     cw = summary["counts_window"]
-    rows = [("sample", summary["sample"]), ("target window", f"{z0:g} <= z <= {z1:g}"),
+    rows = [("scenario", sentence), *id_rows, ("sample", summary["sample"]),
+            ("target window", f"{z0:g} <= z <= {z1:g}"),
             ("selected detections", summary["n_selected"]),
             ("purity (in window / selected)",
              "n/a" if summary["purity"] is None else
@@ -223,6 +242,5 @@ def make_report(out_dir, sample, bands, det, selected, cls, tables: dict, summar
             ("in window: observed / expected", f"{cw['n_observed']} / {cw['n_expected']:.2f}"),
             ("Poisson P(N = obs), P(N = 0)", f"{cw['p_equal']:.3g}, {cw['p_zero']:.3g}"),
             ("source-plane area (arcsec^2)", f"{summary['area_source_arcsec2']:.1f}")]
-    name = summary["sample"]
     return write_page(out / "report.html", f"simfield selection: {name}",
                       f"simfield selection, sample {name}", rows, figs)

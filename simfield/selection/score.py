@@ -261,6 +261,6 @@ def score_sample(sample, selected, det: Table, truth: dict, matched: dict, sel_c
         from .report import make_report
 
         summary["report"] = str(make_report(out, sample, bands, det, selected, cls, tables,
-                                            summary))
+                                            summary, run_dir=truth.get("run_dir")))
     write_json(out / "summary.json", summary, prov)
     return summary

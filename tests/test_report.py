@@ -1,0 +1,210 @@
+"""Figures and report pages of a small run, checked by inspecting the matplotlib artists of the
+real figures (axes labels, titles, count annotations, scale bars, compasses) and the HTML."""
+
+from __future__ import annotations
+
+import re
+from pathlib import Path
+
+import numpy as np
+import pytest
+from astropy.io import fits
+
+from simfield.config import ConditionConfig, SampleConfig
+from simfield.pipeline import run_scenario
+from tests.test_pipeline import small_scenario
+
+
+def _texts(fig, gid):
+    return [a for ax in fig.axes for a in ax.get_children() if getattr(a, "get_gid", None)
+            and a.get_gid() == gid]
+
+
+@pytest.fixture(scope="module")
+def figures(tmp_path_factory):
+    """Every figure the score and selection reports save, captured at ``_save``."""
+    import simfield.score.report as sr
+    import simfield.selection.report as selr
+
+    from matplotlib.figure import Figure
+
+    saved = {}
+    mp = pytest.MonkeyPatch()
+    orig_savefig = Figure.savefig
+
+    def savefig(fig, fname, *a, **k):  # the cached PSF picture is saved straight from Figure
+        if "psf_picture" in str(fname):
+            saved["optics/psf_picture.png"] = fig
+        return orig_savefig(fig, fname, *a, **k)
+
+    mp.setattr(Figure, "savefig", savefig)
+    for mod in (sr, selr):
+        orig = mod._save
+
+        def keep(fig, path, _orig=orig):
+            saved[str(path)] = fig
+            return _orig(fig, path)
+
+        mp.setattr(mod, "_save", keep)
+    tmp = tmp_path_factory.mktemp("report")
+    sc = small_scenario(tmp, "score.report=true", "selection.report=true")
+    sc.selection.samples = [SampleConfig(  # two bands: an S/N sample, no colour diagram
+        "bright", 0.0, 15.0, [ConditionConfig(kind="snr", bands=["b23"], above=3.0)])]
+    try:
+        res = run_scenario(sc, tmp / "run")
+    finally:
+        mp.undo()
+    return res.out_dir, saved
+
+
+def _named(saved, name):
+    return [f for p, f in saved.items() if p.endswith("/" + name)]
+
+
+def test_every_axes_has_labels_and_title(figures):
+    """Every visible axes of every report figure (and the run's PSF picture) has x and y labels
+    and a title naming the seed (its own or the figure's)."""
+    _, saved = figures
+    assert {"psf_picture.png", "completeness_purity.png", "completeness_z.png"} <= \
+        {p.rsplit("/", 1)[-1] for p in saved}
+    for path, fig in saved.items():
+        for ax in fig.axes:
+            if not ax.get_visible() or not ax.axison or ax.get_label() == "<colorbar>":
+                continue
+            assert ax.get_xlabel(), (path, "x label")
+            assert ax.get_ylabel(), (path, "y label")
+            assert ax.get_title(), (path, "title")
+            assert "seed" in ax.get_title() or "seed" in (fig._suptitle.get_text() if
+                                                         fig._suptitle else ""), path
+
+
+def test_fraction_plots_carry_counts(figures):
+    """Completeness and purity panels write k/n beside their points; bar charts their counts."""
+    _, saved = figures
+    for name in ("completeness_purity.png", "completeness_other.png", "false_causes.png"):
+        (fig,) = _named(saved, name)
+        for ax in fig.axes:
+            counts = [a for a in ax.get_children() if getattr(a, "get_gid", None)
+                      and a.get_gid() == "count"]
+            assert counts, (name, ax.get_title())
+    (fig,) = _named(saved, "completeness_purity.png")
+    assert re.fullmatch(r"\d+/\d+", _texts(fig, "count")[0].get_text())
+    text = " ".join(t.get_text() for ax in fig.axes for t in ax.texts)
+    assert "m50" in text and "m90" in text and "purity at" in text
+
+
+def test_sky_images_have_scale_bar_and_compass(figures):
+    """Preview, PSF panels and false-detection cut-outs carry a scale bar and N/E arrows."""
+    _, saved = figures
+    for name in ("preview.png", "psf.png", "false_examples.png", "psf_picture.png"):
+        for fig in _named(saved, name):
+            for ax in fig.axes:
+                if not ax.images or ax.get_xlabel().endswith("(m)"):
+                    continue  # the pupil and wavefront panels are not on the sky
+                assert _texts(fig, "scale_bar") and [a for a in ax.get_children() if
+                                                     getattr(a, "get_gid", None) and
+                                                     a.get_gid() == "scale_bar"], name
+                labels = {a.get_text() for a in ax.texts if a.get_gid() == "compass"}
+                assert labels >= {"N", "E"}, name
+
+
+def test_compass_points_north_and_east_from_the_wcs(figures):
+    """The preview's N arrow points to +y and E to -x for roll 0 (astropy WCS of the mosaic)."""
+    out, saved = figures
+    (fig,) = _named(saved, "preview.png")
+    ax = fig.axes[0]
+    arrows = [a for a in ax.texts if a.get_gid() == "compass" and a.get_text() == ""]
+    vecs = [np.subtract(a.xy, a.xyann) for a in arrows]
+    from astropy.wcs import WCS
+
+    w = WCS(fits.getheader(next(out.glob("mosaic_*.fits")), "IMAGE"))
+    assert w.wcs.get_pc()[0, 0] < 0  # RA grows to -x: east left on this mosaic
+    assert vecs[0][1] > 0 and abs(vecs[0][0]) < 1e-6  # N up
+    assert vecs[1][0] < 0 and abs(vecs[1][1]) < 1e-6  # E left
+
+
+def test_report_page_has_header_and_contents(figures):
+    """The score page opens with the scenario, version, seed, hash and depth, then contents."""
+    out, _ = figures
+    page = next((out / "score").glob("*/report.html")).read_text()
+    hdr = fits.getheader(next(out.glob("mosaic_*.fits")), 0)
+    for field in ("simfield version", "seed", "configuration hash", "measured depth"):
+        assert field in page, field
+    assert str(hdr["SIMFHASH"]) in page and str(hdr["SIMFVER"]).strip() in page
+    assert "n/a" not in page.split("measured depth")[1][:80]
+    assert 'class="toc"' in page and page.count('href="#fig') >= 5
+    assert page.index("Contents") < page.index("<img")
+    for cap in re.findall(r'<p class="cap">(.*?)</p>', page):
+        assert cap.strip()
+
+
+def test_psf_picture_shows_a_flat_wavefront(figures):
+    """The wavefront panel is drawn for a pupil without wavefront error, saying "flat"."""
+    _, saved = figures
+    titles = [ax.get_title() for ax in saved["optics/psf_picture.png"].axes]
+    assert any("wavefront" in t and "flat" in t for t in titles), titles
+
+
+def test_selection_page_has_header_and_faint_small_cells(figures):
+    """The selection page has the run's header; S(z) draws error bars only for n >= 3 cells
+    but labels every cell k/n."""
+    out, saved = figures
+    page = next((out / "selection").glob("*/report.html")).read_text()
+    hdr = fits.getheader(next(out.glob("mosaic_*.fits")), 0)
+    assert str(hdr["SIMFHASH"]) in page and "measured depths" in page and 'class="toc"' in page
+    from astropy.table import Table
+
+    for path in [p for p in saved if p.endswith("completeness_z.png")]:
+        comp = Table.read(Path(path).with_name("completeness.ecsv"))
+        fig = saved[path]
+        labels = [a for a in fig.axes[0].texts if a.get_gid() == "count"]
+        assert labels and all(re.fullmatch(r"\d+/\d+", a.get_text()) for a in labels)
+        for a in labels:
+            k, n = (int(v) for v in a.get_text().split("/"))
+            assert (a.get_alpha() or 1.0) == (1.0 if n >= 3 else 0.5)
+        bars = sum(len(seg.get_segments()) for c in fig.axes[0].collections
+                   for seg in [c] if hasattr(c, "get_segments"))
+        assert bars <= int(np.sum(np.asarray(comp["n"]) >= 3))
+
+
+def test_lens_picture(tmp_path):
+    """lens.png of a small lens: labels, title, field outline, halo centre, kpc scale, plain
+    colour-bar ticks (kpc per arcsec from astropy.cosmology, not the project's own)."""
+    from astropy.cosmology import FlatLambdaCDM
+
+    from simfield.lensing import write_lens_png
+    from simfield.lensing.profiles import SIE
+    from simfield.lensing.raytrace import Lens
+
+    cosmo = FlatLambdaCDM(H0=70, Om0=0.3, Tcmb0=2.725)
+    lens = Lens(0.4, (SIE(0.0, 0.0, 3.0, 0.7, 20.0),), cosmo)
+    fig = write_lens_png(lens, tmp_path / "lens.png", 20.0, 0.1, seed=7)
+    ax = fig.axes[0]
+    assert ax.get_xlabel() and ax.get_ylabel() and "seed 7" in ax.get_title()
+    labels = ax.get_legend_handles_labels()[1]
+    assert "field outline" in labels and "halo centre" in labels
+    (bar,) = [a for a in ax.get_children() if getattr(a, "get_gid", None)
+              and a.get_gid() == "scale_bar"]
+    kpc = cosmo.kpc_proper_per_arcmin(0.4).value / 60 * 4  # the 4" bar of a 20" field
+    text = bar.txt_label.get_text() if hasattr(bar, "txt_label") else ""
+    assert f"{kpc:.0f} kpc" in text, text
+    ticks = [t.get_text() for t in fig.axes[1].get_yticklabels()]
+    assert ticks and not any("times" in t or "^" in t for t in ticks), ticks
+
+
+def test_intervals_contain_their_points(figures):
+    """Every error bar of the completeness and purity panels spans its point (k = n included),
+    read back from the drawn line collections."""
+    _, saved = figures
+    (fig,) = _named(saved, "completeness_purity.png")
+    checked = 0
+    for ax in fig.axes:
+        for cont in ax.containers:
+            data_line, _, barcols = cont.lines
+            bars = barcols[0]
+            x, y = data_line.get_data()
+            for (xi, yi), seg in zip(zip(x, y), bars.get_segments()):
+                lo, hi = sorted(seg[:, 1])
+                assert lo - 1e-12 <= yi <= hi + 1e-12 and abs(seg[0, 0] - xi) < 1e-9
+                checked += 1
+    assert checked > 0
