@@ -29,7 +29,7 @@ from simfield import cosmo as sf_cosmo
 from simfield.bands import Band, ab_to_njy, make_band, njy_to_ab
 from simfield.config import PopulationConfig
 from simfield.errors import ConfigError
-from simfield.population import _photometry, lightcone, luminosity, morphology, seds, stars
+from simfield.population import _photometry, luminosity, morphology, seds, stars
 from simfield.population import make_population, make_profile
 
 C_KMS = const.c.to(u.km / u.s).value
