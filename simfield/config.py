@@ -190,7 +190,7 @@ class LensComponentConfig:
     kind: str = MISSING  #: nfw | sis | sie | point | shear
     x_arcsec: float = 0.0
     y_arcsec: float = 0.0
-    mass_msun: float = 0.0  #: nfw: M200c (Msun); point: mass (Msun)
+    mass_msun: float = 0.0  #: nfw: M200c in Msun (not Msun/h; 200 x the critical density at the lens redshift); point: mass (Msun)
     concentration: float = 4.0  #: nfw
     sigma_kms: float = 0.0  #: sis / sie velocity dispersion (km/s)
     axis_ratio: float = 1.0  #: sie / nfw (elliptical potential)
