@@ -81,12 +81,19 @@ def main() -> None:
     Every job of the command line is composed and validated first (:func:`preflight`); a bad
     setting is refused with one line on stderr and status 2 before Hydra writes anything.
     ``simfield --estimate [overrides]`` prints the resources each job would take and exits.
+    ``simfield --help`` prints the tool's page (:mod:`simfield._help`: groups and presets read
+    from ``conf/``); Hydra's own page of flags is ``simfield --hydra-help``.
     """
     import hydra
 
     from .config import register_configs
 
     argv = sys.argv[1:]
+    if "--help" in argv or "-h" in argv:  # the tool's page; Hydra's is --hydra-help
+        from ._help import help_page
+
+        sys.stdout.write(help_page(CONF_DIR))
+        return
     try:
         if "--estimate" in argv:
             _print_estimate([a for a in argv if a != "--estimate"])
