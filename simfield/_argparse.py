@@ -4,7 +4,23 @@ from __future__ import annotations
 
 import argparse
 
-__all__ = ["ArgError", "OneLineParser"]
+__all__ = ["ArgError", "DefaultsHelpFormatter", "OneLineParser"]
+
+
+class DefaultsHelpFormatter(argparse.ArgumentDefaultsHelpFormatter):
+    """Help that states every option's default: ``(default: X)`` is appended unless the help
+    text already says its default; an on/off flag says ``(default: off)``. Options whose
+    default is None must spell their default out in their help."""
+
+    def _get_help_string(self, action):
+        text = action.help or ""
+        if "default" in text.lower() or action.default is argparse.SUPPRESS:
+            return text
+        if action.option_strings and action.nargs == 0 and action.default is False:
+            return f"{text} (default: off)"
+        if action.default is None:
+            return text
+        return f"{text} (default: %(default)s)"
 
 
 class ArgError(Exception):

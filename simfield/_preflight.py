@@ -13,7 +13,8 @@ from __future__ import annotations
 import os
 from pathlib import Path
 
-from .config import CONF_DIR, Scenario, _known_keys, check_raw_value, register_configs, to_scenario
+from .config import (CONF_DIR, Scenario, _known_keys, check_raw_value, consistent_read_noise,
+                     read_noise_conflict, register_configs, to_scenario)
 from .errors import ConfigError
 
 __all__ = ["preflight"]
@@ -137,6 +138,18 @@ def _translate(exc: Exception, overrides: list) -> ConfigError:
     return ConfigError(key, value, f"is not accepted: {why}")
 
 
+def _check_read_noise_pair(job: list) -> None:
+    """A job setting both detector.read_noise_e and read_noise_frame_e must set them
+    consistently (CDS = sqrt(2) x frame); the scenario alone cannot tell an explicit
+    read_noise_e equal to its preset value from an untouched one."""
+    given = {o.key_or_group: o.value() for o in job
+             if not o.is_delete() and not o.is_sweep_override()}
+    cds, frame = given.get("detector.read_noise_e"), given.get("detector.read_noise_frame_e")
+    numbers = all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in (cds, frame))
+    if numbers and not consistent_read_noise(float(cds), float(frame)):
+        raise read_noise_conflict(float(cds), float(frame))
+
+
 def _sweep_jobs(hy, config_name: str, overrides: list[str]) -> list[list[str]]:
     """Override lists of every job of a multirun, as Hydra's basic sweeper makes them."""
     from hydra._internal.core_plugins.basic_sweeper import BasicSweeper
@@ -217,6 +230,7 @@ def _jobs(hy, conf_dir: str, config_name: str, texts: list[str], parsed: list,
     else:
         jobs = [parsed]
     for job in jobs:
+        _check_read_noise_pair(job)
         cfg = _compose(hy, conf_dir, config_name, job)
         with open_dict(cfg):
             del cfg["hydra"]  # its interpolations resolve only inside a Hydra run

@@ -81,12 +81,19 @@ def main() -> None:
     Every job of the command line is composed and validated first (:func:`preflight`); a bad
     setting is refused with one line on stderr and status 2 before Hydra writes anything.
     ``simfield --estimate [overrides]`` prints the resources each job would take and exits.
+    ``simfield --help`` prints the tool's page (:mod:`simfield._help`: groups and presets read
+    from ``conf/``); Hydra's own page of flags is ``simfield --hydra-help``.
     """
     import hydra
 
     from .config import register_configs
 
     argv = sys.argv[1:]
+    if "--help" in argv or "-h" in argv:  # the tool's page; Hydra's is --hydra-help
+        from ._help import help_page
+
+        sys.stdout.write(help_page(CONF_DIR))
+        return
     try:
         if "--estimate" in argv:
             _print_estimate([a for a in argv if a != "--estimate"])
@@ -106,25 +113,46 @@ def score_main(argv: list[str] | None = None) -> None:
     sys.exit(score_main_args(sys.argv[1:] if argv is None else argv))
 
 
-def inject_main(argv: list[str] | None = None) -> None:
-    """``simfield-inject IMAGE --band B [options] [overrides]``: inject model sources into a
-    real image, detect and score them as for a mock."""
+_INJECT_DESCRIPTION = (
+    "Inject model sources drawn from the scenario's population (injection mode, "
+    "population=uniform, unless an override picks another) into a real image with a celestial "
+    "WCS, convolved with its PSF, detect before and after the injection, and score the new "
+    "detections as for a mock. Usage: simfield-inject IMAGE --band B [options] [overrides].")
+
+
+def _inject_parser():
+    """The argument parser of ``simfield-inject`` (every default in its help)."""
     import argparse
 
-    from .errors import SimfieldError
+    from ._argparse import DefaultsHelpFormatter
 
-    p = argparse.ArgumentParser(prog="simfield-inject", description=inject_main.__doc__)
+    p = argparse.ArgumentParser(prog="simfield-inject", description=_INJECT_DESCRIPTION,
+                                formatter_class=DefaultsHelpFormatter)
     p.add_argument("image", help="FITS image with a celestial WCS")
-    p.add_argument("--band", required=True, help="the scenario band the image is taken in")
-    p.add_argument("--psf", help="PSF image (FITS, PIXSCALE in arcsec); default: model PSF")
-    p.add_argument("--hdu", help="image HDU name or number (default: IMAGE, SCI or the first image)")
-    p.add_argument("--weight-hdu", help="inverse-variance HDU (default: INVVAR, WHT, else estimated)")
+    p.add_argument("--band", required=True, help="the scenario band the image is taken in "
+                   "(required, no default)")
+    p.add_argument("--psf", help="PSF image (FITS, PIXSCALE in arcsec) (default: the model "
+                   "PSF of the band)")
+    p.add_argument("--hdu", help="image HDU name or number (default: IMAGE, SCI or the first "
+                   "image)")
+    p.add_argument("--weight-hdu", help="inverse-variance HDU (default: INVVAR, WHT, else "
+                   "estimated)")
     p.add_argument("--zeropoint", type=float, help="AB magnitude of one image unit "
                    "(default: header ZP_AB)")
     p.add_argument("--out", help="output directory (default: outputs/inject_<image name>)")
     p.add_argument("overrides", nargs="*", help="Hydra overrides of the scenario, e.g. "
-                   "population.uniform_mag_max=30 (population=uniform is the default here)")
-    a = p.parse_intermixed_args(sys.argv[1:] if argv is None else argv)
+                   "population.uniform_mag_max=30 (default: none; population=uniform unless "
+                   "given)")
+    return p
+
+
+def inject_main(argv: list[str] | None = None) -> None:
+    """``simfield-inject IMAGE --band B [options] [overrides]``: inject model sources into a
+    real image, detect and score them as for a mock."""
+    from .errors import SimfieldError
+
+    a = _inject_parser().parse_intermixed_args(sys.argv[1:] if argv is None else argv)
+
 
     def hdu(v):
         return int(v) if v is not None and v.isdigit() else v

@@ -24,8 +24,10 @@ _POS = {
     "dec": ("deg", "declination (ICRS)"),
     "x": ("pix", "0-based mosaic column, first pixel centred on 0"),
     "y": ("pix", "0-based mosaic row, first pixel centred on 0"),
-    "x_arcsec": ("arcsec", "tangent-plane offset xi (east) from the field centre"),
-    "y_arcsec": ("arcsec", "tangent-plane offset eta (north) from the field centre"),
+    "x_arcsec": ("arcsec", "tangent-plane offset xi from the field centre, increasing to the "
+                          "east, so it runs opposite to pixel x (east is left, -x, at survey.roll_deg 0)"),
+    "y_arcsec": ("arcsec", "tangent-plane offset eta from the field centre, increasing to the "
+                          "north, like pixel y at survey.roll_deg 0"),
 }
 
 #: every ``kind`` of the SOURCES table

@@ -190,7 +190,7 @@ class LensComponentConfig:
     kind: str = MISSING  #: nfw | sis | sie | point | shear
     x_arcsec: float = 0.0
     y_arcsec: float = 0.0
-    mass_msun: float = 0.0  #: nfw: M200c (Msun); point: mass (Msun)
+    mass_msun: float = 0.0  #: nfw: M200c in Msun (not Msun/h; 200 x the critical density at the lens redshift); point: mass (Msun)
     concentration: float = 4.0  #: nfw
     sigma_kms: float = 0.0  #: sis / sie velocity dispersion (km/s)
     axis_ratio: float = 1.0  #: sie / nfw (elliptical potential)
@@ -223,7 +223,12 @@ class LensConfig:
 class DetectorConfig:
     """Infrared array and its up-the-ramp readout (see :mod:`simfield.detector`)."""
 
-    read_noise_e: float = 12.0  #: correlated double sampling read noise (e-); per frame / sqrt(2)
+    #: correlated-double-sampling (CDS) read noise (e-): the noise of the difference of two
+    #: frames, sqrt(2) x one frame's read noise (the frame noise used is read_noise_e / sqrt(2))
+    read_noise_e: float = 12.0
+    #: one frame's read noise (e-); null: use read_noise_e. When set, read_noise_e is derived
+    #: as sqrt(2) x this (read_noise_e left at its preset value or set consistently)
+    read_noise_frame_e: Optional[float] = None
     dark_e_s: float = 0.005  #: dark current (e-/s)
     gain_e_adu: float = 2.0  #: conversion gain (e-/ADU)
     full_well_e: float = 80000.0  #: full well (e-)
@@ -619,7 +624,54 @@ def _validate_lens(lens: LensConfig, z_max: float) -> None:
                 lo_open=True)
 
 
+#: the preset value of detector.read_noise_e: with read_noise_frame_e set, this value counts as
+#: "not set" and is replaced by the derived one
+_READ_NOISE_E_DEFAULT = DetectorConfig.read_noise_e
+
+
+def cds_read_noise_e(frame_e: float) -> float:
+    """CDS read noise (e-) of one frame's read noise ``frame_e`` (e-): sqrt(2) x frame_e, the
+    noise of the difference of two independent reads."""
+    return math.sqrt(2.0) * float(frame_e)
+
+
+def consistent_read_noise(cds_e: float, frame_e: float) -> bool:
+    """Whether CDS read noise ``cds_e`` and frame read noise ``frame_e`` (e-) agree (0.1%)."""
+    return math.isclose(cds_e, cds_read_noise_e(frame_e), rel_tol=1e-3, abs_tol=1e-6)
+
+
+def read_noise_conflict(cds_e: float, frame_e: float) -> ConfigError:
+    """The one-line refusal of detector.read_noise_e and read_noise_frame_e set apart."""
+    return ConfigError("detector.read_noise_frame_e", frame_e,
+                       f"gives a CDS read noise of sqrt(2) x {frame_e:g} = "
+                       f"{cds_read_noise_e(frame_e):.4g} e-, but detector.read_noise_e is "
+                       f"{cds_e:g}; set only one of them (or both consistently)")
+
+
+def frame_read_noise_e(det: DetectorConfig) -> float:
+    """Read noise of one frame (e-), 0 with ``det.read_noise`` off: ``read_noise_frame_e``
+    when set, else ``read_noise_e`` / sqrt(2) (read_noise_e is the CDS noise). The one place
+    the detector simulation and the predicted depths take the frame noise from."""
+    if not det.read_noise:
+        return 0.0
+    if det.read_noise_frame_e is not None:
+        return float(det.read_noise_frame_e)
+    return float(det.read_noise_e) / math.sqrt(2.0)
+
+
+def _resolve_read_noise(d: DetectorConfig) -> None:
+    """With read_noise_frame_e set, derive read_noise_e = sqrt(2) x it; refuse a conflict."""
+    if d.read_noise_frame_e is None:
+        return
+    check_range("detector.read_noise_frame_e", d.read_noise_frame_e, 0, 1000)
+    if d.read_noise_e != _READ_NOISE_E_DEFAULT and \
+            not consistent_read_noise(d.read_noise_e, d.read_noise_frame_e):
+        raise read_noise_conflict(d.read_noise_e, d.read_noise_frame_e)
+    d.read_noise_e = cds_read_noise_e(d.read_noise_frame_e)
+
+
 def _validate_detector(d: DetectorConfig) -> None:
+    _resolve_read_noise(d)
     check_range("detector.read_noise_e", d.read_noise_e, 0, 1000)
     check_range("detector.dark_e_s", d.dark_e_s, 0, 100)
     check_range("detector.gain_e_adu", d.gain_e_adu, 0, 100, lo_open=True)

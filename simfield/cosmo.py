@@ -52,5 +52,8 @@ def angular_diameter_distance(z, cosmo=None):
 def angular_diameter_distance_z1z2(z1, z2, cosmo=None):
     """D_A between z1 < z2 in Mpc (the lens-source distance D_ls)."""
     cosmo = cosmo or default_cosmology()
-    return cosmo.angular_diameter_distance_z1z2(np.asarray(z1, dtype=float),
-                                                np.asarray(z2, dtype=float)).value
+    z1, z2 = np.asarray(z1, dtype=float), np.asarray(z2, dtype=float)
+    try:  # the two-redshift form of astropy 8 (which deprecates ``*_z1z2`` and warns)
+        return cosmo.angular_diameter_distance(z1, z2).value
+    except TypeError:  # older astropy takes one redshift only
+        return cosmo.angular_diameter_distance_z1z2(z1, z2).value

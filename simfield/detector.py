@@ -67,7 +67,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import ndimage
 
-from .config import DetectorConfig
+from .config import DetectorConfig, frame_read_noise_e
 from .errors import check_range, require
 
 __all__ = [
@@ -503,7 +503,7 @@ def _readout(det: DetectorConfig, exptime_s: float):
     (1/s^2) and b_full (1/s), interval weights D_i (1/s), IPC alpha and the pixel variance
     IPC keeps for white charge noise."""
     tf = frame_time(det, exptime_s)
-    sig_f2 = (det.read_noise_e ** 2 / 2.0 if det.read_noise else 0.0) + \
+    sig_f2 = frame_read_noise_e(det) ** 2 + \
         (det.gain_e_adu ** 2 / 12.0 if det.quantize else 0.0)
     c = slope_weights(det.n_groups, det.n_frames, tf)
     d_int = _interval_weights(c)

@@ -40,7 +40,7 @@ from typing import Any, Iterable
 import numpy as np
 from astropy.table import Column, MaskedColumn, Table
 
-from ._argparse import ArgError, OneLineParser
+from ._argparse import ArgError, DefaultsHelpFormatter, OneLineParser
 from .io import COMPLETE_MARKER, atomic_path, write_json
 
 __all__ = [
@@ -612,12 +612,12 @@ def plot_sweep(t: Table, out_dir) -> list[Path]:
 # command line
 # --------------------------------------------------------------------------------------------
 def _parser() -> argparse.ArgumentParser:
-    p = OneLineParser(prog="simfield-collect",
-                description="Gather a simfield sweep (Hydra multirun directory) into one "
-                            "table (sweep.ecsv) and plots of its headline metrics.")
+    p = OneLineParser(prog="simfield-collect", formatter_class=DefaultsHelpFormatter,
+                      description="Gather a simfield sweep (Hydra multirun directory) into one "
+                                  "table (sweep.ecsv) and plots of its headline metrics.")
     p.add_argument("sweep_dir", metavar="SWEEP_DIR", help="the sweep's hydra.sweep.dir")
-    p.add_argument("--out", metavar="DIR", help="output directory (default SWEEP_DIR/collected)")
-    p.add_argument("--no-plots", action="store_true", help="write the table only")
+    p.add_argument("--out", metavar="DIR", help="output directory (default: SWEEP_DIR/collected)")
+    p.add_argument("--no-plots", action="store_true", help="write the table only, no plots")
     return p
 
 

@@ -118,11 +118,14 @@ def test_estimate_prints_and_writes_nothing(tmp_path):
 
 @pytest.mark.slow
 def test_print_only_flags_still_work(tmp_path):
-    """--cfg job, --help and --info still print (Hydra's own), status 0."""
+    """--cfg job and --hydra-help still print (Hydra's own), --help the tool's page
+    (tests/test_cli_help.py), status 0."""
     code, _, out = _simfield(["--cfg", "job", "survey=quick"], tmp_path)
     assert code == 0 and "limits:" in out and "name: quick" in out
+    code, _, out = _simfield(["--hydra-help"], tmp_path)
+    assert code == 0 and "--cfg" in out and "--multirun" in out
     code, _, out = _simfield(["--help"], tmp_path)
-    assert code == 0 and "survey: deep, quick" in out
+    assert code == 0 and "    * deep" in out and "    - quick" in out
     assert not any(tmp_path.iterdir())
 
 

@@ -32,7 +32,7 @@ from astropy.io import fits
 from astropy.table import Table
 from astropy.wcs import WCS
 
-from .._argparse import ArgError, OneLineParser
+from .._argparse import ArgError, DefaultsHelpFormatter, OneLineParser
 from ..columns import POINT_KINDS, SCORE_COLUMNS, SCORE_TABLES, describe
 from ..config import ScoreConfig, _validate_score
 from ..errors import CatalogError, ConfigError
@@ -568,21 +568,26 @@ def score_pipeline_run(run_dir, sc, prov) -> dict:
 
 # --------------------------------------------------------------------------------------------
 def _parser() -> argparse.ArgumentParser:
-    p = OneLineParser(prog="simfield-score",
-                description="Score a detection catalogue against a simfield run's truth.")
+    p = OneLineParser(prog="simfield-score", formatter_class=DefaultsHelpFormatter,
+                      description="Score a detection catalogue against a simfield run's truth.")
     p.add_argument("run_dir", help="run directory written by simfield")
-    p.add_argument("--catalog", help="catalogue file (.fits, .ecsv, .csv); default the run's "
-                                     "own detections_<band>.fits")
-    p.add_argument("--band", help="band name (default: the run's detection band)")
+    p.add_argument("--catalog", help="catalogue file (.fits, .ecsv, .csv) (default: the run's "
+                                     "own detections_<band>.fits)")
+    p.add_argument("--band", help="band name (default: the run's detection band, from its "
+                                  "summary.json or scenario.yaml)")
     p.add_argument("--ra-col", default="ra", help="RA column (deg)")
     p.add_argument("--dec-col", default="dec", help="Dec column (deg)")
     g = p.add_mutually_exclusive_group()
-    g.add_argument("--mag-col", help="AB magnitude column (default 'mag'); NAME[i] picks "
-                                     "element i (0-based) of a column with several per row")
-    g.add_argument("--flux-col", help="flux column (see --flux-unit); NAME[i] as for --mag-col")
+    g.add_argument("--mag-col", help="AB magnitude column; NAME[i] picks element i (0-based) "
+                                     "of a column with several per row (default: mag, unless "
+                                     "--flux-col is given)")
+    g.add_argument("--flux-col", help="flux column (see --flux-unit); NAME[i] as for --mag-col "
+                                      "(default: none, magnitudes are read)")
     p.add_argument("--flux-unit", default="nJy", choices=list(FLUX_UNITS),
                    help="unit of --flux-col")
-    p.add_argument("--radius", type=float, help="match radius (arcsec)")
+    p.add_argument("--radius", type=float, help="match radius in arcsec (default: the run's "
+                                                "score.match_radius_arcsec, 0.15 in the "
+                                                "standard preset)")
     p.add_argument("--skip-invalid", action="store_true",
                    help="drop rows with NaN/inf or outside the mosaic instead of refusing")
     p.add_argument("--drop-duplicates", action="store_true",
@@ -591,18 +596,18 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("--allow-flux-offset", action="store_true",
                    help="score even if the bright matches' magnitudes are off the truth by "
                         "more than 1 mag (or too few to check)")
-    p.add_argument("--out", help="output directory (default <run_dir>/score_<catalogue file "
+    p.add_argument("--out", help="output directory (default: <run_dir>/score_<catalogue file "
                                  "stem>/<band>; the run's own detections: "
                                  "<run_dir>/score_detections_<band>/<band>)")
     p.add_argument("--no-report", action="store_true", help="skip report.html and plots")
     s = p.add_mutually_exclusive_group()
     s.add_argument("--select-col", help="boolean column: the catalogue's own high-redshift "
                                         "selection, scored for each sample's window of the "
-                                        "run's selection group (--sample)")
+                                        "run's selection group (--sample) (default: none)")
     s.add_argument("--zphot-col", help="redshift column: selected where it lies in each "
-                                       "sample's window")
+                                       "sample's window (default: none)")
     p.add_argument("--sample", action="append", help="sample of the run's selection group "
-                                                     "(repeatable; default all)")
+                                                     "(repeatable; default: all)")
     return p
 
 

@@ -7,7 +7,7 @@ import math
 
 import numpy as np
 
-from ..config import DetectorConfig
+from ..config import DetectorConfig, frame_read_noise_e
 from ..errors import check_range, require
 from ..grid import Grid
 from .drizzle import Mosaic
@@ -82,7 +82,7 @@ def predicted_depth(det: DetectorConfig, exptime_s: float, n_exposures: int, zer
     check_range("encircled_energy", encircled_energy, 0, 1, lo_open=True)
     check_range("aperture_radius_arcsec", aperture_radius_arcsec, 0, None, lo_open=True)
     tf = exptime_s / ((det.n_groups - 1) * det.n_frames)
-    sr = det.read_noise_e / math.sqrt(2.0) if det.read_noise else 0.0
+    sr = frame_read_noise_e(det)
     a = float(ramp_variance_rauscher(0.0, sr, det.n_groups, det.n_frames, tf))
     b = float(ramp_variance_rauscher(1.0, 0.0, det.n_groups, det.n_frames, tf)) \
         if det.poisson else 0.0
