@@ -435,7 +435,7 @@ def test_cached_psf_png_draws_once_per_content(tmp_path, monkeypatch):
     temporary file is left."""
     tel = circular(grid=64, n_wavelengths=1)
     p = band_psf(tel, narrow_band(), 0.05, 0.5)
-    ref = write_psf_png([p], scenario_pupil(tel, 4, grid_size=64), tmp_path / "ref.png")
+    ref = write_psf_png([p], scenario_pupil(tel, 4, grid_size=64), tmp_path / "ref.png", seed=4)
     out = cached_psf_png(tel, [p], 4, tmp_path / "run1" / "psf.png", tmp_path / "cache",
                          pupil_grid=64)
     assert out.read_bytes() == ref.read_bytes()
