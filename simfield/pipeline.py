@@ -203,7 +203,8 @@ def run_scenario(sc: Scenario, out_dir: str | Path, progress: bool = False) -> R
             ctx.files[f"mosaic_{b.name}.fits"].array("NOISECOR")[:] = noise[b.name].rho
         results = _map_tiles(ctx, sc.workers, progress)
         with timer("depth"):
-            depths = {b.name: _band_depth(sc, b, psf_core[b.name], ctx.files, mgrid)
+            depths = {b.name: _band_depth(sc, b, psf_core[b.name], ctx.files, mgrid,
+                                          noise[b.name])
                       for b in bands}
     files.extend(f.final for f in sfiles)
     del ctx
@@ -487,15 +488,17 @@ def _noise_correlations(sc: Scenario, bands: list[Band], egrids: list, mgrid: Gr
 N_EMPTY_APERTURES = 2000
 
 
-def _band_depth(sc: Scenario, b: Band, psf_core, files: dict, mgrid: Grid) -> dict:
+def _band_depth(sc: Scenario, b: Band, psf_core, files: dict, mgrid: Grid, noise) -> dict:
     """Predicted and measured 5-sigma depths (AB) and the aperture-noise check of one band.
 
     The empty-sky apertures are placed over the whole written mosaic at once (memory maps of
     its files), so nothing here depends on the tiling. ``aperture_noise`` compares, at the
     depth's radius and at the noise table's radii 2 and 10 pixels, the scatter of aperture
-    sums of mosaic minus truth image with the files' statement F(r) sqrt(sum 1/INVVAR).
+    sums of mosaic minus truth image with the files' statement F(r) sqrt(sum 1/INVVAR);
+    ``noise`` is the band's :class:`~simfield.survey.NoiseCorrelation`, read as its header
+    cards state it.
     """
-    from .noisecards import noise_factor, read_noise_factors
+    from .noisecards import noise_cards, noise_factor, read_noise_factors
     from .optics.psf import effective_psf
     from .survey import (MIN_EMPTY_APERTURES, depth_from_sums, empty_apertures, predicted_depth,
                          robust_sigma)
@@ -511,7 +514,9 @@ def _band_depth(sc: Scenario, b: Band, psf_core, files: dict, mgrid: Grid) -> di
     truth, segm = tf.array("IMAGE", "r"), tf.array("SEGMAP", "r")
     with np.errstate(divide="ignore"):
         var = _LazyInverse(wht)
-    table = read_noise_factors(_noise_header(mf))
+    # the table exactly as the INVVAR header states it (its cards, rounded as written)
+    table = read_noise_factors({k: v for k, v, _ in
+                                noise_cards(noise.radii_pix, noise.factors, noise.factor_inf)})
     checks, measured = [], float("nan")
     r_depth = r_ap / mgrid.scale
     radii = (r_depth, 2.0, 10.0)
@@ -553,13 +558,6 @@ class _LazyInverse:
     def __getitem__(self, key):
         w = np.asarray(self.wht[key], float)
         return np.where(w > 0, 1.0 / np.where(w > 0, w, 1.0), 0.0)
-
-
-def _noise_header(f) -> fits.Header:
-    """The INVVAR extension's header of a section file being written (its noise table)."""
-    with open(f.path, "rb") as fh:
-        hl = fits.open(fh, memmap=False, lazy_load_hdus=True)
-        return hl["INVVAR"].header.copy()
 
 
 def _write_exposure_section(f, e, tile, k: int, mgrid: Grid) -> None:

@@ -454,7 +454,7 @@ def _write(path, t, name):
 
 
 @pytest.mark.parametrize("case, columns, match", [
-    ("missing", {"mag": "MAG_AUTO"}, r"lacks column\(s\) mag='MAG_AUTO'; available: ra, dec"),
+    ("missing", {"mag": "TOTAL_MAG"}, r"lacks column\(s\) mag='TOTAL_MAG'; available: ra, dec"),
     ("nan", {}, r"1 row\(s\) with NaN/inf values \(mag: 1\)"),
     ("dec_range", {}, r"outside \[-90, 90\]"),
     ("ra_range", {}, r"outside \[0, 360\)"),

@@ -34,6 +34,7 @@ from typing import Sequence
 import numpy as np
 
 from ..bands import Band
+from .seds import band_colours
 from .stars import draw_star_magnitudes
 
 __all__ = ["DWARF_COLOURS", "ANCHOR_NM", "VEGA_TO_AB", "J_LIKE_NM", "CLASS_RANGES", "Dwarfs",
@@ -143,11 +144,9 @@ def dwarf_band_magnitudes(mag_j, spectral_type, bands: Sequence[Band]) -> np.nda
     -------
     ndarray (AB mag), shape (n, n_band)
     """
-    wave = np.unique(np.concatenate([b.wave for b in bands]))
-    w = np.column_stack([b.weights(wave) for b in bands])
-    f = dwarf_fnu(wave, spectral_type) @ w
-    j = j_like_band(bands)
-    return np.asarray(mag_j, dtype=float)[:, None] - 2.5 * np.log10(f / f[:, j:j + 1])
+    colour = band_colours(lambda wave: dwarf_fnu(wave, spectral_type), bands,
+                          j_like_band(bands))
+    return np.asarray(mag_j, dtype=float)[:, None] + colour
 
 
 def draw_spectral_types(n: int, fractions, rng: np.random.Generator) -> np.ndarray:

@@ -45,6 +45,7 @@ __all__ = [
     "galaxy_fnu",
     "band_magnitudes",
     "band_weight_matrix",
+    "band_colours",
     "wave_grid",
     "uv_slope_relation",
     "BETA_SCATTER",
@@ -220,6 +221,14 @@ def wave_grid(bands: Sequence[Band], dlnlam: float = 1.0 / 200.0) -> np.ndarray:
 def band_weight_matrix(wave_nm, bands: Sequence[Band]) -> np.ndarray:
     """Synthetic-photometry weights, shape (n_wave, n_band): <f_nu> = f_nu @ W."""
     return np.column_stack([b.weights(np.asarray(wave_nm, dtype=float)) for b in bands])
+
+
+def band_colours(fnu_of_wave, bands: Sequence[Band], ref: int) -> np.ndarray:
+    """Band magnitudes relative to band ``ref`` (AB mag), shape (n, n_band), of the spectra
+    ``fnu_of_wave(wave_nm) -> (n, n_wave)`` (any f_nu units) on the bands' own wavelengths."""
+    wave = np.unique(np.concatenate([b.wave for b in bands]))
+    f = fnu_of_wave(wave) @ band_weight_matrix(wave, bands)
+    return -2.5 * np.log10(f / f[:, ref:ref + 1])
 
 
 def band_magnitudes(wave_nm, fnu, bands: Sequence[Band], weights=None) -> np.ndarray:

@@ -20,6 +20,7 @@ import numpy as np
 from astropy import constants as const
 
 from ..bands import Band
+from .seds import band_colours
 
 __all__ = ["TEFF_RANGE_K", "Stars", "draw_star_magnitudes", "blackbody_fnu", "draw_stars",
            "star_band_magnitudes"]
@@ -92,10 +93,7 @@ def star_band_magnitudes(mag_sel, teff_k, bands: Sequence[Band], selection: int)
     -------
     ndarray (AB mag), shape (n_star, n_band)
     """
-    wave = np.unique(np.concatenate([b.wave for b in bands]))
-    w = np.column_stack([b.weights(wave) for b in bands])
-    f = blackbody_fnu(wave, teff_k) @ w
-    colour = -2.5 * np.log10(f / f[:, selection:selection + 1])
+    colour = band_colours(lambda wave: blackbody_fnu(wave, teff_k), bands, selection)
     return np.asarray(mag_sel, dtype=float)[:, None] + colour
 
 

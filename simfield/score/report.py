@@ -350,7 +350,7 @@ def make_report(out_dir, truth: dict, det, tables: dict, fits_: dict, summary: d
                            f"{summary['n_detections']})", band, seed))
     figs.append(("False detections by cause", _save(fig, out / "false_causes.png"),
                  "Detections without a truth match, by the cause the scoring assigns "
-                 "(artefact: flagged pixels; spike: on a bright star's diffraction spike; "
+                 "(artefact: on a detector artefact the truth knows; spike: on a bright star's diffraction spike; "
                  "shred: a piece of a matched source; blend: between sources; noise: the "
                  "rest); the number of each on its bar."))
 

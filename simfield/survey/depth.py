@@ -193,13 +193,15 @@ def depth_from_sums(sums: np.ndarray, zeropoint: float, encircled_energy: float 
 
 
 @functools.lru_cache(maxsize=64)
-def disk_weights(radius_pix: float) -> np.ndarray:
-    """Exact overlap (photutils, method ``exact``) of a circle of ``radius_pix`` pixels centred
-    on a pixel centre with each pixel: a (2h+1)^2 image, h = ceil(radius_pix)."""
+def disk_weights(radius_pix: float, dx: float = 0.0, dy: float = 0.0) -> np.ndarray:
+    """Exact overlap (photutils, method ``exact``) of each pixel with a circle of
+    ``radius_pix`` pixels centred ``(dx, dy)`` pixels (0 <= dx, dy < 1) from the centre of the
+    middle pixel: a (2h+1)^2 image, h = ceil(radius_pix + max(dx, dy))."""
     from photutils.aperture import CircularAperture
 
-    h = int(math.ceil(radius_pix))
-    w = CircularAperture((h, h), radius_pix).to_mask(method="exact").to_image((2 * h + 1,) * 2)
+    h = int(math.ceil(radius_pix + max(dx, dy)))
+    w = CircularAperture((h + dx, h + dy), radius_pix).to_mask(method="exact").to_image(
+        (2 * h + 1,) * 2)
     w.setflags(write=False)
     return w
 

@@ -23,7 +23,6 @@ with the scatter of empty apertures measured on written mosaics.
 
 from __future__ import annotations
 
-import functools
 import math
 from dataclasses import dataclass
 
@@ -31,6 +30,7 @@ import numpy as np
 from scipy import ndimage, signal
 
 from ..grid import Grid
+from .depth import disk_weights
 from .drizzle import drizzle_mosaic
 
 __all__ = ["NoiseCorrelation", "APERTURE_RADII_PIX", "drizzle_noise_covariance", "noise_correlation",
@@ -96,24 +96,14 @@ def aperture_factors(rho: np.ndarray, radii_pix) -> np.ndarray:
     out = []
     for r in radii_pix:
         num = den = 0.0
-        for m in _aperture_weights(float(r)):
+        for dx, dy in ((0.0, 0.0), (0.5, 0.0), (0.0, 0.5), (0.5, 0.5)):
+            m = disk_weights(float(r), dx, dy)
             a = signal.correlate(np.pad(m, k), np.pad(m, k), mode="full")
             ca = a.shape[0] // 2
             num += float((rho * a[ca - k:ca + k + 1, ca - k:ca + k + 1]).sum())
             den += float(m.sum())
         out.append(math.sqrt(num / den))
     return np.asarray(out)
-
-
-@functools.lru_cache(maxsize=64)
-def _aperture_weights(radius_pix: float) -> tuple:
-    """Exact overlap weights of a circle of ``radius_pix`` centred at (0, 0), (0.5, 0),
-    (0, 0.5) and (0.5, 0.5) pixels from a pixel centre."""
-    from photutils.aperture import CircularAperture
-
-    h = int(math.ceil(radius_pix)) + 1
-    return tuple(CircularAperture((h + dx, h + dy), radius_pix).to_mask(method="exact")
-                 .to_image((2 * h + 1, 2 * h + 1)) for dx in (0.0, 0.5) for dy in (0.0, 0.5))
 
 
 def drizzle_noise_covariance(exp_grids: list[Grid], mosaic_grid: Grid, kernel: str,
