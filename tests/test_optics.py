@@ -231,6 +231,31 @@ def test_marechal_strehl(lam):
     assert_allclose(s, np.exp(-(2 * np.pi * sigma / lam) ** 2), rtol=1e-2)
 
 
+def test_default_telescope_wavefront_budget(scenario_factory):
+    """The default Lantern wavefront: its drawn rms sigma is the practitioner's budget for a
+    telescope diffraction-limited near 2 um (Marechal Strehl ~0.8 at 2 um, Born & Wolf sec. 9.1;
+    common practice), the net tilt removed; the band PSFs' Strehl is below 1 in every band,
+    rising to the red, and within 0.03 of exp(-(2 pi sigma / lambda_pivot)^2) (Marechal [mem];
+    polychromatic, so not exact); lantern_ideal keeps Strehl 1."""
+    from simfield.pipeline import make_bands
+
+    sc = scenario_factory()
+    pupil = scenario_pupil(sc.telescope, sc.seed)
+    sigma = pupil.rms_wfe_nm
+    assert 0.7 < np.exp(-(2 * np.pi * sigma / 2000.0) ** 2) < 0.9, sigma
+    a, (y, x) = pupil.amplitude, np.meshgrid(pupil.coords_m, pupil.coords_m, indexing="ij")
+    for c in (x, y):  # no net tilt: the OPD is orthogonal to x and y over the clear area
+        assert abs((a * pupil.opd_nm * c).sum() / np.sqrt((a * c * c).sum() * a.sum())) < 1e-6
+    strehl = []
+    for b in make_bands(sc):
+        p = band_psf(sc.telescope, b, 0.02, 0.1, seed=sc.seed, pixel_integrated=False)
+        assert p.strehl == pytest.approx(np.exp(-(2 * np.pi * sigma / b.pivot_nm) ** 2), abs=0.03)
+        strehl.append(p.strehl)
+    assert np.all(np.diff(strehl) > 0) and strehl[-1] < 1, strehl
+    ideal = scenario_factory("telescope=lantern_ideal")
+    assert band_psf(ideal.telescope, make_bands(ideal)[0], 0.02, 0.1, seed=1).strehl == 1.0
+
+
 def test_wavefront_error_is_seeded():
     """Same generator seed -> identical OPD; another seed -> a different one (RULES)."""
     tel = segmented(rings=1, grid=64, segment_wfe_rms_nm=30.0, zernike_rms_nm=[10.0])

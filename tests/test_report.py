@@ -138,11 +138,17 @@ def test_report_page_has_header_and_contents(figures):
         assert cap.strip()
 
 
-def test_psf_picture_shows_a_flat_wavefront(figures):
-    """The wavefront panel is drawn for a pupil without wavefront error, saying "flat"."""
-    _, saved = figures
+def test_psf_picture_states_the_wavefront_rms(figures):
+    """The wavefront panel states the rms of the scenario's drawn wavefront error (the default
+    telescope has one), recomputed here from the pupil the seed gives."""
+    from simfield.optics import scenario_pupil
+
+    out, saved = figures
     titles = [ax.get_title() for ax in saved["optics/psf_picture.png"].axes]
-    assert any("wavefront" in t and "flat" in t for t in titles), titles
+    sc = small_scenario(out)
+    rms = scenario_pupil(sc.telescope, sc.seed, grid_size=512).rms_wfe_nm
+    assert rms > 50
+    assert any("wavefront" in t and f"rms {rms:.1f} nm" in t for t in titles), titles
 
 
 def test_selection_page_has_header_and_faint_small_cells(figures):

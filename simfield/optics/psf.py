@@ -61,7 +61,7 @@ _RAD_PER_ARCSEC = np.pi / 180.0 / 3600.0
 #: PSF against a 3x finer raster (benchmarks/bench_psf.py --convergence): the summed |error| is
 #: 3e-5 inside 1", 1 % at 3-5", 2 % at 5-7" and 4 % at the stamp edge.
 _PERIOD_FACTOR = 1.5
-_CACHE_VERSION = 2  # bump when the computation changes
+_CACHE_VERSION = 3  # bump when the computation changes
 _PICTURE_VERSION = 2  # bump when the PSF picture changes
 _EE_INNER_PIX = 30  # encircled energy: pixels within this many of the centre are subsampled
 

@@ -23,7 +23,9 @@ normalised to unit rms over a hexagon and drawn with rms ``segment_wfe_rms_nm / 
 expected rms over a segment is ``segment_wfe_rms_nm``), plus global Zernike terms (Noll index
 4, 5, ... over the circle of radius ``diameter_m / 2``, GalSim's unit-rms normalisation) with
 coefficients drawn as ``zernike_rms_nm[j]`` times a standard normal deviate. All draws come from
-the generator passed in, in a fixed order independent of the raster size.
+the generator passed in, in a fixed order independent of the raster size. The clear-area-weighted
+mean and tilt of the result (its least-squares plane) are then removed: piston does not change
+the image and a net tilt only moves it, so the PSF stays centred on the optical axis.
 """
 
 from __future__ import annotations
@@ -306,6 +308,19 @@ def _opd(tel: TelescopeConfig, coords: np.ndarray, rng: np.random.Generator | No
     return opd
 
 
+def _remove_plane(opd: np.ndarray, amp: np.ndarray, coords: np.ndarray) -> np.ndarray:
+    """``opd`` (nm) less its least-squares plane a + b x + c y, weighted by the clear fraction
+    ``amp``, on the clear cells (0 where opaque)."""
+    if not np.any(opd):
+        return opd
+    x, y = np.meshgrid(coords, coords)
+    w = amp.ravel()
+    basis = np.stack([np.ones(w.size), x.ravel(), y.ravel()], axis=1)
+    sw = np.sqrt(w)[:, None]
+    coef = np.linalg.lstsq(basis * sw, opd.ravel() * sw[:, 0], rcond=None)[0]
+    return (opd - (basis @ coef).reshape(opd.shape)) * (amp > 0)
+
+
 def make_pupil(tel: TelescopeConfig, rng: np.random.Generator | None = None,
                grid_size: int | None = None) -> Pupil:
     """Raster the entrance pupil of ``tel``.
@@ -330,7 +345,7 @@ def make_pupil(tel: TelescopeConfig, rng: np.random.Generator | None = None,
     scale = extent / (n - 2)
     coords = (np.arange(n) - (n - 1) / 2.0) * scale
     amp = _amplitude(tel, coords, scale)
-    opd = _opd(tel, coords, rng) * (amp > 0)
+    opd = _remove_plane(_opd(tel, coords, rng) * (amp > 0), amp, coords)
     amp.setflags(write=False)
     opd.setflags(write=False)
     return Pupil(amplitude=amp, opd_nm=opd, scale_m=float(scale),
