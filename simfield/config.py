@@ -34,6 +34,7 @@ __all__ = [
     "PupilConfig",
     "PSFConfig",
     "TelescopeConfig",
+    "FieldPSFConfig",
     "PopulationConfig",
     "LensComponentConfig",
     "LensConfig",
@@ -110,6 +111,19 @@ class PSFConfig:
 
 
 @dataclass
+class FieldPSFConfig:
+    """Aberrations that vary across the field (see :mod:`simfield.optics.field`): focus and
+    astigmatism (along the field radius) growing as (r / r_corner)^2, r_corner the half-diagonal
+    of the survey field; PSFs on a grid of field points, interpolated."""
+
+    enabled: bool = False
+    corner_focus_nm: float = 50.0  #: rms of focus (Noll 4) added at the field corners (nm)
+    corner_astig_nm: float = 70.0  #: rms of astigmatism (Noll 5, 6) at the field corners (nm)
+    grid: int = 3  #: field points per side of the PSF grid
+    n_modes: int = 3  #: eigen-PSFs kept beyond the mean (one extra convolution each)
+
+
+@dataclass
 class TelescopeConfig:
     """A telescope: aperture, pupil, detector pixel scale and bands."""
 
@@ -121,6 +135,7 @@ class TelescopeConfig:
     bands: list[BandConfig] = field(default_factory=list)
     pupil: PupilConfig = field(default_factory=PupilConfig)
     psf: PSFConfig = field(default_factory=PSFConfig)
+    field_psf: FieldPSFConfig = field(default_factory=FieldPSFConfig)
 
 
 # --------------------------------------------------------------------------------------------
@@ -524,6 +539,11 @@ def _validate_telescope(t: TelescopeConfig) -> None:
     check_range("telescope.psf.bright_mag", s.bright_mag, 0, 40)
     require("\0" not in s.cache_dir, "telescope.psf.cache_dir", s.cache_dir,
             "must be a directory path (empty: the per-user cache)")
+    f = t.field_psf
+    check_range("telescope.field_psf.corner_focus_nm", f.corner_focus_nm, 0, 500)
+    check_range("telescope.field_psf.corner_astig_nm", f.corner_astig_nm, 0, 500)
+    check_range("telescope.field_psf.grid", f.grid, 2, 7)
+    check_range("telescope.field_psf.n_modes", f.n_modes, 1, f.grid * f.grid - 1)
     check_range("telescope.pupil.strut_offset_m", p.strut_offset_m, -t.diameter_m / 2,
                 t.diameter_m / 2)
 

@@ -32,6 +32,7 @@ from .config import Scenario, config_hash, to_yaml
 from .grid import Grid
 from .io import (COMPLETE_MARKER, Provenance, section_files, write_fits, write_json, write_table,
                  write_text)
+from .fieldconv import convolve_modes
 from .random import stream
 from .scene import (Stamp, accumulate, add_bright, convolve_tiled, dominant_source,
                     STAMP_HALF_MAX, draw_source_stamp, draw_window, point_stamp,
@@ -112,6 +113,7 @@ def run_scenario(sc: Scenario, out_dir: str | Path, progress: bool = False) -> R
         Log stage progress.
     """
     # stage modules are imported here so that ``import simfield.pipeline`` stays light
+    from .optics.field import field_hdus, field_psf_model, shape_cards
     from .optics.psf import cached_band_psf, cached_psf_png, effective_psf
     from .population.lightcone import make_population
     from .survey import exposure_grids, mosaic_grid, scene_grid
@@ -165,20 +167,27 @@ def run_scenario(sc: Scenario, out_dir: str | Path, progress: bool = False) -> R
     with timer("optics"):
         scale = sgrid.scale
         cache = Path(tel.psf.cache_dir)
-        psf_core, psf_wide = {}, {}
+        psf_core, psf_wide, fields = {}, {}, {}
         # sampled, not pixel-integrated: the stamps already carry the scene-pixel box
         for b in bands:
             psf_core[b.name] = cached_band_psf(tel, b, scale, tel.psf.core_radius_arcsec,
                                                sc.seed, cache, pixel_integrated=False)
             psf_wide[b.name] = cached_band_psf(tel, b, scale, tel.psf.spike_radius_arcsec,
                                                sc.seed, cache, pixel_integrated=False)
+            if tel.field_psf.enabled:
+                fields[b.name] = field_psf_model(tel, b, scale, tel.psf.core_radius_arcsec,
+                                                sc.seed, srv.width_arcsec / 2,
+                                                srv.height_arcsec / 2, cache)
         for b in bands:
+            fm = fields.get(b.name)
             files.append(_write_psf(out / f"psf_{b.name}.fits", psf_core[b.name],
                                     psf_wide[b.name],
                                     effective_psf(psf_core[b.name], tel.pixel_scale_arcsec),
-                                    b, prov))
+                                    b, prov, shape_cards(fm, psf_core[b.name].image, scale),
+                                    field_hdus(fm, mgrid) if fm is not None else []))
         files.append(cached_psf_png(tel, [psf_wide[b.name] for b in bands], sc.seed,
-                                    out / "psf.png", cache, roll_deg=sc.survey.roll_deg))
+                                    out / "psf.png", cache, roll_deg=sc.survey.roll_deg,
+                                    field=_field_panels(fields, bands, srv)))
 
     # ---------------------------------------------------------------- tiles
     from .survey import plan_tiles
@@ -195,7 +204,7 @@ def run_scenario(sc: Scenario, out_dir: str | Path, progress: bool = False) -> R
         bright[b.name] = (mag - 2.5 * np.log10(mu)) < tel.psf.bright_mag
     ctx = _TileContext(sc=sc, bands=bands, sources=sources, lens=lens, sgrid=sgrid,
                        mgrid=mgrid, egrids=egrids, tiles=tiles, psf_core=psf_core,
-                       psf_wide=psf_wide, rates=rates, bright=bright, files={})
+                       psf_wide=psf_wide, rates=rates, bright=bright, files={}, field=fields)
     with timer("tiles"), section_files(_image_files(out, sc, bands, mgrid, egrids, noise),
                                        prov) as sfiles:
         ctx.files = {f.final.name: f for f in sfiles}
@@ -295,6 +304,7 @@ class _TileContext:
     rates: dict  #: band -> e-/s per source row
     bright: dict  #: band -> bool per source row, drawn with the large PSF
     files: dict  #: file name -> simfield.io.SectionFile being written
+    field: dict = None  #: band -> optics.field.FieldPSF (field-dependent PSF), if enabled
 
 
 _CTX: _TileContext | None = None  # set in the parent before forking tile workers
@@ -373,12 +383,22 @@ def _render_tile(ctx: _TileContext, i: int) -> dict:
             core = ctx.psf_core[b.name].image
             acc = accumulate(stamps, rate, (acc_box[1] - acc_box[0], acc_box[3] - acc_box[2]),
                              select=~brt, origin=(acc_box[0], acc_box[2]))
-            conv = convolve_tiled(acc, core)
+            fm = (ctx.field or {}).get(b.name)
+            if fm is None:
+                conv = convolve_tiled(acc, core)
+            else:  # each source pixel spread by the PSF of its field position
+                u, v = _field_axes(sgrid, acc_box)
+                conv = convolve_modes(acc, fm.mean, fm.modes, fm.weight_maps(u, v))
             del acc
             scene = np.ascontiguousarray(conv[sy0 - acc_box[0]:sy1 - acc_box[0],
                                               sx0 - acc_box[2]:sx1 - acc_box[2]])
             del conv
-            add_bright(scene, stamps, rate, brt, ctx.psf_wide[b.name].image, origin=(sy0, sx0))
+            if fm is None:
+                add_bright(scene, stamps, rate, brt, ctx.psf_wide[b.name].image,
+                           origin=(sy0, sx0))
+            else:
+                _add_bright_field(scene, stamps, rate, brt, ctx.psf_wide[b.name].image, core,
+                                  fm, sgrid, (sy0, sx0))
             np.maximum(scene, 0.0, out=scene)  # FFT round-off leaves ~1e-7 negatives
         with timer("truth_image"):
             sky_mosaic = b.sky_rate(area, mgrid.scale)
@@ -834,7 +854,45 @@ def _image_hdu(data, name, grid: Grid, bunit: str, cards=()) -> fits.ImageHDU:
     return hdu
 
 
-def _write_psf(path, core, wide, eff, b: Band, prov) -> Path:
+def _field_axes(sgrid: Grid, box) -> tuple[np.ndarray, np.ndarray]:
+    """Field positions (arcsec) of the columns and rows of the scene window ``box`` = (y0, y1,
+    x0, x1): along the north-up scene grid's x and y from its centre, the tangent point."""
+    cx, cy = sgrid.center_pixel
+    return ((np.arange(box[2], box[3]) - cx) * sgrid.scale,
+            (np.arange(box[0], box[1]) - cy) * sgrid.scale)
+
+
+def _add_bright_field(scene, stamps, rate, brt, wide, core, fm, sgrid: Grid, origin) -> None:
+    """Bright sources with the large PSF of the field centre plus, in its core, the difference
+    between the field model's PSF at the source (its stamp's centre) and the centre's core."""
+    hw, hc = wide.shape[0] // 2, core.shape[0] // 2
+    cx, cy = sgrid.center_pixel
+    for st in stamps:
+        if not brt[st.index] or rate[st.index] == 0:
+            continue
+        sy = st.iy0 + (st.image.shape[0] - 1) / 2.0
+        sx = st.ix0 + (st.image.shape[1] - 1) / 2.0
+        k = wide.copy()
+        k[hw - hc:hw + hc + 1, hw - hc:hw + hc + 1] += (
+            fm.at((sx - cx) * sgrid.scale, (sy - cy) * sgrid.scale) - core)
+        one = np.zeros_like(brt)
+        one[st.index] = True
+        add_bright(scene, [st], rate, one, k, origin=origin)
+
+
+def _field_panels(field: dict, bands, srv) -> list:
+    """psf.png panels of the field-dependent PSF: the bluest band's core PSF at the field centre
+    and at its most elongated corner, with that corner's field position."""
+    if not field:
+        return []
+    b = min(bands, key=lambda x: x.pivot_nm)
+    fm = field[b.name]
+    u, v = fm.worst_corner()
+    return [(b.name, fm, (0.0, 0.0), (srv.width_arcsec / 2, srv.height_arcsec / 2)),
+            (b.name, fm, (u, v), (srv.width_arcsec / 2, srv.height_arcsec / 2))]
+
+
+def _write_psf(path, core, wide, eff, b: Band, prov, cards=(), extra=()) -> Path:
     def hdu(p, name, desc):
         h = fits.ImageHDU(p.image.astype(np.float32), name=name)
         h.header["PIXSCALE"] = (p.scale_arcsec, "[arcsec] PSF pixel")
@@ -851,7 +909,9 @@ def _write_psf(path, core, wide, eff, b: Band, prov) -> Path:
     ee_hdu.header["COMMENT"] = "encircled energy of the PSF including the detector pixel"
     hdus = [hdu(core, "PSF", "optics+jitter sampled at scene-pixel centres"),
             hdu(wide, "PSF_WIDE", "large PSF used for bright sources"),
-            hdu(eff, "PSF_DET", "PSF convolved with the detector pixel"), ee_hdu]
+            hdu(eff, "PSF_DET", "PSF convolved with the detector pixel"), ee_hdu, *extra]
+    for k, v, c in cards:
+        hdus[0].header[k] = (v, c)
     return write_fits(path, hdus, prov, [("BAND", b.name, "simfield band name")])
 
 

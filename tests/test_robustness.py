@@ -38,7 +38,7 @@ TINY = [
     "survey=quick", "survey.width_arcsec=8", "survey.height_arcsec=8",
     "telescope.bands=[{name:b17,center_nm:1700,width_nm:380,throughput:0.4,sky_mjy_sr:0.18}]",
     "selection=none",
-    "telescope.psf.n_wavelengths=3", "score.report=false",
+    "telescope.psf.n_wavelengths=3", "score.report=false", "telescope.field_psf.enabled=false",
 ]
 
 SETTINGS = settings(max_examples=30, deadline=None, derandomize=True,

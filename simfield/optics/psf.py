@@ -40,7 +40,7 @@ from ..bands import Band
 from ..config import TelescopeConfig
 from ..errors import check_range, require
 from ..io import atomic_path
-from .pupil import Pupil, pupil_extent_m, scenario_pupil
+from .pupil import Pupil, pupil_extent_m, scenario_pupil, with_zernike
 
 __all__ = [
     "PSFImage",
@@ -268,7 +268,8 @@ def _resample_pixels(fine: np.ndarray, step: float, scale: float, npix: int,
 
 
 def band_psf(tel: TelescopeConfig, band: Band, scale_arcsec: float, radius_arcsec: float,
-             seed: int = 0, pixel_integrated: bool = True) -> PSFImage:
+             seed: int = 0, pixel_integrated: bool = True,
+             field_zernike_nm: Sequence[float] = ()) -> PSFImage:
     """Polychromatic, jittered PSF of ``tel`` in ``band``, pixel-integrated or sampled.
 
     Parameters
@@ -288,6 +289,9 @@ def band_psf(tel: TelescopeConfig, band: Band, scale_arcsec: float, radius_arcse
         True: each value is the PSF integrated over its pixel. False: the PSF density at the
         pixel centre times the pixel area, the kernel to convolve a scene whose sources are
         already integrated over its pixels (the pixel box is then applied once, not twice).
+    field_zernike_nm : sequence of float (nm)
+        Global Noll 4, 5, ... terms added to the wavefront error (the field-dependent part at
+        one field point, see :mod:`simfield.optics.field`); empty: the field centre.
 
     Returns
     -------
@@ -312,7 +316,8 @@ def band_psf(tel: TelescopeConfig, band: Band, scale_arcsec: float, radius_arcse
     width_rad = theta.size * step * _RAD_PER_ARCSEC
     n_pupil = max(int(tel.pupil.grid_size),
                   int(np.ceil(_PERIOD_FACTOR * width_rad * extent / (lam.min() * 1e-9))) + 2)
-    pupil = _band_pupil(tel, int(seed), n_pupil)
+    pupil = with_zernike(_band_pupil(tel, int(seed), n_pupil), field_zernike_nm,
+                         tel.diameter_m / 2.0)
 
     fine = np.zeros((theta.size, theta.size))
     strehl = 0.0
@@ -433,7 +438,8 @@ def effective_psf(psf: PSFImage, detector_pixel_arcsec: float) -> PSFImage:
 # disk cache
 # --------------------------------------------------------------------------------------------
 def _cache_key(tel: TelescopeConfig, band: Band, scale_arcsec: float, radius_arcsec: float,
-               seed: int, pixel_integrated: bool = True) -> str:
+               seed: int, pixel_integrated: bool = True,
+               field_zernike_nm: Sequence[float] = ()) -> str:
     ps = tel.psf
     desc = {
         "version": _CACHE_VERSION,
@@ -450,13 +456,16 @@ def _cache_key(tel: TelescopeConfig, band: Band, scale_arcsec: float, radius_arc
         "seed": int(seed),
         "pixel_integrated": bool(pixel_integrated),
     }
+    if np.any(field_zernike_nm):  # field centre: the key of a plain band PSF
+        desc["field_zernike_nm"] = [float(z) for z in field_zernike_nm]
     return hashlib.sha256(json.dumps(desc, sort_keys=True).encode()).hexdigest()
 
 
 def cached_band_psf(tel: TelescopeConfig, band: Band, scale_arcsec: float,
                     radius_arcsec: float, seed: int = 0,
                     cache_dir: str | os.PathLike | None = None,
-                    pixel_integrated: bool = True) -> PSFImage:
+                    pixel_integrated: bool = True,
+                    field_zernike_nm: Sequence[float] = ()) -> PSFImage:
     """:func:`band_psf`, read from / written to an ``.npz`` disk cache.
 
     The file name holds a SHA-256 of everything that changes the PSF (pupil and PSF settings,
@@ -469,7 +478,8 @@ def cached_band_psf(tel: TelescopeConfig, band: Band, scale_arcsec: float,
         Default ``tel.psf.cache_dir``.
     """
     folder = Path(cache_dir if cache_dir is not None else tel.psf.cache_dir)
-    key = _cache_key(tel, band, scale_arcsec, radius_arcsec, seed, pixel_integrated)
+    key = _cache_key(tel, band, scale_arcsec, radius_arcsec, seed, pixel_integrated,
+                     field_zernike_nm)
     path = folder / f"psf_{band.name}_{key[:20]}.npz"
     if path.exists():
         with np.load(path) as d:
@@ -479,7 +489,8 @@ def cached_band_psf(tel: TelescopeConfig, band: Band, scale_arcsec: float,
                             ee_radii_arcsec=d["ee_radii_arcsec"], ee_values=d["ee_values"],
                             strehl=float(d["strehl"]), flux_fraction=float(d["flux_fraction"]),
                             from_cache=True)
-    psf = band_psf(tel, band, scale_arcsec, radius_arcsec, seed, pixel_integrated)
+    psf = band_psf(tel, band, scale_arcsec, radius_arcsec, seed, pixel_integrated,
+                   field_zernike_nm)
     with atomic_path(path) as tmp, open(tmp, "wb") as fh:
         np.savez(fh, image=psf.image, scale_arcsec=psf.scale_arcsec, band=psf.band,
                  pivot_nm=psf.pivot_nm, fwhm_arcsec=psf.fwhm_arcsec,
@@ -493,9 +504,13 @@ def cached_band_psf(tel: TelescopeConfig, band: Band, scale_arcsec: float,
 # --------------------------------------------------------------------------------------------
 def write_psf_png(psfs: Sequence[PSFImage], pupil: Pupil, path: str | os.PathLike,
                   dynamic_range: float = 1e7, roll_deg: float = 0.0,
-                  seed: int | None = None) -> Path:
+                  seed: int | None = None, corner_pupil: tuple[str, Pupil] | None = None,
+                  field_panels: Sequence[tuple[str, np.ndarray, float]] = ()) -> Path:
     """PNG of the pupil amplitude, its wavefront error ("flat" when zero) and each PSF on a log
-    stretch, with a scale bar and N/E arrows for a mosaic of roll ``roll_deg``.
+    stretch, with a scale bar and N/E arrows for a mosaic of roll ``roll_deg``; with a
+    field-dependent PSF also the wavefront at a field corner (``corner_pupil``: title, pupil)
+    and ``field_panels`` (title, PSF image, pixel in arcsec), e.g. the core PSF at the field
+    centre and at that corner.
 
     Parameters
     ----------
@@ -516,8 +531,8 @@ def write_psf_png(psfs: Sequence[PSFImage], pupil: Pupil, path: str | os.PathLik
     from .._plot import compass, roll_directions, scale_bar
 
     with_opd = bool(np.any(pupil.opd_nm))
-    first = 2
-    n = len(psfs) + first
+    first = 2 + (corner_pupil is not None)
+    n = len(psfs) + first + len(field_panels)
     ncol = min(n, 3)
     nrow = int(np.ceil(n / ncol))
     fig = Figure(figsize=(4.8 * ncol, 4.0 * nrow))
@@ -530,14 +545,16 @@ def write_psf_png(psfs: Sequence[PSFImage], pupil: Pupil, path: str | os.PathLik
     ax.set_title(f"pupil, clear area {pupil.area_m2:.2f} m$^2$")
     ax.set_xlabel("x (m)")
     ax.set_ylabel("y (m)")
-    ax = fig.add_subplot(nrow, ncol, 2)
-    opd = np.where(pupil.amplitude > 0.5, pupil.opd_nm, np.nan)
-    im = ax.imshow(opd, origin="lower", cmap="RdBu_r", extent=(-h, h, -h, h))
-    ax.set_title(f"wavefront error, rms {pupil.rms_wfe_nm:.1f} nm" if with_opd else
-                 "wavefront error: flat (0 nm)")
-    ax.set_xlabel("x (m)")
-    ax.set_ylabel("y (m)")
-    fig.colorbar(im, ax=ax, label="OPD (nm)", shrink=0.8)
+    panels = [("", pupil)] + ([corner_pupil] if corner_pupil is not None else [])
+    for k, (where, pup) in enumerate(panels):
+        ax = fig.add_subplot(nrow, ncol, 2 + k)
+        opd = np.where(pup.amplitude > 0.5, pup.opd_nm, np.nan)
+        im = ax.imshow(opd, origin="lower", cmap="RdBu_r", extent=(-h, h, -h, h))
+        ax.set_title(f"wavefront error{where}, rms {pup.rms_wfe_nm:.1f} nm"
+                     if np.any(pup.opd_nm) else "wavefront error: flat (0 nm)")
+        ax.set_xlabel("x (m)")
+        ax.set_ylabel("y (m)")
+        fig.colorbar(im, ax=ax, label="OPD (nm)", shrink=0.8)
     north, east = roll_directions(roll_deg)
     for i, p in enumerate(psfs):
         ax = fig.add_subplot(nrow, ncol, i + 1 + first)
@@ -553,6 +570,18 @@ def write_psf_png(psfs: Sequence[PSFImage], pupil: Pupil, path: str | os.PathLik
         scale_bar(ax, bar, f'{bar:g}"')
         compass(ax, north, east)
         fig.colorbar(im, ax=ax, label="log10(pixel / peak)", shrink=0.8)
+    for i, (title, img, sc_arcsec) in enumerate(field_panels):
+        ax = fig.add_subplot(nrow, ncol, first + len(psfs) + i + 1)
+        r = img.shape[0] / 2.0 * sc_arcsec
+        peak = img.max()
+        im = ax.imshow(np.log10(np.maximum(img, peak * 1e-4) / peak), origin="lower",
+                       cmap="magma", extent=(-r, r, -r, r), vmin=-4, vmax=0)
+        ax.set_title(title)
+        ax.set_xlabel("x (arcsec, scene axis)")
+        ax.set_ylabel("y (arcsec, scene axis)")
+        bar = float(f"{r / 2:.0g}")
+        scale_bar(ax, bar, f'{bar:g}"')
+        fig.colorbar(im, ax=ax, label="log10(pixel / peak)", shrink=0.8)
     fig.tight_layout()
     path = Path(path)
     with atomic_path(path) as tmp:
@@ -562,7 +591,7 @@ def write_psf_png(psfs: Sequence[PSFImage], pupil: Pupil, path: str | os.PathLik
 
 def cached_psf_png(tel: TelescopeConfig, psfs: Sequence[PSFImage], seed: int,
                    path: str | os.PathLike, cache_dir: str | os.PathLike | None = None,
-                   pupil_grid: int = 512, roll_deg: float = 0.0) -> Path:
+                   pupil_grid: int = 512, roll_deg: float = 0.0, field: Sequence = ()) -> Path:
     """:func:`write_psf_png` of ``psfs`` and the scenario's pupil, kept in the PSF disk cache.
 
     Drawing the picture takes seconds (matplotlib), longer than a small run's optics; the
@@ -570,8 +599,23 @@ def cached_psf_png(tel: TelescopeConfig, psfs: Sequence[PSFImage], seed: int,
     pupil settings, ``seed``, ``pupil_grid``, ``roll_deg`` (deg, the mosaic's roll that orients
     the N/E arrows) and the code version, and copied to ``path``
     (through a temporary name, so a killed run leaves no partial file).
+
+    ``field``: (band, :class:`simfield.optics.field.FieldPSF`, (u, v), (half_w, half_h)) per
+    field panel (arcsec): the model's PSF at (u, v) is drawn with its FWHM and ellipticity,
+    and the wavefront at the last panel's position (the corner) beside the centre's.
     """
     import shutil
+
+    from .field import field_zernike, psf_shape
+    from .pupil import with_zernike
+
+    panels, corner = [], None
+    for band, fm, (u, v), (hw, hh) in field:
+        img = fm.at(u, v)
+        fw, e = psf_shape(img, fm.scale_arcsec)
+        panels.append((f'{band} core at field ({u:+.0f}", {v:+.0f}"): FWHM {fw:.3f}", e {e:.2f}',
+                       img, fm.scale_arcsec))
+        corner = (u, v, hw, hh)
 
     h = hashlib.sha256(json.dumps({"version": _CACHE_VERSION, "picture": _PICTURE_VERSION,
                                    "roll_deg": float(roll_deg),
@@ -581,11 +625,22 @@ def cached_psf_png(tel: TelescopeConfig, psfs: Sequence[PSFImage], seed: int,
     for p in psfs:
         h.update(f"{p.band} {p.fwhm_arcsec:.6g} {p.strehl:.6g} {p.scale_arcsec!r}".encode())
         h.update(np.ascontiguousarray(p.image).tobytes())
+    for title, img, _ in panels:
+        h.update(title.encode())
+        h.update(np.ascontiguousarray(img).tobytes())
+    if corner is not None:
+        h.update(repr((corner, dataclasses.asdict(tel.field_psf))).encode())
     cached = Path(cache_dir if cache_dir is not None else tel.psf.cache_dir) / \
         f"psf_picture_{h.hexdigest()[:20]}.png"
     if not cached.exists():
-        write_psf_png(psfs, scenario_pupil(tel, seed, grid_size=pupil_grid), cached,
-                      roll_deg=roll_deg, seed=seed)
+        pupil = scenario_pupil(tel, seed, grid_size=pupil_grid)
+        cp = None
+        if corner is not None:
+            u, v, hw, hh = corner
+            cp = (f' at ({u:+.0f}", {v:+.0f}")',
+                  with_zernike(pupil, field_zernike(tel, u, v, hw, hh), tel.diameter_m / 2))
+        write_psf_png(psfs, pupil, cached, roll_deg=roll_deg, seed=seed, corner_pupil=cp,
+                      field_panels=panels)
     path = Path(path)
     with atomic_path(path) as tmp:
         shutil.copyfile(cached, tmp)

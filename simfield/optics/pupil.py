@@ -37,7 +37,8 @@ import numpy as np
 from ..config import TelescopeConfig
 from ..random import stream
 
-__all__ = ["Pupil", "make_pupil", "scenario_pupil", "pupil_extent_m", "segment_centers"]
+__all__ = ["Pupil", "make_pupil", "scenario_pupil", "pupil_extent_m", "segment_centers",
+           "with_zernike"]
 
 _SQRT3 = np.sqrt(3.0)
 #: unit normals of the three edge pairs of a flat-topped hexagon (30, 90, 150 deg)
@@ -367,3 +368,34 @@ def scenario_pupil(tel: TelescopeConfig, seed: int, grid_size: int | None = None
         Raster cells across; default ``tel.pupil.grid_size``.
     """
     return make_pupil(tel, stream(int(seed), "optics", "pupil"), grid_size=grid_size)
+
+
+def with_zernike(pupil: Pupil, noll4_nm, radius_m: float) -> Pupil:
+    """``pupil`` with global Zernike terms added to its wavefront error.
+
+    Parameters
+    ----------
+    pupil : Pupil
+    noll4_nm : sequence of float (nm)
+        Coefficients of Noll 4, 5, 6, ... (GalSim's unit-rms normalisation over the circle of
+        ``radius_m``), e.g. the field-dependent focus and astigmatism of
+        :mod:`simfield.optics.field`.
+    radius_m : float (m)
+        Radius of the Zernike circle (half the telescope diameter).
+
+    Returns
+    -------
+    Pupil
+        Same amplitude and raster; OPD (nm) increased by the terms on the clear cells.
+    """
+    c = np.asarray(noll4_nm, dtype=float)
+    if not c.size or not np.any(c):
+        return pupil
+    from galsim.zernike import Zernike
+
+    x, y = np.meshgrid(pupil.coords_m, pupil.coords_m)
+    add = Zernike(np.concatenate([np.zeros(4), c]), R_outer=radius_m).evalCartesian(x, y)
+    opd = pupil.opd_nm + add * (pupil.amplitude > 0)
+    opd.setflags(write=False)
+    return Pupil(amplitude=pupil.amplitude, opd_nm=opd, scale_m=pupil.scale_m,
+                 area_m2=pupil.area_m2)
