@@ -406,6 +406,9 @@ def _render_tile(ctx: _TileContext, i: int) -> dict:
                     e = expose(r, sky, None, sc.detector, srv.exposure_time_s,
                                tel.pixel_size_um, noise, fixed[k])
                     del r
+                    if sc.detector.correlated_noise:
+                        e = _correlated_readout(sc, b.name, k, ctx.egrids[k].shape, e,
+                                                tile.exposures[k])
                     if srv.write_exposures:
                         _write_exposure_section(ctx.files[f"exp_{b.name}_{k:02d}.fits"],
                                                 e, tile, k, mgrid)
@@ -435,6 +438,35 @@ def _render_tile(ctx: _TileContext, i: int) -> dict:
 
         forget_grid(ctx.lens, acc_grid)
     return {"timings": timings}
+
+
+def _readout(sc: Scenario, band: str, k: int, shape, white=None):
+    """Correlated read noise and reference-pixel correction of exposure ``k`` of ``band``
+    (:mod:`simfield.readout`), with the detector's own white frame read noise at the
+    reference pixels (the same pixel-tied deviates :func:`detector.expose` draws)."""
+    from .config import frame_read_noise_e
+    from .detector import PixelNoise, frame_time, slope_variance_factors
+    from .readout import readout_for
+
+    det = sc.detector
+    a_full, _ = slope_variance_factors(det.n_groups, det.n_frames,
+                                       frame_time(det, sc.survey.exposure_time_s))
+    sig_f = np.sqrt(frame_read_noise_e(det) ** 2
+                    + (det.gain_e_adu ** 2 / 12.0 if det.quantize else 0.0))
+
+    def pixel_white(y0, y1, x0, x1):
+        z = PixelNoise(sc.seed, ("exposure", band, k), y0, x0, (y1 - y0, x1 - x0)).normal("read")
+        return z.astype(float)
+
+    unit = pixel_white if white is None else white
+    return readout_for(det, shape, sc.seed, band, k, float(np.sqrt(a_full)),
+                       lambda *box: sig_f * unit(*box))
+
+
+def _correlated_readout(sc: Scenario, band: str, k: int, shape, e, box):
+    from .readout import apply_readout
+
+    return apply_readout(e, _readout(sc, band, k, shape), box)
 
 
 def _crop_mosaic(m, cut):
@@ -476,12 +508,38 @@ def _noise_correlations(sc: Scenario, bands: list[Band], egrids: list, mgrid: Gr
     alpha = det.ipc_alpha if det.ipc else 0.0
     cov_w, cov_c = drizzle_noise_covariance(egrids, mgrid, srv.drizzle_kernel, srv.pixfrac,
                                             alpha, stream(sc.seed, "noise_correlation"))
+    cov_r = _readout_covariance(sc, egrids, mgrid) if det.correlated_noise else None
     out = {}
     for b in bands:
         sky = b.sky_rate(tel.collecting_area_m2, tel.pixel_scale_arcsec)
         white, charge, _ = sky_noise_terms(det, srv.exposure_time_s, sky)
-        out[b.name] = noise_correlation(cov_w, cov_c, white, charge)
+        out[b.name] = noise_correlation(cov_w, cov_c, white, charge, cov_r)
     return out
+
+
+#: Lags (mosaic pixels) of the correlated read noise's covariance, so apertures up to 10
+#: pixels in radius see all of it within them; realisations drizzled to measure it.
+READOUT_COV_LAGS = 20
+READOUT_COV_REALISATIONS = 8
+
+
+def _readout_covariance(sc: Scenario, egrids: list, mgrid: Grid) -> np.ndarray:
+    """Covariance of the mosaic at lags up to ``READOUT_COV_LAGS`` of what the correlated read
+    noise leaves after the reference-pixel correction (:mod:`simfield.readout`), drizzled
+    through the run's own exposure grids (the same for every band: its amplitudes are e- per
+    frame). Realisations have streams of their own, apart from the exposures'."""
+    from .survey import drizzle_field_covariance
+
+    srv = sc.survey
+
+    def field(i, box, r):
+        rng = stream(sc.seed, "readout_covariance", r, i)
+        ro = _readout(sc, f"cov{r}", i, egrids[i].shape,
+                      white=lambda y0, y1, x0, x1: rng.standard_normal((y1 - y0, x1 - x0)))
+        return ro.residual(*box)
+
+    return drizzle_field_covariance(egrids, mgrid, srv.drizzle_kernel, srv.pixfrac, field,
+                                    READOUT_COV_LAGS, READOUT_COV_REALISATIONS)
 
 
 #: Empty-sky apertures drawn over the whole mosaic for the measured depth and noise check.

@@ -1,0 +1,99 @@
+"""Correlated read noise, reference pixels and their correction (simfield.readout)."""
+
+import numpy as np
+import pytest
+from scipy import signal
+
+from simfield.errors import ConfigError
+from simfield.readout import (CorrelatedNoise, RefCorrection, ReadoutLayout, pink_coefficient,
+                              pink_psd, pink_rows)
+from simfield.readout.pink import STEP
+from tests.conftest import make_scenario
+
+LAYOUT = ReadoutLayout((256, 512), 4, 12, 10e-6)
+
+
+def _bands(f, p, model, lo, hi, n=8):
+    edges = np.geomspace(lo, hi, n + 1)
+    out = []
+    for a, b in zip(edges[:-1], edges[1:]):
+        m = (f >= a) & (f < b)
+        out.append(p[m].mean() / model[m].mean())
+    return np.array(out)
+
+
+def test_stream_psd_follows_the_model():
+    """Welch PSD (scipy.signal.welch, Hann, averaged over 6 streams) of white + pink read noise
+    follows S(f) = 2 dt sigma_w^2 + A / f within 20% in every octave-ish band from 8 f_1 to
+    Nyquist, and the pink part alone follows A / f below f_N / (2 STEP). Model: white plus
+    1/f noise of infrared-array outputs, Rauscher et al. 2015, PASP 127, 1144 [from memory]."""
+    lay, dt = LAYOUT, LAYOUT.dt_s
+    a = pink_coefficient(lay, 2.0)
+    sw = 8.5  # e- per frame, the default frame read noise (12 e- CDS / sqrt 2)
+    rng = np.random.default_rng(1)
+    tot, pink = [], []
+    for s in range(6):
+        x = pink_rows(lay, a, s, ("psd",), 0, lay.shape[0]).ravel().astype(float)
+        f, p = signal.welch(x, fs=1 / dt, nperseg=4096)
+        pink.append(p)
+        f, p = signal.welch(x + sw * rng.standard_normal(x.size), fs=1 / dt, nperseg=4096)
+        tot.append(p)
+    f1 = 1 / (lay.n_samples * dt)
+    ok = f > 0
+    r_tot = _bands(f[ok], np.mean(tot, 0)[ok], 2 * dt * sw ** 2 + pink_psd(f[ok], a),
+                   8 * f1, 0.5 / dt)
+    r_pink = _bands(f[ok], np.mean(pink, 0)[ok], pink_psd(f[ok], a), 8 * f1,
+                    0.5 / dt / (2 * STEP), 6)
+    assert np.all(np.abs(r_tot - 1) < 0.2), r_tot
+    assert np.all(np.abs(r_pink - 1) < 0.2), r_pink
+
+
+def _noise(offset=10.0, common=2.0, own=1.5, names=("t", 0)):
+    return CorrelatedNoise(LAYOUT, 7, names, common, own, offset)
+
+
+def test_any_window_sees_the_same_noise():
+    """Pixel-tied streams: a window cut from the whole detector equals the window drawn alone
+    (tiles of a mosaic see one noise field), and the seed decides it."""
+    n = _noise()
+    full = n.window(0, 256, 0, 512)
+    np.testing.assert_array_equal(n.window(37, 130, 101, 333), full[37:130, 101:333])
+    np.testing.assert_array_equal(_noise().window(0, 256, 0, 512), full)
+    assert not np.array_equal(_noise(names=("t", 1)).window(0, 256, 0, 512), full)
+
+
+def test_channels_read_in_alternating_directions():
+    """A noise common to all outputs appears mirrored in the odd outputs (their fast scan runs
+    right to left; common practice for multi-output arrays)."""
+    full = _noise(offset=0.0, own=0.0).window(0, 256, 0, 512)
+    w = LAYOUT.width
+    np.testing.assert_allclose(full[:, :w], full[:, 2 * w - 1:w - 1:-1], rtol=1e-6)
+    np.testing.assert_allclose(full[:, :w], full[:, 2 * w:3 * w], rtol=1e-6)
+
+
+@pytest.mark.parametrize("pink, limit", [(False, 0.02), (True, 0.2)])
+def test_reference_pixels_remove_the_channel_offsets(pink, limit):
+    """The reference-pixel step takes the per-output offsets (10 e- rms) out: the outputs' mean
+    levels fall to the noise of the estimate (white noise of 2 x 4 reference rows: ~0.1 e-),
+    and with 1/f noise on to what each output's own slow 1/f wander leaves (the residual the
+    correction cannot remove, < 20% of the offsets)."""
+    rng = np.random.default_rng(5)
+    noise = _noise(offset=10.0, common=2.0 if pink else 0.0, own=1.5 if pink else 0.0)
+    white = lambda y0, y1, x0, x1: 8.5 * rng.standard_normal((y1 - y0, x1 - x0))  # noqa: E731
+    raw = noise.window(0, 256, 0, 512)
+    corr = raw - RefCorrection(noise, white, 4, 8).window(0, 256, 0, 512)
+    w = LAYOUT.width
+    before = np.array([raw[4:-4, c * w:(c + 1) * w].mean() for c in range(4)])
+    after = np.array([corr[4:-4, c * w:(c + 1) * w].mean() for c in range(4)])
+    assert np.sqrt(np.mean(before ** 2)) > 3.0
+    assert np.sqrt(np.mean(after ** 2)) < limit * np.sqrt(np.mean(before ** 2))
+
+
+def test_switches_are_validated():
+    """Bad readout settings are refused naming the key (ConfigError)."""
+    with pytest.raises(ConfigError, match="n_channels"):
+        make_scenario("detector.n_channels=0")
+    with pytest.raises(ConfigError, match="reference_pixels"):
+        make_scenario("detector.reference_pixels=0")
+    with pytest.raises(ConfigError, match="pink_common_e"):
+        make_scenario("detector.pink_common_e=-1")
