@@ -473,8 +473,9 @@ def _crop_mosaic(m, cut):
     from .survey import Mosaic
 
     art = None if m.artefact is None else np.ascontiguousarray(m.artefact[cut])
+    stripes = None if m.stripes is None else np.ascontiguousarray(m.stripes[cut])
     return Mosaic(*(np.ascontiguousarray(getattr(m, k)[cut]) for k in ("sci", "wht", "exp", "dq")),
-                  artefact=art)
+                  artefact=art, stripes=stripes)
 
 
 #: Truth artefact bit: a cosmic-ray deposit too faint to be found left more than
@@ -483,6 +484,11 @@ ARTEFACT_COSMIC = 1
 #: Truth artefact bit: saturated in some exposure (the mosaic's saturated flag).
 ARTEFACT_SATURATED = 2
 ARTEFACT_NSIGMA = 1.0
+#: Truth artefact bit: the correlated read noise left by the reference-pixel correction,
+#: averaged over ``STRIPE_BOX`` x ``STRIPE_BOX`` mosaic pixels (about a faint source's
+#: footprint), exceeds ``ARTEFACT_NSIGMA`` times the noise of such an average without it.
+ARTEFACT_STRIPE = 4
+STRIPE_BOX = 5
 
 
 def _artefact_map(mosaic, saturated_bit: int) -> np.ndarray:
@@ -494,6 +500,13 @@ def _artefact_map(mosaic, saturated_bit: int) -> np.ndarray:
         cr = np.abs(mosaic.artefact) > ARTEFACT_NSIGMA * sigma
         art[ndimage.binary_dilation(cr)] |= ARTEFACT_COSMIC
     art[(mosaic.dq & saturated_bit) != 0] |= ARTEFACT_SATURATED
+    if mosaic.stripes is not None:
+        # noise of a box mean without the stripes: pixel sigma / box side (the drizzle's own
+        # correlation raises it a little; a threshold, not a statement)
+        var = np.where(mosaic.wht > 0, 1.0 / np.where(mosaic.wht > 0, mosaic.wht, 1), 1e30)
+        mean_s = ndimage.uniform_filter(mosaic.stripes, STRIPE_BOX, mode="constant")
+        sig_box = np.sqrt(ndimage.uniform_filter(var, STRIPE_BOX, mode="constant")) / STRIPE_BOX
+        art[np.abs(mean_s) > ARTEFACT_NSIGMA * sig_box] |= ARTEFACT_STRIPE
     return art
 
 
@@ -642,7 +655,9 @@ def _image_files(out: Path, sc: Scenario, bands: list[Band], mgrid: Grid, egrids
     t_total = srv.exposure_time_s * srv.n_exposures
     dq_cards = survey.flag_header_cards("mosaic")
     art_cards = [("ARTCOSMI", ARTEFACT_COSMIC, f"cosmic-ray residual > {ARTEFACT_NSIGMA:g} "
-                  "sigma (+1 pix)"), ("ARTSATUR", ARTEFACT_SATURATED, "saturated in an exposure")]
+                  "sigma (+1 pix)"), ("ARTSATUR", ARTEFACT_SATURATED, "saturated in an exposure"),
+                 ("ARTSTRIP", ARTEFACT_STRIPE, f"1/f stripe residual, {STRIPE_BOX}-pix box > "
+                  f"{ARTEFACT_NSIGMA:g} sigma")]
     seg_note = ("SEGDEF", "id of the source contributing most light above SEGTHR", "")
 
     def hdr(grid: Grid, bunit: str, cards=()):

@@ -95,4 +95,4 @@ def apply_readout(e, ro: ExposureReadout, box: tuple):
     var_sky = np.array(e.var_sky, np.float32) + v
     ref = reference_mask(ro.noise.layout.shape, ro.n_ref, y0, y1, x0, x1)
     var_sky[ref] = 0.0
-    return dataclasses.replace(e, sci=e.sci + res, var=e.var + v, var_sky=var_sky)
+    return dataclasses.replace(e, sci=e.sci + res, var=e.var + v, var_sky=var_sky, stripes=res)
