@@ -163,6 +163,8 @@ class Exposure:
     stripes : ndarray (e-/s per pixel) or None
         The part of ``sci`` left by correlated read noise after the reference-pixel
         correction (set by :mod:`simfield.readout`; None without it): truth for the scoring.
+    persistence : ndarray (e-/s per pixel) or None
+        Persistence current from earlier exposures in ``sci`` (:mod:`simfield.readout`).
     """
 
     sci: np.ndarray
@@ -174,6 +176,7 @@ class Exposure:
     n_cr: int
     artefact: np.ndarray | None = None
     stripes: np.ndarray | None = None
+    persistence: np.ndarray | None = None
 
 
 def make_fixed_pattern(shape: tuple[int, int], det: DetectorConfig,

@@ -196,6 +196,8 @@ def run_scenario(sc: Scenario, out_dir: str | Path, progress: bool = False) -> R
     ctx = _TileContext(sc=sc, bands=bands, sources=sources, lens=lens, sgrid=sgrid,
                        mgrid=mgrid, egrids=egrids, tiles=tiles, psf_core=psf_core,
                        psf_wide=psf_wide, rates=rates, bright=bright, files={})
+    if sc.detector.persistence:
+        ctx.stimuli = _persistence_stimuli(sc, bands, sources, egrids, psf_core, rates)
     with timer("tiles"), section_files(_image_files(out, sc, bands, mgrid, egrids, noise),
                                        prov) as sfiles:
         ctx.files = {f.final.name: f for f in sfiles}
@@ -295,6 +297,7 @@ class _TileContext:
     rates: dict  #: band -> e-/s per source row
     bright: dict  #: band -> bool per source row, drawn with the large PSF
     files: dict  #: file name -> simfield.io.SectionFile being written
+    stimuli: list = field(default_factory=list)  #: persistence stimuli (simfield.readout)
 
 
 _CTX: _TileContext | None = None  # set in the parent before forking tile workers
@@ -409,6 +412,8 @@ def _render_tile(ctx: _TileContext, i: int) -> dict:
                     if sc.detector.correlated_noise:
                         e = _correlated_readout(sc, b.name, k, ctx.egrids[k].shape, e,
                                                 tile.exposures[k])
+                    if sc.detector.persistence:
+                        e = _persistence(sc, ctx, b, k, e, tile.exposures[k])
                     if srv.write_exposures:
                         _write_exposure_section(ctx.files[f"exp_{b.name}_{k:02d}.fits"],
                                                 e, tile, k, mgrid)
@@ -469,13 +474,66 @@ def _correlated_readout(sc: Scenario, band: str, k: int, shape, e, box):
     return apply_readout(e, _readout(sc, band, k, shape), box)
 
 
+def _exposure_order(sc: Scenario, bands: list, b, k: int) -> int:
+    """Index of exposure ``k`` of band ``b`` in time order: band after band, dither order."""
+    return [x.name for x in bands].index(b.name) * sc.survey.n_exposures + k
+
+
+def _ramp_duration(sc: Scenario) -> float:
+    """Ramp duration n_groups t_g (s) of an exposure of slope baseline exposure_time_s."""
+    det = sc.detector
+    return sc.survey.exposure_time_s * det.n_groups / (det.n_groups - 1)
+
+
+#: Half side (detector pixels) of the PSF stamp followed for persistence around a source.
+PERSISTENCE_HALF = 5
+
+
+def _persistence_stimuli(sc: Scenario, bands: list, sources: Table, egrids: list, psf_core,
+                         rates) -> list:
+    """Bright point sources of every exposure whose peak fluence exceeds the onset
+    (:func:`simfield.readout.find_stimuli`), with the band's PSF integrated over detector
+    pixels (:func:`simfield.optics.psf.effective_psf`, sampled at detector pixel centres)."""
+    from .optics.psf import effective_psf
+    from .readout import find_stimuli
+
+    tel, det = sc.telescope, sc.detector
+    point = np.isin(np.asarray(sources["kind"]).astype(str), POINT_KINDS)
+    xs = np.asarray(sources["x_arcsec"], float)[point]
+    ys = np.asarray(sources["y_arcsec"], float)[point]
+    out = []
+    for b in bands:
+        eff = effective_psf(psf_core[b.name], tel.pixel_scale_arcsec)
+        os_ = int(round(tel.pixel_scale_arcsec / eff.scale_arcsec))
+        c, h = eff.image.shape[0] // 2, PERSISTENCE_HALF
+        stamp = eff.image[c - h * os_:c + h * os_ + 1:os_, c - h * os_:c + h * os_ + 1:os_]
+        stamp = np.asarray(stamp, float) * os_ * os_  # fraction of the flux per detector pixel
+        for k, g in enumerate(egrids):
+            x, y = g.offsets_to_pixel(xs, ys)
+            out += find_stimuli(_exposure_order(sc, bands, b, k), x, y,
+                                np.asarray(rates[b.name], float)[point], stamp,
+                                _ramp_duration(sc), det.persistence_onset_e, det.full_well_e)
+    return out
+
+
+def _persistence(sc: Scenario, ctx, b, k: int, e, box):
+    from .readout import apply_persistence, persistence_window
+
+    det = sc.detector
+    ghost = persistence_window(ctx.stimuli, _exposure_order(sc, ctx.bands, b, k),
+                               _ramp_duration(sc), det.exposure_gap_s,
+                               det.persistence_fractions, det.persistence_tau_s, box)
+    return apply_persistence(e, ghost, det.persistence_flagged)
+
+
 def _crop_mosaic(m, cut):
     from .survey import Mosaic
 
     art = None if m.artefact is None else np.ascontiguousarray(m.artefact[cut])
     stripes = None if m.stripes is None else np.ascontiguousarray(m.stripes[cut])
+    pers = None if m.persistence is None else np.ascontiguousarray(m.persistence[cut])
     return Mosaic(*(np.ascontiguousarray(getattr(m, k)[cut]) for k in ("sci", "wht", "exp", "dq")),
-                  artefact=art, stripes=stripes)
+                  artefact=art, stripes=stripes, persistence=pers)
 
 
 #: Truth artefact bit: a cosmic-ray deposit too faint to be found left more than
@@ -489,6 +547,9 @@ ARTEFACT_NSIGMA = 1.0
 #: footprint), exceeds ``ARTEFACT_NSIGMA`` times the noise of such an average without it.
 ARTEFACT_STRIPE = 4
 STRIPE_BOX = 5
+#: Truth artefact bit: persistence from an earlier exposure left more than ``ARTEFACT_NSIGMA``
+#: times the pixel noise in the mosaic (or a neighbouring pixel).
+ARTEFACT_PERSIST = 8
 
 
 def _artefact_map(mosaic, saturated_bit: int) -> np.ndarray:
@@ -500,12 +561,18 @@ def _artefact_map(mosaic, saturated_bit: int) -> np.ndarray:
         cr = np.abs(mosaic.artefact) > ARTEFACT_NSIGMA * sigma
         art[ndimage.binary_dilation(cr)] |= ARTEFACT_COSMIC
     art[(mosaic.dq & saturated_bit) != 0] |= ARTEFACT_SATURATED
+    if mosaic.persistence is not None:
+        sigma = np.where(mosaic.wht > 0, 1.0 / np.sqrt(np.where(mosaic.wht > 0, mosaic.wht, 1)),
+                         np.inf)
+        ghost = mosaic.persistence > ARTEFACT_NSIGMA * sigma
+        art[ndimage.binary_dilation(ghost)] |= ARTEFACT_PERSIST
     if mosaic.stripes is not None:
         # noise of a box mean without the stripes: pixel sigma / box side (the drizzle's own
         # correlation raises it a little; a threshold, not a statement)
         var = np.where(mosaic.wht > 0, 1.0 / np.where(mosaic.wht > 0, mosaic.wht, 1), 1e30)
         mean_s = ndimage.uniform_filter(mosaic.stripes, STRIPE_BOX, mode="constant")
-        sig_box = np.sqrt(ndimage.uniform_filter(var, STRIPE_BOX, mode="constant")) / STRIPE_BOX
+        sig_box = np.sqrt(np.maximum(ndimage.uniform_filter(var, STRIPE_BOX, mode="constant"),
+                                     0.0)) / STRIPE_BOX
         art[np.abs(mean_s) > ARTEFACT_NSIGMA * sig_box] |= ARTEFACT_STRIPE
     return art
 
@@ -657,7 +724,8 @@ def _image_files(out: Path, sc: Scenario, bands: list[Band], mgrid: Grid, egrids
     art_cards = [("ARTCOSMI", ARTEFACT_COSMIC, f"cosmic-ray residual > {ARTEFACT_NSIGMA:g} "
                   "sigma (+1 pix)"), ("ARTSATUR", ARTEFACT_SATURATED, "saturated in an exposure"),
                  ("ARTSTRIP", ARTEFACT_STRIPE, f"1/f stripe residual, {STRIPE_BOX}-pix box > "
-                  f"{ARTEFACT_NSIGMA:g} sigma")]
+                  f"{ARTEFACT_NSIGMA:g} sigma"),
+                 ("ARTPERSI", ARTEFACT_PERSIST, f"persistence > {ARTEFACT_NSIGMA:g} sigma (+1 pix)")]
     seg_note = ("SEGDEF", "id of the source contributing most light above SEGTHR", "")
 
     def hdr(grid: Grid, bunit: str, cards=()):

@@ -97,3 +97,58 @@ def test_switches_are_validated():
         make_scenario("detector.reference_pixels=0")
     with pytest.raises(ConfigError, match="pink_common_e"):
         make_scenario("detector.pink_common_e=-1")
+
+
+def test_persistence_ghosts_of_earlier_bright_stars_are_scored(tmp_path):
+    """A run with persistence on: where a bright star fell on the detector in the first
+    exposure, the second exposure (same detector pixels, 3" further along the dither) shows a
+    ghost in the mosaic, the truth's ARTEFACT map marks it (ARTPERSI), and the scorer names
+    the false detections there 'persistence'. Release law: sum of exponentials (module
+    docstring; demo amplitudes)."""
+    from astropy.io import fits
+    from astropy.table import Table
+
+    from simfield.pipeline import run_scenario
+    from simfield.random import stream
+    from simfield.survey import exposure_grids
+
+    sc = make_scenario("survey=quick", "survey.width_arcsec=10", "survey.height_arcsec=10",
+                       "survey.n_exposures=2", "survey.dither_step_arcsec=3", "workers=1",
+                       "population.star_density_arcmin2=120", "population.star_mag_min=17",
+                       "population.star_mag_max=18.5", "photometry.enabled=false",
+                       "photoz.enabled=false", "selection=none", "score.report=false",
+                       "telescope.psf.spike_radius_arcsec=2.0",
+                       "telescope.psf.core_radius_arcsec=1.0",
+                       f"telescope.psf.cache_dir={tmp_path / 'psf'}")
+    sc.telescope.bands = [b for b in sc.telescope.bands if b.name == "b36"]
+    sc.detection.bands = ["b36"]
+    run = tmp_path / "run"
+    run_scenario(sc, run)
+    truth = Table.read(run / "truth.fits", hdu="SOURCES")
+    stars = truth[(truth["kind"] == "star") & (truth["mag_b36"] < 18.5)]
+    assert len(stars) >= 1
+    g0, g1 = exposure_grids(sc.survey, sc.telescope, stream(sc.seed, "dither"))
+    with fits.open(run / "mosaic_b36.fits") as m, fits.open(run / "truth_image_b36.fits") as t:
+        wcs_grid = None  # the mosaic pixel of a tangent-plane offset, from the header WCS
+        from astropy.wcs import WCS
+        wcs_grid = WCS(m["IMAGE"].header)
+        diff = m["IMAGE"].data - t["IMAGE"].data
+        sig = 1 / np.sqrt(np.where(m["INVVAR"].data > 0, m["INVVAR"].data, np.inf))
+        art = t["ARTEFACT"].data
+        bit = t["ARTEFACT"].header["ARTPERSI"]
+    seen = 0
+    for s in stars:
+        # the star's detector pixel in exposure 0, seen on the sky in exposure 1
+        px, py = g0.offsets_to_pixel(float(s["x_arcsec"]), float(s["y_arcsec"]))
+        xi, eta = g1.pixel_to_offsets(np.floor(px + 0.5), np.floor(py + 0.5))
+        ra, dec = g1.offsets_to_sky(xi, eta)
+        mx, my = (int(round(float(v))) for v in wcs_grid.celestial.all_world2pix(ra, dec, 0))
+        if not (2 <= mx < diff.shape[1] - 2 and 2 <= my < diff.shape[0] - 2):
+            continue
+        box = (slice(my - 1, my + 2), slice(mx - 1, mx + 2))
+        seen += 1
+        assert (art[box] & bit).any()
+        assert diff[box].sum() > 5 * np.sqrt((sig[box] ** 2).sum())
+    assert seen >= 1
+    fd = Table.read(run / "score" / "b36" / "false_detections.ecsv")
+    assert "persistence" in set(np.asarray(fd["cause"]).astype(str))

@@ -305,7 +305,7 @@ def classify_false_detections(det_x, det_y, det_truth, img_x, img_y, img_source,
     dx_ = np.asarray(det_x, float)
     dy_ = np.asarray(det_y, float)
     un = np.asarray(det_truth) < 0
-    cause = np.full(dx_.size, "", dtype="<U8")
+    cause = np.full(dx_.size, "", dtype="<U11")
     cause[un] = "noise"
     idx = np.flatnonzero(un)
     if idx.size == 0:

@@ -86,6 +86,7 @@ class Mosaic:
     dq: np.ndarray
     artefact: np.ndarray | None = None
     stripes: np.ndarray | None = None  #: the exposures' ``stripes`` combined like ``artefact``
+    persistence: np.ndarray | None = None  #: the exposures' ``persistence``, likewise
 
 
 def _pixmap(src: Grid, dst: Grid) -> np.ndarray:
@@ -179,7 +180,7 @@ def drizzle_mosaic(exposures, exp_grids: list[Grid], mosaic_grid: Grid, kernel: 
     dq = flags.flags(covered)
     sci[~covered] = 0.0
     return Mosaic(sci=sci, wht=wht, exp=exp, dq=dq, artefact=flags.artefact(),
-                  stripes=flags.artefact("stripes"))
+                  stripes=flags.artefact("stripes"), persistence=flags.artefact("persist"))
 
 
 class _FlagCounter:
@@ -196,6 +197,7 @@ class _FlagCounter:
         self.n_cr = np.zeros(shape, np.int16)
         self.art = None
         self.stripes = None
+        self.persist = None
         self.wsum = np.zeros(shape, np.float32)
 
     def add(self, e, g: Grid, w: np.ndarray, iscale: float) -> None:
@@ -214,7 +216,8 @@ class _FlagCounter:
         self.n_sat += (dq & DQ_SATURATED) != 0  # with or without a slope left
         self.n_cr += good & ((dq & DQ_COSMIC_RAY) != 0)
         self.wsum += np.where(good, wk, 0.0)
-        for name, attr in (("art", "artefact"), ("stripes", "stripes")):
+        for name, attr in (("art", "artefact"), ("stripes", "stripes"),
+                           ("persist", "persistence")):
             art = getattr(e, attr, None)
             if art is not None:
                 if getattr(self, name) is None:
