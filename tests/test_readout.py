@@ -13,6 +13,12 @@ from tests.conftest import make_scenario
 LAYOUT = ReadoutLayout((256, 512), 4, 12, 10e-6)
 
 
+@pytest.fixture(scope="module")
+def psf_cache(tmp_path_factory):
+    """One PSF cache for the runs below (band b36, the same PSF radii): built once."""
+    return tmp_path_factory.mktemp("psf")
+
+
 def _bands(f, p, model, lo, hi, n=8):
     edges = np.geomspace(lo, hi, n + 1)
     out = []
@@ -99,7 +105,7 @@ def test_switches_are_validated():
         make_scenario("detector.pink_common_e=-1")
 
 
-def test_persistence_ghosts_of_earlier_bright_stars_are_scored(tmp_path):
+def test_persistence_ghosts_of_earlier_bright_stars_are_scored(tmp_path, psf_cache):
     """A run with persistence on: where a bright star fell on the detector in the first
     exposure, the second exposure (same detector pixels, 3" further along the dither) shows a
     ghost in the mosaic, the truth's ARTEFACT map marks it (ARTPERSI), and the scorer names
@@ -119,7 +125,7 @@ def test_persistence_ghosts_of_earlier_bright_stars_are_scored(tmp_path):
                        "photoz.enabled=false", "selection=none", "score.report=false",
                        "telescope.psf.spike_radius_arcsec=2.0",
                        "telescope.psf.core_radius_arcsec=1.0",
-                       f"telescope.psf.cache_dir={tmp_path / 'psf'}")
+                       f"telescope.psf.cache_dir={psf_cache}")
     sc.telescope.bands = [b for b in sc.telescope.bands if b.name == "b36"]
     sc.detection.bands = ["b36"]
     run = tmp_path / "run"
@@ -152,3 +158,66 @@ def test_persistence_ghosts_of_earlier_bright_stars_are_scored(tmp_path):
     assert seen >= 1
     fd = Table.read(run / "score" / "b36" / "false_detections.ecsv")
     assert "persistence" in set(np.asarray(fd["cause"]).astype(str))
+
+
+def test_persistence_release_is_the_sum_of_exponentials():
+    """The current in a later exposure is the analytic integral of E sum f_i / tau_i
+    exp(-t / tau_i) over its ramp, divided by the ramp time (checked against scipy.integrate
+    quad), at the stimulus's own detector pixels only."""
+    from scipy.integrate import quad
+
+    from simfield.readout import Stimulus, persistence_window
+
+    exc = np.zeros((3, 3), np.float32)
+    exc[1, 1] = 5e4
+    st = [Stimulus(seq=0, y0=9, x0=19, excess=exc)]
+    f, tau, t_exp, gap = [0.002, 0.001], [300.0, 3000.0], 1143.0, 60.0
+    img = persistence_window(st, 2, t_exp, gap, f, tau, (0, 40, 0, 40))
+    t_a = t_exp + 2 * gap  # exposure 2 starts one exposure and two gaps after 0 ends
+    q = quad(lambda t: 5e4 * sum(fi / ti * np.exp(-t / ti) for fi, ti in zip(f, tau)),
+             t_a, t_a + t_exp)[0]
+    assert img[10, 20] == pytest.approx(q / t_exp, rel=1e-5)
+    assert np.count_nonzero(img) == 1
+    assert not persistence_window(st, 0, t_exp, gap, f, tau, (0, 40, 0, 40)).any()
+
+
+def test_flagged_persistence_is_left_out():
+    """With persistence_flagged the ghost's pixels get DQ_PERSISTENCE and zero weight
+    (var_sky = 0, the drizzle's rule for pixels the reduction knows are bad)."""
+    from simfield.detector import Exposure
+    from simfield.readout import DQ_PERSISTENCE, apply_persistence
+
+    z = np.zeros((4, 4), np.float32)
+    e = Exposure(sci=z.copy(), var=z + 1, var_sky=z + 1, dq=np.zeros((4, 4), np.int32),
+                 exptime=1.0, sky=0.0, n_cr=0)
+    ghost = z.copy()
+    ghost[2, 1] = 0.3
+    for flagged in (False, True):
+        out = apply_persistence(e, ghost, flagged)
+        assert out.sci[2, 1] == pytest.approx(0.3)
+        assert bool(out.dq[2, 1] & DQ_PERSISTENCE) == flagged
+        assert (out.var_sky[2, 1] == 0) == flagged
+        assert out.var_sky[0, 0] == 1 and out.dq[0, 0] == 0
+
+
+def test_switched_off_the_exposures_are_todays(tmp_path, monkeypatch, psf_cache):
+    """With correlated_noise and persistence off the readout package is never called, so the
+    exposures are exactly the white-noise ones of simfield.detector."""
+    import simfield.readout as ro
+    from simfield.pipeline import run_scenario
+
+    def boom(*a, **k):
+        raise AssertionError("readout called with its switches off")
+
+    for name in ("apply_readout", "readout_for", "apply_persistence", "find_stimuli"):
+        monkeypatch.setattr(ro, name, boom)
+    sc = make_scenario("survey=quick", "survey.width_arcsec=4", "survey.height_arcsec=4",
+                       "detector.correlated_noise=false", "detector.persistence=false",
+                       "detection.enabled=false", "score.enabled=false", "workers=1",
+                       "telescope.psf.spike_radius_arcsec=2.0",
+                       "telescope.psf.core_radius_arcsec=1.0",
+                       f"telescope.psf.cache_dir={psf_cache}")
+    sc.telescope.bands = [b for b in sc.telescope.bands if b.name == "b36"]
+    sc.detection.bands = ["b36"]
+    run_scenario(sc, tmp_path / "run")
+    assert (tmp_path / "run" / "mosaic_b36.fits").exists()
