@@ -268,6 +268,26 @@ class DetectorConfig:
     cosmic_rays: bool = True
     saturation: bool = True
     quantize: bool = True  #: integer ADU readout
+    #: correlated read noise (simfield.readout): 1/f noise common to the outputs and of each
+    #: output, per-output offsets, reference pixels; off: white read noise only
+    correlated_noise: bool = True
+    n_channels: int = 4  #: outputs, each reading a vertical strip of the detector
+    pixel_time_us: float = 10.0  #: time to read one pixel (us)
+    row_overhead_pix: int = 12  #: line overhead after each row (pixel times)
+    pink_common_e: float = 2.0  #: rms of the 1/f noise common to all outputs (e- per frame)
+    pink_channel_e: float = 1.5  #: rms of each output's own 1/f noise (e- per frame)
+    channel_offset_e: float = 10.0  #: rms of the per-output offsets (e- per frame)
+    reference_pixels: int = 4  #: reference-pixel border on every side (pixels, no light)
+    refpix_correction: bool = True  #: subtract offsets and row common mode from reference pixels
+    refpix_half_rows: int = 8  #: common mode: running mean over 2 x this + 1 rows
+    #: persistence (simfield.readout.persistence): charge trapped by bright point sources
+    #: released into later exposures at the same detector pixels
+    persistence: bool = True
+    persistence_flagged: bool = False  #: the reduction knows and flags (leaves out) them
+    persistence_onset_e: float = 20000.0  #: fluence above which charge is trapped (e-)
+    persistence_fractions: list[float] = field(default_factory=lambda: [0.002, 0.001])
+    persistence_tau_s: list[float] = field(default_factory=lambda: [300.0, 3000.0])
+    exposure_gap_s: float = 60.0  #: time between the end of an exposure and the next (s)
 
 
 @dataclass
@@ -708,6 +728,28 @@ def _validate_detector(d: DetectorConfig) -> None:
     check_range("detector.cosmic_ray_charge_e", d.cosmic_ray_charge_e, 0, 1e7)
     check_range("detector.jump_threshold_sigma", d.jump_threshold_sigma, 0, 1000, lo_open=True)
     check_range("detector.dark_cal_ramps", d.dark_cal_ramps, 0, 10000)
+    check_range("detector.n_channels", d.n_channels, 1, 64)
+    require(isinstance(d.n_channels, int), "detector.n_channels", d.n_channels,
+            "must be a whole number")
+    check_range("detector.pixel_time_us", d.pixel_time_us, 0, 1e4, lo_open=True)
+    check_range("detector.row_overhead_pix", d.row_overhead_pix, 0, 10000)
+    check_range("detector.pink_common_e", d.pink_common_e, 0, 1000)
+    check_range("detector.pink_channel_e", d.pink_channel_e, 0, 1000)
+    check_range("detector.channel_offset_e", d.channel_offset_e, 0, 1e5)
+    check_range("detector.reference_pixels", d.reference_pixels, 0, 64)
+    check_range("detector.refpix_half_rows", d.refpix_half_rows, 0, 10000)
+    check_range("detector.persistence_onset_e", d.persistence_onset_e, 0, 1e7, lo_open=True)
+    check_range("detector.exposure_gap_s", d.exposure_gap_s, 0, 1e6)
+    fr, ta = list(d.persistence_fractions), list(d.persistence_tau_s)
+    require(len(fr) == len(ta) and len(fr) >= 1, "detector.persistence_fractions", fr,
+            f"must be a non-empty list as long as detector.persistence_tau_s ({len(ta)})")
+    for i, v in enumerate(fr):
+        check_range(f"detector.persistence_fractions[{i}]", v, 0, 1)
+    for i, v in enumerate(ta):
+        check_range(f"detector.persistence_tau_s[{i}]", v, 0, 1e7, lo_open=True)
+    require(not (d.correlated_noise and d.refpix_correction) or d.reference_pixels >= 1,
+            "detector.reference_pixels", d.reference_pixels,
+            "must be >= 1 when detector.refpix_correction is on (the correction reads them)")
 
 
 def _validate_survey(s: SurveyConfig) -> None:

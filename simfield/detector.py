@@ -160,6 +160,11 @@ class Exposure:
         Mean sky level in ``sci`` (for sky subtraction).
     n_cr : int
         Cosmic-ray events during the ramp.
+    stripes : ndarray (e-/s per pixel) or None
+        The part of ``sci`` left by correlated read noise after the reference-pixel
+        correction (set by :mod:`simfield.readout`; None without it): truth for the scoring.
+    persistence : ndarray (e-/s per pixel) or None
+        Persistence current from earlier exposures in ``sci`` (:mod:`simfield.readout`).
     """
 
     sci: np.ndarray
@@ -170,6 +175,8 @@ class Exposure:
     sky: float
     n_cr: int
     artefact: np.ndarray | None = None
+    stripes: np.ndarray | None = None
+    persistence: np.ndarray | None = None
 
 
 def make_fixed_pattern(shape: tuple[int, int], det: DetectorConfig,

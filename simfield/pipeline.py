@@ -204,7 +204,10 @@ def run_scenario(sc: Scenario, out_dir: str | Path, progress: bool = False) -> R
         bright[b.name] = (mag - 2.5 * np.log10(mu)) < tel.psf.bright_mag
     ctx = _TileContext(sc=sc, bands=bands, sources=sources, lens=lens, sgrid=sgrid,
                        mgrid=mgrid, egrids=egrids, tiles=tiles, psf_core=psf_core,
-                       psf_wide=psf_wide, rates=rates, bright=bright, files={}, field=fields)
+                       psf_wide=psf_wide, rates=rates, bright=bright, files={},
+                       field_psfs=fields)
+    if sc.detector.persistence:
+        ctx.stimuli = _persistence_stimuli(sc, bands, sources, egrids, psf_core, rates)
     with timer("tiles"), section_files(_image_files(out, sc, bands, mgrid, egrids, noise),
                                        prov) as sfiles:
         ctx.files = {f.final.name: f for f in sfiles}
@@ -304,7 +307,8 @@ class _TileContext:
     rates: dict  #: band -> e-/s per source row
     bright: dict  #: band -> bool per source row, drawn with the large PSF
     files: dict  #: file name -> simfield.io.SectionFile being written
-    field: dict = None  #: band -> optics.field.FieldPSF (field-dependent PSF), if enabled
+    stimuli: list = field(default_factory=list)  #: persistence stimuli (simfield.readout)
+    field_psfs: dict = None  #: band -> optics.field.FieldPSF (field-dependent PSF), if enabled
 
 
 _CTX: _TileContext | None = None  # set in the parent before forking tile workers
@@ -383,7 +387,7 @@ def _render_tile(ctx: _TileContext, i: int) -> dict:
             core = ctx.psf_core[b.name].image
             acc = accumulate(stamps, rate, (acc_box[1] - acc_box[0], acc_box[3] - acc_box[2]),
                              select=~brt, origin=(acc_box[0], acc_box[2]))
-            fm = (ctx.field or {}).get(b.name)
+            fm = (ctx.field_psfs or {}).get(b.name)
             if fm is None:
                 conv = convolve_tiled(acc, core)
             else:  # each source pixel spread by the PSF of its field position
@@ -426,6 +430,11 @@ def _render_tile(ctx: _TileContext, i: int) -> dict:
                     e = expose(r, sky, None, sc.detector, srv.exposure_time_s,
                                tel.pixel_size_um, noise, fixed[k])
                     del r
+                    if sc.detector.correlated_noise:
+                        e = _correlated_readout(sc, b.name, k, ctx.egrids[k].shape, e,
+                                                tile.exposures[k])
+                    if sc.detector.persistence:
+                        e = _persistence(sc, ctx, b, k, e, tile.exposures[k])
                     if srv.write_exposures:
                         _write_exposure_section(ctx.files[f"exp_{b.name}_{k:02d}.fits"],
                                                 e, tile, k, mgrid)
@@ -457,12 +466,95 @@ def _render_tile(ctx: _TileContext, i: int) -> dict:
     return {"timings": timings}
 
 
+def _readout(sc: Scenario, band: str, k: int, shape, white=None):
+    """Correlated read noise and reference-pixel correction of exposure ``k`` of ``band``
+    (:mod:`simfield.readout`), with the detector's own white frame read noise at the
+    reference pixels (the same pixel-tied deviates :func:`detector.expose` draws)."""
+    from .config import frame_read_noise_e
+    from .detector import PixelNoise, frame_time, slope_variance_factors
+    from .readout import readout_for
+
+    det = sc.detector
+    a_full, _ = slope_variance_factors(det.n_groups, det.n_frames,
+                                       frame_time(det, sc.survey.exposure_time_s))
+    sig_f = np.sqrt(frame_read_noise_e(det) ** 2
+                    + (det.gain_e_adu ** 2 / 12.0 if det.quantize else 0.0))
+
+    def pixel_white(y0, y1, x0, x1):
+        z = PixelNoise(sc.seed, ("exposure", band, k), y0, x0, (y1 - y0, x1 - x0)).normal("read")
+        return z.astype(float)
+
+    unit = pixel_white if white is None else white
+    return readout_for(det, shape, sc.seed, band, k, float(np.sqrt(a_full)),
+                       lambda *box: sig_f * unit(*box))
+
+
+def _correlated_readout(sc: Scenario, band: str, k: int, shape, e, box):
+    from .readout import apply_readout
+
+    return apply_readout(e, _readout(sc, band, k, shape), box)
+
+
+def _exposure_order(sc: Scenario, bands: list, b, k: int) -> int:
+    """Index of exposure ``k`` of band ``b`` in time order: band after band, dither order."""
+    return [x.name for x in bands].index(b.name) * sc.survey.n_exposures + k
+
+
+def _ramp_duration(sc: Scenario) -> float:
+    """Ramp duration n_groups t_g (s) of an exposure of slope baseline exposure_time_s."""
+    det = sc.detector
+    return sc.survey.exposure_time_s * det.n_groups / (det.n_groups - 1)
+
+
+#: Half side (detector pixels) of the PSF stamp followed for persistence around a source.
+PERSISTENCE_HALF = 5
+
+
+def _persistence_stimuli(sc: Scenario, bands: list, sources: Table, egrids: list, psf_core,
+                         rates) -> list:
+    """Bright point sources of every exposure whose peak fluence exceeds the onset
+    (:func:`simfield.readout.find_stimuli`), with the band's PSF integrated over detector
+    pixels (:func:`simfield.optics.psf.effective_psf`, sampled at detector pixel centres)."""
+    from .optics.psf import effective_psf
+    from .readout import find_stimuli
+
+    tel, det = sc.telescope, sc.detector
+    point = np.isin(np.asarray(sources["kind"]).astype(str), POINT_KINDS)
+    xs = np.asarray(sources["x_arcsec"], float)[point]
+    ys = np.asarray(sources["y_arcsec"], float)[point]
+    out = []
+    for b in bands:
+        eff = effective_psf(psf_core[b.name], tel.pixel_scale_arcsec)
+        os_ = int(round(tel.pixel_scale_arcsec / eff.scale_arcsec))
+        c, h = eff.image.shape[0] // 2, PERSISTENCE_HALF
+        stamp = eff.image[c - h * os_:c + h * os_ + 1:os_, c - h * os_:c + h * os_ + 1:os_]
+        stamp = np.asarray(stamp, float) * os_ * os_  # fraction of the flux per detector pixel
+        for k, g in enumerate(egrids):
+            x, y = g.offsets_to_pixel(xs, ys)
+            out += find_stimuli(_exposure_order(sc, bands, b, k), x, y,
+                                np.asarray(rates[b.name], float)[point], stamp,
+                                _ramp_duration(sc), det.persistence_onset_e, det.full_well_e)
+    return out
+
+
+def _persistence(sc: Scenario, ctx, b, k: int, e, box):
+    from .readout import apply_persistence, persistence_window
+
+    det = sc.detector
+    ghost = persistence_window(ctx.stimuli, _exposure_order(sc, ctx.bands, b, k),
+                               _ramp_duration(sc), det.exposure_gap_s,
+                               det.persistence_fractions, det.persistence_tau_s, box)
+    return apply_persistence(e, ghost, det.persistence_flagged)
+
+
 def _crop_mosaic(m, cut):
     from .survey import Mosaic
 
     art = None if m.artefact is None else np.ascontiguousarray(m.artefact[cut])
+    stripes = None if m.stripes is None else np.ascontiguousarray(m.stripes[cut])
+    pers = None if m.persistence is None else np.ascontiguousarray(m.persistence[cut])
     return Mosaic(*(np.ascontiguousarray(getattr(m, k)[cut]) for k in ("sci", "wht", "exp", "dq")),
-                  artefact=art)
+                  artefact=art, stripes=stripes, persistence=pers)
 
 
 #: Truth artefact bit: a cosmic-ray deposit too faint to be found left more than
@@ -471,6 +563,14 @@ ARTEFACT_COSMIC = 1
 #: Truth artefact bit: saturated in some exposure (the mosaic's saturated flag).
 ARTEFACT_SATURATED = 2
 ARTEFACT_NSIGMA = 1.0
+#: Truth artefact bit: the correlated read noise left by the reference-pixel correction,
+#: averaged over ``STRIPE_BOX`` x ``STRIPE_BOX`` mosaic pixels (about a faint source's
+#: footprint), exceeds ``ARTEFACT_NSIGMA`` times the noise of such an average without it.
+ARTEFACT_STRIPE = 4
+STRIPE_BOX = 5
+#: Truth artefact bit: persistence from an earlier exposure left more than ``ARTEFACT_NSIGMA``
+#: times the pixel noise in the mosaic (or a neighbouring pixel).
+ARTEFACT_PERSIST = 8
 
 
 def _artefact_map(mosaic, saturated_bit: int) -> np.ndarray:
@@ -482,6 +582,19 @@ def _artefact_map(mosaic, saturated_bit: int) -> np.ndarray:
         cr = np.abs(mosaic.artefact) > ARTEFACT_NSIGMA * sigma
         art[ndimage.binary_dilation(cr)] |= ARTEFACT_COSMIC
     art[(mosaic.dq & saturated_bit) != 0] |= ARTEFACT_SATURATED
+    if mosaic.persistence is not None:
+        sigma = np.where(mosaic.wht > 0, 1.0 / np.sqrt(np.where(mosaic.wht > 0, mosaic.wht, 1)),
+                         np.inf)
+        ghost = mosaic.persistence > ARTEFACT_NSIGMA * sigma
+        art[ndimage.binary_dilation(ghost)] |= ARTEFACT_PERSIST
+    if mosaic.stripes is not None:
+        # noise of a box mean without the stripes: pixel sigma / box side (the drizzle's own
+        # correlation raises it a little; a threshold, not a statement)
+        var = np.where(mosaic.wht > 0, 1.0 / np.where(mosaic.wht > 0, mosaic.wht, 1), 1e30)
+        mean_s = ndimage.uniform_filter(mosaic.stripes, STRIPE_BOX, mode="constant")
+        sig_box = np.sqrt(np.maximum(ndimage.uniform_filter(var, STRIPE_BOX, mode="constant"),
+                                     0.0)) / STRIPE_BOX
+        art[np.abs(mean_s) > ARTEFACT_NSIGMA * sig_box] |= ARTEFACT_STRIPE
     return art
 
 
@@ -496,12 +609,38 @@ def _noise_correlations(sc: Scenario, bands: list[Band], egrids: list, mgrid: Gr
     alpha = det.ipc_alpha if det.ipc else 0.0
     cov_w, cov_c = drizzle_noise_covariance(egrids, mgrid, srv.drizzle_kernel, srv.pixfrac,
                                             alpha, stream(sc.seed, "noise_correlation"))
+    cov_r = _readout_covariance(sc, egrids, mgrid) if det.correlated_noise else None
     out = {}
     for b in bands:
         sky = b.sky_rate(tel.collecting_area_m2, tel.pixel_scale_arcsec)
         white, charge, _ = sky_noise_terms(det, srv.exposure_time_s, sky)
-        out[b.name] = noise_correlation(cov_w, cov_c, white, charge)
+        out[b.name] = noise_correlation(cov_w, cov_c, white, charge, cov_r)
     return out
+
+
+#: Lags (mosaic pixels) of the correlated read noise's covariance, so apertures up to 10
+#: pixels in radius see all of it within them; realisations drizzled to measure it.
+READOUT_COV_LAGS = 20
+READOUT_COV_REALISATIONS = 8
+
+
+def _readout_covariance(sc: Scenario, egrids: list, mgrid: Grid) -> np.ndarray:
+    """Covariance of the mosaic at lags up to ``READOUT_COV_LAGS`` of what the correlated read
+    noise leaves after the reference-pixel correction (:mod:`simfield.readout`), drizzled
+    through the run's own exposure grids (the same for every band: its amplitudes are e- per
+    frame). Realisations have streams of their own, apart from the exposures'."""
+    from .survey import drizzle_field_covariance
+
+    srv = sc.survey
+
+    def field(i, box, r):
+        rng = stream(sc.seed, "readout_covariance", r, i)
+        ro = _readout(sc, f"cov{r}", i, egrids[i].shape,
+                      white=lambda y0, y1, x0, x1: rng.standard_normal((y1 - y0, x1 - x0)))
+        return ro.residual(*box)
+
+    return drizzle_field_covariance(egrids, mgrid, srv.drizzle_kernel, srv.pixfrac, field,
+                                    READOUT_COV_LAGS, READOUT_COV_REALISATIONS)
 
 
 #: Empty-sky apertures drawn over the whole mosaic for the measured depth and noise check.
@@ -604,7 +743,10 @@ def _image_files(out: Path, sc: Scenario, bands: list[Band], mgrid: Grid, egrids
     t_total = srv.exposure_time_s * srv.n_exposures
     dq_cards = survey.flag_header_cards("mosaic")
     art_cards = [("ARTCOSMI", ARTEFACT_COSMIC, f"cosmic-ray residual > {ARTEFACT_NSIGMA:g} "
-                  "sigma (+1 pix)"), ("ARTSATUR", ARTEFACT_SATURATED, "saturated in an exposure")]
+                  "sigma (+1 pix)"), ("ARTSATUR", ARTEFACT_SATURATED, "saturated in an exposure"),
+                 ("ARTSTRIP", ARTEFACT_STRIPE, f"1/f stripe residual, {STRIPE_BOX}-pix box > "
+                  f"{ARTEFACT_NSIGMA:g} sigma"),
+                 ("ARTPERSI", ARTEFACT_PERSIST, f"persistence > {ARTEFACT_NSIGMA:g} sigma (+1 pix)")]
     seg_note = ("SEGDEF", "id of the source contributing most light above SEGTHR", "")
 
     def hdr(grid: Grid, bunit: str, cards=()):

@@ -129,7 +129,7 @@ def matched_noise_ratio(rho: np.ndarray, kernel: np.ndarray, radius_pix: float) 
     kr = rho.shape[0] // 2
 
     def lag_sum(a):
-        auto = signal.correlate(a, a, mode="full")
+        auto = np.pad(signal.correlate(a, a, mode="full"), kr)  # rho may reach further
         c = auto.shape[0] // 2
         return float(np.sum(rho * auto[c - kr:c + kr + 1, c - kr:c + kr + 1]))
 

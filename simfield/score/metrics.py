@@ -45,7 +45,7 @@ INTERVAL_NOTE = ("Jeffreys {level:g} interval: Beta(k+1/2, n-k+1/2) quantiles, 0
                  "k=n (Brown, Cai & DasGupta 2001, Stat. Sci. 16, 101)")
 
 #: causes of unmatched detections, in order of precedence
-FALSE_CAUSES = ("artefact", "spike", "shred", "blend", "noise")
+FALSE_CAUSES = ("artefact", "persistence", "spike", "shred", "blend", "stripe", "noise")
 
 # normalised median absolute deviation: sigma = 1.4826 MAD for a Gaussian (common practice)
 _NMAD = 1.4826
@@ -305,7 +305,7 @@ def classify_false_detections(det_x, det_y, det_truth, img_x, img_y, img_source,
     dx_ = np.asarray(det_x, float)
     dy_ = np.asarray(det_y, float)
     un = np.asarray(det_truth) < 0
-    cause = np.full(dx_.size, "", dtype="<U8")
+    cause = np.full(dx_.size, "", dtype="<U11")
     cause[un] = "noise"
     idx = np.flatnonzero(un)
     if idx.size == 0:

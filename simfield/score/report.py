@@ -19,8 +19,9 @@ from . import metrics
 
 __all__ = ["make_report"]
 
-_CAUSE_COLOURS = {"artefact": "#7f7f7f", "spike": "#d62728", "shred": "#ff7f0e",
-                  "blend": "#9467bd", "noise": "#1f77b4"}
+_CAUSE_COLOURS = {"artefact": "#7f7f7f", "persistence": "#8c564b", "spike": "#d62728",
+                  "shred": "#ff7f0e", "blend": "#9467bd", "stripe": "#17becf",
+                  "noise": "#1f77b4"}
 
 
 def _save(fig, path: Path) -> str:
@@ -351,8 +352,10 @@ def make_report(out_dir, truth: dict, det, tables: dict, fits_: dict, summary: d
     figs.append(("False detections by cause", _save(fig, out / "false_causes.png"),
                  "Detections without a truth match, by the cause the scoring assigns "
                  "(artefact: on a detector artefact the truth knows; spike: on a bright star's diffraction spike; "
-                 "shred: a piece of a matched source; blend: between sources; noise: the "
-                 "rest); the number of each on its bar."))
+                 "shred: a piece of a matched source; blend: between sources; persistence: "
+                 "on a persistence ghost of an earlier exposure; stripe: on a 1/f read-noise "
+                 "stripe the reference pixels left; noise: the rest); the number of each on "
+                 "its bar."))
 
     sci = truth["sci"]
     ex = [(n, np.flatnonzero(np.asarray(ft["cause"]) == n)[:4]) for n in names]

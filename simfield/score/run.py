@@ -122,7 +122,8 @@ def load_truth(run_dir, band: str) -> dict:
         ``pixel_scale`` (arcsec), ``segm`` (truth source ids, int32 memory map, or None),
         ``dq`` (the truth's map of detector artefacts, ``ARTEFACT`` of the truth image, int16
         memory map; for a run without one, the mosaic's flags; or None) with ``dq_bits``
-        (int: the bits that make a detection an artefact), ``psf`` (image or None), ``psf_fwhm`` (arcsec or None), ``sci`` (mosaic
+        (int: the bits that make a detection an artefact), ``art_causes`` (dict: truth bits
+        with a cause of their own, from the ``ARTSTRIP`` / ``ARTPERSI`` cards), ``psf`` (image or None), ``psf_fwhm`` (arcsec or None), ``sci`` (mosaic
         image, float32 memory map, e-/s).
     """
     run_dir = Path(run_dir)
@@ -156,6 +157,7 @@ def load_truth(run_dir, band: str) -> dict:
         raise CatalogError(f"truth IMAGES has no column mag_{band}; "
                            f"available: {', '.join(images.colnames)}")
     segm = None
+    art_causes: dict = {}
     ti = run_dir / f"truth_image_{band}.fits"
     if ti.is_file():
         with fits.open(ti, memmap=True) as hl:
@@ -164,6 +166,10 @@ def load_truth(run_dir, band: str) -> dict:
             segm = image_map(ti, "SEGMAP")
         if has_art:  # the truth knows every artefact pixel: any bit makes an artefact
             dq, dq_bits = image_map(ti, "ARTEFACT"), -1
+            with fits.open(ti, memmap=True) as hl:  # bits with a cause of their own
+                h = hl["ARTEFACT"].header
+                art_causes = {int(h[k]): name for k, name in
+                              (("ARTPERSI", "persistence"), ("ARTSTRIP", "stripe")) if k in h}
     psf, fwhm = None, None
     pp = run_dir / f"psf_{band}.fits"
     if pp.is_file():
@@ -175,7 +181,7 @@ def load_truth(run_dir, band: str) -> dict:
             psf_scale = float(h.header.get("PIXSCALE", scale))
     return {"sources": sources, "images": images, "wcs": wcs, "shape": tuple(sci.shape),
             "zeropoint": float(hdr["ZP_AB"]), "pixel_scale": scale, "segm": segm, "dq": dq,
-            "dq_bits": dq_bits, "psf": psf, "psf_fwhm": fwhm,
+            "dq_bits": dq_bits, "art_causes": art_causes, "psf": psf, "psf_fwhm": fwhm,
             "psf_scale": psf_scale if psf is not None else None, "sci": sci,
             "run_dir": run_dir}
 
@@ -231,6 +237,8 @@ def _magnitude_check_pairs(m, det, images, ix, iy, mag_img, truth) -> np.ndarray
     for n, (i, nb) in enumerate(zip(ti, near)):
         usable[n] = not any(j != i and mag_img[j] < mag_img[i] + 2.5 for j in nb)
     dq, bits = truth.get("dq"), truth.get("dq_bits")
+    if bits:  # stripes are everywhere a little: they do not spoil a source's photometry
+        bits &= ~sum(b for b, n in (truth.get("art_causes") or {}).items() if n == "stripe")
     if dq is not None and bits:
         x, y = truth["wcs"].all_world2pix(np.asarray(det["ra"], float)[m.det_index],
                                           np.asarray(det["dec"], float)[m.det_index], 0)
@@ -359,8 +367,16 @@ def false_detection_causes(truth: dict, det, cfg: ScoreConfig, m, ix, iy, img_so
         spike_half_width_deg=cfg.spike_half_width_deg,
         blend_radius_arcsec=cfg.blend_radius_arcsec)
     if truth["dq"] is not None and len(dx):
-        flagged = (pixel_values(truth["dq"], dx, dy) & truth["dq_bits"]) != 0
-        cause[flagged & (m.det_to_truth < 0)] = "artefact"
+        v = pixel_values(truth["dq"], dx, dy)
+        un = m.det_to_truth < 0
+        own = truth.get("art_causes") or {}  # truth bits with a cause of their own
+        for bit, name in own.items():
+            # a stripe only explains what nothing else does; a persistence ghost, like a
+            # detector artefact, wins over the rules above
+            hit = un & ((v & bit) != 0) & ((cause == "noise") if name == "stripe" else True)
+            cause[hit] = name
+        other = truth["dq_bits"] & ~sum(own)
+        cause[un & ((v & other) != 0)] = "artefact"
     return cause, dx, dy, angles
 
 

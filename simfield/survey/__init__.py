@@ -23,8 +23,8 @@ flags, which say what each mosaic pixel rests on, are ``MOSAIC_*``.
 
 from .depth import (MIN_EMPTY_APERTURES, aperture_sums, depth_from_sums, empty_apertures,
                     measured_depth, predicted_depth, ramp_variance_rauscher, robust_sigma)
-from .noise import (APERTURE_RADII_PIX, NoiseCorrelation, drizzle_noise_covariance,
-                    noise_correlation)
+from .noise import (APERTURE_RADII_PIX, NoiseCorrelation, drizzle_field_covariance,
+                    drizzle_noise_covariance, noise_correlation)
 from .drizzle import (DQ_BAD_NEIGHBOUR, DQ_COSMIC_RAY, DQ_DEAD, DQ_EXCLUDE, DQ_HOT, DQ_NO_SLOPE,
                       DQ_SATURATED, MOSAIC_CR_ONLY, MOSAIC_FEW_EXPOSURES, MOSAIC_NO_DATA,
                       MOSAIC_SATURATED, Mosaic, drizzle_mosaic, flag_header_cards, mosaic_hdus)
@@ -63,6 +63,7 @@ __all__ = [
     "NoiseCorrelation",
     "noise_correlation",
     "drizzle_noise_covariance",
+    "drizzle_field_covariance",
     "APERTURE_RADII_PIX",
     "MIN_EMPTY_APERTURES",
     "Tile",

@@ -85,6 +85,8 @@ class Mosaic:
     exp: np.ndarray
     dq: np.ndarray
     artefact: np.ndarray | None = None
+    stripes: np.ndarray | None = None  #: the exposures' ``stripes`` combined like ``artefact``
+    persistence: np.ndarray | None = None  #: the exposures' ``persistence``, likewise
 
 
 def _pixmap(src: Grid, dst: Grid) -> np.ndarray:
@@ -177,7 +179,8 @@ def drizzle_mosaic(exposures, exp_grids: list[Grid], mosaic_grid: Grid, kernel: 
         exp += ((ctx[i // 32] >> np.uint32(i % 32)) & np.uint32(1)) * np.float32(t)
     dq = flags.flags(covered)
     sci[~covered] = 0.0
-    return Mosaic(sci=sci, wht=wht, exp=exp, dq=dq, artefact=flags.artefact())
+    return Mosaic(sci=sci, wht=wht, exp=exp, dq=dq, artefact=flags.artefact(),
+                  stripes=flags.artefact("stripes"), persistence=flags.artefact("persist"))
 
 
 class _FlagCounter:
@@ -193,6 +196,8 @@ class _FlagCounter:
         self.n_sat = np.zeros(shape, np.int16)
         self.n_cr = np.zeros(shape, np.int16)
         self.art = None
+        self.stripes = None
+        self.persist = None
         self.wsum = np.zeros(shape, np.float32)
 
     def add(self, e, g: Grid, w: np.ndarray, iscale: float) -> None:
@@ -211,11 +216,14 @@ class _FlagCounter:
         self.n_sat += (dq & DQ_SATURATED) != 0  # with or without a slope left
         self.n_cr += good & ((dq & DQ_COSMIC_RAY) != 0)
         self.wsum += np.where(good, wk, 0.0)
-        art = getattr(e, "artefact", None)
-        if art is not None:
-            if self.art is None:
-                self.art = np.zeros(self.grid.shape, np.float32)
-            self.art += np.where(good, wk * art[iy, ix] * np.float32(iscale), 0.0)
+        for name, attr in (("art", "artefact"), ("stripes", "stripes"),
+                           ("persist", "persistence")):
+            art = getattr(e, attr, None)
+            if art is not None:
+                if getattr(self, name) is None:
+                    setattr(self, name, np.zeros(self.grid.shape, np.float32))
+                getattr(self, name)[...] += np.where(good, wk * art[iy, ix] * np.float32(iscale),
+                                                     0.0)
 
     def flags(self, covered: np.ndarray) -> np.ndarray:
         dq = np.zeros(self.grid.shape, np.int32)
@@ -225,11 +233,12 @@ class _FlagCounter:
         dq[covered & (self.n_good > 0) & (self.n_cr == self.n_good)] |= MOSAIC_CR_ONLY
         return dq
 
-    def artefact(self) -> np.ndarray | None:
-        if self.art is None:
+    def artefact(self, name: str = "art") -> np.ndarray | None:
+        acc = getattr(self, name)
+        if acc is None:
             return None
         with np.errstate(invalid="ignore", divide="ignore"):
-            return np.where(self.wsum > 0, self.art / self.wsum, 0.0).astype(np.float32)
+            return np.where(self.wsum > 0, acc / self.wsum, 0.0).astype(np.float32)
 
 
 def mosaic_hdus(mosaic: Mosaic, grid: Grid, band: str = "", zeropoint: float | None = None,

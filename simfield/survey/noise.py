@@ -34,7 +34,7 @@ from .depth import disk_weights
 from .drizzle import drizzle_mosaic
 
 __all__ = ["NoiseCorrelation", "APERTURE_RADII_PIX", "drizzle_noise_covariance", "noise_correlation",
-           "aperture_factors"]
+           "aperture_factors", "drizzle_field_covariance"]
 
 #: Radii (mosaic pixels) of the aperture noise table written into the mosaic headers.
 APERTURE_RADII_PIX = (1.0, 1.5, 2.0, 3.0, 4.0, 5.0, 6.0, 8.0, 10.0, 15.0, 20.0)
@@ -177,12 +177,70 @@ def drizzle_noise_covariance(exp_grids: list[Grid], mosaic_grid: Grid, kernel: s
     return covs[0], covs[1]
 
 
+def drizzle_field_covariance(exp_grids: list[Grid], mosaic_grid: Grid, kernel: str,
+                             pixfrac: float, field, k: int, realisations: int,
+                             patch: int = 256, subtract_mean: bool = True) -> np.ndarray:
+    """Covariance of mosaic pixels at lags up to ``k`` of a noise field given per exposure.
+
+    Like :func:`drizzle_noise_covariance`, but each exposure's noise comes from
+    ``field(i, box, r)``: the noise (e-/s) of exposure ``i`` on its detector window ``box`` =
+    (y0, y1, x0, x1), realisation ``r``. With ``subtract_mean`` each realisation's mean over
+    the patch is taken out first: the covariance then describes the scatter from place to
+    place within a field of about the patch's size (what empty apertures spread over a mosaic
+    measure), not the part common to the whole patch.
+
+    Returns
+    -------
+    ndarray, shape (2k+1, 2k+1) ((e-/s)^2)
+    """
+    n = int(min(patch, mosaic_grid.nx, mosaic_grid.ny))
+    pg = mosaic_grid.window((mosaic_grid.nx - n) // 2, (mosaic_grid.ny - n) // 2, n, n)
+    wins = [_covering_window(g, pg) for g in exp_grids]
+    boxes = []
+    for g, w in zip(exp_grids, wins):
+        x0, y0 = (int(round(v)) for v in g.offsets_to_pixel(*w.pixel_to_offsets(0, 0)))
+        boxes.append((y0, y0 + w.ny, x0, x0 + w.nx))
+    cut = 3
+    num = np.zeros((2 * k + 1, 2 * k + 1))
+    cnt = np.zeros_like(num)
+    for r in range(realisations):
+        def exposures():
+            for i, w in enumerate(wins):
+                z = np.asarray(field(i, boxes[i], r), np.float32)
+                v = np.ones(w.shape, np.float32)
+                yield _NoiseExposure(z, v, v, np.zeros(w.shape, np.int32))
+
+        m = drizzle_mosaic(exposures(), wins, pg, kernel, pixfrac, subtract_sky=False)
+        good = (m.wht > 0)[cut:-cut, cut:-cut]
+        u = m.sci.astype(float)[cut:-cut, cut:-cut]
+        u = np.where(good, u - (u[good].mean() if subtract_mean else 0.0), 0.0)
+        g = good.astype(float)
+        full_u = signal.fftconvolve(u, u[::-1, ::-1], mode="full")
+        full_g = signal.fftconvolve(g, g[::-1, ::-1], mode="full")
+        cy, cx = u.shape[0] - 1, u.shape[1] - 1
+        num += full_u[cy - k:cy + k + 1, cx - k:cx + k + 1]
+        cnt += np.round(full_g[cy - k:cy + k + 1, cx - k:cx + k + 1])
+    cov = num / np.maximum(cnt, 1)
+    return 0.5 * (cov + cov[::-1, ::-1])
+
+
+def _pad_lags(cov: np.ndarray, k: int) -> np.ndarray:
+    """A lag array padded with zeros to lags up to ``k``."""
+    cov = np.asarray(cov, float)
+    p = k - cov.shape[0] // 2
+    return np.pad(cov, p) if p > 0 else cov
+
+
 def noise_correlation(cov_white: np.ndarray, cov_charge: np.ndarray, white_var: float,
-                      charge_var: float) -> NoiseCorrelation:
+                      charge_var: float, cov_extra: np.ndarray | None = None) -> NoiseCorrelation:
     """Correlation and aperture factors of a mosaic whose detector pixels carry ``white_var``
     and ``charge_var`` ((e-/s)^2, :func:`simfield.detector.sky_noise_terms`), from the
-    covariances of :func:`drizzle_noise_covariance`."""
+    covariances of :func:`drizzle_noise_covariance`, plus ``cov_extra`` ((e-/s)^2 at lags,
+    e.g. :func:`drizzle_field_covariance` of correlated read noise; may reach further)."""
     cov = white_var * np.asarray(cov_white, float) + charge_var * np.asarray(cov_charge, float)
+    if cov_extra is not None:
+        k = max(cov.shape[0], np.shape(cov_extra)[0]) // 2
+        cov = _pad_lags(cov, k) + _pad_lags(cov_extra, k)
     k = cov.shape[0] // 2
     rho = cov / cov[k, k]
     radii = np.asarray(APERTURE_RADII_PIX)
