@@ -56,27 +56,6 @@ def test_cluster_is_not_part_of_what_a_run_makes(tmp_path):
         tiny(tmp_path, "cluster=scheduler", "cluster.address=not an address")
 
 
-def test_dask_local_cluster_writes_the_same_bytes(local_run):
-    """cluster=local (a Dask LocalCluster, two workers) writes every file byte for byte as the
-    local processes do (the same seed); summary.json differs only by its timings."""
-    tmp, res = local_run
-    dask = run_scenario(tiny(tmp, "cluster=local", "cluster.processes=false"), tmp / "dask")
-    a, b = res.out_dir, dask.out_dir
-    names = sorted(str(p.relative_to(a)) for p in a.rglob("*") if p.is_file())
-    assert names == sorted(str(p.relative_to(b)) for p in b.rglob("*") if p.is_file())
-    assert "mosaic_b17.fits" in names and "truth_image_b17.fits" in names
-    for n in names:
-        if n == "summary.json":
-            sa, sb = (json.loads((d / n).read_text()) for d in (a, b))
-            sa.pop("timings_s"), sb.pop("timings_s")
-            assert sa == sb
-        else:
-            assert (a / n).read_bytes() == (b / n).read_bytes(), n
-    # read back from outside the writer: the tiles were really written (not an empty file)
-    with fits.open(b / "mosaic_b17.fits") as hl:
-        assert (hl["INVVAR"].data > 0).mean() > 0.9
-
-
 def test_unreachable_scheduler_is_one_line_and_writes_nothing(tmp_path, monkeypatch, capsys):
     """No scheduler on the port: refused before anything is written, by the command line
     (one line, status 2) and by run_scenario (ClusterUnavailable)."""
@@ -100,14 +79,16 @@ def test_unreachable_scheduler_is_one_line_and_writes_nothing(tmp_path, monkeypa
     assert not (tmp_path / "cli").exists()
 
 
-def test_lost_worker_leaves_no_file_in_place_and_the_run_relaunches(local_run, monkeypatch):
-    """A worker lost mid-run (Dask's KilledWorker from a tile) gives WorkerLost: no final image
-    file, no temporary file, no COMPLETE; the same run then completes."""
+def test_dask_run_survives_a_lost_worker_and_writes_the_same_bytes(local_run, monkeypatch):
+    """cluster=local (a Dask LocalCluster, two workers): a worker lost mid-run (Dask's
+    KilledWorker from a tile) gives WorkerLost, with no final image file, no temporary file and
+    no COMPLETE; the same run relaunched then writes every file byte for byte as the local
+    processes did (the same seed); summary.json differs only by its timings."""
     from distributed.scheduler import KilledWorker
 
     from simfield import pipeline
 
-    tmp, _ = local_run
+    tmp, res = local_run
     real = pipeline._render_tile
 
     def dying(ctx, i):
@@ -117,15 +98,27 @@ def test_lost_worker_leaves_no_file_in_place_and_the_run_relaunches(local_run, m
         return real(ctx, i)
 
     sc = tiny(tmp, "cluster=local", "cluster.processes=false")
-    out = tmp / "lost"
+    a, b = res.out_dir, tmp / "dask"
     monkeypatch.setattr(pipeline, "_render_tile", dying)
     with pytest.raises(WorkerLost, match="run the same command again"):
-        run_scenario(sc, out)
-    assert not (out / "mosaic_b17.fits").exists() and not (out / COMPLETE_MARKER).exists()
-    assert not list(out.rglob("*.part"))
+        run_scenario(sc, b)
+    assert not (b / "mosaic_b17.fits").exists() and not (b / COMPLETE_MARKER).exists()
+    assert not list(b.rglob("*.part"))
     monkeypatch.setattr(pipeline, "_render_tile", real)
-    run_scenario(sc, out)
-    assert (out / COMPLETE_MARKER).exists()
+    run_scenario(sc, b)
+    names = sorted(str(p.relative_to(a)) for p in a.rglob("*") if p.is_file())
+    assert names == sorted(str(p.relative_to(b)) for p in b.rglob("*") if p.is_file())
+    assert "mosaic_b17.fits" in names and COMPLETE_MARKER in names
+    for n in names:
+        if n == "summary.json":
+            sa, sb = (json.loads((d / n).read_text()) for d in (a, b))
+            sa.pop("timings_s"), sb.pop("timings_s")
+            assert sa == sb
+        else:
+            assert (a / n).read_bytes() == (b / n).read_bytes(), n
+    # read back from outside the writer: the tiles were really written (not an empty file)
+    with fits.open(b / "mosaic_b17.fits") as hl:
+        assert (hl["INVVAR"].data > 0).mean() > 0.9
 
 
 def test_slurm_job_script_is_printed_not_submitted(tmp_path, monkeypatch, capsys):
