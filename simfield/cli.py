@@ -88,8 +88,8 @@ def _print_job_script(argv: list[str]) -> None:
         if sc.cluster.kind != "slurm":
             raise ConfigError("cluster.kind", sc.cluster.kind,
                               "must be slurm for --job-script (cluster=slurm)")
-        print("# simfield: the job script dask-jobqueue would submit per worker job "
-              "(not submitted)")
+        print("simfield: the job script dask-jobqueue would submit per worker job (not "
+              "submitted):", file=sys.stderr)
         print(slurm_job_script(sc.cluster))
 
 

@@ -136,5 +136,6 @@ def test_slurm_job_script_is_printed_not_submitted(tmp_path, monkeypatch, capsys
     monkeypatch.setattr(sys, "argv", ["simfield", "--job-script", "cluster=slurm",
                                       "cluster.partition=long"])
     cli.main()
-    out = capsys.readouterr().out
-    assert "#SBATCH -p long" in out and "not submitted" in out
+    cap = capsys.readouterr()
+    assert cap.out.startswith("#!/") and "#SBATCH -p long" in cap.out
+    assert "not submitted" in cap.err
