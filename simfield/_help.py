@@ -27,6 +27,7 @@ GROUP_MEANINGS = {
     "score": "matching radius, magnitude bins, completeness fit, report",
     "selection": "high-redshift colour / S/N / P(z) samples scored against the truth",
     "limits": "largest estimated disk use and memory of a run (refused above)",
+    "cluster": "where the mosaic tiles run: local processes (none) or a Dask cluster",
     "experiment": "sweep presets, added with +experiment=NAME (a -m multirun)",
     "hydra/launcher": "where sweep jobs run (hydra/launcher=NAME)",
 }
@@ -86,6 +87,7 @@ def help_page(conf_dir: str | Path, width: int = 92) -> str:
         "usage: simfield [group=preset ...] [key=value ...]   (one run)",
         "       simfield -m key=a,b ... | +experiment=NAME     (a sweep of runs)",
         "       simfield --estimate [overrides]                 (resources only, nothing run)",
+        "       simfield --job-script cluster=slurm [overrides] (Slurm job script, not submitted)",
         "",
     ]
     lines += wrap.wrap(

@@ -51,7 +51,12 @@ def _task(cfg) -> None:
         return
     remove_partial_files(run_dir)  # left by a killed earlier attempt of this job
     write_job_record(run_dir, plan)
-    res = run_scenario(plan.scenario, run_dir, progress=True)
+    from .engine import ClusterUnavailable, WorkerLost
+
+    try:
+        res = run_scenario(plan.scenario, run_dir, progress=True)
+    except (ClusterUnavailable, WorkerLost) as exc:
+        _fail("simfield", str(exc), 1)
     depth = res.summary.get("depth_ab", {})
     print(f"simfield: wrote {len(res.files)} files to {run_dir}")
     for band, d in depth.items():
@@ -75,12 +80,36 @@ def _print_estimate(argv: list[str]) -> None:
             print(f"  would be refused: {refusal_line(exc)}")
 
 
+def _print_job_script(argv: list[str]) -> None:
+    """``--job-script``: the Slurm batch script of one Dask worker job, not submitted."""
+    from .engine import slurm_job_script
+
+    for sc in preflight(argv, check=False):
+        if sc.cluster.kind != "slurm":
+            raise ConfigError("cluster.kind", sc.cluster.kind,
+                              "must be slurm for --job-script (cluster=slurm)")
+        print("simfield: the job script dask-jobqueue would submit per worker job (not "
+              "submitted):", file=sys.stderr)
+        print(slurm_job_script(sc.cluster))
+
+
+def _check_clusters(scenarios) -> None:
+    """Refuse a run whose Dask scheduler does not answer, before anything is written."""
+    from .engine import check_reachable
+
+    for a in {(sc.cluster.address, sc.cluster.connect_timeout_s) for sc in scenarios
+              if sc.cluster.kind == "scheduler"}:
+        check_reachable(*a)
+
+
 def main() -> None:
     """``simfield [overrides]``: run the configured scenario (Hydra command line).
 
     Every job of the command line is composed and validated first (:func:`preflight`); a bad
     setting is refused with one line on stderr and status 2 before Hydra writes anything.
-    ``simfield --estimate [overrides]`` prints the resources each job would take and exits.
+    ``simfield --estimate [overrides]`` prints the resources each job would take and exits;
+    ``simfield --job-script cluster=slurm [overrides]`` prints the Slurm job script of one Dask
+    worker job without submitting it.
     ``simfield --help`` prints the tool's page (:mod:`simfield._help`: groups and presets read
     from ``conf/``); Hydra's own page of flags is ``simfield --hydra-help``.
     """
@@ -98,7 +127,10 @@ def main() -> None:
         if "--estimate" in argv:
             _print_estimate([a for a in argv if a != "--estimate"])
             return
-        preflight(argv)
+        if "--job-script" in argv:
+            _print_job_script([a for a in argv if a != "--job-script"])
+            return
+        _check_clusters(preflight(argv))
     except ConfigError as exc:
         _fail("simfield", refusal_line(exc))
     register_configs()

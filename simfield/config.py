@@ -461,6 +461,36 @@ class LimitsConfig:
     memory_gb: float = 12.0  #: peak memory of the run and its worker processes (GB)
 
 
+@dataclass
+class ClusterConfig:
+    """Where the mosaic tiles run (see :mod:`simfield.engine`); how a run is executed, not what
+    it makes: left out of the configuration hash and of the YAML written with the outputs.
+
+    ``kind``: ``none`` (local processes, ``workers``), ``local`` (a Dask LocalCluster on this
+    machine), ``scheduler`` (a running Dask scheduler at ``address``) or ``slurm`` (Dask workers
+    submitted as Slurm jobs through dask-jobqueue).
+    """
+
+    kind: str = "none"
+    address: str = ""  #: scheduler: e.g. tcp://10.0.0.5:8786
+    n_workers: int = 2  #: local: worker processes (or threads); slurm: jobs
+    threads_per_worker: int = 1
+    processes: bool = True  #: local: workers in processes (false: threads of this process)
+    connect_timeout_s: float = 5.0  #: scheduler: give up connecting after this long (s)
+    partition: str = ""  #: slurm: queue (-p); empty: the site's default
+    account: str = ""  #: slurm: account (-A); empty: the user's default
+    cores: int = 4  #: slurm: cores per job
+    memory_gb: float = 16.0  #: slurm: memory per job (GB)
+    walltime: str = "01:00:00"  #: slurm: per job, HH:MM:SS
+    job_extra: list[str] = field(default_factory=list)  #: slurm: extra #SBATCH lines' options
+
+
+CLUSTER_KINDS = ("none", "local", "scheduler", "slurm")
+
+#: Top-level keys that say how a run executes, not what it makes: not hashed, not written.
+EXECUTION_ONLY_KEYS = ("cluster",)
+
+
 # --------------------------------------------------------------------------------------------
 @dataclass
 class Scenario:
@@ -480,6 +510,7 @@ class Scenario:
     score: ScoreConfig = field(default_factory=ScoreConfig)
     selection: SelectionConfig = field(default_factory=SelectionConfig)
     limits: LimitsConfig = field(default_factory=LimitsConfig)
+    cluster: ClusterConfig = field(default_factory=ClusterConfig)
 
     @property
     def band_names(self) -> list[str]:
@@ -938,6 +969,27 @@ def _validate_limits(lim: LimitsConfig) -> None:
     check_range("limits.memory_gb", lim.memory_gb, 0, 1e5, lo_open=True)
 
 
+def _validate_cluster(c: ClusterConfig) -> None:
+    import re
+
+    require(c.kind in CLUSTER_KINDS, "cluster.kind", c.kind, f"must be one of "
+            f"{', '.join(CLUSTER_KINDS)}")
+    check_range("cluster.n_workers", c.n_workers, 1, 10000)
+    check_range("cluster.threads_per_worker", c.threads_per_worker, 1, 256)
+    check_range("cluster.connect_timeout_s", c.connect_timeout_s, 0, 600, lo_open=True)
+    check_range("cluster.cores", c.cores, 1, 1024)
+    check_range("cluster.memory_gb", c.memory_gb, 0, 1e5, lo_open=True)
+    if c.kind == "scheduler":
+        require(bool(re.fullmatch(r"(tcp://|tls://)?[\w.\-]+:\d{1,5}", c.address)),
+                "cluster.address", c.address, "must be a scheduler address host:port or "
+                "tcp://host:port (cluster=scheduler)")
+    require(bool(re.fullmatch(r"(\d+-)?\d{1,3}:\d{2}:\d{2}", c.walltime)), "cluster.walltime",
+            c.walltime, "must be HH:MM:SS or D-HH:MM:SS")
+    for key, v in (("cluster.partition", c.partition), ("cluster.account", c.account)):
+        require(bool(re.fullmatch(r"[\w.\-]*", v)), key, v,
+                "must be a plain Slurm name (letters, digits, _ . -)")
+
+
 def _validate_names(sc: Scenario) -> None:
     for key, name in (("telescope.name", sc.telescope.name), ("survey.name", sc.survey.name)):
         require(bool(str(name).strip()), key, name, "must be a non-empty name")
@@ -948,6 +1000,7 @@ def validate(sc: Scenario) -> Scenario:
     require(isinstance(sc.seed, int) and sc.seed >= 0, "seed", sc.seed,
             "must be a non-negative integer")
     check_range("workers", sc.workers, 0, 256)
+    _validate_cluster(sc.cluster)
     _validate_names(sc)
     _validate_telescope(sc.telescope)
     bands = sc.band_names
@@ -1080,10 +1133,16 @@ def _known_keys(parent: str) -> list[str]:
 
 def config_hash(sc: Scenario) -> str:
     """Short SHA-256 of the resolved scenario (16 hex digits), recorded in every output."""
-    text = OmegaConf.to_yaml(OmegaConf.structured(sc), sort_keys=True)
+    text = OmegaConf.to_yaml(_content(sc), sort_keys=True)
     return hashlib.sha256(text.encode()).hexdigest()[:16]
 
 
+def _content(sc: Scenario) -> DictConfig:
+    """The scenario without :data:`EXECUTION_ONLY_KEYS` (what a run makes, not how)."""
+    node = OmegaConf.structured(sc)
+    return OmegaConf.masked_copy(node, [k for k in node if k not in EXECUTION_ONLY_KEYS])
+
+
 def to_yaml(sc: Scenario) -> str:
-    """The resolved scenario as YAML text."""
-    return OmegaConf.to_yaml(OmegaConf.structured(sc))
+    """The resolved scenario as YAML text (without :data:`EXECUTION_ONLY_KEYS`)."""
+    return OmegaConf.to_yaml(_content(sc))

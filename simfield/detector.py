@@ -12,11 +12,16 @@ The fitted slope is a linear combination b = sum_j c_j S_j of the frame values S
 enters as sigma_f^2 sum_j c_j^2, exactly Gaussian. The charge is a Poisson process: an electron
 arriving in frame interval i (between reads i - 1 and i) adds D_i = sum_{j >= i} c_j to b. Given
 the total charge N of the ramp (Poisson, drawn exactly), arrival times are independent and
-uniform, so b = N mean(D) + sqrt(N var(D)) z with z standard normal (the sum over electrons by
-its central limit; exact mean and variance for any N). With :class:`PixelNoise` (windows of a
-large detector, as a tiled mosaic uses) N is exact below 20 expected electrons and above by a
-Cornish-Fisher expansion with the Poisson mean and skewness. The resulting variance is Rauscher et
-al. 2007 eq. 1, which the tests check against a Monte Carlo of frames. Integer-ADU readout adds
+uniform, so the charge part of b is a compound Poisson sum with mean lam E[D] and variance
+lam E[D^2] (lam = f x ramp duration, the D_i averaged over the frame intervals). It is drawn as
+one scaled Poisson deviate, b = c N', N' ~ Poisson(lam'), with c = E[D^2] / E[D] and
+lam' = lam E[D]^2 / E[D^2]: the same mean and variance exactly (c lam' = lam E[D],
+c^2 lam' = lam E[D^2] = b_full f), one deviate per pixel. With :class:`PixelNoise` (windows of a
+large detector, as a tiled mosaic uses) N' is exact below 20 and above by a Cornish-Fisher
+expansion with the Poisson mean and skewness. The resulting variance is Rauscher et al. 2007
+eq. 1, which the tests check against a Monte Carlo of frames. Read noise is the one normal
+deviate per pixel; a pixel whose slope is refitted (cosmic-ray jump, saturation) replaces its
+whole slope and reuses that pixel's read-noise deviate, which nothing else uses. Integer-ADU readout adds
 gain^2 / 12 to the frame variance (uniform quantisation error, valid while the frame read noise
 exceeds about one ADU; checked in the tests against quantised frames).
 
@@ -303,13 +308,15 @@ def _ipc_at(img: np.ndarray, alpha: float, idx) -> np.ndarray:
     """:func:`apply_ipc` of ``img`` evaluated only at the pixels ``idx`` (row, col arrays)."""
     if alpha == 0:
         return img[idx]
-    pad = np.pad(img, 1) if img.size < 4e6 else None
-    r, c = idx[0] + 1, idx[1] + 1
-    if pad is None:
-        pad = np.zeros((img.shape[0] + 2, img.shape[1] + 2))
-        pad[1:-1, 1:-1] = img
-    return ((1.0 - 4.0 * alpha) * pad[r, c]
-            + alpha * (pad[r - 1, c] + pad[r + 1, c] + pad[r, c - 1] + pad[r, c + 1]))
+    r, c = idx
+    ny, nx = img.shape
+
+    def at(rr, cc):  # zero outside the image
+        ok = (rr >= 0) & (rr < ny) & (cc >= 0) & (cc < nx)
+        return np.where(ok, img[np.clip(rr, 0, ny - 1), np.clip(cc, 0, nx - 1)], 0.0)
+
+    return ((1.0 - 4.0 * alpha) * img[r, c]
+            + alpha * (at(r - 1, c) + at(r + 1, c) + at(r, c - 1) + at(r, c + 1)))
 
 
 def _cr_events(det: DetectorConfig, pixel_size_um: float, duration_s: float, n_intervals: int,
@@ -325,6 +332,38 @@ def _cr_events(det: DetectorConfig, pixel_size_um: float, duration_s: float, n_i
     q = det.cosmic_ray_charge_e * np.exp(_CR_SIGMA_LN * rng.standard_normal(n))
     interval = rng.integers(0, n_intervals, n)
     return cx, cy, theta, length, q, interval
+
+
+def _dilate_cross(a: np.ndarray) -> np.ndarray:
+    """``ndimage.binary_dilation(a)`` (the 3x3 cross, zero outside) by shifted slices."""
+    out = a.copy()
+    out[1:] |= a[:-1]
+    out[:-1] |= a[1:]
+    out[:, 1:] |= a[:, :-1]
+    out[:, :-1] |= a[:, 1:]
+    return out
+
+
+def _dilate_square(a: np.ndarray) -> np.ndarray:
+    """``ndimage.binary_dilation(a, structure=np.ones((3, 3)))`` by shifted slices."""
+    rows = a.copy()
+    rows[:, 1:] |= a[:, :-1]
+    rows[:, :-1] |= a[:, 1:]
+    out = rows.copy()
+    out[1:] |= rows[:-1]
+    out[:-1] |= rows[1:]
+    return out
+
+
+def _max_cross(a: np.ndarray) -> np.ndarray:
+    """``ndimage.grey_dilation`` with the 3x3 cross footprint (mode reflect: an edge pixel's
+    outside neighbour is itself) by shifted slices."""
+    out = a.copy()
+    np.maximum(out[1:], a[:-1], out=out[1:])
+    np.maximum(out[:-1], a[1:], out=out[:-1])
+    np.maximum(out[:, 1:], a[:, :-1], out=out[:, 1:])
+    np.maximum(out[:, :-1], a[:, 1:], out=out[:, :-1])
+    return out
 
 
 def _cosmic_rays(shape, det: DetectorConfig, pixel_size_um: float, duration_s: float,
@@ -358,6 +397,18 @@ def _deposit(shape, cx, cy, theta, length, q, interval):
     charge = np.bincount(idx, weights=(np.tile(pq, 4) * wgt)[ok], minlength=ny * nx)
     when[idx] = np.tile(pe, 4)[ok]
     return charge.reshape(shape), when.reshape(shape), n
+
+
+def _best_runs_one_break(n_ok: np.ndarray, kc: np.ndarray, skip: np.ndarray):
+    """:func:`_best_runs` in closed form for ramps with groups ``0 ... n_ok - 1`` usable, at most
+    one jump, before group ``kc`` (``kc`` = n_groups: none), and group ``kc`` itself unusable
+    where ``skip``: the run before the jump, [0, min(kc, n_ok)), or the run after it,
+    [kc + skip, n_ok); the earlier wins a tie (as in :func:`_best_runs`)."""
+    la = np.minimum(kc, n_ok)
+    sb = kc + skip.astype(np.int64)
+    lb = np.maximum(n_ok - sb, 0)
+    later = lb > la
+    return np.where(later, sb, 0), np.where(later, lb, la)
 
 
 def _best_runs(usable: np.ndarray, brk: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -445,21 +496,22 @@ class PixelNoise:
     def poisson(self, lam: np.ndarray) -> np.ndarray:
         """Poisson counts of mean ``lam`` (window-shaped), from the pixels' own deviates.
 
-        Below :data:`POISSON_EXACT_BELOW` the exact inverse CDF of a uniform deviate (an
-        integer); above it the Cornish-Fisher expansion lam + sqrt(lam) z + (z^2 - 1) / 6 of a
-        normal deviate z (Cornish & Fisher 1938 [mem]), which has the Poisson mean, its
-        skewness to O(lam^-1), variance lam + 1/18 and is continuous in lam, so the same pixel
-        gets the same count whichever window draws it.
+        One standard normal deviate z per pixel. Below :data:`POISSON_EXACT_BELOW` the exact
+        inverse CDF of the uniform deviate u = Phi(z) (an integer); above it the Cornish-Fisher
+        expansion lam + sqrt(lam) z + (z^2 - 1) / 6 (Cornish & Fisher 1938 [mem]), which has
+        the Poisson mean, its skewness to O(lam^-1), variance lam + 1/18 and is continuous in
+        lam, so the same pixel gets the same count whichever window draws it.
         """
-        from scipy import stats
+        from scipy import special, stats
 
         lam = np.asarray(lam, float)
         z = self._field("counts").astype(float)
-        out = np.maximum(lam + np.sqrt(lam) * z + (z * z - 1.0) / 6.0, 0.0)
+        out = lam + np.sqrt(lam) * z
+        out += (z * z - 1.0) / 6.0
+        np.maximum(out, 0.0, out=out)
         small = lam < POISSON_EXACT_BELOW
         if small.any():
-            u = self._field("counts_u", uniform=True)[small].astype(float)
-            out[small] = stats.poisson.ppf(u, lam[small])
+            out[small] = stats.poisson.ppf(special.ndtr(z[small]), lam[small])
         return out.astype(np.float32)
 
     def cosmic_rays(self, det: DetectorConfig, pixel_size_um: float, duration_s: float,
@@ -619,9 +671,11 @@ def expose(rate: np.ndarray, sky_rate, dark, det: DetectorConfig, exptime_s: flo
     f = rate * resp + f_sky  # expected e-/s
 
     if det.poisson:
-        total = noise.poisson(f * duration)
-        z = noise.normal("ramp")
-        slope = total * float(d_int.mean()) + np.sqrt(total * float(d_int.var())) * z
+        # one scaled Poisson deviate with the slope's exact mean and variance (module notes)
+        d_mean, d_sq = float(d_int.mean()), float((d_int * d_int).mean())
+        scale = d_sq / d_mean
+        slope = noise.poisson(f * (duration * d_mean / scale))
+        slope *= np.float32(scale)
     else:
         slope = f.copy()
     dq = np.zeros(rate.shape, np.int32)
@@ -630,7 +684,7 @@ def expose(rate: np.ndarray, sky_rate, dark, det: DetectorConfig, exptime_s: flo
         dq[fixed.dead] |= DQ_DEAD
         if alpha > 0:
             bad = fixed.hot | fixed.dead
-            near = ndimage.binary_dilation(bad) & ~bad  # the four neighbours (cross)
+            near = _dilate_cross(bad) & ~bad  # the four neighbours (cross)
             dq[near] |= DQ_BAD_NEIGHBOUR
 
     n_cr = 0
@@ -640,14 +694,13 @@ def expose(rate: np.ndarray, sky_rate, dark, det: DetectorConfig, exptime_s: flo
         cr_q, when, n_cr = noise.cosmic_rays(det, pixel_size_um, duration, n_int)
         if alpha > 0:
             cr_q = apply_ipc(cr_q, alpha)
-            when = np.where(when >= 0, when, ndimage.grey_dilation(
-                when, footprint=np.array([[0, 1, 0], [1, 1, 1], [0, 1, 0]], bool)))
+            when = np.where(when >= 0, when, _max_cross(when))
         hit = (cr_q > 0) & (when >= 0)
         sig_diff = np.sqrt(2.0 * sig_f2 / m + f * tg)
         jump = hit & (cr_q > det.jump_threshold_sigma * sig_diff)
         # the neighbours of a detected jump are refitted too, at the same time (common
         # practice in ramp fitting: the faint fringe of a track would otherwise stay in)
-        jump |= hit & ndimage.binary_dilation(jump, structure=np.ones((3, 3), bool))
+        jump |= hit & _dilate_square(jump)
         faint = hit & ~jump
         # an undetected deposit in interval i adds charge x D_i to the fitted slope (the
         # deposit is already spread by IPC, so it is not convolved again below)
@@ -657,8 +710,9 @@ def expose(rate: np.ndarray, sky_rate, dark, det: DetectorConfig, exptime_s: flo
         slope = apply_ipc(slope, alpha)
     if n_cr:
         slope += bias
-    if sig_f2 > 0:
-        slope += math.sqrt(a_full * sig_f2) * noise.normal("read")
+    z_read = noise.normal("read") if sig_f2 > 0 else None
+    if z_read is not None:
+        slope += np.float32(math.sqrt(a_full * sig_f2)) * z_read
 
     # group k is usable while the charge at its last read, f (k + 1) t_g, is below full well
     sat = f * (n * tg) >= det.full_well_e if det.saturation else np.zeros(rate.shape, bool)
@@ -669,26 +723,26 @@ def expose(rate: np.ndarray, sky_rate, dark, det: DetectorConfig, exptime_s: flo
         s_idx = sat[idx]
         q = det.full_well_e / (f[idx][s_idx] * tg)
         n_ok[s_idx] = np.clip(np.ceil(np.minimum(q, n + 1)) - 1, 0, n).astype(np.int64)
-        k = np.arange(n)
-        usable = k[None, :] < n_ok[:, None]
-        brk = np.zeros_like(usable)
+        kc = np.full(idx[0].size, n, np.int64)
+        skip = np.zeros(idx[0].size, bool)
         if when is not None:
             w = when[idx]
             jmp = jump[idx]
             kc = np.where(jmp, w // m, n)
-            at_start = (w % m) == 0
-            rows = np.nonzero(jmp)[0]
-            brk[rows, kc[rows]] = True
-            mixed = rows[~at_start[rows]]
-            usable[mixed, kc[mixed]] = False
-        start, length = _best_runs(usable, brk)
+            # a jump inside group kc (not at its first frame) spoils that group
+            skip = jmp & ((w % m) != 0)
+        start, length = _best_runs_one_break(n_ok, kc, skip)
         table_a = np.zeros(n + 1)
         table_b = np.zeros(n + 1)
         for cnt in range(2, n + 1):
             table_a[cnt], table_b[cnt] = slope_variance_factors(n, m, tf, cnt)
         fa, fb = table_a[length], table_b[length]
         sd = np.sqrt(fa * sig_f2 + (fb * f[idx] * ipc_var if det.poisson else 0.0))
-        new = _ipc_at(f, alpha, idx) + sd * noise.normal_at("refit", idx)
+        # the refitted slope replaces the pixel's whole slope: its read-noise deviate, used
+        # nowhere else, is free for it (a window-independent deviate of the pixel)
+        z_fit = z_read[idx].astype(float) if z_read is not None else noise.normal_at("refit", idx)
+        new = apply_ipc(f, alpha)[idx].astype(float) if alpha > 0 else f[idx].astype(float)
+        new += sd * z_fit
         new[length < 2] = 0.0
         slope[idx] = new
         flags = np.where(n_ok < n, DQ_SATURATED, 0) | np.where(jump[idx], DQ_COSMIC_RAY, 0) | \
@@ -705,21 +759,33 @@ def expose(rate: np.ndarray, sky_rate, dark, det: DetectorConfig, exptime_s: flo
     else:
         var_dcal, dark_cal = 0.0, 0.0
     inv_cal = np.float32(1.0) / cal
-    sci = (slope - dark_cal) * inv_cal
+    sci = slope
+    sci -= dark_cal
+    sci *= inv_cal
     if special.any():
         sci[idx] = np.where(length < 2, 0.0, sci[idx])
     inv_cal2 = inv_cal * inv_cal
     pois = ipc_var if det.poisson else 0.0
-    # the calibration flat's error leaves -epsilon x signal, epsilon ~ N(0, flat_error_rms)
+    # the calibration flat's error leaves -epsilon x signal, epsilon ~ N(0, flat_error_rms):
+    # variance ferr2 x (signal / cal)^2, signal = (sky + rate) x resp = f - dark
     ferr2 = np.float32(det.flat_error_rms ** 2 if det.flat else 0.0)
-    sky_sig = sky * resp * inv_cal
-    var_sky = (a_full * sig_f2 + b_full * pois * f_sky) * inv_cal2 + var_dcal * inv_cal2 \
-        + ferr2 * sky_sig * sky_sig
-    sig = (sky + rate) * resp * inv_cal
-    var = var_sky + (b_full * pois * rate * resp) * inv_cal2 + ferr2 * (sig * sig - sky_sig * sky_sig)
+    base = np.float32(a_full * sig_f2) + var_dcal  # read + calibration dark, before 1 / cal^2
+    pb = np.float32(b_full * pois)
+    s_sky = sky * resp
+    var_sky = pb * f_sky
+    var_sky += base
+    var_sky += ferr2 * s_sky * s_sky
+    var_sky *= inv_cal2
+    s_all = rate * resp
+    s_all += s_sky
+    var = pb * f
+    var += base
+    var += ferr2 * s_all * s_all
+    var *= inv_cal2
     if special.any():
-        extra = var_dcal * inv_cal2 + ferr2 * sig * sig
-        var[idx] = (fa * sig_f2 + fb * pois * f[idx]) * inv_cal2[idx] + extra[idx]
+        sig2 = s_all[idx] * s_all[idx] * inv_cal2[idx]
+        dcal = var_dcal[idx] if np.ndim(var_dcal) else var_dcal
+        var[idx] = (fa * sig_f2 + fb * pois * f[idx] + dcal) * inv_cal2[idx] + ferr2 * sig2
     artefact = bias * inv_cal if n_cr else None
     return Exposure(sci=sci, var=var, var_sky=np.broadcast_to(var_sky, rate.shape).astype(np.float32),
                     dq=dq, exptime=float(exptime_s), sky=float(np.mean(sky)), n_cr=int(n_cr),

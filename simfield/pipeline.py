@@ -111,7 +111,17 @@ def run_scenario(sc: Scenario, out_dir: str | Path, progress: bool = False) -> R
         Run directory (created if needed).
     progress : bool
         Log stage progress.
+
+    With ``cluster`` other than ``none`` the tiles run on Dask (:mod:`simfield.engine`), which
+    is reached before anything is written.
     """
+    from .engine import open_engine
+
+    with open_engine(sc.cluster, progress) as engine:
+        return _run_scenario(sc, out_dir, progress, engine)
+
+
+def _run_scenario(sc: Scenario, out_dir: str | Path, progress: bool, engine) -> RunResult:
     # stage modules are imported here so that ``import simfield.pipeline`` stays light
     from .optics.field import field_hdus, field_psf_model, shape_cards
     from .optics.psf import cached_band_psf, cached_psf_png, effective_psf
@@ -213,7 +223,7 @@ def run_scenario(sc: Scenario, out_dir: str | Path, progress: bool = False) -> R
         ctx.files = {f.final.name: f for f in sfiles}
         for b in bands:
             ctx.files[f"mosaic_{b.name}.fits"].array("NOISECOR")[:] = noise[b.name].rho
-        results = _map_tiles(ctx, sc.workers, progress)
+        results = _map_tiles(ctx, sc.workers, progress, engine)
         with timer("depth"):
             depths = {b.name: _band_depth(sc, b, psf_core[b.name], ctx.files, mgrid,
                                           noise[b.name])
@@ -318,8 +328,10 @@ def _tile_worker(i: int):
     return _render_tile(_CTX, i)
 
 
-def _map_tiles(ctx: _TileContext, workers: int, progress: bool = False) -> list[dict]:
-    """Render every tile, in ``workers`` processes (0: one per core, at most one per tile).
+def _map_tiles(ctx: _TileContext, workers: int, progress: bool = False,
+               engine=None) -> list[dict]:
+    """Render every tile, in ``workers`` processes (0: one per core, at most one per tile),
+    or as tasks of a Dask ``engine`` (:class:`simfield.engine.DaskEngine`).
 
     Tiles draw only from their own named random streams and write disjoint sections of the
     output files, so the files do not depend on the number of workers.
@@ -327,6 +339,9 @@ def _map_tiles(ctx: _TileContext, workers: int, progress: bool = False) -> list[
     from tqdm import tqdm
 
     n_tiles = len(ctx.tiles)
+    if engine is not None:
+        return engine.map(_render_tile, ctx, n_tiles, [str(f.path) for f in ctx.files.values()],
+                          "tiles", progress)
     n = min(n_tiles, os.cpu_count() or 1) if workers == 0 else min(workers, n_tiles)
     bar = dict(total=n_tiles, desc="tiles", unit="tile", disable=not progress, leave=False)
     if n <= 1:

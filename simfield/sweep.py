@@ -114,12 +114,13 @@ def _is_hydra_key(key: str) -> bool:
 
 def _seed_overrides(overrides: Iterable[str]) -> list[str]:
     """Overrides that define a job for seeding: no ``hydra*``, ``seed`` or
-    :data:`EXECUTION_KEYS`; canonical text, sorted."""
+    :data:`EXECUTION_KEYS` (nor ``cluster``); canonical text, sorted."""
     out = []
     for s in overrides:
         o = _parse(s)
         key = o.key_or_group if o is not None else _override_key(s)
-        if _is_hydra_key(key) or key == "seed" or key in EXECUTION_KEYS:
+        if (_is_hydra_key(key) or key == "seed" or key in EXECUTION_KEYS
+                or key.split(".")[0] == "cluster"):  # the cluster group and its keys
             continue
         if o is not None and not o.is_delete():
             s = f"{o.get_key_element()}={o.get_value_element_as_str()}"
