@@ -35,6 +35,7 @@ __all__ = [
     "PSFConfig",
     "TelescopeConfig",
     "FieldPSFConfig",
+    "DriftConfig",
     "PopulationConfig",
     "LensComponentConfig",
     "LensConfig",
@@ -124,6 +125,17 @@ class FieldPSFConfig:
 
 
 @dataclass
+class DriftConfig:
+    """Wavefront drift between exposures (see :mod:`simfield.optics.drift`): each exposure adds a
+    random-walk step of segment piston/tip/tilt to the wavefront; each exposure's PSF change is
+    rendered through ``n_modes`` eigen-PSFs."""
+
+    enabled: bool = False
+    step_nm: float = 10.0  #: rms over a segment of each exposure's step (nm)
+    n_modes: int = 2  #: eigen-PSFs of the exposures' PSF changes (one convolution per band each)
+
+
+@dataclass
 class TelescopeConfig:
     """A telescope: aperture, pupil, detector pixel scale and bands."""
 
@@ -136,6 +148,7 @@ class TelescopeConfig:
     pupil: PupilConfig = field(default_factory=PupilConfig)
     psf: PSFConfig = field(default_factory=PSFConfig)
     field_psf: FieldPSFConfig = field(default_factory=FieldPSFConfig)
+    drift: DriftConfig = field(default_factory=DriftConfig)
 
 
 # --------------------------------------------------------------------------------------------
@@ -595,6 +608,8 @@ def _validate_telescope(t: TelescopeConfig) -> None:
     check_range("telescope.field_psf.corner_astig_nm", f.corner_astig_nm, 0, 500)
     check_range("telescope.field_psf.grid", f.grid, 2, 7)
     check_range("telescope.field_psf.n_modes", f.n_modes, 1, f.grid * f.grid - 1)
+    check_range("telescope.drift.step_nm", t.drift.step_nm, 0, 200)
+    check_range("telescope.drift.n_modes", t.drift.n_modes, 1, 8)
     check_range("telescope.pupil.strut_offset_m", p.strut_offset_m, -t.diameter_m / 2,
                 t.diameter_m / 2)
 

@@ -123,6 +123,7 @@ def run_scenario(sc: Scenario, out_dir: str | Path, progress: bool = False) -> R
 
 def _run_scenario(sc: Scenario, out_dir: str | Path, progress: bool, engine) -> RunResult:
     # stage modules are imported here so that ``import simfield.pipeline`` stays light
+    from .optics.drift import drift_psf_model
     from .optics.field import field_hdus, field_psf_model, shape_cards
     from .optics.psf import cached_band_psf, cached_psf_png, effective_psf
     from .population.lightcone import make_population
@@ -177,13 +178,17 @@ def _run_scenario(sc: Scenario, out_dir: str | Path, progress: bool, engine) -> 
     with timer("optics"):
         scale = sgrid.scale
         cache = Path(tel.psf.cache_dir)
-        psf_core, psf_wide, fields = {}, {}, {}
+        psf_core, psf_wide, fields, drifts = {}, {}, {}, {}
         # sampled, not pixel-integrated: the stamps already carry the scene-pixel box
         for b in bands:
             psf_core[b.name] = cached_band_psf(tel, b, scale, tel.psf.core_radius_arcsec,
                                                sc.seed, cache, pixel_integrated=False)
             psf_wide[b.name] = cached_band_psf(tel, b, scale, tel.psf.spike_radius_arcsec,
                                                sc.seed, cache, pixel_integrated=False)
+            if tel.drift.enabled:
+                drifts[b.name] = drift_psf_model(tel, b, scale, tel.psf.core_radius_arcsec,
+                                                 sc.seed, srv.n_exposures,
+                                                 psf_core[b.name].image, cache)
             if tel.field_psf.enabled:
                 fields[b.name] = field_psf_model(tel, b, scale, tel.psf.core_radius_arcsec,
                                                 sc.seed, srv.width_arcsec / 2,
@@ -194,7 +199,8 @@ def _run_scenario(sc: Scenario, out_dir: str | Path, progress: bool, engine) -> 
                                     psf_wide[b.name],
                                     effective_psf(psf_core[b.name], tel.pixel_scale_arcsec),
                                     b, prov, shape_cards(fm, psf_core[b.name].image, scale),
-                                    field_hdus(fm, mgrid) if fm is not None else []))
+                                    (field_hdus(fm, mgrid) if fm is not None else [])
+                                    + _drift_hdus(drifts.get(b.name), psf_core[b.name])))
         files.append(cached_psf_png(tel, [psf_wide[b.name] for b in bands], sc.seed,
                                     out / "psf.png", cache, roll_deg=sc.survey.roll_deg,
                                     field=_field_panels(fields, bands, srv)))
@@ -215,7 +221,7 @@ def _run_scenario(sc: Scenario, out_dir: str | Path, progress: bool, engine) -> 
     ctx = _TileContext(sc=sc, bands=bands, sources=sources, lens=lens, sgrid=sgrid,
                        mgrid=mgrid, egrids=egrids, tiles=tiles, psf_core=psf_core,
                        psf_wide=psf_wide, rates=rates, bright=bright, files={},
-                       field_psfs=fields)
+                       field_psfs=fields, drift=drifts)
     if sc.detector.persistence:
         ctx.stimuli = _persistence_stimuli(sc, bands, sources, egrids, psf_core, rates)
     with timer("tiles"), section_files(_image_files(out, sc, bands, mgrid, egrids, noise),
@@ -319,6 +325,7 @@ class _TileContext:
     files: dict  #: file name -> simfield.io.SectionFile being written
     stimuli: list = field(default_factory=list)  #: persistence stimuli (simfield.readout)
     field_psfs: dict = None  #: band -> optics.field.FieldPSF (field-dependent PSF), if enabled
+    drift: dict = None  #: band -> optics.drift.DriftPSF (exposure-to-exposure PSF), if enabled
 
 
 _CTX: _TileContext | None = None  # set in the parent before forking tile workers
@@ -408,6 +415,11 @@ def _render_tile(ctx: _TileContext, i: int) -> dict:
             else:  # each source pixel spread by the PSF of its field position
                 u, v = _field_axes(sgrid, acc_box)
                 conv = convolve_modes(acc, fm.mean, fm.modes, fm.weight_maps(u, v))
+            # wavefront drift: the light convolved with each eigen-PSF of the exposures' changes
+            dr = (ctx.drift or {}).get(b.name)
+            dscene = [] if dr is None else [np.ascontiguousarray(convolve_tiled(acc, m)[
+                sy0 - acc_box[0]:sy1 - acc_box[0], sx0 - acc_box[2]:sx1 - acc_box[2]])
+                for m in dr.modes.astype(np.float32)]
             del acc
             scene = np.ascontiguousarray(conv[sy0 - acc_box[0]:sy1 - acc_box[0],
                                               sx0 - acc_box[2]:sx1 - acc_box[2]])
@@ -437,7 +449,14 @@ def _render_tile(ctx: _TileContext, i: int) -> dict:
             """Each exposure window in turn, so only one is in memory while drizzling."""
             for k, eg in enumerate(tile.egrids):
                 with timer("exposures"):
-                    r = sample_scene(scene, tile.sgrid, eg)
+                    src = scene
+                    if dscene:  # this exposure's PSF: static + sum_k c_ek mode_k
+                        src = scene.copy()
+                        for c, d in zip(dr.coeffs[k], dscene):
+                            src += np.float32(c) * d
+                        np.maximum(src, 0.0, out=src)
+                    r = sample_scene(src, tile.sgrid, eg)
+                    del src
                     # noise tied to detector pixels: pixels shared with a neighbouring tile
                     # get the same noise there, so the mosaic has no seams
                     ey0, _, ex0, _ = tile.exposures[k]
@@ -1035,6 +1054,25 @@ def _add_bright_field(scene, stamps, rate, brt, wide, core, fm, sgrid: Grid, ori
         one = np.zeros_like(brt)
         one[st.index] = True
         add_bright(scene, [st], rate, one, k, origin=origin)
+
+
+def _drift_hdus(dr, core) -> list:
+    """``PSF_MOSAIC`` (the mosaic's effective PSF at the field centre, mean of the exposures')
+    and ``PSF_EXPOSURES`` (each exposure's PSF as rendered) of a drifting wavefront."""
+    if dr is None:
+        return []
+    mos = fits.ImageHDU(dr.mosaic.astype(np.float32), name="PSF_MOSAIC")
+    exp = fits.ImageHDU(np.stack([dr.exposure_psf(core.image, e)
+                                  for e in range(dr.coeffs.shape[0])]).astype(np.float32),
+                        name="PSF_EXPOSURES")
+    for h in (mos, exp):
+        h.header["PIXSCALE"] = (core.scale_arcsec, "[arcsec] PSF pixel")
+        h.header["NORM"] = ("sum=1", "each image normalised to unit sum")
+    mos.header["PSFDESC"] = "mean of the exposures' PSFs (wavefront drift), field centre"
+    exp.header["PSFDESC"] = "PSF of each exposure in dither order (wavefront drift)"
+    mos.header["DRIFTMAX"] = (round(float(dr.rms_change.max()), 6),
+                              "largest sum|P_e - P| over exposures")
+    return [mos, exp]
 
 
 def _field_panels(field: dict, bands, srv) -> list:

@@ -11,14 +11,16 @@ CONF = CONF_DIR
 def make_scenario(*overrides: str):
     """A validated Scenario from conf/ with Hydra ``overrides``.
 
-    The field-dependent PSF is off unless an override names ``telescope.field_psf`` or picks a
-    telescope: its grid of PSFs costs seconds per band with the empty PSF cache of a test, and
-    only tests/test_field_psf.py tests it.
+    The field-dependent PSF and the wavefront drift are off unless an override names
+    ``telescope.field_psf`` / ``telescope.drift`` or picks a telescope: their extra PSFs cost
+    seconds per band with the empty PSF cache of a test, and only tests/test_field_psf.py and
+    tests/test_drift.py test them.
     """
     register_configs()
     overrides = list(overrides)
-    if not any(o.startswith(("telescope.field_psf", "telescope=")) for o in overrides):
-        overrides.insert(0, "telescope.field_psf.enabled=false")
+    for key in ("telescope.field_psf", "telescope.drift"):
+        if not any(o.startswith((key, "telescope=")) for o in overrides):
+            overrides.insert(0, f"{key}.enabled=false")
     with initialize_config_dir(CONF, version_base=None):
         cfg = compose("config", overrides=overrides)
     return to_scenario(cfg)

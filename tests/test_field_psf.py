@@ -110,12 +110,15 @@ def test_each_source_is_spread_by_its_own_psf(model):
 
 
 def test_run_writes_centre_and_corner_shape_and_truth_psf(tmp_path):
-    """A run with the field-dependent PSF: psf_<band>.fits has FWHM and ellipticity cards at
-    the centre and the most elongated corner that differ, equal to GalSim HSM measures of
-    psf_at_position at those mosaic pixels; psf.png is written."""
+    """A run with the field-dependent PSF and wavefront drift: psf_<band>.fits has FWHM and
+    ellipticity cards at the centre and the most elongated corner that differ, equal to GalSim
+    HSM measures of psf_at_position at those mosaic pixels; the mosaic's effective PSF
+    (PSF_MOSAIC: unit sum, not the static PSF) is the mean of the exposures' (PSF_EXPOSURES);
+    psf.png is written."""
     sc = small_scenario(tmp_path, "telescope.field_psf.enabled=true", "detection.enabled=false",
                         "photometry.enabled=false", "score.enabled=false",
-                        "selection.enabled=false")
+                        "selection.enabled=false", "telescope.drift.enabled=true",
+                        "telescope.psf.n_wavelengths=3")
     sc.telescope.bands = [b for b in sc.telescope.bands if b.name == "b13"]
     sc.telescope.psf.core_radius_arcsec = 0.5
     res = run_scenario(sc, tmp_path / "run")
@@ -129,6 +132,11 @@ def test_run_writes_centre_and_corner_shape_and_truth_psf(tmp_path):
         assert psf.sum() == pytest.approx(1.0, abs=1e-6)
         g = galsim.hsm.FindAdaptiveMom(galsim.Image(psf, scale=h["PIXSCALE"])).observed_shape.g
         assert g == pytest.approx(h[f"ELL{key}"], abs=2e-3), key
+    with fits.open(path) as hl:
+        mos, exp, psf = (hl[n].data.astype(float) for n in ("PSF_MOSAIC", "PSF_EXPOSURES", "PSF"))
+    assert exp.shape[0] == sc.survey.n_exposures
+    assert mos.sum() == pytest.approx(1.0, abs=1e-5) and np.abs(mos - psf).sum() > 1e-3
+    np.testing.assert_allclose(mos, exp.mean(axis=0), atol=1e-6)
     assert (res.out_dir / "psf.png").read_bytes()[:4] == b"\x89PNG"
 
 

@@ -129,10 +129,11 @@ def test_invalid_overrides_refused_in_one_line_naming_key(case, empty_dir):
 def test_preflight_composes_like_hydra():
     """preflight's scenario is the one Hydra's compose gives for the same overrides (its cache
     of preset compositions changes nothing)."""
-    # a telescope.field_psf key: make_scenario then keeps the field-dependent PSF as given
-    for ov in (["survey=quick", "seed=5", "survey.n_exposures=3", "telescope.field_psf.grid=4"],
+    # telescope.field_psf / drift keys: make_scenario then keeps them as given
+    for ov in (["survey=quick", "seed=5", "survey.n_exposures=3", "telescope.field_psf.grid=4",
+                "telescope.drift.step_nm=5"],
                ["lens=cluster", "survey=quick", "detector.ipc=false",
-                "telescope.field_psf.enabled=true"],
+                "telescope.field_psf.enabled=true", "telescope.drift.enabled=true"],
                ["telescope=circular", "survey=quick", "score.mag_step=0.5"]):
         assert cli.preflight(ov) == [make_scenario(*ov)], ov
 

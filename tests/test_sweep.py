@@ -30,6 +30,7 @@ TINY = [
     "telescope.bands=[{name:b17,center_nm:1700,width_nm:380,throughput:0.4,sky_mjy_sr:0.18}]",
     "selection=none",
     "telescope.psf.n_wavelengths=3", "score.report=false", "telescope.field_psf.enabled=false",
+    "telescope.drift.enabled=false",
 ]
 
 

@@ -40,7 +40,7 @@ from ..bands import Band
 from ..config import TelescopeConfig
 from ..errors import check_range, require
 from ..io import atomic_path
-from .pupil import Pupil, pupil_extent_m, scenario_pupil, with_zernike
+from .pupil import Pupil, pupil_extent_m, scenario_pupil, with_segment_terms, with_zernike
 
 __all__ = [
     "PSFImage",
@@ -269,7 +269,7 @@ def _resample_pixels(fine: np.ndarray, step: float, scale: float, npix: int,
 
 def band_psf(tel: TelescopeConfig, band: Band, scale_arcsec: float, radius_arcsec: float,
              seed: int = 0, pixel_integrated: bool = True,
-             field_zernike_nm: Sequence[float] = ()) -> PSFImage:
+             field_zernike_nm: Sequence[float] = (), segment_terms_nm=None) -> PSFImage:
     """Polychromatic, jittered PSF of ``tel`` in ``band``, pixel-integrated or sampled.
 
     Parameters
@@ -292,6 +292,9 @@ def band_psf(tel: TelescopeConfig, band: Band, scale_arcsec: float, radius_arcse
     field_zernike_nm : sequence of float (nm)
         Global Noll 4, 5, ... terms added to the wavefront error (the field-dependent part at
         one field point, see :mod:`simfield.optics.field`); empty: the field centre.
+    segment_terms_nm : ndarray (nm), shape (n_segments, 3), optional
+        Segment piston, tip and tilt added to the wavefront error (one exposure's drift, see
+        :mod:`simfield.optics.drift`), net tilt removed.
 
     Returns
     -------
@@ -318,6 +321,8 @@ def band_psf(tel: TelescopeConfig, band: Band, scale_arcsec: float, radius_arcse
                   int(np.ceil(_PERIOD_FACTOR * width_rad * extent / (lam.min() * 1e-9))) + 2)
     pupil = with_zernike(_band_pupil(tel, int(seed), n_pupil), field_zernike_nm,
                          tel.diameter_m / 2.0)
+    if segment_terms_nm is not None:
+        pupil = with_segment_terms(pupil, tel, segment_terms_nm)
 
     fine = np.zeros((theta.size, theta.size))
     strehl = 0.0
@@ -439,7 +444,7 @@ def effective_psf(psf: PSFImage, detector_pixel_arcsec: float) -> PSFImage:
 # --------------------------------------------------------------------------------------------
 def _cache_key(tel: TelescopeConfig, band: Band, scale_arcsec: float, radius_arcsec: float,
                seed: int, pixel_integrated: bool = True,
-               field_zernike_nm: Sequence[float] = ()) -> str:
+               field_zernike_nm: Sequence[float] = (), segment_terms_nm=None) -> str:
     ps = tel.psf
     desc = {
         "version": _CACHE_VERSION,
@@ -458,6 +463,9 @@ def _cache_key(tel: TelescopeConfig, band: Band, scale_arcsec: float, radius_arc
     }
     if np.any(field_zernike_nm):  # field centre: the key of a plain band PSF
         desc["field_zernike_nm"] = [float(z) for z in field_zernike_nm]
+    if segment_terms_nm is not None and np.any(segment_terms_nm):
+        desc["segment_terms_nm"] = hashlib.sha256(
+            np.ascontiguousarray(segment_terms_nm, dtype=float).tobytes()).hexdigest()
     return hashlib.sha256(json.dumps(desc, sort_keys=True).encode()).hexdigest()
 
 
@@ -465,7 +473,7 @@ def cached_band_psf(tel: TelescopeConfig, band: Band, scale_arcsec: float,
                     radius_arcsec: float, seed: int = 0,
                     cache_dir: str | os.PathLike | None = None,
                     pixel_integrated: bool = True,
-                    field_zernike_nm: Sequence[float] = ()) -> PSFImage:
+                    field_zernike_nm: Sequence[float] = (), segment_terms_nm=None) -> PSFImage:
     """:func:`band_psf`, read from / written to an ``.npz`` disk cache.
 
     The file name holds a SHA-256 of everything that changes the PSF (pupil and PSF settings,
@@ -479,7 +487,7 @@ def cached_band_psf(tel: TelescopeConfig, band: Band, scale_arcsec: float,
     """
     folder = Path(cache_dir if cache_dir is not None else tel.psf.cache_dir)
     key = _cache_key(tel, band, scale_arcsec, radius_arcsec, seed, pixel_integrated,
-                     field_zernike_nm)
+                     field_zernike_nm, segment_terms_nm)
     path = folder / f"psf_{band.name}_{key[:20]}.npz"
     if path.exists():
         with np.load(path) as d:
@@ -490,7 +498,7 @@ def cached_band_psf(tel: TelescopeConfig, band: Band, scale_arcsec: float,
                             strehl=float(d["strehl"]), flux_fraction=float(d["flux_fraction"]),
                             from_cache=True)
     psf = band_psf(tel, band, scale_arcsec, radius_arcsec, seed, pixel_integrated,
-                   field_zernike_nm)
+                   field_zernike_nm, segment_terms_nm)
     with atomic_path(path) as tmp, open(tmp, "wb") as fh:
         np.savez(fh, image=psf.image, scale_arcsec=psf.scale_arcsec, band=psf.band,
                  pivot_nm=psf.pivot_nm, fwhm_arcsec=psf.fwhm_arcsec,

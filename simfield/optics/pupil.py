@@ -38,7 +38,7 @@ from ..config import TelescopeConfig
 from ..random import stream
 
 __all__ = ["Pupil", "make_pupil", "scenario_pupil", "pupil_extent_m", "segment_centers",
-           "with_zernike"]
+           "with_zernike", "with_segment_terms"]
 
 _SQRT3 = np.sqrt(3.0)
 #: unit normals of the three edge pairs of a flat-topped hexagon (30, 90, 150 deg)
@@ -273,6 +273,31 @@ def _trapezoid_cdf(t: np.ndarray, a: np.ndarray, b: np.ndarray) -> np.ndarray:
     return np.where(t < b - a, lo, np.where(t > a - b, 1.0 - hi, lin))
 
 
+def _segment_opd(tel: TelescopeConfig, x: np.ndarray, y: np.ndarray,
+                 seg: np.ndarray) -> np.ndarray:
+    """OPD (nm) at points (x, y) (m) of segment piston, tip and tilt ``seg`` (nm, shape
+    (n_segments, 3), each term of unit rms over a hexagon; order of :func:`segment_centers`);
+    0 off the segments."""
+    p = tel.pupil
+    nr = p.segment_rings
+    pitch = p.segment_flat_m + p.gap_m
+    q, r = _hex_round(x / (pitch * _SQRT3 / 2.0), y / pitch - x / (pitch * _SQRT3))
+    cx, cy = _lattice_centres(q, r, pitch)
+    # segment index of the lattice cell holding each raster point (-1: no segment)
+    table = np.full((2 * nr + 1, 2 * nr + 1), -1)
+    sq, sr = _segment_nodes(tel)
+    table[sq + nr, sr + nr] = np.arange(sq.size)
+    qi, ri = q.astype(int) + nr, r.astype(int) + nr
+    inside = (qi >= 0) & (qi <= 2 * nr) & (ri >= 0) & (ri <= 2 * nr)
+    idx = np.where(inside, table[np.clip(qi, 0, 2 * nr), np.clip(ri, 0, 2 * nr)], -1)
+    ok = idx >= 0
+    norm = p.segment_flat_m * _HEX_RMS_PER_FLAT
+    s = seg[idx[ok]]
+    out = np.zeros(np.shape(x))
+    out[ok] = s[:, 0] + (s[:, 1] * (x - cx)[ok] + s[:, 2] * (y - cy)[ok]) / norm
+    return out
+
+
 def _opd(tel: TelescopeConfig, coords: np.ndarray, rng: np.random.Generator | None) -> np.ndarray:
     """Wavefront error (nm) at the cell centres."""
     p = tel.pupil
@@ -286,21 +311,7 @@ def _opd(tel: TelescopeConfig, coords: np.ndarray, rng: np.random.Generator | No
     seg = rng.standard_normal((len(centres), 3)) * (p.segment_wfe_rms_nm / np.sqrt(3.0))
     zc = rng.standard_normal(len(p.zernike_rms_nm)) * np.asarray(p.zernike_rms_nm, dtype=float)
     if len(centres) and p.segment_wfe_rms_nm > 0:
-        nr = p.segment_rings
-        pitch = p.segment_flat_m + p.gap_m
-        q, r = _hex_round(x / (pitch * _SQRT3 / 2.0), y / pitch - x / (pitch * _SQRT3))
-        cx, cy = _lattice_centres(q, r, pitch)
-        # segment index of the lattice cell holding each raster point (-1: no segment)
-        table = np.full((2 * nr + 1, 2 * nr + 1), -1)
-        sq, sr = _segment_nodes(tel)
-        table[sq + nr, sr + nr] = np.arange(sq.size)
-        qi, ri = q.astype(int) + nr, r.astype(int) + nr
-        inside = (qi >= 0) & (qi <= 2 * nr) & (ri >= 0) & (ri <= 2 * nr)
-        idx = np.where(inside, table[np.clip(qi, 0, 2 * nr), np.clip(ri, 0, 2 * nr)], -1)
-        ok = idx >= 0
-        norm = p.segment_flat_m * _HEX_RMS_PER_FLAT
-        s = seg[idx[ok]]
-        opd[ok] += s[:, 0] + (s[:, 1] * (x - cx)[ok] + s[:, 2] * (y - cy)[ok]) / norm
+        opd += _segment_opd(tel, x, y, seg)
     if zc.size and np.any(zc):
         from galsim.zernike import Zernike
 
@@ -396,6 +407,23 @@ def with_zernike(pupil: Pupil, noll4_nm, radius_m: float) -> Pupil:
     x, y = np.meshgrid(pupil.coords_m, pupil.coords_m)
     add = Zernike(np.concatenate([np.zeros(4), c]), R_outer=radius_m).evalCartesian(x, y)
     opd = pupil.opd_nm + add * (pupil.amplitude > 0)
+    opd.setflags(write=False)
+    return Pupil(amplitude=pupil.amplitude, opd_nm=opd, scale_m=pupil.scale_m,
+                 area_m2=pupil.area_m2)
+
+
+def with_segment_terms(pupil: Pupil, tel: TelescopeConfig, seg_nm) -> Pupil:
+    """``pupil`` with segment piston, tip and tilt ``seg_nm`` (nm, shape (n_segments, 3), the
+    normalisation of the drawn segment errors) added to its wavefront error, their net mean and
+    tilt removed (a drift that moves the image is the pointing's, not the PSF's).
+    """
+    seg = np.asarray(seg_nm, dtype=float)
+    if not seg.size or not np.any(seg) or tel.pupil.kind != "segmented":
+        return pupil
+    x, y = np.meshgrid(pupil.coords_m, pupil.coords_m)
+    add = _remove_plane(_segment_opd(tel, x, y, seg) * (pupil.amplitude > 0), pupil.amplitude,
+                        pupil.coords_m)
+    opd = pupil.opd_nm + add
     opd.setflags(write=False)
     return Pupil(amplitude=pupil.amplitude, opd_nm=opd, scale_m=pupil.scale_m,
                  area_m2=pupil.area_m2)
