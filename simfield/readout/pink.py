@@ -21,8 +21,8 @@ time grid of ``STEP`` samples that is linearly interpolated to every sample:
   Fourier space (one real FFT pair of n_samples / ``LOW_STEP`` points, cheap, made once);
 - higher frequencies, S(f) (1 - g(f)) up to the grid's Nyquist frequency f_N / ``STEP``:
   chunks of ``CHUNK`` grid points plus ``CHUNK`` / 8 on each side, each from its own random
-  stream, shaped in Fourier space (the gain divided by the sinc^2 response of the linear
-  interpolation, so the interpolated spectrum stays flat to the model) and overlap-added with
+  stream, shaped in Fourier space (the gain divided by the sinc^2 amplitude response of the linear
+  interpolation, so the interpolated spectrum follows the model) and overlap-added with
   sine/cosine tapers whose squares sum to one, so the variance is stationary. A window needs
   only the chunks of its samples.
 
@@ -87,8 +87,12 @@ def _low_stream(layout: ReadoutLayout, a: float, seed: int, names: tuple) -> np.
     dtc = LOW_STEP * layout.dt_s
     f = np.fft.rfftfreq(n, dtc)
     shape = np.sqrt(pink_psd(f, a) * _crossover(f, _fc(layout)) / (2.0 * dtc))
-    z = stream(seed, *names, "low").standard_normal(n)
-    vals = sfft.irfft(sfft.rfft(z) * shape, n)
+    # the spectrum of n real unit normals drawn directly: Re, Im of variance n / 2, the
+    # Nyquist term real of variance n (the mean term is 0 in the model)
+    z = stream(seed, *names, "low").standard_normal((2, f.size))
+    spec = (z[0] + 1j * z[1]) * np.sqrt(n / 2.0)
+    spec[-1] = z[0, -1] * np.sqrt(n)
+    vals = sfft.irfft(spec * shape, n)
     vals.setflags(write=False)
     return vals
 
@@ -101,8 +105,9 @@ def _chunk_shape(layout: ReadoutLayout, a: float) -> tuple:
     dtc = STEP * layout.dt_s
     f = np.fft.rfftfreq(n, dtc)
     gain = np.sqrt(pink_psd(f, a) * (1.0 - _crossover(f, _fc(layout))) / (2.0 * dtc))
-    # linear interpolation between grid points passes power at f with sinc^2(f STEP dt)
-    gain /= np.maximum(np.sinc(f * dtc), 0.5)
+    # linear interpolation between grid points (a triangle kernel) passes amplitude at f with
+    # sinc^2(f STEP dt): divided out (capped) so the interpolated spectrum follows the model
+    gain /= np.maximum(np.sinc(f * dtc) ** 2, 0.25)
     # spectrum of n real unit normals: Re, Im each of variance n / 2 (the Nyquist term real,
     # variance n; the mean term is 0 here), so the gain carries sqrt(n / 2)
     gain = gain * math.sqrt(n / 2.0)
@@ -111,22 +116,21 @@ def _chunk_shape(layout: ReadoutLayout, a: float) -> tuple:
     return n, gain, np.sin(s), np.cos(s)
 
 
-def _chunks(layout: ReadoutLayout, a: float, seed: int, names: tuple, j0: int,
-            j1: int) -> np.ndarray:
-    """High-frequency chunks j0 ... j1 - 1 on the grid, tapered (e-), shape (j1 - j0, n);
-    chunk j covers grid points j CHUNK - m ... (j + 1) CHUNK + m - 1 (m = CHUNK // 8) and has
-    its own stream."""
+@lru_cache(maxsize=4096)
+def _chunk(layout: ReadoutLayout, a: float, seed: int, names: tuple, j: int) -> np.ndarray:
+    """High-frequency chunk j on the grid, tapered (e-): grid points j CHUNK - m ...
+    (j + 1) CHUNK + m - 1 (m = CHUNK // 8), from its own stream. Cached: the reference-pixel
+    correction asks again for the rows a window has just drawn."""
     n, gain, up, down = _chunk_shape(layout, a)
-    z = np.empty((j1 - j0, 2, gain.size))
-    for i, j in enumerate(range(j0, j1)):
-        z[i] = stream(seed, *names, "high", j + 1).standard_normal((2, gain.size))  # j >= -1
-    spec = (z[:, 0] + 1j * z[:, 1]) * gain
-    spec[:, 0] = 0.0
-    spec[:, -1] = z[:, 0, -1] * gain[-1]
-    x = sfft.irfft(spec, n, axis=1)
+    z = stream(seed, *names, "high", j + 1).standard_normal((2, gain.size))  # j >= -1
+    spec = (z[0] + 1j * z[1]) * gain
+    spec[0] = 0.0
+    spec[-1] = z[0, -1] * gain[-1]
+    x = sfft.irfft(spec, n)
     m = up.size
-    x[:, :m] *= up
-    x[:, -m:] *= down
+    x[:m] *= up
+    x[-m:] *= down
+    x.setflags(write=False)
     return x
 
 
@@ -137,8 +141,8 @@ def _grid_values(layout: ReadoutLayout, a: float, seed: int, names: tuple, i0: i
     out = np.interp(np.arange(i0, i1) * (STEP / LOW_STEP), np.arange(low.size), low)
     m = CHUNK // 8
     j0, j1 = (i0 - m) // CHUNK, (i1 - 1 + m) // CHUNK + 1
-    xs = _chunks(layout, a, seed, names, j0, j1)
-    for j, x in zip(range(j0, j1), xs):
+    for j in range(j0, j1):
+        x = _chunk(layout, a, seed, names, j)
         s0 = j * CHUNK - m
         lo, hi = max(s0, i0), min(s0 + x.size, i1)
         if hi > lo:
@@ -165,7 +169,15 @@ def grid_at(layout: ReadoutLayout, i0: int, g: np.ndarray, y0: int, y1: int,
     rows ``y0 ... y1 - 1`` and read positions ``u``: shape (y1 - y0, len(u))."""
     r = layout.row_len
     g = np.asarray(g, np.float32)
-    t = (np.arange(y0, y1, dtype=np.int64) * r - i0 * STEP)[:, None] + np.asarray(u, np.int64)
+    u = np.asarray(u, np.int64)
+    if u.size > 8 and np.all(np.diff(u) == u[1] - u[0]) and abs(u[1] - u[0]) == 1:
+        # a run of read positions: interpolate whole rows by broadcasting, then cut the run
+        w = np.arange(STEP, dtype=np.float32) * np.float32(1.0 / STEP)
+        full = (g[:-1, None] * (1 - w) + g[1:, None] * w).ravel()  # samples from i0 STEP on
+        rows = full[y0 * r - i0 * STEP:y1 * r - i0 * STEP].reshape(y1 - y0, r)
+        lo, hi = int(u.min()), int(u.max()) + 1
+        return rows[:, lo:hi] if u[1] > u[0] else rows[:, lo:hi][:, ::-1]
+    t = (np.arange(y0, y1, dtype=np.int64) * r - i0 * STEP)[:, None] + u
     k = t // STEP
     w = (t - k * STEP).astype(np.float32) * np.float32(1.0 / STEP)
     lo = g[k]
