@@ -195,7 +195,8 @@ def run_scenario(sc: Scenario, out_dir: str | Path, progress: bool = False) -> R
         bright[b.name] = (mag - 2.5 * np.log10(mu)) < tel.psf.bright_mag
     ctx = _TileContext(sc=sc, bands=bands, sources=sources, lens=lens, sgrid=sgrid,
                        mgrid=mgrid, egrids=egrids, tiles=tiles, psf_core=psf_core,
-                       psf_wide=psf_wide, rates=rates, bright=bright, files={})
+                       psf_wide=psf_wide, rates=rates, bright=bright, files={},
+                       bulge=_bulge_fractions(sources, bands))
     with timer("tiles"), section_files(_image_files(out, sc, bands, mgrid, egrids, noise),
                                        prov) as sfiles:
         ctx.files = {f.final.name: f for f in sfiles}
@@ -295,6 +296,7 @@ class _TileContext:
     rates: dict  #: band -> e-/s per source row
     bright: dict  #: band -> bool per source row, drawn with the large PSF
     files: dict  #: file name -> simfield.io.SectionFile being written
+    bulge: dict  #: band -> B/T per source row (two-component galaxies), or None
 
 
 _CTX: _TileContext | None = None  # set in the parent before forking tile workers
@@ -371,14 +373,16 @@ def _render_tile(ctx: _TileContext, i: int) -> dict:
         rate, brt = ctx.rates[b.name], ctx.bright[b.name]
         with timer("scene"):
             core = ctx.psf_core[b.name].image
+            bt = ctx.bulge[b.name]
             acc = accumulate(stamps, rate, (acc_box[1] - acc_box[0], acc_box[3] - acc_box[2]),
-                             select=~brt, origin=(acc_box[0], acc_box[2]))
+                             select=~brt, origin=(acc_box[0], acc_box[2]), bulge_fraction=bt)
             conv = convolve_tiled(acc, core)
             del acc
             scene = np.ascontiguousarray(conv[sy0 - acc_box[0]:sy1 - acc_box[0],
                                               sx0 - acc_box[2]:sx1 - acc_box[2]])
             del conv
-            add_bright(scene, stamps, rate, brt, ctx.psf_wide[b.name].image, origin=(sy0, sx0))
+            add_bright(scene, stamps, rate, brt, ctx.psf_wide[b.name].image, origin=(sy0, sx0),
+                       bulge_fraction=bt)
             np.maximum(scene, 0.0, out=scene)  # FFT round-off leaves ~1e-7 negatives
         with timer("truth_image"):
             sky_mosaic = b.sky_rate(area, mgrid.scale)
@@ -386,7 +390,7 @@ def _render_tile(ctx: _TileContext, i: int) -> dict:
             thr_scene = SEGMENTATION_NSIGMA * sigma_pix * (sgrid.scale / mgrid.scale) ** 2
             small = _crop_center(core, 0.4 / sgrid.scale)
             seg_scene = dominant_source(stamps, rate, ids, scene.shape, small / small.sum(),
-                                        thr_scene, origin=(sy0, sx0))
+                                        thr_scene, origin=(sy0, sx0), bulge_fraction=bt)
             seg = _resample_ids(seg_scene, tile.sgrid, tile.mgrid)
             del seg_scene
             f = ctx.files[f"truth_image_{b.name}.fits"]
@@ -632,6 +636,14 @@ def _image_files(out: Path, sc: Scenario, bands: list[Band], mgrid: Grid, egrids
 
 
 # ---------------------------------------------------------------------------- helpers
+def _bulge_fractions(sources: Table, bands: list[Band]) -> dict:
+    """Band -> B/T per source row (0 where a row has none), or None without bulges."""
+    if "n_components" not in sources.colnames:
+        return {b.name: None for b in bands}
+    return {b.name: np.asarray(np.ma.filled(sources[f"bt_{b.name}"], 0.0), float)
+            for b in bands}
+
+
 def _stack_sources(a: Table, b: Table) -> Table:
     from astropy.table import vstack
 
@@ -691,7 +703,7 @@ def _draw_tile(ctx: _TileContext, acc_box, acc_grid: Grid, bright_box,
     """
     import galsim
 
-    from .population.morphology import make_profile
+    from .population.morphology import make_components, make_profile
 
     sources, sgrid, sc, lens = ctx.sources, ctx.sgrid, ctx.sc, ctx.lens
     xs = np.asarray(sources["x_arcsec"], float)
@@ -700,6 +712,11 @@ def _draw_tile(ctx: _TileContext, acc_box, acc_grid: Grid, bright_box,
     kinds = np.asarray(sources["kind"]).astype(str)
     z = np.asarray(sources["redshift"], float)
     rhalf = np.asarray(sources["r_half"], float)
+    two = np.zeros(len(sources), bool)
+    if "n_components" in sources.colnames:  # bulge + disk galaxies (population.components)
+        two = np.asarray(np.ma.filled(sources["n_components"], 1)) == 2
+        r_disk, r_bulge = (np.asarray(np.ma.filled(sources[c], 0.0), float)
+                           for c in ("r_half_disk", "r_half_bulge"))
     frame = sgrid.pixel_frame().ravel()  # (xi, eta) -> (column, row) directions
     cap = STAMP_HALF_MAX
 
@@ -720,10 +737,13 @@ def _draw_tile(ctx: _TileContext, acc_box, acc_grid: Grid, bright_box,
         seen = (xs > xlo - r_max) & (xs < xhi + r_max) & (ys > ylo - r_max) & (ys < yhi + r_max)
     stamps: list[Stamp] = []
     for i in np.nonzero(lensed & seen if lens is not None else lensed)[0]:
-        prof = make_profile(sources[i], sc.seed)
-        for im, iy0, ix0 in render_lensed(lens, prof, xs[i], ys[i], z[i], acc_grid):
-            stamps.append(Stamp(np.asarray(im, np.float32), int(iy0) + acc_box[0],
-                                int(ix0) + acc_box[2], int(i)))
+        # a bulge + disk galaxy: each component lensed on its own (parts 1, 2 of Stamp)
+        parts = (list(enumerate(make_components(sources[i], sc.seed), 1)) if two[i] else
+                 [(0, make_profile(sources[i], sc.seed))])
+        for part, prof in parts:
+            for im, iy0, ix0 in render_lensed(lens, prof, xs[i], ys[i], z[i], acc_grid):
+                stamps.append(Stamp(np.asarray(im, np.float32), int(iy0) + acc_box[0],
+                                    int(ix0) + acc_box[2], int(i), part=part))
     # the diffuse intracluster light spans the field: every tile draws its window of it
     wanted = (near(acc_box, cap) | (bright_any & near(bright_box, cap)) | (kinds == "icl"))
     for i in np.nonzero(~lensed & wanted)[0]:
@@ -741,6 +761,17 @@ def _draw_tile(ctx: _TileContext, acc_box, acc_grid: Grid, bright_box,
                 prof = prof.shear(q=q, beta=beta)
             stamps.append(draw_window(prof.transform(*frame), xpix[i], ypix[i], sgrid.scale,
                                       box[0], box[2], box[1] - box[0], box[3] - box[2], int(i)))
+            continue
+        if two[i]:  # disk and bulge on the same pixels, weighed per band (Stamp.weighted)
+            disk, bulge = (p.transform(*frame) for p in make_components(sources[i], sc.seed))
+            half = max(stamp_half_size(disk, sgrid.scale), stamp_half_size(bulge, sgrid.scale))
+            if not overlaps(box, int(round(ypix[i])) - half, int(round(xpix[i])) - half,
+                            2 * half + 1):
+                continue
+            d, b = (draw_source_stamp(p, xpix[i], ypix[i], sgrid.scale, r / sgrid.scale,
+                                      int(i), half)
+                    for p, r in ((disk, r_disk[i]), (bulge, r_bulge[i])))
+            stamps.append(Stamp(d.image, d.iy0, d.ix0, int(i), bulge=b.image))
             continue
         prof = make_profile(sources[i], sc.seed).transform(*frame)
         half = stamp_half_size(prof, sgrid.scale)
