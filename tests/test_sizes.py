@@ -43,14 +43,14 @@ def test_population_median_size_follows_relations():
         uniform_abs_mag_max=-20.8, z_min=3.8, z_max=4.2, uniform_density_arcmin2=6000.0,
         quiescent_density_arcmin2=3000.0, dusty_density_arcmin2=0.0, star_density_arcmin2=0.0,
         dwarf_density_arcmin2=0.0, placement="uniform")
-    t = make_population(pop, BANDS, (-30, 30), (-30, 30), stream(2, "population"))
+    t = make_population(pop, BANDS, (-20, 20), (-20, 20), stream(2, "population"))
     z = np.asarray(t["redshift"], float)
     m_uv = np.asarray(t["abs_mag_uv"], float)
     r = np.asarray(t["r_half_kpc"], float)
     tmpl = np.asarray(t["template"]).astype(str)
     sf = tmpl == "starforming"
     q = np.asarray(t["kind"]).astype(str) == "quiescent"
-    assert sf.sum() > 4000 and q.sum() > 2000
+    assert sf.sum() > 2000 and q.sum() > 1000
     ratio_sf = np.log(r[sf] / sizes.starforming_r_half_kpc(z[sf], m_uv[sf]))
     err = 1.2533 * sizes.SF_SIGMA_LN / np.sqrt(sf.sum())
     assert abs(np.median(ratio_sf)) < 3 * err
