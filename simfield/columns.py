@@ -47,9 +47,19 @@ TRUTH_COLUMNS = {
     "abs_mag_uv": ("mag", "rest-frame UV (150 nm) absolute AB magnitude before dust; NaN for "
                           "stars and dwarfs"),
     "mag_{band}": ("mag", "intrinsic (unlensed) AB magnitude in band {band}"),
-    "r_half": ("arcsec", "intrinsic half-light radius along the major axis"),
+    "r_half": ("arcsec", "intrinsic half-light radius along the major axis, at the rest "
+                         "wavelength of the size relation (150 nm star-forming, 550 nm "
+                         "evolved)"),
     "r_half_kpc": ("kpc", "half-light radius (proper)"),
-    "sersic_n": ("", "Sersic index"),
+    "sersic_n": ("", "Sersic index (of a one-component galaxy)"),
+    "n_components": ("", "2 for a bulge (Sersic n = 4) + exponential disk galaxy, else 1"),
+    "bulge_fraction": ("", "bulge-to-total flux ratio at rest 550 nm (0: one component)"),
+    "r_half_bulge": ("arcsec", "half-light radius of the bulge (0: one component)"),
+    "r_half_disk": ("arcsec", "half-light radius of the disk (of the single profile for one "
+                              "component)"),
+    "bt_{band}": ("", "bulge-to-total flux ratio in band {band}"),
+    "r_half_{band}": ("arcsec", "half-light radius of the galaxy's light in band {band} "
+                                "(bulge + disk)"),
     "axis_ratio": ("", "minor / major axis ratio"),
     "position_angle": ("deg", "major axis, east of north"),
     "beta_uv": ("", "rest-UV slope of f_lambda ~ lambda^beta"),

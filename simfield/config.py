@@ -206,6 +206,11 @@ class PopulationConfig:
     ew_halpha_max: float = 1500.0  #: largest rest EW(Halpha) drawn (Angstrom)
     oiii_hbeta_ratio: float = 4.0  #: [OIII] 500.7 / Hbeta flux ratio
     oii_hbeta_ratio: float = 1.5  #: [OII] 372.7 / Hbeta flux ratio
+    # structure and placement (simfield.population.components / .clustering)
+    #: bulge + disk for galaxies brighter than bulge_mag_max (selection band, AB); a magnitude
+    #: brighter than every galaxy (e.g. 0) leaves all galaxies one Sersic profile
+    bulge_mag_max: float = 27.0
+    placement: str = "clustered"  #: clustered | uniform positions of the field galaxies
 
 
 # --------------------------------------------------------------------------------------------
@@ -671,6 +676,9 @@ def _validate_contaminants(p: PopulationConfig) -> None:
     check_range("population.ew_halpha_max", p.ew_halpha_max, 0, 5000)
     check_range("population.oiii_hbeta_ratio", p.oiii_hbeta_ratio, 0, 20)
     check_range("population.oii_hbeta_ratio", p.oii_hbeta_ratio, 0, 20)
+    check_range("population.bulge_mag_max", p.bulge_mag_max, -1e9, 40)
+    require(p.placement in ("clustered", "uniform"), "population.placement", p.placement,
+            "must be clustered or uniform")
 
 
 def _validate_lens(lens: LensConfig, z_max: float) -> None:

@@ -213,7 +213,7 @@ def inject_into_image(image_path, sc: Scenario, band: str, out_dir, psf_path=Non
     kinds = np.asarray(sources["kind"]).astype(str)
     point = np.isin(kinds, POINT_KINDS)
     stamps = draw_stamps(
-        ((i, None if point[i] else make_profile(row, sc.seed).transform(*frame),
+        ((i, None if point[i] else make_profile(row, sc.seed, band).transform(*frame),
           float(row["x"]), float(row["y"]), np.nan_to_num(float(row["r_half"])) / scale)
          for i, row in enumerate(sources)), scale)
     rate = np.nan_to_num(10 ** (-0.4 * (np.asarray(sources[f"mag_{band}"], float) - zp)))

@@ -221,7 +221,8 @@ def _run_scenario(sc: Scenario, out_dir: str | Path, progress: bool, engine) -> 
     ctx = _TileContext(sc=sc, bands=bands, sources=sources, lens=lens, sgrid=sgrid,
                        mgrid=mgrid, egrids=egrids, tiles=tiles, psf_core=psf_core,
                        psf_wide=psf_wide, rates=rates, bright=bright, files={},
-                       field_psfs=fields, drift=drifts)
+                       field_psfs=fields, drift=drifts,
+                       bulge=_bulge_fractions(sources, bands))
     if sc.detector.persistence:
         ctx.stimuli = _persistence_stimuli(sc, bands, sources, egrids, psf_core, rates)
     with timer("tiles"), section_files(_image_files(out, sc, bands, mgrid, egrids, noise),
@@ -323,6 +324,7 @@ class _TileContext:
     rates: dict  #: band -> e-/s per source row
     bright: dict  #: band -> bool per source row, drawn with the large PSF
     files: dict  #: file name -> simfield.io.SectionFile being written
+    bulge: dict  #: band -> B/T per source row (two-component galaxies), or None
     stimuli: list = field(default_factory=list)  #: persistence stimuli (simfield.readout)
     field_psfs: dict = None  #: band -> optics.field.FieldPSF (field-dependent PSF), if enabled
     drift: dict = None  #: band -> optics.drift.DriftPSF (exposure-to-exposure PSF), if enabled
@@ -407,8 +409,9 @@ def _render_tile(ctx: _TileContext, i: int) -> dict:
         rate, brt = ctx.rates[b.name], ctx.bright[b.name]
         with timer("scene"):
             core = ctx.psf_core[b.name].image
+            bt = ctx.bulge[b.name]
             acc = accumulate(stamps, rate, (acc_box[1] - acc_box[0], acc_box[3] - acc_box[2]),
-                             select=~brt, origin=(acc_box[0], acc_box[2]))
+                             select=~brt, origin=(acc_box[0], acc_box[2]), bulge_fraction=bt)
             fm = (ctx.field_psfs or {}).get(b.name)
             if fm is None:
                 conv = convolve_tiled(acc, core)
@@ -426,10 +429,10 @@ def _render_tile(ctx: _TileContext, i: int) -> dict:
             del conv
             if fm is None:
                 add_bright(scene, stamps, rate, brt, ctx.psf_wide[b.name].image,
-                           origin=(sy0, sx0))
+                           origin=(sy0, sx0), bulge_fraction=bt)
             else:
                 _add_bright_field(scene, stamps, rate, brt, ctx.psf_wide[b.name].image, core,
-                                  fm, sgrid, (sy0, sx0))
+                                  fm, sgrid, (sy0, sx0), bt)
             np.maximum(scene, 0.0, out=scene)  # FFT round-off leaves ~1e-7 negatives
         with timer("truth_image"):
             sky_mosaic = b.sky_rate(area, mgrid.scale)
@@ -437,7 +440,7 @@ def _render_tile(ctx: _TileContext, i: int) -> dict:
             thr_scene = SEGMENTATION_NSIGMA * sigma_pix * (sgrid.scale / mgrid.scale) ** 2
             small = _crop_center(core, 0.4 / sgrid.scale)
             seg_scene = dominant_source(stamps, rate, ids, scene.shape, small / small.sum(),
-                                        thr_scene, origin=(sy0, sx0))
+                                        thr_scene, origin=(sy0, sx0), bulge_fraction=bt)
             seg = _resample_ids(seg_scene, tile.sgrid, tile.mgrid)
             del seg_scene
             f = ctx.files[f"truth_image_{b.name}.fits"]
@@ -828,6 +831,14 @@ def _image_files(out: Path, sc: Scenario, bands: list[Band], mgrid: Grid, egrids
 
 
 # ---------------------------------------------------------------------------- helpers
+def _bulge_fractions(sources: Table, bands: list[Band]) -> dict:
+    """Band -> B/T per source row (0 where a row has none), or None without bulges."""
+    if "n_components" not in sources.colnames:
+        return {b.name: None for b in bands}
+    return {b.name: np.asarray(np.ma.filled(sources[f"bt_{b.name}"], 0.0), float)
+            for b in bands}
+
+
 def _stack_sources(a: Table, b: Table) -> Table:
     from astropy.table import vstack
 
@@ -887,7 +898,7 @@ def _draw_tile(ctx: _TileContext, acc_box, acc_grid: Grid, bright_box,
     """
     import galsim
 
-    from .population.morphology import make_profile
+    from .population.morphology import make_components, make_profile
 
     sources, sgrid, sc, lens = ctx.sources, ctx.sgrid, ctx.sc, ctx.lens
     xs = np.asarray(sources["x_arcsec"], float)
@@ -896,6 +907,11 @@ def _draw_tile(ctx: _TileContext, acc_box, acc_grid: Grid, bright_box,
     kinds = np.asarray(sources["kind"]).astype(str)
     z = np.asarray(sources["redshift"], float)
     rhalf = np.asarray(sources["r_half"], float)
+    two = np.zeros(len(sources), bool)
+    if "n_components" in sources.colnames:  # bulge + disk galaxies (population.components)
+        two = np.asarray(np.ma.filled(sources["n_components"], 1)) == 2
+        r_disk, r_bulge = (np.asarray(np.ma.filled(sources[c], 0.0), float)
+                           for c in ("r_half_disk", "r_half_bulge"))
     frame = sgrid.pixel_frame().ravel()  # (xi, eta) -> (column, row) directions
     cap = STAMP_HALF_MAX
 
@@ -916,10 +932,13 @@ def _draw_tile(ctx: _TileContext, acc_box, acc_grid: Grid, bright_box,
         seen = (xs > xlo - r_max) & (xs < xhi + r_max) & (ys > ylo - r_max) & (ys < yhi + r_max)
     stamps: list[Stamp] = []
     for i in np.nonzero(lensed & seen if lens is not None else lensed)[0]:
-        prof = make_profile(sources[i], sc.seed)
-        for im, iy0, ix0 in render_lensed(lens, prof, xs[i], ys[i], z[i], acc_grid):
-            stamps.append(Stamp(np.asarray(im, np.float32), int(iy0) + acc_box[0],
-                                int(ix0) + acc_box[2], int(i)))
+        # a bulge + disk galaxy: each component lensed on its own (parts 1, 2 of Stamp)
+        parts = (list(enumerate(make_components(sources[i], sc.seed), 1)) if two[i] else
+                 [(0, make_profile(sources[i], sc.seed))])
+        for part, prof in parts:
+            for im, iy0, ix0 in render_lensed(lens, prof, xs[i], ys[i], z[i], acc_grid):
+                stamps.append(Stamp(np.asarray(im, np.float32), int(iy0) + acc_box[0],
+                                    int(ix0) + acc_box[2], int(i), part=part))
     # the diffuse intracluster light spans the field: every tile draws its window of it
     wanted = (near(acc_box, cap) | (bright_any & near(bright_box, cap)) | (kinds == "icl"))
     for i in np.nonzero(~lensed & wanted)[0]:
@@ -937,6 +956,17 @@ def _draw_tile(ctx: _TileContext, acc_box, acc_grid: Grid, bright_box,
                 prof = prof.shear(q=q, beta=beta)
             stamps.append(draw_window(prof.transform(*frame), xpix[i], ypix[i], sgrid.scale,
                                       box[0], box[2], box[1] - box[0], box[3] - box[2], int(i)))
+            continue
+        if two[i]:  # disk and bulge on the same pixels, weighed per band (Stamp.weighted)
+            disk, bulge = (p.transform(*frame) for p in make_components(sources[i], sc.seed))
+            half = max(stamp_half_size(disk, sgrid.scale), stamp_half_size(bulge, sgrid.scale))
+            if not overlaps(box, int(round(ypix[i])) - half, int(round(xpix[i])) - half,
+                            2 * half + 1):
+                continue
+            d, b = (draw_source_stamp(p, xpix[i], ypix[i], sgrid.scale, r / sgrid.scale,
+                                      int(i), half)
+                    for p, r in ((disk, r_disk[i]), (bulge, r_bulge[i])))
+            stamps.append(Stamp(d.image, d.iy0, d.ix0, int(i), bulge=b.image))
             continue
         prof = make_profile(sources[i], sc.seed).transform(*frame)
         half = stamp_half_size(prof, sgrid.scale)
@@ -1038,7 +1068,8 @@ def _field_axes(sgrid: Grid, box) -> tuple[np.ndarray, np.ndarray]:
             (np.arange(box[0], box[1]) - cy) * sgrid.scale)
 
 
-def _add_bright_field(scene, stamps, rate, brt, wide, core, fm, sgrid: Grid, origin) -> None:
+def _add_bright_field(scene, stamps, rate, brt, wide, core, fm, sgrid: Grid, origin,
+                      bulge_fraction=None) -> None:
     """Bright sources with the large PSF of the field centre plus, in its core, the difference
     between the field model's PSF at the source (its stamp's centre) and the centre's core."""
     hw, hc = wide.shape[0] // 2, core.shape[0] // 2
@@ -1053,7 +1084,7 @@ def _add_bright_field(scene, stamps, rate, brt, wide, core, fm, sgrid: Grid, ori
             fm.at((sx - cx) * sgrid.scale, (sy - cy) * sgrid.scale) - core)
         one = np.zeros_like(brt)
         one[st.index] = True
-        add_bright(scene, [st], rate, one, k, origin=origin)
+        add_bright(scene, [st], rate, one, k, origin=origin, bulge_fraction=bulge_fraction)
 
 
 def _drift_hdus(dr, core) -> list:

@@ -57,12 +57,30 @@ class Stamp:
         0-based scene-grid row and column of ``image[0, 0]``.
     index : int
         Row of the source in the sources table.
+    bulge : ndarray (float32) or None
+        A two-component galaxy's unit-flux bulge on the same pixels (``image`` then holds its
+        disk); the band's light is (1 - B/T) image + B/T bulge (:meth:`weighted`).
+    part : int
+        0: the whole source (or disk and bulge as above); 1: only the disk, 2: only the bulge
+        of a two-component galaxy, each drawn on its own (lensed images).
     """
 
     image: np.ndarray
     iy0: int
     ix0: int
     index: int
+    bulge: np.ndarray | None = None
+    part: int = 0
+
+    def weighted(self, bulge_fraction: np.ndarray | None, s=(slice(None), slice(None))):
+        """The unit-flux light of the source on the part ``s`` of the stamp, given the bulge
+        fraction per source row of a band (None or a one-component stamp: ``image``)."""
+        if bulge_fraction is None or (self.bulge is None and self.part == 0):
+            return self.image[s]
+        bt = np.float32(bulge_fraction[self.index])
+        if self.part:
+            return (bt if self.part == 2 else 1 - bt) * self.image[s]
+        return self.image[s] + bt * (self.bulge[s] - self.image[s])
 
     def clip(self, shape: tuple[int, int], origin: tuple[int, int] = (0, 0)):
         """(image slices, stamp slices) of the part inside an image of ``shape`` whose [0, 0]
@@ -279,12 +297,14 @@ def draw_stamps(items: Iterable[tuple[int, object, float, float, float]], scale:
 
 def accumulate(stamps: Sequence[Stamp], flux: np.ndarray, shape: tuple[int, int],
                select: np.ndarray | None = None, dtype=np.float32,
-               origin: tuple[int, int] = (0, 0)) -> np.ndarray:
+               origin: tuple[int, int] = (0, 0),
+               bulge_fraction: np.ndarray | None = None) -> np.ndarray:
     """Sum ``flux[stamp.index] * stamp.image`` into an image of ``shape``.
 
     ``flux`` is indexed by source row (e-/s); ``select`` (bool per source row) keeps a subset;
     the image's [0, 0] pixel is scene pixel ``origin`` (row, column), so a window of the scene
-    can be built from stamps in scene-grid indices.
+    can be built from stamps in scene-grid indices. ``bulge_fraction`` (per source row, the
+    band's B/T) weighs the bulge and disk of two-component stamps (:meth:`Stamp.weighted`).
     """
     out = np.zeros(shape, dtype=dtype)
     for st in stamps:
@@ -295,7 +315,7 @@ def accumulate(stamps: Sequence[Stamp], flux: np.ndarray, shape: tuple[int, int]
         if cl is None:
             continue
         g, s = cl
-        out[g] += f * st.image[s]
+        out[g] += f * st.weighted(bulge_fraction, s)
     return out
 
 
@@ -378,13 +398,14 @@ def convolve_tiled(image: np.ndarray, kernel: np.ndarray, tile: int = 2048,
 
 
 def add_bright(image: np.ndarray, stamps: Sequence[Stamp], flux: np.ndarray,
-               select: np.ndarray, kernel: np.ndarray, origin: tuple[int, int] = (0, 0)) -> None:
+               select: np.ndarray, kernel: np.ndarray, origin: tuple[int, int] = (0, 0),
+               bulge_fraction: np.ndarray | None = None) -> None:
     """Add sources ``select``-ed (bool per source row) convolved one by one with ``kernel``.
 
     For the few bright sources whose diffraction spikes reach far: the large PSF is applied to
     each stamp (direct FFT of stamp x kernel), never to the whole image. In place; ``image[0,
     0]`` is scene pixel ``origin`` (row, column). Stamps whose spread light misses the image
-    are skipped before the FFT.
+    are skipped before the FFT. ``bulge_fraction``: as in :func:`accumulate`.
     """
     ky, kx = kernel.shape
     hy, hx = ky // 2, kx // 2
@@ -393,7 +414,8 @@ def add_bright(image: np.ndarray, stamps: Sequence[Stamp], flux: np.ndarray,
             continue
         if not _reaches(st, hy, hx, image.shape, origin):
             continue
-        conv = signal.fftconvolve(st.image.astype(np.float64), kernel, mode="full")
+        conv = signal.fftconvolve(st.weighted(bulge_fraction).astype(np.float64), kernel,
+                                  mode="full")
         big = Stamp(conv.astype(np.float32), st.iy0 - hy, st.ix0 - hx, st.index)
         cl = big.clip(image.shape, origin)
         if cl is None:
@@ -404,13 +426,14 @@ def add_bright(image: np.ndarray, stamps: Sequence[Stamp], flux: np.ndarray,
 
 def dominant_source(stamps: Sequence[Stamp], flux: np.ndarray, source_id: np.ndarray,
                     shape: tuple[int, int], kernel: np.ndarray, threshold: float,
-                    origin: tuple[int, int] = (0, 0)) -> np.ndarray:
+                    origin: tuple[int, int] = (0, 0),
+                    bulge_fraction: np.ndarray | None = None) -> np.ndarray:
     """Segmentation of the scene: id of the source contributing most light to each pixel.
 
     Each stamp times its flux is blurred with ``kernel`` (a small PSF core) and compared with
     the brightest contribution so far. Pixels where no source exceeds ``threshold`` (e-/s per
     scene pixel) get 0. Returns an int32 image of ``shape`` whose [0, 0] pixel is scene pixel
-    ``origin`` (row, column).
+    ``origin`` (row, column). ``bulge_fraction``: as in :func:`accumulate`.
     """
     best = np.zeros(shape, dtype=np.float32)
     ids = np.zeros(shape, dtype=np.int32)
@@ -423,12 +446,13 @@ def dominant_source(stamps: Sequence[Stamp], flux: np.ndarray, source_id: np.nda
             continue
         # conv <= f * min(sum(stamp) max(kernel), max(stamp) sum(kernel)): skip sources
         # that cannot reach the threshold anywhere
-        bound = f * min(st.image.sum() * kmax, st.image.max() * ksum)
+        img = st.weighted(bulge_fraction)
+        bound = f * min(img.sum() * kmax, img.max() * ksum)
         if bound < threshold:
             continue
         if not _reaches(st, hy, hx, shape, origin):
             continue
-        conv = f * signal.fftconvolve(st.image, kernel, mode="full")
+        conv = f * signal.fftconvolve(img, kernel, mode="full")
         big = Stamp(conv.astype(np.float32), st.iy0 - hy, st.ix0 - hx, st.index)
         cl = big.clip(shape, origin)
         if cl is None:

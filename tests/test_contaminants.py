@@ -288,15 +288,19 @@ def test_seeded_reproducibility():
 
 
 def test_contaminants_leave_the_light_cone_unchanged():
-    """Switching the families off changes no light-cone galaxy or star (they draw last)."""
+    """Switching the families off changes no light-cone galaxy or star (they draw last).
+
+    With uniform placement: clustered positions of all field galaxies come from shared
+    density fields (the families live in the same structures), so the families move the
+    light cone's positions there; its other columns stay (tests/test_clustering.py)."""
     kw = dict(mag_limit=26.0, dwarf_density_arcmin2=50.0, dusty_density_arcmin2=50.0,
-              quiescent_density_arcmin2=50.0)
+              quiescent_density_arcmin2=50.0, placement="uniform")
     off = dict(kw, dwarf_density_arcmin2=0.0, dusty_density_arcmin2=0.0,
                quiescent_density_arcmin2=0.0)
     a = make_population(_pop(**kw), BANDS, (-20, 20), (-20, 20), stream(5, "population"))
     b = make_population(_pop(**off), BANDS, (-20, 20), (-20, 20), stream(5, "population"))
     a = a[np.isin(a["kind"], ["galaxy", "star"])]
-    for name in ("x_arcsec", "mag_b36", "redshift", "r_half"):
+    for name in ("x_arcsec", "mag_b36", "redshift", "r_half", "bulge_fraction", "bt_b10"):
         np.testing.assert_array_equal(a[name], b[name])
 
 

@@ -20,9 +20,10 @@ template shape with a stronger break, N(``quiescent_break``, 0.2) clipped to [1.
 ratio across the break of post-starburst and quiescent galaxies at z > 3 ~ 2-3, e.g. Carnall
 et al. 2023, Nature 619, 716 [mem]); redshifts with p(z) ~ exp(-(z - z_min) / 0.8) (the number
 density of massive quiescent galaxies falls by ~10x from z ~ 2.5 to ~3.7, Muzzin et al. 2013,
-ApJ 777, 18; Straatman et al. 2014, ApJ 783, L14 [mem]); compact: r_e = 0.8 kpc ((1 + z) / 4)^-1
-with sigma_ln 0.35, Sersic n ~ 3.5 (Straatman et al. 2015, ApJ 808, L29; Esdaile et al. 2021,
-ApJ 908, L35 [mem]); no lines, no dust.
+ApJ 777, 18; Straatman et al. 2014, ApJ 783, L14 [mem]); sizes from the quiescent relation of
+:mod:`.sizes` (van der Wel et al. 2014; ~0.5 kpc at M* = 5e10 Msun and z = 4, compact like the
+~0.5-1 kpc of Straatman et al. 2015, ApJ 808, L29 and Esdaile et al. 2021, ApJ 908, L35
+[mem]), Sersic n ~ 3.5; no lines, no dust.
 
 Units: magnitudes AB, A_V mag, sizes arcsec (and kpc), densities per arcmin^2.
 """
@@ -37,7 +38,8 @@ from scipy.special import ndtr, ndtri
 from ..config import PopulationConfig
 from .lines import draw_halpha_ew
 from .morphology import Morphology, draw_morphology, sersic_index
-from .seds import sed_parameters_from_deviates
+from .seds import rest_fnu_shape, sed_parameters_from_deviates
+from .sizes import draw_r_half_kpc
 from .stars import draw_star_magnitudes
 
 __all__ = ["GALAXY_COUNT_SLOPE", "GalaxyFamily", "draw_dusty", "draw_quiescent"]
@@ -136,7 +138,8 @@ def draw_quiescent(pop: PopulationConfig, phot, area_arcsec2: float,
     brk = np.clip(pop.quiescent_break + 0.2 * g[2], 1.8, 3.5)
     sed = type(sed)(sed.template, sed.beta, sed.beta_opt, brk)
     m_uv, mags = _normalise(phot, z, m_sel, sed, None, None)
-    r_kpc = 0.8 * ((1.0 + z) / 4.0) ** -1.0 * np.exp(0.35 * g[3])
+    m_opt = m_uv - 2.5 * np.log10(rest_fnu_shape(550.0, sed.beta, brk, sed.beta_opt))
+    r_kpc = draw_r_half_kpc(z, m_uv, np.ones(n, bool), g[3], m_opt)  # van der Wel et al. 2014
     r_arcsec = r_kpc / (phot.dist.d_a(z) * 1e3) * _RAD_TO_ARCSEC
     u = rng.random(n)
     zeros = np.zeros(n)

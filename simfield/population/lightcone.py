@@ -30,6 +30,8 @@ from ..cosmo import default_cosmology
 from ..errors import ConfigError, require
 from ._photometry import Distances, Photometry
 from ._table import GALAXY_DEFAULTS, POINT_DEFAULTS, galaxy_columns, stack_families
+from .clustering import place_clustered
+from .components import add_components
 from .contaminants import draw_dusty, draw_quiescent
 from .dwarfs import draw_dwarfs, dwarf_band_magnitudes
 from .lines import LineParameters, draw_halpha_ew
@@ -316,6 +318,10 @@ def make_population(pop: PopulationConfig, bands: list[Band], field_xi_arcsec: t
     xs.append(x0 + (x1 - x0) * rng.random(nd))
     ys.append(y0 + (y1 - y0) * rng.random(nd))
     t = stack_families(families, bands, np.concatenate(xs), np.concatenate(ys))
+    # bulges and disks, then clustered positions: drawn last, so the draws above stay as they were
+    add_components(t, phot, bands, pop.bulge_mag_max)
+    if pop.placement == "clustered":
+        place_clustered(t, bands[sel].name, (x0, x1), (y0, y1), rng)
     for name, unit in COLUMN_UNITS.items():
         t[name].unit = unit
     sel_name = bands[sel].name
@@ -329,5 +335,6 @@ def make_population(pop: PopulationConfig, bands: list[Band], field_xi_arcsec: t
                      "the field centre (arcsec)",
         "magnitudes": "intrinsic (unlensed) AB magnitudes, synthetic photometry",
         "position_angle": "major axis, degrees east of north",
+        "placement": pop.placement,
     })
     return t

@@ -1,15 +1,9 @@
 """Galaxy shapes: Sersic index, size-luminosity-redshift relation, axis ratio, knots.
 
-Star-forming galaxies (Shibuya, Ouchi & Harikane 2015, ApJS 219, 15 [mem for the numbers]):
-median Sersic n ~ 1.5; half-light radius
-
-    r_e = 6.9 kpc (L_UV / L_0)^0.27 (1 + z)^-1.2,   L_0 at M_UV = -21
-
-(r_e ~ 1 kpc at z = 4 and M_UV = -21, ~0.3 kpc at z = 6 and M_UV = -18), log-normal scatter
-sigma_ln = 0.6. Evolved galaxies: n ~ 3.5 and the early-type relation in rest-optical
-luminosity, r_e = 3.0 kpc (L_550 / L_0)^0.55 (1 + z)^-1.3 with L_0 at M_550 = -21.5 and
-sigma_ln = 0.45 (van der Wel et al. 2014, ApJ 788, 28 [mem, approximate]). Sizes are converted
-to arcsec with the angular-diameter distance.
+Sizes: :mod:`.sizes` (Shibuya et al. 2015 for star-forming, van der Wel et al. 2014 for
+quiescent galaxies, with their scatter). Sersic index: median n ~ 1.5 for star-forming (Shibuya
+et al. 2015 [from memory]) and ~3.5 for evolved galaxies. Sizes are converted to arcsec with the
+angular-diameter distance.
 
 Clumps: a fraction of the larger star-forming galaxies (r_e > 1 kpc, 60 %; clumpy fraction of
 star-forming galaxies at z ~ 1-3 ~ 0.6, Guo et al. 2015, ApJ 800, 39 [mem]) put 5-30 % of their
@@ -30,6 +24,7 @@ import numpy as np
 
 from ..columns import POINT_KINDS
 from ..cosmo import angular_diameter_distance
+from .sizes import draw_r_half_kpc, median_r_half_kpc
 
 __all__ = [
     "SERSIC_N_RANGE",
@@ -39,6 +34,8 @@ __all__ = [
     "half_light_radius_kpc",
     "draw_morphology",
     "make_profile",
+    "make_components",
+    "two_component",
 ]
 
 #: Sersic indices GalSim supports.
@@ -92,23 +89,8 @@ def sersic_index(evolved, deviate):
 
 
 def half_light_radius_kpc(z, abs_mag_uv, evolved, abs_mag_opt=None):
-    """Median half-light radius (kpc) of the relations in the module docstring.
-
-    Parameters
-    ----------
-    z : array_like
-    abs_mag_uv : array_like (AB mag)
-        Rest-1500 A absolute magnitude (star-forming relation).
-    evolved : array_like of bool
-    abs_mag_opt : array_like (AB mag), optional
-        Rest-550 nm absolute magnitude (evolved relation); if omitted, M_UV - 4.
-    """
-    z = np.asarray(z, dtype=float)
-    m_uv = np.asarray(abs_mag_uv, dtype=float)
-    m_opt = m_uv - 4.0 if abs_mag_opt is None else np.asarray(abs_mag_opt, dtype=float)
-    sf = 6.9 * 10.0 ** (-0.4 * 0.27 * (m_uv + 21.0)) * (1.0 + z) ** -1.2
-    ev = 3.0 * 10.0 ** (-0.4 * 0.55 * (m_opt + 21.5)) * (1.0 + z) ** -1.3
-    return np.where(np.asarray(evolved, dtype=bool), ev, sf)
+    """Median half-light radius (kpc): :func:`.sizes.median_r_half_kpc`."""
+    return median_r_half_kpc(z, abs_mag_uv, evolved, abs_mag_opt)
 
 
 def draw_morphology(z, abs_mag_uv, evolved, rng: np.random.Generator, clumpy: bool = True,
@@ -134,8 +116,7 @@ def draw_morphology(z, abs_mag_uv, evolved, rng: np.random.Generator, clumpy: bo
     n = z.size
     g = np.clip(rng.standard_normal((3, n)), -4.0, 4.0)
     u = rng.random((4, n))
-    r_kpc = half_light_radius_kpc(z, abs_mag_uv, evolved, abs_mag_opt) \
-        * np.exp(np.where(evolved, 0.45, 0.6) * g[0])
+    r_kpc = draw_r_half_kpc(z, abs_mag_uv, evolved, g[0], abs_mag_opt)
     d_a = angular_diameter_distance(z, cosmo) if d_a_mpc is None else np.asarray(d_a_mpc)
     d_a_kpc = d_a * 1e3
     r_arcsec = r_kpc / d_a_kpc * _RAD_TO_ARCSEC
@@ -151,13 +132,67 @@ def draw_morphology(z, abs_mag_uv, evolved, rng: np.random.Generator, clumpy: bo
                       knot_seed=seeds)
 
 
-def make_profile(row: Mapping[str, Any], rng_seed: Optional[int] = None) -> galsim.GSObject:
+def _keys(row):
+    return row.colnames if hasattr(row, "colnames") else row.keys()
+
+
+def two_component(row: Mapping[str, Any]) -> bool:
+    """True if ``row`` is a bulge + disk galaxy (``n_components`` 2, :mod:`.components`)."""
+    if "n_components" not in _keys(row):
+        return False
+    v = row["n_components"]
+    return not np.ma.is_masked(v) and int(v) == 2
+
+
+def _sersic_with_knots(row, n, r, rng_seed, flux=1.0):
+    """Unit-``flux`` Sersic (n, half-light radius r) plus the row's knots, unsheared."""
+    keys = _keys(row)
+    frac = float(row["knot_fraction"]) if "knot_fraction" in keys else 0.0
+    n_knots = int(row["n_knots"]) if "n_knots" in keys else 0
+    prof = galsim.Sersic(n, half_light_radius=r, trunc=TRUNCATION_RADII * r,
+                         flux=flux * (1.0 - frac) if n_knots > 0 else flux)
+    if frac > 0 and n_knots > 0:
+        seed = int(row["knot_seed"])
+        if rng_seed is not None:  # a run seed mixed with the galaxy's own: still per galaxy
+            seed = int(np.random.SeedSequence([int(rng_seed), seed]).generate_state(1)[0])
+        knots = galsim.RandomKnots(n_knots, half_light_radius=r, flux=flux * frac,
+                                   rng=galsim.BaseDeviate(seed))
+        blob = galsim.Gaussian(fwhm=max(_KNOT_SIZE_FRACTION * r, _MIN_KNOT_FWHM_ARCSEC),
+                               flux=flux * frac / n_knots)
+        # a sum of shifted Gaussians equals knots convolved with the blob, but is drawn in
+        # real space (an explicit Convolve would make GalSim draw by FFT, ~50x slower here)
+        prof = galsim.Sum([prof] + [blob.shift(float(x), float(y)) for x, y in knots.points])
+    return prof
+
+
+def _shear(row, prof):
+    q = float(row["axis_ratio"])
+    if q < 1.0:
+        prof = prof.shear(q=q, beta=(90.0 - float(row["position_angle"])) * galsim.degrees)
+    return prof
+
+
+def make_components(row: Mapping[str, Any], rng_seed: Optional[int] = None):
+    """(disk, bulge) unit-flux GalSim profiles of a two-component galaxy (arcsec, x = xi east,
+    y = eta north): an exponential disk of ``r_half_disk`` carrying the row's knots and a
+    Sersic n = 4 bulge of ``r_half_bulge``, both truncated at :data:`TRUNCATION_RADII`
+    half-light radii and sheared to the galaxy's ``axis_ratio`` and ``position_angle``."""
+    disk = _sersic_with_knots(row, 1.0, float(row["r_half_disk"]), rng_seed)
+    rb = float(row["r_half_bulge"])
+    bulge = galsim.Sersic(4.0, half_light_radius=rb, trunc=TRUNCATION_RADII * rb)
+    return _shear(row, disk), _shear(row, bulge)
+
+
+def make_profile(row: Mapping[str, Any], rng_seed: Optional[int] = None,
+                 band: Optional[str] = None) -> galsim.GSObject:
     """Unit-flux GalSim profile of one source (arcsec, x = xi east, y = eta north).
 
     Galaxies: a Sersic profile truncated at :data:`TRUNCATION_RADII` half-light radii
     (half-light radius and unit flux of the truncated profile), plus, if ``knot_fraction`` > 0,
     ``n_knots`` Gaussian knots placed by ``galsim.RandomKnots``; then sheared to ``axis_ratio``
-    at ``position_angle`` (east of north). Point sources (kinds ``star`` and ``dwarf``):
+    at ``position_angle`` (east of north). Two-component galaxies (``n_components`` 2): disk
+    and bulge (:func:`make_components`) weighted by ``bt_<band>`` (by ``bulge_fraction``, the
+    rest-550 nm value, if ``band`` is None). Point sources (kinds ``star`` and ``dwarf``):
     ``galsim.DeltaFunction``.
 
     Parameters
@@ -168,28 +203,15 @@ def make_profile(row: Mapping[str, Any], rng_seed: Optional[int] = None) -> gals
     rng_seed : int, optional
         Extra seed (e.g. the scenario's) mixed with the row's ``knot_seed`` for the knot
         positions; by default ``knot_seed`` alone.
+    band : str, optional
+        Band name whose bulge fraction a two-component galaxy takes.
     """
     if row["kind"] in POINT_KINDS:
         return galsim.DeltaFunction(flux=1.0)
+    if two_component(row):
+        bt = float(row[f"bt_{band}"] if band is not None else row["bulge_fraction"])
+        disk, bulge = make_components(row, rng_seed)
+        return galsim.Sum([(1.0 - bt) * disk, bt * bulge])
     r = float(row["r_half"])
     n = float(np.clip(row["sersic_n"], *SERSIC_N_RANGE))
-    keys = row.colnames if hasattr(row, "colnames") else row.keys()
-    frac = float(row["knot_fraction"]) if "knot_fraction" in keys else 0.0
-    n_knots = int(row["n_knots"]) if "n_knots" in keys else 0
-    prof = galsim.Sersic(n, half_light_radius=r, trunc=TRUNCATION_RADII * r,
-                         flux=1.0 - frac if n_knots > 0 else 1.0)
-    if frac > 0 and n_knots > 0:
-        seed = int(row["knot_seed"])
-        if rng_seed is not None:  # a run seed mixed with the galaxy's own: still per galaxy
-            seed = int(np.random.SeedSequence([int(rng_seed), seed]).generate_state(1)[0])
-        knots = galsim.RandomKnots(n_knots, half_light_radius=r, flux=frac,
-                                   rng=galsim.BaseDeviate(seed))
-        blob = galsim.Gaussian(fwhm=max(_KNOT_SIZE_FRACTION * r, _MIN_KNOT_FWHM_ARCSEC),
-                               flux=frac / n_knots)
-        # a sum of shifted Gaussians equals knots convolved with the blob, but is drawn in
-        # real space (an explicit Convolve would make GalSim draw by FFT, ~50x slower here)
-        prof = galsim.Sum([prof] + [blob.shift(float(x), float(y)) for x, y in knots.points])
-    q = float(row["axis_ratio"])
-    if q < 1.0:
-        prof = prof.shear(q=q, beta=(90.0 - float(row["position_angle"])) * galsim.degrees)
-    return prof
+    return _shear(row, _sersic_with_knots(row, n, r, rng_seed))

@@ -1,0 +1,102 @@
+"""Galaxy number counts of a population against published near-infrared deep-field counts.
+
+Reference: differential counts of galaxies in the 1.6 um band of deep space-based fields,
+log10 (dN/dm / (mag^-1 deg^-2)) at integer AB magnitudes 20-29 (Windhorst et al. 2011, ApJS
+193, 27, their near-infrared panchromatic counts; values read off the figure [from memory,
+approximate: ~0.1 dex]), interpolated linearly in log between the magnitudes:
+
+    m:      20    21    22    23    24    25    26    27    28    29
+    log N: 3.70  3.98  4.22  4.45  4.65  4.82  4.97  5.10  5.22  5.32
+
+(N(< 28) ~ 150 arcmin^-2). The population's counts are those of its truth table in the band
+whose pivot is nearest 1.6 um (galaxies of every family, intrinsic magnitudes).
+
+``python -m simfield.population.counts --out counts.png [overrides]`` draws the scenario's
+population over ``--side`` arcsec and writes the figure (counts and their ratio to the
+reference); it prints the ratio per half-magnitude bin. Units: AB mag, counts per mag per
+deg^2.
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+
+import numpy as np
+
+__all__ = ["REFERENCE_MAGS", "REFERENCE_LOG_COUNTS", "reference_counts", "population_counts",
+           "main"]
+
+REFERENCE_MAGS = np.arange(20.0, 29.5, 1.0)
+REFERENCE_LOG_COUNTS = np.array([3.70, 3.98, 4.22, 4.45, 4.65, 4.82, 4.97, 5.10, 5.22, 5.32])
+_GALAXY_KINDS = ("galaxy", "dusty", "quiescent")
+
+
+def reference_counts(mag):
+    """Published differential counts dN/dm (mag^-1 deg^-2) at AB magnitude ``mag``."""
+    return 10.0 ** np.interp(mag, REFERENCE_MAGS, REFERENCE_LOG_COUNTS)
+
+
+def population_counts(table, band: str, area_arcsec2: float, edges):
+    """(centres, dN/dm per mag per deg^2, Poisson error) of the galaxies of a truth table in
+    ``band`` over ``area_arcsec2``, in the magnitude bins ``edges`` (AB)."""
+    kind = np.asarray(table["kind"]).astype(str)
+    m = np.asarray(table[f"mag_{band}"], float)[np.isin(kind, _GALAXY_KINDS)]
+    n, _ = np.histogram(m, bins=edges)
+    scale = 3600.0 ** 2 / area_arcsec2 / np.diff(edges)
+    return 0.5 * (edges[1:] + edges[:-1]), n * scale, np.sqrt(n) * scale
+
+
+def main(argv=None) -> int:
+    """Command line: the figure of the scenario's counts against the reference."""
+    from .. import cli
+    from ..pipeline import make_bands
+    from ..random import stream
+    from .lightcone import make_population
+
+    ap = argparse.ArgumentParser(prog="python -m simfield.population.counts",
+                                 description="Galaxy counts of the scenario's population "
+                                             "against published near-infrared counts.")
+    ap.add_argument("--out", default="counts.png", help="figure path (PNG)")
+    ap.add_argument("--side", type=float, default=180.0, help="field side (arcsec)")
+    ap.add_argument("overrides", nargs="*", help="scenario overrides, e.g. seed=3")
+    a = ap.parse_args(argv)
+    sc = cli.preflight(list(a.overrides))[0]
+    bands = make_bands(sc)
+    band = min(bands, key=lambda b: abs(b.pivot_nm - 1600.0)).name
+    half = a.side / 2
+    t = make_population(sc.population, bands, (-half, half), (-half, half),
+                        stream(sc.seed, "population", "counts"))
+    edges = np.arange(20.0, 29.01, 0.5)
+    mid, n, err = population_counts(t, band, a.side ** 2, edges)
+    ref = reference_counts(mid)
+    for c, v, r in zip(mid, n, ref):
+        print(f"{c:5.2f}  {v:10.0f}  {r:10.0f}  ratio {v / r:5.2f}")
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    from .._plot import run_title
+
+    fig, (ax, ax2) = plt.subplots(2, 1, figsize=(5, 6), sharex=True,
+                                  gridspec_kw={"height_ratios": [2, 1]})
+    ax.errorbar(mid, n, err, fmt="o", ms=3, label=f"population ({band})")
+    ax.plot(mid, ref, "k-", label="Windhorst et al. 2011 [from memory]")
+    ax.set_yscale("log")
+    ax.set_ylabel("dN/dm (mag$^{-1}$ deg$^{-2}$)")
+    ax.legend(fontsize=7)
+    ax.set_title(run_title("galaxy counts", band, sc.seed), fontsize=9)
+    ax2.axhspan(0.7, 1.3, color="0.9")
+    ax2.plot(mid, n / ref, "o", ms=3)
+    ax2.axhline(1.0, color="k", lw=0.8)
+    ax2.set_xlabel(f"{band} (AB mag)")
+    ax2.set_ylabel("population / published")
+    fig.tight_layout()
+    fig.savefig(a.out, dpi=120)
+    print(f"wrote {a.out}")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
