@@ -379,7 +379,7 @@ def _deposit(shape, cx, cy, theta, length, q, interval):
     ny, nx = shape
     n = int(np.size(cx))
     charge = np.zeros(ny * nx)  # replaced below when there are events
-    when = np.full(ny * nx, -1, dtype=np.int64)
+    when = np.full(ny * nx, -1, dtype=np.int32)  # frame intervals: few
     if n == 0:
         return charge.reshape(shape), when.reshape(shape), 0
     s = (np.arange(_CR_POINTS) + 0.5) / _CR_POINTS - 0.5
@@ -692,12 +692,15 @@ def expose(rate: np.ndarray, sky_rate, dark, det: DetectorConfig, exptime_s: flo
     when = None
     if det.cosmic_rays and det.cosmic_ray_rate_cm2_s > 0:
         cr_q, when, n_cr = noise.cosmic_rays(det, pixel_size_um, duration, n_int)
+        cr_q = cr_q.astype(np.float32)
         if alpha > 0:
             cr_q = apply_ipc(cr_q, alpha)
             when = np.where(when >= 0, when, _max_cross(when))
         hit = (cr_q > 0) & (when >= 0)
-        sig_diff = np.sqrt(2.0 * sig_f2 / m + f * tg)
-        jump = hit & (cr_q > det.jump_threshold_sigma * sig_diff)
+        hit_at = np.nonzero(hit)
+        sig_diff = np.sqrt(2.0 * sig_f2 / m + f[hit_at] * tg)  # noise of a group difference
+        jump = np.zeros(rate.shape, bool)
+        jump[hit_at] = cr_q[hit_at] > det.jump_threshold_sigma * sig_diff
         # the neighbours of a detected jump are refitted too, at the same time (common
         # practice in ramp fitting: the faint fringe of a track would otherwise stay in)
         jump |= hit & _dilate_square(jump)
