@@ -9,8 +9,9 @@ directly; the changes ``P_e - P`` from the static PSF ``P`` are decomposed into 
 eigen-PSFs ``m_k`` (SVD), ``P_e ~ P + sum_k c_ek m_k``. The change is taken to be the same
 across the field (the drift is a pupil change; its cross term with the field aberrations is
 second order), so exposure ``e`` samples ``scene + sum_k c_ek (light (x) m_k)``: ``n_modes``
-extra whole-window convolutions per band, not one per exposure. The mosaic's effective PSF is
-the mean over exposures (equal exposure times) of ``P + sum_k c_ek m_k``.
+extra whole-window convolutions per band, not one per exposure. Sources drawn with the large
+PSF (brighter than ``telescope.psf.bright_mag``) keep the static PSF. The mosaic's effective
+PSF is the mean over exposures (equal exposure times) of ``P + sum_k c_ek m_k``.
 Units: nm (wavefront), arcsec (pixels); PSFs dimensionless, summing to 1 (modes to 0).
 """
 
