@@ -306,6 +306,11 @@ class DetectorConfig:
     persistence_fractions: list[float] = field(default_factory=lambda: [0.002, 0.001])
     persistence_tau_s: list[float] = field(default_factory=lambda: [300.0, 3000.0])
     exposure_gap_s: float = 60.0  #: time between the end of an exposure and the next (s)
+    #: non-linearity S = Q (1 - beta Q) (simfield.readout.nonlinearity) and its correction
+    nonlinearity: bool = True
+    nonlinearity_at_full_well: float = 0.05  #: signal deficit at full well (fraction)
+    nonlinearity_correction: bool = True  #: the reduction linearises (with a calibration error)
+    nonlinearity_cal_rms: float = 0.02  #: rms relative error of the calibrated coefficient
 
 
 @dataclass
@@ -794,6 +799,8 @@ def _validate_detector(d: DetectorConfig) -> None:
     check_range("detector.refpix_half_rows", d.refpix_half_rows, 0, 10000)
     check_range("detector.persistence_onset_e", d.persistence_onset_e, 0, 1e7, lo_open=True)
     check_range("detector.exposure_gap_s", d.exposure_gap_s, 0, 1e6)
+    check_range("detector.nonlinearity_at_full_well", d.nonlinearity_at_full_well, 0, 0.25)
+    check_range("detector.nonlinearity_cal_rms", d.nonlinearity_cal_rms, 0, 1)
     fr, ta = list(d.persistence_fractions), list(d.persistence_tau_s)
     require(len(fr) == len(ta) and len(fr) >= 1, "detector.persistence_fractions", fr,
             f"must be a non-empty list as long as detector.persistence_tau_s ({len(ta)})")

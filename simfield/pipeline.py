@@ -467,6 +467,8 @@ def _render_tile(ctx: _TileContext, i: int) -> dict:
                     e = expose(r, sky, None, sc.detector, srv.exposure_time_s,
                                tel.pixel_size_um, noise, fixed[k])
                     del r
+                    if sc.detector.nonlinearity:
+                        e = _nonlinearity(sc, e, tile.exposures[k])
                     if sc.detector.correlated_noise:
                         e = _correlated_readout(sc, b.name, k, ctx.egrids[k].shape, e,
                                                 tile.exposures[k])
@@ -572,6 +574,23 @@ def _persistence_stimuli(sc: Scenario, bands: list, sources: Table, egrids: list
                                 np.asarray(rates[b.name], float)[point], stamp,
                                 _ramp_duration(sc), det.persistence_onset_e, det.full_well_e)
     return out
+
+
+#: Ramps collecting less than this (e-) skip the non-linearity: its bias there is below
+#: 1e-3 of the signal uncorrected and 1e-5 corrected (the default law, 5% at full well).
+NONLINEARITY_MIN_FLUENCE_E = 1000.0
+
+
+def _nonlinearity(sc: Scenario, e, box):
+    from .detector import frame_time, slope_weights
+    from .readout.nonlinearity import ramp_weights, window_bias
+
+    det = sc.detector
+    tf = frame_time(det, sc.survey.exposure_time_s)
+    w = ramp_weights(slope_weights(det.n_groups, det.n_frames, tf), tf)
+    return window_bias(e, sc.seed, box, det.nonlinearity_at_full_well / det.full_well_e,
+                       det.nonlinearity_cal_rms, w, det.nonlinearity_correction,
+                       _ramp_duration(sc), NONLINEARITY_MIN_FLUENCE_E)
 
 
 def _persistence(sc: Scenario, ctx, b, k: int, e, box):

@@ -104,6 +104,8 @@ def test_switches_are_validated():
         make_scenario("detector.reference_pixels=0")
     with pytest.raises(ConfigError, match="pink_common_e"):
         make_scenario("detector.pink_common_e=-1")
+    with pytest.raises(ConfigError, match="persistence_fractions"):
+        make_scenario("detector.persistence_fractions=[0.001]")
 
 
 def test_persistence_ghosts_of_earlier_bright_stars_are_scored(tmp_path, psf_cache):
@@ -202,19 +204,22 @@ def test_flagged_persistence_is_left_out():
 
 
 def test_switched_off_the_exposures_are_todays(tmp_path, monkeypatch, psf_cache):
-    """With correlated_noise and persistence off the readout package is never called, so the
-    exposures are exactly the white-noise ones of simfield.detector."""
+    """With correlated_noise, persistence and nonlinearity off the readout package is never
+    called, so the exposures are exactly the white-noise ones of simfield.detector."""
     import simfield.readout as ro
     from simfield.pipeline import run_scenario
 
     def boom(*a, **k):
         raise AssertionError("readout called with its switches off")
 
+    import simfield.readout.nonlinearity as nl
+
     for name in ("apply_readout", "readout_for", "apply_persistence", "find_stimuli"):
         monkeypatch.setattr(ro, name, boom)
+    monkeypatch.setattr(nl, "window_bias", boom)
     sc = make_scenario("survey=quick", "survey.width_arcsec=4", "survey.height_arcsec=4",
                        "detector.correlated_noise=false", "detector.persistence=false",
-                       "detection.enabled=false", "score.enabled=false", "workers=1",
+                       "detector.nonlinearity=false", "detection.enabled=false", "score.enabled=false", "workers=1",
                        "telescope.psf.spike_radius_arcsec=2.0",
                        "telescope.psf.core_radius_arcsec=1.0",
                        f"telescope.psf.cache_dir={psf_cache}")
@@ -222,3 +227,39 @@ def test_switched_off_the_exposures_are_todays(tmp_path, monkeypatch, psf_cache)
     sc.detection.bands = ["b36"]
     run_scenario(sc, tmp_path / "run")
     assert (tmp_path / "run" / "mosaic_b36.fits").exists()
+
+
+def test_nonlinearity_residual_is_the_ramp_fit_of_linearised_frames():
+    """The slope bias the correction leaves equals the least-squares slope (the detector's own
+    weights, Rauscher et al. 2007 estimator) fitted to frames compressed as S = Q (1 - beta Q)
+    and linearised by the law's exact inverse with beta_cal, minus the true current, to 5%;
+    uncorrected it is -beta f^2 sum c t^2 (a few per cent near full well)."""
+    from simfield.detector import slope_weights
+    from simfield.readout.nonlinearity import nonlinearity_bias, ramp_weights
+
+    n, m, tf = 8, 4, 1000.0 / 28
+    c = slope_weights(n, m, tf)
+    t = (np.arange(n * m) + 1) * tf
+    beta = 0.05 / 8e4
+    for f in (1.0, 20.0, 60.0):  # e-/s; 60 e-/s nearly fills 80000 e- in the ramp
+        q = f * t
+        s_ = q * (1 - beta * q)
+        for beta_cal in (beta * 1.02, 0.0):
+            lin = (1 - np.sqrt(1 - 4 * beta_cal * s_)) / (2 * beta_cal) if beta_cal else s_
+            fitted = float(np.sum(c * lin))
+            pred = float(nonlinearity_bias(np.array(f), beta, beta_cal, ramp_weights(c, tf),
+                                           corrected=beta_cal > 0))
+            assert fitted - f == pytest.approx(pred, rel=0.05, abs=1e-6 * f)
+
+
+def test_nonlinearity_calibration_error_is_tied_to_pixels():
+    """The calibration error of a pixel is the same whichever window asks (streams per
+    128-pixel detector block) and standard normal over many pixels."""
+    from simfield.readout.nonlinearity import calibration_error
+
+    rng = np.random.default_rng(2)
+    ys, xs = rng.integers(40, 300, 2000), rng.integers(40, 300, 2000)
+    a = calibration_error(3, 0, 0, (ys, xs))
+    b = calibration_error(3, 30, 17, (ys - 30, xs - 17))
+    np.testing.assert_array_equal(a, b)
+    assert abs(a.mean()) < 0.1 and abs(a.std() - 1) < 0.1
