@@ -70,7 +70,6 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import ndimage
 
 from .config import DetectorConfig, frame_read_noise_e
 from .errors import check_range, require
@@ -304,21 +303,6 @@ def apply_ipc(img: np.ndarray, alpha: float) -> np.ndarray:
     return out
 
 
-def _ipc_at(img: np.ndarray, alpha: float, idx) -> np.ndarray:
-    """:func:`apply_ipc` of ``img`` evaluated only at the pixels ``idx`` (row, col arrays)."""
-    if alpha == 0:
-        return img[idx]
-    r, c = idx
-    ny, nx = img.shape
-
-    def at(rr, cc):  # zero outside the image
-        ok = (rr >= 0) & (rr < ny) & (cc >= 0) & (cc < nx)
-        return np.where(ok, img[np.clip(rr, 0, ny - 1), np.clip(cc, 0, nx - 1)], 0.0)
-
-    return ((1.0 - 4.0 * alpha) * img[r, c]
-            + alpha * (at(r - 1, c) + at(r + 1, c) + at(r, c - 1) + at(r, c + 1)))
-
-
 def _cr_events(det: DetectorConfig, pixel_size_um: float, duration_s: float, n_intervals: int,
                rng: np.random.Generator, y0: float, x0: float, ny: int, nx: int):
     """Cosmic-ray events over the pixel rectangle rows y0 ... y0 + ny, columns x0 ... x0 + nx:
@@ -412,7 +396,9 @@ def _best_runs_one_break(n_ok: np.ndarray, kc: np.ndarray, skip: np.ndarray):
 
 
 def _best_runs(usable: np.ndarray, brk: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Start and length of the longest run of usable groups without a break inside it.
+    """Start and length of the longest run of usable groups without a break inside it (any
+    number of breaks; :func:`expose` uses its closed form :func:`_best_runs_one_break`, which
+    the tests check against this scan).
 
     usable, brk : bool (n_pix, n_groups); brk[:, k] means a jump between groups k - 1 and k.
     """
