@@ -60,9 +60,6 @@ class Stamp:
     bulge : ndarray (float32) or None
         A two-component galaxy's unit-flux bulge on the same pixels (``image`` then holds its
         disk); the band's light is (1 - B/T) image + B/T bulge (:meth:`weighted`).
-    part : int
-        0: the whole source (or disk and bulge as above); 1: only the disk, 2: only the bulge
-        of a two-component galaxy, each drawn on its own (lensed images).
     """
 
     image: np.ndarray
@@ -70,16 +67,13 @@ class Stamp:
     ix0: int
     index: int
     bulge: np.ndarray | None = None
-    part: int = 0
 
     def weighted(self, bulge_fraction: np.ndarray | None, s=(slice(None), slice(None))):
         """The unit-flux light of the source on the part ``s`` of the stamp, given the bulge
         fraction per source row of a band (None or a one-component stamp: ``image``)."""
-        if bulge_fraction is None or (self.bulge is None and self.part == 0):
+        if bulge_fraction is None or self.bulge is None:
             return self.image[s]
         bt = np.float32(bulge_fraction[self.index])
-        if self.part:
-            return (bt if self.part == 2 else 1 - bt) * self.image[s]
         return self.image[s] + bt * (self.bulge[s] - self.image[s])
 
     def clip(self, shape: tuple[int, int], origin: tuple[int, int] = (0, 0)):
