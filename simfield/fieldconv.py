@@ -10,13 +10,14 @@ dimensionless.
 
 from __future__ import annotations
 
-from typing import Sequence
+from typing import Callable, Sequence
 
 import numpy as np
 
-from .scene import convolve_tiled
+from .grid import Grid
+from .scene import Stamp, add_bright, convolve_tiled
 
-__all__ = ["convolve_modes"]
+__all__ = ["convolve_modes", "field_axes", "add_bright_field"]
 
 
 def convolve_modes(image: np.ndarray, mean: np.ndarray, modes: Sequence[np.ndarray],
@@ -36,3 +37,39 @@ def convolve_modes(image: np.ndarray, mean: np.ndarray, modes: Sequence[np.ndarr
     for m, w in zip(modes, weights):
         out += convolve_tiled(image * w.astype(image.dtype, copy=False), m)
     return out
+
+
+def field_axes(sgrid: Grid, box) -> tuple[np.ndarray, np.ndarray]:
+    """Field positions (arcsec) of the columns and rows of the scene window ``box`` = (y0, y1,
+    x0, x1): along the north-up scene grid's x and y from its centre, the tangent point."""
+    cx, cy = sgrid.center_pixel
+    return ((np.arange(box[2], box[3]) - cx) * sgrid.scale,
+            (np.arange(box[0], box[1]) - cy) * sgrid.scale)
+
+
+def add_bright_field(scene: np.ndarray, stamps: Sequence[Stamp], rate: np.ndarray,
+                     bright: np.ndarray, wide: np.ndarray, core: np.ndarray,
+                     psf_at: Callable[[float, float], np.ndarray], sgrid: Grid, origin,
+                     bulge_fraction: np.ndarray | None = None) -> None:
+    """Add the bright sources to ``scene`` (e-/s per scene pixel, in place), each with the
+    large PSF ``wide`` of the field centre plus, in its core, the difference between the
+    field's PSF at the source and the centre's ``core`` (both dimensionless, odd shapes).
+
+    ``psf_at(u, v)`` gives the core PSF at field position (u, v), arcsec along the scene
+    grid's x and y from its centre (:meth:`simfield.optics.field.FieldPSF.at`), taken at each
+    stamp's centre. ``rate`` (e-/s per source row), ``bright`` (bool per row), ``origin`` and
+    ``bulge_fraction`` are as for :func:`simfield.scene.add_bright`.
+    """
+    hw, hc = wide.shape[0] // 2, core.shape[0] // 2
+    cx, cy = sgrid.center_pixel
+    for st in stamps:
+        if not bright[st.index] or rate[st.index] == 0:
+            continue
+        sy = st.iy0 + (st.image.shape[0] - 1) / 2.0
+        sx = st.ix0 + (st.image.shape[1] - 1) / 2.0
+        k = wide.copy()
+        k[hw - hc:hw + hc + 1, hw - hc:hw + hc + 1] += (
+            psf_at((sx - cx) * sgrid.scale, (sy - cy) * sgrid.scale) - core)
+        one = np.zeros_like(bright)
+        one[st.index] = True
+        add_bright(scene, [st], rate, one, k, origin=origin, bulge_fraction=bulge_fraction)
