@@ -124,7 +124,7 @@ def resumable_section_files(out: Path, items: Sequence, prov, key: str
                 raise ValueError(f"ImageSpec {spec.name}: dtype {np.dtype(spec.dtype)} not one "
                                  f"of {', '.join(str(d) for d in _BITPIX)}")
     out = Path(out)
-    base = out / RESUME_DIR
+    base = out.absolute() / RESUME_DIR  # absolute: the ledger goes to Dask workers
     folder = base / key
     if base.is_dir():
         for old in base.iterdir():
