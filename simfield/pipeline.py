@@ -13,6 +13,7 @@ from __future__ import annotations
 import logging
 import multiprocessing
 import os
+import sys
 import time
 from concurrent.futures import ProcessPoolExecutor
 from contextlib import contextmanager
@@ -30,7 +31,7 @@ from .bands import Band, ab_to_njy, make_band, njy_to_ab
 from .columns import POINT_KINDS, SOURCE_KINDS
 from .config import Scenario, config_hash, to_yaml
 from .grid import Grid
-from .io import (COMPLETE_MARKER, Provenance, section_files, write_fits, write_json, write_table,
+from .io import (COMPLETE_MARKER, Provenance, write_fits, write_json, write_table,
                  write_text)
 from .fieldconv import add_bright_field, convolve_modes, field_axes
 from .random import stream
@@ -229,8 +230,12 @@ def _run_scenario(sc: Scenario, out_dir: str | Path, progress: bool, engine) -> 
         from ._readout_hooks import persistence_stimuli
 
         ctx.stimuli = persistence_stimuli(sc, bands, sources, egrids, psf_core, rates)
-    with timer("tiles"), section_files(_image_files(out, sc, bands, mgrid, egrids, noise),
-                                       prov) as sfiles:
+    from .resume import resumable_section_files, resume_key
+
+    # kept in the run's .resume folder until every tile is done, so a relaunch resumes
+    with timer("tiles"), resumable_section_files(
+            out, _image_files(out, sc, bands, mgrid, egrids, noise), prov,
+            resume_key(prov.config_hash, __version__)) as (sfiles, ctx.ledger):
         ctx.files = {f.final.name: f for f in sfiles}
         for b in bands:
             ctx.files[f"mosaic_{b.name}.fits"].array("NOISECOR")[:] = noise[b.name].rho
@@ -273,7 +278,8 @@ def _run_scenario(sc: Scenario, out_dir: str | Path, progress: bool, engine) -> 
         with timer("detect"):
             from .detect import run_detection
 
-            summary["detections"] = run_detection(out, sc, bands, prov, progress, sc.workers)
+            summary["detections"] = run_detection(out, sc, bands, prov, progress, sc.workers,
+                                                  engine)
             files.extend(out / f"detections_{b}.fits" for b in summary["detections"])
     if sc.photometry.enabled and sc.detection.enabled:
         with timer("photometry"):
@@ -332,13 +338,23 @@ class _TileContext:
     stimuli: list = field(default_factory=list)  #: persistence stimuli (simfield.readout)
     field_psfs: dict = None  #: band -> optics.field.FieldPSF (field-dependent PSF), if enabled
     drift: dict = None  #: band -> optics.drift.DriftPSF (exposure-to-exposure PSF), if enabled
+    ledger: object = None  #: simfield.resume.TileLedger: tiles done (recorded by each tile)
 
 
 _CTX: _TileContext | None = None  # set in the parent before forking tile workers
 
 
+def _tile_task(ctx: _TileContext, i: int) -> dict:
+    """Render tile ``i``, then record it as done in ``ctx.ledger`` (after its sections are
+    flushed to disk), where it ran: a local process or a Dask worker."""
+    out = _render_tile(ctx, i)
+    if ctx.ledger is not None:
+        ctx.ledger.record(i, out)
+    return out
+
+
 def _tile_worker(i: int):
-    return _render_tile(_CTX, i)
+    return _tile_task(_CTX, i)
 
 
 def _map_tiles(ctx: _TileContext, workers: int, progress: bool = False,
@@ -347,26 +363,40 @@ def _map_tiles(ctx: _TileContext, workers: int, progress: bool = False,
     or as tasks of a Dask ``engine`` (:class:`simfield.engine.DaskEngine`).
 
     Tiles draw only from their own named random streams and write disjoint sections of the
-    output files, so the files do not depend on the number of workers.
+    output files, so the files do not depend on the number of workers. Tiles that
+    ``ctx.ledger`` (:class:`simfield.resume.TileLedger`) records as done by an earlier launch
+    are skipped (their results are read back from it).
     """
     from tqdm import tqdm
 
-    n_tiles = len(ctx.tiles)
+    n_tiles, ledger = len(ctx.tiles), ctx.ledger
+    todo = [i for i in range(n_tiles) if ledger is None or not ledger.done(i)]
+    if len(todo) < n_tiles:
+        msg = f"simfield: resuming, {n_tiles - len(todo)} of {n_tiles} tiles already done"
+        log.info(msg)
+        if progress:
+            print(msg, file=sys.stderr)
     if engine is not None:
-        return engine.map(_render_tile, ctx, n_tiles, [str(f.path) for f in ctx.files.values()],
-                          "tiles", progress)
-    n = min(n_tiles, os.cpu_count() or 1) if workers == 0 else min(workers, n_tiles)
-    bar = dict(total=n_tiles, desc="tiles", unit="tile", disable=not progress, leave=False)
-    if n <= 1:
-        return [_render_tile(ctx, i) for i in tqdm(range(n_tiles), **bar)]
-    global _CTX
-    _CTX = ctx
-    try:
-        with ProcessPoolExecutor(n, mp_context=multiprocessing.get_context("fork"),
-                                 initializer=die_with_parent, initargs=(os.getpid(),)) as pool:
-            return list(tqdm(pool.map(_tile_worker, range(n_tiles)), **bar))
-    finally:
-        _CTX = None
+        sync = [] if ledger is not None else [str(f.path) for f in ctx.files.values()]
+        new = engine.map(_tile_task, ctx, todo, sync, "tiles", progress)
+    else:
+        n = min(len(todo), os.cpu_count() or 1) if workers == 0 else min(workers, len(todo))
+        bar = dict(total=len(todo), desc="tiles", unit="tile", disable=not progress,
+                   leave=False)
+        if n <= 1:
+            new = [_tile_task(ctx, i) for i in tqdm(todo, **bar)]
+        else:
+            global _CTX
+            _CTX = ctx
+            try:
+                with ProcessPoolExecutor(n, mp_context=multiprocessing.get_context("fork"),
+                                         initializer=die_with_parent,
+                                         initargs=(os.getpid(),)) as pool:
+                    new = list(tqdm(pool.map(_tile_worker, todo), **bar))
+            finally:
+                _CTX = None
+    got = dict(zip(todo, new))
+    return [got[i] if i in got else ledger.result(i) for i in range(n_tiles)]
 
 
 def _grow(box, pad: int, shape) -> tuple[int, int, int, int]:
