@@ -363,25 +363,13 @@ def _deposit(shape, cx, cy, theta, length, q, interval):
     on an image of ``shape`` (tracks are clipped at its edges)."""
     ny, nx = shape
     n = int(np.size(cx))
-    charge = np.zeros(ny * nx)  # replaced below when there are events
-    when = np.full(ny * nx, -1, dtype=np.int32)  # frame intervals: few
     if n == 0:
-        return charge.reshape(shape), when.reshape(shape), 0
+        return np.zeros(shape), np.full(shape, -1, dtype=np.int32), 0
     s = (np.arange(_CR_POINTS) + 0.5) / _CR_POINTS - 0.5
-    px = (cx[:, None] + s[None, :] * (length * np.cos(theta))[:, None]).ravel()
-    py = (cy[:, None] + s[None, :] * (length * np.sin(theta))[:, None]).ravel()
-    pq = np.repeat(q / _CR_POINTS, _CR_POINTS)
-    pe = np.repeat(interval, _CR_POINTS)
-    x0, y0 = np.floor(px).astype(np.int64), np.floor(py).astype(np.int64)
-    fx, fy = px - x0, py - y0
-    xx = np.concatenate([x0, x0 + 1, x0, x0 + 1])
-    yy = np.concatenate([y0, y0, y0 + 1, y0 + 1])
-    wgt = np.concatenate([(1 - fx) * (1 - fy), fx * (1 - fy), (1 - fx) * fy, fx * fy])
-    ok = (xx >= 0) & (xx < nx) & (yy >= 0) & (yy < ny) & (wgt > 1e-3)
-    idx = yy[ok] * nx + xx[ok]
-    charge = np.bincount(idx, weights=(np.tile(pq, 4) * wgt)[ok], minlength=ny * nx)
-    when[idx] = np.tile(pe, 4)[ok]
-    return charge.reshape(shape), when.reshape(shape), n
+    # each of the _CR_POINTS points along a track carries q / _CR_POINTS, spread over the
+    # four pixels around it with bilinear weights (those below 1e-3 dropped): one numba loop
+    charge, when = pixelops.deposit(shape, cx, cy, theta, length, q / _CR_POINTS, interval, s)
+    return charge, when, n
 
 
 def _best_runs_one_break(n_ok: np.ndarray, kc: np.ndarray, skip: np.ndarray):
@@ -711,36 +699,20 @@ def expose(rate: np.ndarray, sky_rate, dark, det: DetectorConfig, exptime_s: flo
     special = sat | jump
     if special.any():
         idx = np.nonzero(special)
-        n_ok = np.full(idx[0].size, n, np.int64)
-        s_idx = sat[idx]
-        q = det.full_well_e / (f[idx][s_idx] * tg)
-        n_ok[s_idx] = np.clip(np.ceil(np.minimum(q, n + 1)) - 1, 0, n).astype(np.int64)
-        kc = np.full(idx[0].size, n, np.int64)
-        skip = np.zeros(idx[0].size, bool)
-        if when is not None:
-            w = when[idx]
-            jmp = jump[idx]
-            kc = np.where(jmp, w // m, n)
-            # a jump inside group kc (not at its first frame) spoils that group
-            skip = jmp & ((w % m) != 0)
-        start, length = _best_runs_one_break(n_ok, kc, skip)
         table_a = np.zeros(n + 1)
         table_b = np.zeros(n + 1)
         for cnt in range(2, n + 1):
             table_a[cnt], table_b[cnt] = slope_variance_factors(n, m, tf, cnt)
-        fa, fb = table_a[length], table_b[length]
-        sd = np.sqrt(fa * sig_f2 + (fb * f[idx] * ipc_var if det.poisson else 0.0))
         # the refitted slope replaces the pixel's whole slope: its read-noise deviate, used
         # nowhere else, is free for it (a window-independent deviate of the pixel)
-        z_fit = z_read[idx].astype(float) if z_read is not None else noise.normal_at("refit", idx)
-        # (cosmic rays touch a tenth of the pixels: one fused IPC pass beats indexing)
-        new = (pixelops.ipc(f, alpha)[idx] if alpha > 0 else f[idx]).astype(float)
-        new += sd * z_fit
-        new[length < 2] = 0.0
-        slope[idx] = new
-        flags = np.where(n_ok < n, DQ_SATURATED, 0) | np.where(jump[idx], DQ_COSMIC_RAY, 0) | \
-            np.where(length < 2, DQ_NO_SLOPE, 0)
-        dq[idx] |= flags.astype(np.int32)
+        z_fit = z_read[idx] if z_read is not None else noise.normal_at("refit", idx)
+        # per pixel (simfield.pixelops.refit): groups below full well, n_ok; the jump's group
+        # kc (spoilt unless the jump falls on its first frame); the longer of the runs before
+        # and after it (_best_runs_one_break); its slope variance; sci ~ N(IPC f, that)
+        length = pixelops.refit(idx, sat, jump, when, f, pixelops.ipc(f, alpha) if alpha > 0
+                                else f, z_fit, n, m, tg, det.full_well_e, table_a, table_b,
+                                sig_f2, ipc_var, det.poisson, slope, dq,
+                                (DQ_SATURATED, DQ_COSMIC_RAY, DQ_NO_SLOPE))
 
     # the reduction subtracts its calibration dark: every pixel's own dark after IPC, with the
     # noise of the dark ramps averaged into it (a fixed pattern of the detector)
@@ -763,14 +735,8 @@ def expose(rate: np.ndarray, sky_rate, dark, det: DetectorConfig, exptime_s: flo
     var, var_sky = pixelops.calibrate(sci, dark_cal, cal, f, f_sky, rate, resp, sky, base,
                                       pb, ferr2)
     if special.any():
-        sci[idx] = np.where(length < 2, 0.0, sci[idx])
-        inv_cal = np.float32(1.0) / cal[idx]
-        inv_cal2 = inv_cal * inv_cal
-        s_all = rate[idx] * resp[idx]
-        s_all += sky * resp[idx]
-        sig2 = s_all * s_all * inv_cal2
-        dcal = var_dcal[idx] if np.ndim(var_dcal) else var_dcal
-        var[idx] = (fa * sig_f2 + fb * pois * f[idx] + dcal) * inv_cal2 + ferr2 * sig2
+        pixelops.refit_variance(idx, length, f, cal, rate, resp, sky, var_dcal, table_a,
+                                table_b, sig_f2, pois, ferr2, sci, var)
     artefact = bias * (np.float32(1.0) / cal) if n_cr else None
     return Exposure(sci=sci, var=var, var_sky=var_sky, dq=dq, exptime=float(exptime_s),
                     sky=float(np.mean(sky)), n_cr=int(n_cr), artefact=artefact)

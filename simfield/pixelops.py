@@ -118,3 +118,112 @@ def calibrate(slope, dark_cal, cal, f, f_sky, rate, resp, sky, base, pb, ferr2):
     var, var_sky = np.empty(shape, np.float32), np.empty(shape, np.float32)
     _calibrate(slope, *b, np.float32(pb), np.float32(ferr2), var, var_sky)
     return var, var_sky
+
+
+@_jit
+def _refit(iy, ix, sat, jump, when, has_when, f, f_src, z, n, m, tg, full_well, table_a,
+           table_b, sig_f2, ipc_var, poisson, slope, dq, dq_sat, dq_cr, dq_none, length):
+    for k in range(iy.size):
+        y, x = iy[k], ix[k]
+        n_ok = n
+        if sat[y, x]:
+            q = min(np.float32(full_well) / (f[y, x] * np.float32(tg)), np.float32(n + 1))
+            n_ok = min(max(int(np.ceil(q)) - 1, 0), n)
+        kc, skip = n, 0
+        jmp = has_when and jump[y, x]
+        if jmp:
+            w = when[y, x]
+            kc = w // m
+            skip = 1 if w % m != 0 else 0
+        # the longest clean run: before the jump, [0, min(kc, n_ok)), or after it
+        la = min(kc, n_ok)
+        lb = max(n_ok - (kc + skip), 0)
+        ln = lb if lb > la else la
+        length[k] = ln
+        var = table_a[ln] * sig_f2 + (table_b[ln] * np.float64(f[y, x]) * ipc_var
+                                       if poisson else 0.0)
+        new = np.float64(f_src[y, x]) + np.sqrt(var) * z[k]
+        slope[y, x] = np.float32(0.0 if ln < 2 else new)
+        flags = (dq_sat if n_ok < n else 0) | (dq_cr if jmp else 0) | (dq_none if ln < 2 else 0)
+        dq[y, x] |= flags
+
+
+def refit(idx, sat, jump, when, f, f_src, z, n, m, tg, full_well, table_a, table_b, sig_f2,
+          ipc_var, poisson, slope, dq, dq_bits):
+    """Refit the slopes of pixels ``idx`` (saturated or hit by a detected jump) to their
+    longest clean run of groups, in place in ``slope`` (e-/s, N(f_src, var of the run) from
+    the pixel's deviate ``z``) and ``dq`` (``dq_bits`` = saturated, cosmic ray, no slope);
+    returns the run lengths. The loop of :func:`simfield.detector.expose`, per pixel."""
+    iy, ix = (np.ascontiguousarray(a, np.int64) for a in idx)
+    length = np.empty(iy.size, np.int64)
+    has_when = when is not None
+    when = when if has_when else np.zeros((1, 1), np.int32)
+    _refit(iy, ix, sat, jump, when, has_when, f, f_src, np.asarray(z, np.float64), int(n),
+           int(m), float(tg), float(full_well), table_a, table_b, float(sig_f2),
+           float(ipc_var), bool(poisson), slope, dq, *(int(b) for b in dq_bits), length)
+    return length
+
+
+@_jit
+def _refit_variance(iy, ix, length, f, cal, rate, resp, sky, dcal, table_a, table_b, sig_f2,
+                    fb_pois, ferr2, sci, var):
+    one = np.float32(1.0)
+    for k in range(iy.size):
+        y, x = iy[k], ix[k]
+        ln = length[k]
+        if ln < 2:
+            sci[y, x] = np.float32(0.0)
+        inv = one / cal[y, x]
+        inv2 = inv * inv
+        s_all = rate[y, x] * resp[y, x]
+        s_all += sky[y, x] * resp[y, x]
+        sig2 = s_all * s_all * inv2
+        v = (table_a[ln] * sig_f2 + table_b[ln] * fb_pois * np.float64(f[y, x])
+             + np.float64(dcal[y, x])) * np.float64(inv2) + np.float64(ferr2 * sig2)
+        var[y, x] = np.float32(v)
+
+
+def refit_variance(idx, length, f, cal, rate, resp, sky, dcal, table_a, table_b, sig_f2, pois,
+                   ferr2, sci, var):
+    """After :func:`calibrate`: refitted pixels without a slope get sci = 0, and every
+    refitted pixel the variance of its run, (a sig_f2 + b pois f + dcal) / cal^2 + ferr2
+    (signal / cal)^2 ((e-/s)^2), in place."""
+    iy, ix = (np.ascontiguousarray(a, np.int64) for a in idx)
+    shape = sci.shape
+    b = [np.broadcast_to(np.asarray(a, np.float32), shape)
+         for a in (f, cal, rate, resp, sky, dcal)]
+    _refit_variance(iy, ix, length, *b, table_a, table_b, float(sig_f2), float(pois),
+                    np.float32(ferr2), sci, var)
+
+
+@_jit
+def _deposit(cx, cy, dx, dy, q, interval, s, ny, nx, charge, when):
+    # corner-major order, as the concatenated bincount this replaces summed them
+    for corner in range(4):
+        ox, oy = corner % 2, corner // 2
+        for e in range(cx.size):
+            for p in range(s.size):
+                px = cx[e] + s[p] * dx[e]
+                py = cy[e] + s[p] * dy[e]
+                x0, y0 = np.floor(px), np.floor(py)
+                fx, fy = px - x0, py - y0
+                wx = fx if ox else 1 - fx
+                wy = fy if oy else 1 - fy
+                w = wx * wy
+                xx, yy = int(x0) + ox, int(y0) + oy
+                if 0 <= xx < nx and 0 <= yy < ny and w > 1e-3:
+                    charge[yy, xx] += q[e] * w
+                    when[yy, xx] = interval[e]
+
+
+def deposit(shape, cx, cy, theta, length, q_point, interval, s):
+    """Charge (e-, float64) and arrival-interval (int32, -1: none) images of straight tracks,
+    each ``s.size`` points of charge ``q_point`` spread bilinearly (see
+    :func:`simfield.detector._deposit`)."""
+    ny, nx = shape
+    charge = np.zeros(shape)
+    when = np.full(shape, -1, np.int32)
+    _deposit(np.asarray(cx, float), np.asarray(cy, float), length * np.cos(theta),
+             length * np.sin(theta), np.asarray(q_point, float),
+             np.asarray(interval, np.int64), np.asarray(s, float), ny, nx, charge, when)
+    return charge, when
