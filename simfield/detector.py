@@ -672,20 +672,14 @@ def expose(rate: np.ndarray, sky_rate, dark, det: DetectorConfig, exptime_s: flo
         cr_q = cr_q.astype(np.float32)
         if alpha > 0:
             cr_q = pixelops.ipc(cr_q, alpha)
-            when = np.where(when >= 0, when, _max_cross(when))
-        hit = (cr_q > 0) & (when >= 0)
-        hit_at = np.nonzero(hit)
-        sig_diff = np.sqrt(2.0 * sig_f2 / m + f[hit_at] * tg)  # noise of a group difference
-        jump = np.zeros(rate.shape, bool)
-        jump[hit_at] = cr_q[hit_at] > det.jump_threshold_sigma * sig_diff
-        # the neighbours of a detected jump are refitted too, at the same time (common
-        # practice in ramp fitting: the faint fringe of a track would otherwise stay in)
-        jump |= hit & _dilate_square(jump)
-        faint = hit & ~jump
-        # an undetected deposit in interval i adds charge x D_i to the fitted slope (the
-        # deposit is already spread by IPC, so it is not convolved again below)
-        bias = np.zeros(rate.shape, np.float32)
-        bias[faint] = cr_q[faint] * d_int[when[faint]]
+        # per pixel (simfield.pixelops.jumps): an IPC-spread deposit arrives with its
+        # neighbour's event; a deposit above jump_threshold_sigma x the noise of a group
+        # difference, sqrt(2 sig_f2 / m + f t_g), is detected, and hit neighbours of a
+        # detected jump are refitted too, at the same time (common practice in ramp fitting:
+        # the faint fringe of a track would otherwise stay in); an undetected deposit in
+        # interval i adds charge x D_i to the fitted slope (already spread by IPC)
+        when, jump, bias = pixelops.jumps(cr_q, when, alpha > 0, f, 2.0 * sig_f2 / m, tg,
+                                          det.jump_threshold_sigma, d_int)
     if alpha > 0:
         slope = pixelops.ipc(slope, alpha)
     if n_cr:
