@@ -680,13 +680,17 @@ def expose(rate: np.ndarray, sky_rate, dark, det: DetectorConfig, exptime_s: flo
         # interval i adds charge x D_i to the fitted slope (already spread by IPC)
         when, jump, bias = pixelops.jumps(cr_q, when, alpha > 0, f, 2.0 * sig_f2 / m, tg,
                                           det.jump_threshold_sigma, d_int)
-    if alpha > 0:
-        slope = pixelops.ipc(slope, alpha)
-    if n_cr:
-        slope += bias
     z_read = noise.normal("read") if sig_f2 > 0 else None
-    if z_read is not None:
-        slope += np.float32(math.sqrt(a_full * sig_f2)) * z_read
+    if alpha > 0 and z_read is not None:  # IPC, the faint-deposit bias and read noise fused
+        slope = pixelops.ipc_noise(slope, alpha, bias if n_cr else None,
+                                   math.sqrt(a_full * sig_f2), z_read)
+    else:
+        if alpha > 0:
+            slope = pixelops.ipc(slope, alpha)
+        if n_cr:
+            slope += bias
+        if z_read is not None:
+            slope += np.float32(math.sqrt(a_full * sig_f2)) * z_read
 
     # group k is usable while the charge at its last read, f (k + 1) t_g, is below full well
     sat = f * (n * tg) >= det.full_well_e if det.saturation else np.zeros(rate.shape, bool)

@@ -282,3 +282,25 @@ def jumps(cr_q, when_raw, spread, f, c0, tg, thr, d_int):
                    f, np.float32(c0), np.float32(tg), np.float32(thr),
                    np.asarray(d_int, np.float64), when, hit, jump, bias)
     return when, refit, bias
+
+
+@_jit
+def _ipc_noise(img, centre, alpha, bias, has_bias, c, z, out):
+    _ipc(img, centre, alpha, out)
+    for y in range(out.shape[0]):
+        for x in range(out.shape[1]):
+            v = out[y, x]
+            if has_bias:
+                v += bias[y, x]
+            out[y, x] = v + c * z[y, x]
+    return out
+
+
+def ipc_noise(slope, alpha, bias, read_sd, z):
+    """``ipc(slope, alpha) (+ bias) + read_sd z`` (float32, e-/s): the charge slope spread by
+    IPC, the undetected cosmic-ray bias (or None) and the read noise, in one call."""
+    slope = np.asarray(slope, np.float32)
+    has_bias = bias is not None
+    bias = bias if has_bias else np.zeros((1, 1), np.float32)
+    return _ipc_noise(slope, np.float32(1.0 - 4.0 * alpha), np.float32(alpha), bias, has_bias,
+                      np.float32(read_sd), z, np.empty(slope.shape, np.float32))
