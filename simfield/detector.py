@@ -376,7 +376,9 @@ def _best_runs_one_break(n_ok: np.ndarray, kc: np.ndarray, skip: np.ndarray):
     """:func:`_best_runs` in closed form for ramps with groups ``0 ... n_ok - 1`` usable, at most
     one jump, before group ``kc`` (``kc`` = n_groups: none), and group ``kc`` itself unusable
     where ``skip``: the run before the jump, [0, min(kc, n_ok)), or the run after it,
-    [kc + skip, n_ok); the earlier wins a tie (as in :func:`_best_runs`)."""
+    [kc + skip, n_ok); the earlier wins a tie (as in :func:`_best_runs`). :func:`expose` runs
+    it per pixel in :func:`simfield.pixelops.refit`; this numpy form is its reference, as
+    :func:`_dilate_square` and :func:`_max_cross` are for :func:`simfield.pixelops.jumps`."""
     la = np.minimum(kc, n_ok)
     sb = kc + skip.astype(np.int64)
     lb = np.maximum(n_ok - sb, 0)
