@@ -418,6 +418,19 @@ def add_bright(image: np.ndarray, stamps: Sequence[Stamp], flux: np.ndarray,
         image[g] += flux[st.index] * big.image[s]
 
 
+def _full_conv(img: np.ndarray, kernel: np.ndarray, spectra: dict) -> np.ndarray:
+    """``scipy.signal.fftconvolve(img, kernel, mode="full")``, the same transforms in the same
+    order (so the same numbers), with the kernel's transform kept in ``spectra`` (by FFT
+    shape) between calls: thousands of small stamps cost their own transforms only."""
+    full = [a + b - 1 for a, b in zip(img.shape, kernel.shape)]
+    fshape = tuple(sfft.next_fast_len(n, True) for n in full)
+    ks = spectra.get(fshape)
+    if ks is None:
+        ks = spectra[fshape] = sfft.rfftn(kernel, fshape, axes=(0, 1))
+    out = sfft.irfftn(sfft.rfftn(img, fshape, axes=(0, 1)) * ks, fshape, axes=(0, 1))
+    return out[:full[0], :full[1]].copy()
+
+
 def dominant_source(stamps: Sequence[Stamp], flux: np.ndarray, source_id: np.ndarray,
                     shape: tuple[int, int], kernel: np.ndarray, threshold: float,
                     origin: tuple[int, int] = (0, 0),
@@ -434,6 +447,7 @@ def dominant_source(stamps: Sequence[Stamp], flux: np.ndarray, source_id: np.nda
     ky, kx = kernel.shape
     hy, hx = ky // 2, kx // 2
     kmax, ksum = float(kernel.max()), float(kernel.sum())
+    spectra: dict = {}  # the kernel's transform at each FFT shape the stamps need
     for st in stamps:
         f = flux[st.index]
         if f <= 0:
@@ -446,7 +460,7 @@ def dominant_source(stamps: Sequence[Stamp], flux: np.ndarray, source_id: np.nda
             continue
         if not _reaches(st, hy, hx, shape, origin):
             continue
-        conv = f * signal.fftconvolve(img, kernel, mode="full")
+        conv = f * _full_conv(img, kernel, spectra)
         big = Stamp(conv.astype(np.float32), st.iy0 - hy, st.ix0 - hx, st.index)
         cl = big.clip(shape, origin)
         if cl is None:
