@@ -32,8 +32,7 @@ SCALE, RADIUS = 0.02, 0.5  # arcsec
 
 @pytest.fixture(scope="module")
 def model(tmp_path_factory):
-    sc = make_scenario("telescope.field_psf.enabled=true",
-                       f"telescope.psf.cache_dir={tmp_path_factory.mktemp('psf')}")
+    sc = make_scenario("telescope.field_psf.enabled=true")
     b = make_bands(sc)[0]  # b10: the largest effect
     return sc, b, field_psf_model(sc.telescope, b, SCALE, RADIUS, sc.seed, HALF, HALF)
 
