@@ -14,10 +14,8 @@ from typing import Callable, Sequence
 
 import numpy as np
 
-import scipy.fft as sfft
-
 from .grid import Grid
-from .scene import Stamp, _kernel_transform, _tiling, add_bright, convolve_tiled
+from .scene import Stamp, add_bright, convolve_weighted
 
 __all__ = ["convolve_modes", "field_axes", "add_bright_field"]
 
@@ -43,36 +41,7 @@ def convolve_modes(image: np.ndarray, mean: np.ndarray, modes: Sequence[np.ndarr
     weights : sequence of ndarray, each the shape of ``image``
         The weight of each mode at each source pixel.
     """
-    ky, kx = mean.shape
-    if ky % 2 == 0 or kx % 2 == 0:
-        raise ValueError(f"kernel must have odd dimensions, got {mean.shape}")
-    hy, hx = ky // 2, kx // 2
-    ny, nx = image.shape
-    ty, fy = _tiling(ny, ky, tile)
-    tx, fx = _tiling(nx, kx, tile)
-    real = np.float32 if image.dtype == np.float32 else np.float64
-    kfs = [_kernel_transform(k, real, (fy, fx), workers) for k in (mean, *modes)]
-    out = np.zeros((ny, nx), dtype=image.dtype)
-    for y0 in range(0, ny, ty):
-        for x0 in range(0, nx, tx):
-            t = image[y0:y0 + ty, x0:x0 + tx]
-            if not t.any():
-                continue
-            spec = sfft.rfft2(t, s=(fy, fx), workers=workers)
-            spec *= kfs[0]
-            for kf, w in zip(kfs[1:], weights):
-                tw = t * w[y0:y0 + ty, x0:x0 + tx].astype(image.dtype, copy=False)
-                part = sfft.rfft2(tw, s=(fy, fx), workers=workers)
-                part *= kf
-                spec += part
-            h, wd = t.shape
-            oy0, ox0 = max(y0 - hy, 0), max(x0 - hx, 0)
-            oy1, ox1 = min(y0 + h + hy, ny), min(x0 + wd + hx, nx)
-            rows = sfft.ifft(spec, axis=0, workers=workers, overwrite_x=True)[
-                oy0 - y0 + hy:oy1 - y0 + hy]
-            c = sfft.irfft(rows, n=fx, axis=1, workers=workers)
-            out[oy0:oy1, ox0:ox1] += c[:, ox0 - x0 + hx:ox1 - x0 + hx]
-    return out
+    return convolve_weighted(image, mean, modes, weights, tile, workers)
 
 
 def field_axes(sgrid: Grid, box) -> tuple[np.ndarray, np.ndarray]:
