@@ -1,8 +1,8 @@
 """Tile-level resume of a run's image files (mosaics, truth images, exposures).
 
 The tiles write their sections into files laid out by :mod:`simfield.io` under a folder of the
-run, ``.resume/<key>/`` (as ``<name>.inprogress``), instead of temporary files that vanish
-when a run fails. ``<key>`` is a
+run, ``.resume/<key>/`` (as ``<name>.part``), instead of temporary files that vanish
+when a run fails (the command line's clean-up of ``*.part`` files leaves that folder alone). ``<key>`` is a
 hash of the configuration hash and the simfield version, so a changed configuration (seed,
 field, ``tile_pixels``, ...) or another version never reuses what an earlier run wrote: the
 folders of other keys are removed when the tiles start. After a tile's sections are written and
@@ -38,9 +38,9 @@ __all__ = ["RESUME_DIR", "PART_SUFFIX", "TileLedger", "resume_key", "resumable_s
 
 #: Folder of a run (beside its files) holding the image files being written and tile markers.
 RESUME_DIR = ".resume"
-#: Suffix of a file being written there (not ``.part``: a relaunch deletes ``*.part`` files,
-#: :func:`simfield.sweep.remove_partial_files`, but keeps these).
-PART_SUFFIX = ".inprogress"
+#: Suffix of a file being written there (:func:`simfield.sweep.remove_partial_files` skips
+#: :data:`RESUME_DIR`, so a relaunch keeps them).
+PART_SUFFIX = ".part"
 _LAYOUT = "files.json"
 
 

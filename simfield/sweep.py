@@ -299,15 +299,19 @@ def should_skip(run_dir, config_hash: str | None = None) -> bool:
 
 
 def remove_partial_files(run_dir) -> list[Path]:
-    """Delete temporary ``*.part`` files a killed run left behind (never a final file).
+    """Delete temporary ``*.part`` files a killed run left behind (never a final file, and
+    never the sections kept for a relaunch in the run's resume folder,
+    :data:`simfield.resume.RESUME_DIR`).
 
     Only call this when no other process is writing into ``run_dir``.
     """
+    from .resume import RESUME_DIR
+
     run_dir = Path(run_dir)
     gone = []
     if run_dir.is_dir():
         for p in sorted(run_dir.rglob("*.part")):
-            if p.is_file():
+            if p.is_file() and RESUME_DIR not in p.relative_to(run_dir).parts:
                 p.unlink()
                 gone.append(p)
     return gone

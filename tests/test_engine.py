@@ -199,7 +199,12 @@ def test_interrupted_run_resumes_from_its_done_tiles(local_run, monkeypatch):
     stale.mkdir()
     for i in range(4):
         (stale / f"tile_{i:06d}.done").write_text('{"timings": {}}')
-    remove_partial_files(b)  # what the command line does first in an existing run folder
+    kept = sorted((b / RESUME_DIR / key).rglob("*.part"))
+    stray = b / ".mosaic_b17.fits.x.part"  # a temporary file of a killed earlier write
+    stray.write_bytes(b"x")
+    # what the command line does first in an existing run folder: the resume folder is kept
+    assert remove_partial_files(b) == [stray]
+    assert kept and all(p.exists() for p in kept)
     rendered.clear()
 
     def counting(ctx, i):
