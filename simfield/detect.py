@@ -363,16 +363,34 @@ def _detect_task(ctx: tuple, i: int):
     return _detect_tile(job, tiles[i])
 
 
-def _map_detect(job: _TileJob, tiles: list, workers: int, engine=None):
+def _map_detect(job: _TileJob, tiles: list, workers: int, engine=None, store=None):
+    """:func:`_detect_tile` over ``tiles`` in order; a generator, so results are used as they
+    arrive. Results an earlier launch kept in ``store`` (:class:`simfield.resume.ResultStore`)
+    are read back; the others are computed (:func:`_compute_tiles`) and kept there."""
+    todo = [i for i in range(len(tiles)) if store is None or not store.done(i)]
+    new = _compute_tiles(job, [tiles[i] for i in todo], workers, engine)
+    todo = set(todo)
+    for i in range(len(tiles)):
+        if i not in todo:
+            yield store.result(i)
+            continue
+        r = next(new)
+        if store is not None:
+            store.record(i, r)
+        yield r
+
+
+def _compute_tiles(job: _TileJob, tiles: list, workers: int, engine=None):
     """:func:`_detect_tile` over ``tiles`` in order, in ``workers`` forked processes (0: one
     per core, at most one per tile), or as tasks of a Dask ``engine``
-    (:class:`simfield.engine.DaskEngine`, which reads the mosaic from the run folder); a
-    generator, so results are used as they arrive."""
+    (:class:`simfield.engine.DaskEngine`, which reads the mosaic from the run folder)."""
     import multiprocessing
     import os
     from concurrent.futures import ProcessPoolExecutor
     from functools import partial
 
+    if not tiles:
+        return
     if engine is not None:
         yield from engine.imap(_detect_task, (job, tiles), len(tiles),
                                desc=f"detect {job.path.name}")
@@ -390,7 +408,8 @@ def _map_detect(job: _TileJob, tiles: list, workers: int, engine=None):
 
 def detect_mosaic(path, segm_out, cfg: DetectionConfig, psf_fwhm_arcsec: float,
                   core: int | None = None, margin: int | None = None,
-                  progress: bool = False, workers: int = 1, engine=None) -> Table:
+                  progress: bool = False, workers: int = 1, engine=None,
+                  store=None) -> Table:
     """Detect sources on a mosaic file tile by tile, in memory bounded by the tile size.
 
     The mosaic (``IMAGE``, ``INVVAR`` and, if present, ``FLAGS`` extensions) is opened as a memory map
@@ -437,6 +456,9 @@ def detect_mosaic(path, segm_out, cfg: DetectionConfig, psf_fwhm_arcsec: float,
         Run the tiles as tasks of this Dask cluster instead of ``workers`` processes (its
         workers read the mosaic at ``path``, so it must be on a filesystem they share); the
         result is the same.
+    store : simfield.resume.ResultStore, optional
+        Keep each tile's result there, and read back the tiles an earlier launch of the same
+        run kept (the result is the same).
 
     Returns
     -------
@@ -489,7 +511,7 @@ def detect_mosaic(path, segm_out, cfg: DetectionConfig, psf_fwhm_arcsec: float,
         bar = tqdm(total=len(tiles), desc=f"detect {Path(path).name}", unit="tile",
                    disable=not progress, leave=False)
         for (yb, xb), (cat, labels, own, gx, gy, seg, n_labels) in zip(
-                tiles, _map_detect(job, tiles, workers, engine)):
+                tiles, _map_detect(job, tiles, workers, engine, store)):
             kept.append(cat[own])
             provisional.append((offset, labels, own, gx, gy))
             if seg is not None:
@@ -549,7 +571,7 @@ def detect_mosaic(path, segm_out, cfg: DetectionConfig, psf_fwhm_arcsec: float,
 
 
 def run_detection(run_dir, sc, bands, prov, progress: bool = False, workers: int = 1,
-                  engine=None) -> dict:
+                  engine=None, resume=None) -> dict:
     """Run :func:`detect_mosaic` on each mosaic of a run directory; write
     ``detections_<band>.fits``.
 
@@ -574,6 +596,10 @@ def run_detection(run_dir, sc, bands, prov, progress: bool = False, workers: int
         Processes for each mosaic's tiles (see :func:`detect_mosaic`).
     engine : simfield.engine.DaskEngine, optional
         Run each mosaic's tiles on this Dask cluster instead (see :func:`detect_mosaic`).
+    resume : path, optional
+        The run's resume folder (:func:`simfield.resume.resume_folder`): each band's tile
+        results are kept in ``detect_<band>/`` there, and a relaunch detects only the tiles
+        an earlier launch did not finish.
 
     Returns
     -------
@@ -583,6 +609,7 @@ def run_detection(run_dir, sc, bands, prov, progress: bool = False, workers: int
     from astropy.io import fits
 
     from .io import ImageSpec, section_files
+    from .resume import ResultStore
 
     run_dir = Path(run_dir)
     cfg = sc.detection
@@ -599,8 +626,9 @@ def run_detection(run_dir, sc, bands, prov, progress: bool = False, workers: int
         out = run_dir / f"detections_{name}.fits"
         with section_files([(out, [spec], [("BAND", name, "simfield band name")])],
                            prov) as (sf,):
+            store = None if resume is None else ResultStore(Path(resume) / f"detect_{name}")
             cat = detect_mosaic(mpath, sf, cfg, fwhm, progress=progress, workers=workers,
-                                engine=engine)
+                                engine=engine, store=store)
             cat.meta.update({"BAND": name})
             tab = fits.BinTableHDU(cat, name="DETECTIONS")
             for key, value, comment in prov.header_cards():

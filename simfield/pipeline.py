@@ -230,12 +230,14 @@ def _run_scenario(sc: Scenario, out_dir: str | Path, progress: bool, engine) -> 
         from ._readout_hooks import persistence_stimuli
 
         ctx.stimuli = persistence_stimuli(sc, bands, sources, egrids, psf_core, rates)
-    from .resume import resumable_section_files, resume_key
+    from .resume import remove_resume, resumable_section_files, resume_folder, resume_key
 
-    # kept in the run's .resume folder until every tile is done, so a relaunch resumes
+    # what the run finishes is kept in its .resume folder until it is complete, so a relaunch
+    # renders only the tiles not done (and detects only the detection tiles not done)
+    key = resume_key(prov.config_hash, __version__)
     with timer("tiles"), resumable_section_files(
             out, _image_files(out, sc, bands, mgrid, egrids, noise), prov,
-            resume_key(prov.config_hash, __version__)) as (sfiles, ctx.ledger):
+            key) as (sfiles, ctx.ledger):
         ctx.files = {f.final.name: f for f in sfiles}
         for b in bands:
             ctx.files[f"mosaic_{b.name}.fits"].array("NOISECOR")[:] = noise[b.name].rho
@@ -279,7 +281,7 @@ def _run_scenario(sc: Scenario, out_dir: str | Path, progress: bool, engine) -> 
             from .detect import run_detection
 
             summary["detections"] = run_detection(out, sc, bands, prov, progress, sc.workers,
-                                                  engine)
+                                                  engine, resume_folder(out, key))
             files.extend(out / f"detections_{b}.fits" for b in summary["detections"])
     if sc.photometry.enabled and sc.detection.enabled:
         with timer("photometry"):
@@ -313,6 +315,7 @@ def _run_scenario(sc: Scenario, out_dir: str | Path, progress: bool, engine) -> 
     listed = sorted({str(Path(f).relative_to(out)) for f in files if Path(f).is_relative_to(out)})
     write_text(marker, f"simfield {__version__} seed {sc.seed} config {prov.config_hash}\n"
                + "".join(f"{f}\n" for f in listed))
+    remove_resume(out)
     return res
 
 

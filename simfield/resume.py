@@ -17,6 +17,12 @@ exists under its final name.
 
 A file layout is recorded (``files.json``, also written atomically) only after every file was
 created; a folder without it (a run stopped while laying out its files) is started afresh.
+
+The folder outlives the tiles: when every tile is done and the files carry their final names,
+``files_complete.json`` records their sizes, and a relaunch that finds them unchanged renders
+nothing. The later stages keep what they finish there too (:class:`ResultStore`: the detection
+tiles of each band), and the run removes the whole folder (:func:`remove_resume`) once it is
+complete.
 """
 
 from __future__ import annotations
@@ -25,6 +31,7 @@ import contextlib
 import hashlib
 import json
 import os
+import pickle
 import shutil
 from dataclasses import dataclass
 from pathlib import Path
@@ -34,7 +41,8 @@ import numpy as np
 
 from .io import _BITPIX, SectionFile, _create
 
-__all__ = ["RESUME_DIR", "PART_SUFFIX", "TileLedger", "resume_key", "resumable_section_files"]
+__all__ = ["RESUME_DIR", "PART_SUFFIX", "TileLedger", "ResultStore", "resume_key",
+           "resume_folder", "remove_resume", "resumable_section_files"]
 
 #: Folder of a run (beside its files) holding the image files being written and tile markers.
 RESUME_DIR = ".resume"
@@ -42,6 +50,7 @@ RESUME_DIR = ".resume"
 #: :data:`RESUME_DIR`, so a relaunch keeps them).
 PART_SUFFIX = ".part"
 _LAYOUT = "files.json"
+_COMPLETE = "files_complete.json"
 
 
 def resume_key(config_hash: str, version: str) -> str:
@@ -58,11 +67,11 @@ def _fsync(path: Path) -> None:
         os.close(fd)
 
 
-def _write_atomic(path: Path, text: str) -> None:
-    """``text`` into ``path`` through a temporary file flushed and renamed into place."""
+def _write_atomic(path: Path, data: str | bytes) -> None:
+    """``data`` into ``path`` through a temporary file flushed and renamed into place."""
     tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
-    with open(tmp, "w") as f:
-        f.write(text)
+    with open(tmp, "wb") as f:
+        f.write(data.encode() if isinstance(data, str) else data)
         f.flush()
         os.fsync(f.fileno())
     os.replace(tmp, path)
@@ -95,6 +104,59 @@ class TileLedger:
         _write_atomic(self._marker(i), json.dumps(result, sort_keys=True))
 
 
+@dataclass(frozen=True)
+class ResultStore:
+    """Results of finished tiles of a later stage (e.g. the detection tiles of one band), kept
+    in ``folder`` by the process that collects them: one pickle per tile, written atomically,
+    so a relaunch reads back what an earlier launch finished. Only ever read by the run that
+    wrote the folder (same configuration hash and version, :func:`resume_key`)."""
+
+    folder: Path
+
+    def _path(self, i: int) -> Path:
+        return self.folder / f"tile_{i:06d}.pkl"
+
+    def done(self, i: int) -> bool:
+        """Whether tile ``i``'s result is kept."""
+        return self._path(i).exists()
+
+    def result(self, i: int):
+        """The result kept for tile ``i``."""
+        return pickle.loads(self._path(i).read_bytes())
+
+    def record(self, i: int, result) -> None:
+        """Keep tile ``i``'s (picklable) ``result``, atomically."""
+        self.folder.mkdir(parents=True, exist_ok=True)
+        _write_atomic(self._path(i), pickle.dumps(result, protocol=pickle.HIGHEST_PROTOCOL))
+
+
+def resume_folder(out, key: str) -> Path:
+    """The folder of ``out`` where a run of :func:`resume_key` ``key`` keeps what it finished
+    (absolute: it is handed to Dask workers). Folders of other keys (another configuration or
+    version) are removed: they are never reused."""
+    base = Path(out).absolute() / RESUME_DIR
+    if base.is_dir():
+        for old in base.iterdir():
+            if old.name != key:
+                shutil.rmtree(old) if old.is_dir() else old.unlink()
+    return base / key
+
+
+def remove_resume(out) -> None:
+    """Remove the resume folder of run folder ``out`` (once the run is complete)."""
+    shutil.rmtree(Path(out) / RESUME_DIR, ignore_errors=True)
+
+
+def _complete_files(folder: Path, out: Path, finals: list[Path]) -> bool:
+    """Whether an earlier launch finished these files (recorded, present, same sizes)."""
+    path = folder / _COMPLETE
+    if not path.exists():
+        return False
+    saved = json.loads(path.read_text())
+    return saved.get("files") == [str(p.relative_to(out)) for p in finals] and all(
+        p.exists() and p.stat().st_size == n for p, n in zip(finals, saved["sizes"]))
+
+
 @contextlib.contextmanager
 def resumable_section_files(out: Path, items: Sequence, prov, key: str
                             ) -> Iterator[tuple[list[SectionFile], TileLedger]]:
@@ -115,8 +177,11 @@ def resumable_section_files(out: Path, items: Sequence, prov, key: str
         The files (in ``items`` order) and the ledger of done tiles: on a relaunch with the
         same key, the files and markers the earlier run left.
 
-    When the block succeeds every file is renamed to its final path and the resume folder is
-    removed; when it fails (a lost worker, an interruption) both stay for the next launch.
+    When the block succeeds every file is renamed to its final path and recorded as complete
+    (the folder stays until :func:`remove_resume`); when it fails (a lost worker, an
+    interruption) the files and markers stay for the next launch. A launch that finds the
+    files complete yields them under their final names with every tile done (the block may
+    rewrite the same bytes, e.g. depth cards, but renders nothing).
     """
     for _, specs, _ in items:  # refuse bad specs before anything is written
         for spec in specs:
@@ -124,16 +189,17 @@ def resumable_section_files(out: Path, items: Sequence, prov, key: str
                 raise ValueError(f"ImageSpec {spec.name}: dtype {np.dtype(spec.dtype)} not one "
                                  f"of {', '.join(str(d) for d in _BITPIX)}")
     out = Path(out)
-    base = out.absolute() / RESUME_DIR  # absolute: the ledger goes to Dask workers
-    folder = base / key
-    if base.is_dir():
-        for old in base.iterdir():
-            if old.name != key:  # another configuration or version: never reused
-                shutil.rmtree(old) if old.is_dir() else old.unlink()
+    folder = resume_folder(out, key)
     finals = [Path(p) for p, _, _ in items]
     parts = [folder / (str(p.relative_to(out)) + PART_SUFFIX) for p in finals]
     layout_path = folder / _LAYOUT
     layouts = None
+    if _complete_files(folder, out, finals):  # an earlier launch finished them: reuse
+        saved = json.loads(layout_path.read_text())["layouts"]
+        files = [SectionFile(final, final, {k: (v[0], tuple(v[1]), v[2]) for k, v in lay.items()})
+                 for final, lay in zip(finals, saved)]
+        yield files, TileLedger(folder)
+        return
     if layout_path.exists():
         saved = json.loads(layout_path.read_text())
         if saved.get("files") == [str(p.relative_to(out)) for p in finals] and all(
@@ -156,8 +222,9 @@ def resumable_section_files(out: Path, items: Sequence, prov, key: str
     files = [SectionFile(part, final, lay) for part, final, lay in zip(parts, finals, layouts)]
     yield files, TileLedger(folder, tuple(str(p) for p in parts))
     for f in files:
+        _fsync(f.path)  # what the block wrote after the last tile (e.g. depth cards)
         f.final.parent.mkdir(parents=True, exist_ok=True)
         os.replace(f.path, f.final)
-    shutil.rmtree(folder)
-    with contextlib.suppress(OSError):
-        base.rmdir()  # only when empty
+    _write_atomic(folder / _COMPLETE, json.dumps({
+        "files": [str(p.relative_to(out)) for p in finals],
+        "sizes": [p.stat().st_size for p in finals]}))

@@ -246,3 +246,48 @@ def test_detection_tiles_on_dask_match_local_processes(local_run, tmp_path, monk
     with fits.open(b) as hl:
         assert hl["DETECTIONS"].header["NTILES"] == 4
         assert hl["SEGMAP"].data.max() == n_dask["b17"]
+
+
+def test_run_stopped_in_detection_renders_nothing_again(local_run, tmp_path, monkeypatch):
+    """A run stopped after two of its four detection tiles (100-pixel cores) keeps its finished
+    images and those two tiles' results in its resume folder: relaunched in the same folder it
+    renders no image tile and detects only the two other detection tiles, and its files are
+    byte for byte those of a run never stopped (common practice for restartable pipelines)."""
+    from simfield import detect, pipeline
+
+    tmp, _ = local_run
+    monkeypatch.setattr(detect, "TILE_CORE_PIX", 100)
+    monkeypatch.setattr(detect, "TILE_MARGIN_PIX", 24)
+    sc = tiny(tmp, "detection.enabled=true")
+    ref = run_scenario(sc, tmp_path / "ref").out_dir
+    calls = {"render": 0, "detect": 0}
+    real_render, real_detect = pipeline._render_tile, detect._detect_tile
+
+    def render(ctx, i):
+        calls["render"] += 1
+        return real_render(ctx, i)
+
+    def stop_at_third(job, tile):
+        calls["detect"] += 1
+        if calls["detect"] == 3:
+            raise RuntimeError("interrupted")
+        return real_detect(job, tile)
+
+    monkeypatch.setattr(pipeline, "_render_tile", render)
+    monkeypatch.setattr(detect, "_detect_tile", stop_at_third)
+    b = tmp_path / "stopped"
+    with pytest.raises(RuntimeError, match="interrupted"):
+        run_scenario(sc, b)
+    assert calls == {"render": 4, "detect": 3}
+    assert (b / "mosaic_b17.fits").exists() and not (b / "detections_b17.fits").exists()
+    assert len(list((b / RESUME_DIR).glob("*/detect_b17/tile_*.pkl"))) == 2
+    remove_partial_files(b)
+    calls.update(render=0, detect=0)
+    monkeypatch.setattr(detect, "_detect_tile", real_detect)
+    monkeypatch.setattr(detect, "_compute_tiles",
+                        lambda job, tiles, *a: (calls.__setitem__("detect", len(tiles)),
+                                                (real_detect(job, t) for t in tiles))[1])
+    run_scenario(sc, b)
+    assert calls == {"render": 0, "detect": 2}
+    assert_same_files(ref, b)
+    assert not (b / RESUME_DIR).exists()
