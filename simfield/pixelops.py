@@ -1,9 +1,11 @@
-"""Fused per-pixel loops of the detector model (numba), for :mod:`simfield.detector`.
+"""Fused per-pixel loops of the detector model (numba), for :mod:`simfield.detector`, and of
+the mosaic's flag counts, for :mod:`simfield.survey.drizzle`.
 
 Each function does in one pass over the image what a chain of whole-image numpy operations
 would do in several, with the same operations in the same order and the same precision
 (float32 images, float32 constants; the Poisson expansion in float64), so the results equal
-the numpy chains bit for bit (checked in tests/test_detector_fast.py). Units are those of the
+the numpy chains bit for bit (checked in tests/test_detector_fast.py and
+tests/test_drizzle_flags_fast.py). Units are those of the
 caller: e-/s per pixel for rates and slopes, (e-/s)^2 for variances.
 """
 
@@ -13,7 +15,7 @@ import numba
 import numpy as np
 
 __all__ = ["ipc", "cornish_fisher", "expected_rates", "calibrate", "refit", "refit_variance",
-           "deposit", "jumps"]
+           "deposit", "jumps", "nearest_counts", "nearest_weighted_add"]
 
 _jit = numba.njit(cache=True, nogil=True)
 
@@ -304,3 +306,74 @@ def ipc_noise(slope, alpha, bias, read_sd, z):
     bias = bias if has_bias else np.zeros((1, 1), np.float32)
     return _ipc_noise(slope, np.float32(1.0 - 4.0 * alpha), np.float32(alpha), bias, has_bias,
                       np.float32(read_sd), z, np.empty(slope.shape, np.float32))
+
+
+# ---------------------------------------------------------------------------- mosaic flags
+@_jit
+def _nearest_counts(a00, a01, a10, a11, b0, b1, dq, w, sat_bit, cr_bit, n_cover, n_good,
+                    n_sat, n_cr, wsum, src, wk):
+    gny, gnx = dq.shape
+    ny, nx = n_cover.shape
+    for y in range(ny):
+        for x in range(nx):
+            fx = np.floor(a00 * np.float64(x) + a01 * np.float64(y) + b0 + 0.5)
+            fy = np.floor(a10 * np.float64(x) + a11 * np.float64(y) + b1 + 0.5)
+            ix, iy = np.int64(fx), np.int64(fy)
+            k = y * nx + x
+            src[k] = -1
+            wk[k] = np.float32(0.0)
+            if ix < 0 or ix >= gnx or iy < 0 or iy >= gny:
+                wsum[y, x] += np.float32(0.0)
+                continue
+            n_cover[y, x] += 1
+            d = dq[iy, ix]
+            if (d & sat_bit) != 0:
+                n_sat[y, x] += 1
+            v = w[iy, ix]
+            if v > 0:
+                n_good[y, x] += 1
+                if (d & cr_bit) != 0:
+                    n_cr[y, x] += 1
+                wsum[y, x] += v
+                src[k] = iy * gnx + ix
+                wk[k] = v
+            else:
+                wsum[y, x] += np.float32(0.0)
+
+
+def nearest_counts(a, b, dq, w, sat_bit: int, cr_bit: int, n_cover, n_good, n_sat, n_cr,
+                   wsum):
+    """One exposure's share of :class:`simfield.survey.drizzle._FlagCounter` in one pass.
+
+    For each mosaic pixel (x, y) the exposure pixel nearest to its centre is
+    ``floor(a @ (x, y) + b + 0.5)`` (``a``, ``b``: the mosaic-to-exposure affine map, pixels);
+    where it lies on the exposure the pixel counts as covered, saturated on ``sat_bit`` of
+    ``dq``, good where its weight ``w`` (float32, (e-/s)^-2) is positive, and a repaired cosmic
+    ray where good with ``cr_bit``; ``wsum`` gains the good weights. The int16 counters and the
+    float32 ``wsum`` are updated in place. Returns (flat index of the exposure pixel or -1
+    where not good, its weight), for :func:`nearest_weighted_add`.
+    """
+    size = n_cover.size
+    src, wk = np.empty(size, np.int64), np.empty(size, np.float32)
+    _nearest_counts(float(a[0, 0]), float(a[0, 1]), float(a[1, 0]), float(a[1, 1]),
+                    float(b[0]), float(b[1]), np.ascontiguousarray(dq),
+                    np.ascontiguousarray(w, np.float32), int(sat_bit), int(cr_bit), n_cover,
+                    n_good, n_sat, n_cr, wsum, src, wk)
+    return src, wk
+
+
+@_jit
+def _weighted_add(src, wk, art, scale, acc):
+    flat = art.ravel()
+    out = acc.ravel()
+    for k in range(src.size):
+        if src[k] >= 0:
+            out[k] += wk[k] * flat[src[k]] * scale
+        else:
+            out[k] += np.float32(0.0)
+
+
+def nearest_weighted_add(src, wk, art, iscale: float, acc) -> None:
+    """``acc += wk * art[nearest pixel] * iscale`` where good (float32, in place), with the
+    (``src``, ``wk``) of :func:`nearest_counts`."""
+    _weighted_add(src, wk, np.ascontiguousarray(art, np.float32), np.float32(iscale), acc)

@@ -201,29 +201,20 @@ class _FlagCounter:
         self.wsum = np.zeros(shape, np.float32)
 
     def add(self, e, g: Grid, w: np.ndarray, iscale: float) -> None:
+        """Count exposure ``e`` (grid ``g``, float32 weights ``w``) in one pass over the
+        mosaic pixels (:func:`simfield.pixelops.nearest_counts`)."""
+        from ..pixelops import nearest_counts, nearest_weighted_add
+
         a, b = _affine(self.grid, g)
-        x = np.arange(self.grid.nx, dtype=float)[None, :]
-        y = np.arange(self.grid.ny, dtype=float)[:, None]
-        ix = np.floor(a[0, 0] * x + a[0, 1] * y + b[0] + 0.5).astype(np.int64)
-        iy = np.floor(a[1, 0] * x + a[1, 1] * y + b[1] + 0.5).astype(np.int64)
-        inside = (ix >= 0) & (ix < g.nx) & (iy >= 0) & (iy < g.ny)
-        ix, iy = np.where(inside, ix, 0), np.where(inside, iy, 0)
-        dq = np.where(inside, e.dq[iy, ix], 0)
-        wk = np.where(inside, w[iy, ix], 0.0).astype(np.float32)
-        good = inside & (wk > 0)
-        self.n_cover += inside
-        self.n_good += good
-        self.n_sat += (dq & DQ_SATURATED) != 0  # with or without a slope left
-        self.n_cr += good & ((dq & DQ_COSMIC_RAY) != 0)
-        self.wsum += np.where(good, wk, 0.0)
+        src, wk = nearest_counts(a, b, e.dq, w, DQ_SATURATED, DQ_COSMIC_RAY, self.n_cover,
+                                 self.n_good, self.n_sat, self.n_cr, self.wsum)
         for name, attr in (("art", "artefact"), ("stripes", "stripes"),
                            ("persist", "persistence")):
             art = getattr(e, attr, None)
             if art is not None:
                 if getattr(self, name) is None:
                     setattr(self, name, np.zeros(self.grid.shape, np.float32))
-                getattr(self, name)[...] += np.where(good, wk * art[iy, ix] * np.float32(iscale),
-                                                     0.0)
+                nearest_weighted_add(src, wk, art, iscale, getattr(self, name))
 
     def flags(self, covered: np.ndarray) -> np.ndarray:
         dq = np.zeros(self.grid.shape, np.int32)
