@@ -434,17 +434,34 @@ def add_bright(image: np.ndarray, stamps: Sequence[Stamp], flux: np.ndarray,
         image[g] += flux[st.index] * big.image[s]
 
 
-def _full_conv(img: np.ndarray, kernel: np.ndarray, spectra: dict) -> np.ndarray:
-    """``scipy.signal.fftconvolve(img, kernel, mode="full")``, the same transforms in the same
-    order (so the same numbers), with the kernel's transform kept in ``spectra`` (by FFT
-    shape) between calls: thousands of small stamps cost their own transforms only."""
-    full = [a + b - 1 for a, b in zip(img.shape, kernel.shape)]
-    fshape = tuple(sfft.next_fast_len(n, True) for n in full)
-    ks = spectra.get(fshape)
-    if ks is None:
-        ks = spectra[fshape] = sfft.rfftn(kernel, fshape, axes=(0, 1))
-    out = sfft.irfftn(sfft.rfftn(img, fshape, axes=(0, 1)) * ks, fshape, axes=(0, 1))
-    return out[:full[0], :full[1]].copy()
+#: Stamps convolved together (as one stack per FFT shape) by :func:`dominant_source`.
+_BATCH = 512
+
+
+def _full_convs(imgs: list, kernel: np.ndarray, spectra: dict) -> list:
+    """``scipy.signal.fftconvolve(img, kernel, mode="full")`` of each image (the forward
+    transform of a float32 image in float32), the images of one FFT shape
+    transformed as one stack and the kernel's transform kept in ``spectra`` (by FFT shape)
+    between calls: thousands of small stamps cost one call per shape."""
+    out = [None] * len(imgs)
+    groups: dict = {}
+    for i, img in enumerate(imgs):
+        full = tuple(a + b - 1 for a, b in zip(img.shape, kernel.shape))
+        fshape = tuple(sfft.next_fast_len(n, True) for n in full)
+        groups.setdefault(fshape, []).append(i)
+    for fshape, members in groups.items():
+        ks = spectra.get(fshape)
+        if ks is None:
+            ks = spectra[fshape] = sfft.rfftn(kernel, fshape, axes=(0, 1))
+        dtype = np.result_type(*(imgs[i] for i in members))  # float32 stamps stay float32
+        stack = np.zeros((len(members),) + fshape, dtype)
+        for j, i in enumerate(members):
+            stack[j, :imgs[i].shape[0], :imgs[i].shape[1]] = imgs[i]
+        conv = sfft.irfftn(sfft.rfftn(stack, axes=(1, 2)) * ks, fshape, axes=(1, 2))
+        for j, i in enumerate(members):
+            ny, nx = (a + b - 1 for a, b in zip(imgs[i].shape, kernel.shape))
+            out[i] = conv[j, :ny, :nx]
+    return out
 
 
 def dominant_source(stamps: Sequence[Stamp], flux: np.ndarray, source_id: np.ndarray,
@@ -464,6 +481,7 @@ def dominant_source(stamps: Sequence[Stamp], flux: np.ndarray, source_id: np.nda
     hy, hx = ky // 2, kx // 2
     kmax, ksum = float(kernel.max()), float(kernel.sum())
     spectra: dict = {}  # the kernel's transform at each FFT shape the stamps need
+    todo = []  # (stamp, its light in this band, flux) of the sources that may show
     for st in stamps:
         f = flux[st.index]
         if f <= 0:
@@ -476,15 +494,19 @@ def dominant_source(stamps: Sequence[Stamp], flux: np.ndarray, source_id: np.nda
             continue
         if not _reaches(st, hy, hx, shape, origin):
             continue
-        conv = f * _full_conv(img, kernel, spectra)
-        big = Stamp(conv.astype(np.float32), st.iy0 - hy, st.ix0 - hx, st.index)
-        cl = big.clip(shape, origin)
-        if cl is None:
-            continue
-        g, s = cl
-        c = big.image[s]
-        sub_best, sub_ids = best[g], ids[g]
-        m = (c > sub_best) & (c >= threshold)
-        sub_best[m] = c[m]
-        sub_ids[m] = source_id[st.index]
+        todo.append((st, img, f))
+    for c0 in range(0, len(todo), _BATCH):
+        chunk = todo[c0:c0 + _BATCH]
+        convs = _full_convs([img for _, img, _ in chunk], kernel, spectra)
+        for (st, _, f), conv in zip(chunk, convs):  # in stamp order: ties go to the first
+            big = Stamp((f * conv).astype(np.float32), st.iy0 - hy, st.ix0 - hx, st.index)
+            cl = big.clip(shape, origin)
+            if cl is None:
+                continue
+            g, s = cl
+            c = big.image[s]
+            sub_best, sub_ids = best[g], ids[g]
+            m = (c > sub_best) & (c >= threshold)
+            sub_best[m] = c[m]
+            sub_ids[m] = source_id[st.index]
     return ids
