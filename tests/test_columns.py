@@ -11,7 +11,7 @@ from simfield.io import Provenance
 
 
 def _truth(tmp_path):
-    from simfield.pipeline import _write_truth
+    from simfield._products import write_truth
 
     n = 3
     src = Table({"id": np.arange(1, n + 1), "kind": ["galaxy", "galaxy", "star"],
@@ -24,7 +24,7 @@ def _truth(tmp_path):
                  "magnification": [1.5, -0.5, 1.0, 1.0],
                  "parity": np.array([1, -1, 1, 1], np.int16),
                  "mag_b17": [26.6, 27.75, 28.0, 20.0]})
-    path = _write_truth(tmp_path / "truth.fits", src, img, Grid(50, 50, 0.03, 150.0, 2.0),
+    path = write_truth(tmp_path / "truth.fits", src, img, Grid(50, 50, 0.03, 150.0, 2.0),
                         Provenance(1, "0" * 16, "seed: 1\n"))
     return path
 
