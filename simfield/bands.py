@@ -20,6 +20,7 @@ __all__ = [
     "AB_NJY_ZERO",
     "Band",
     "make_band",
+    "make_bands",
     "ab_to_njy",
     "njy_to_ab",
     "mjy_sr_to_njy_arcsec2",
@@ -128,6 +129,13 @@ class Band:
         if s <= 0:
             raise ValueError(f"band {self.name!r} has no throughput on the given wavelength grid")
         return w / s
+
+
+def make_bands(sc) -> list[Band]:
+    """The bands of a scenario (:class:`simfield.config.Scenario`, its ``telescope.bands``)
+    as :class:`Band` objects."""
+    return [make_band(b.name, b.center_nm, b.width_nm, b.throughput, b.sky_mjy_sr)
+            for b in sc.telescope.bands]
 
 
 def make_band(name: str, center_nm: float, width_nm: float, peak_throughput: float,

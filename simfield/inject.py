@@ -163,7 +163,7 @@ def inject_into_image(image_path, sc: Scenario, band: str, out_dir, psf_path=Non
     """
     from .detect import detect_sources
     from .optics.psf import band_psf, measure_fwhm
-    from .pipeline import make_bands
+    from .bands import make_bands
     from .population.lightcone import make_population
     from .population.morphology import make_profile
     from .score.match import match_sky

@@ -25,7 +25,7 @@ from astropy.table import Table
 
 from . import __version__
 from ._procs import die_with_parent
-from .bands import Band, ab_to_njy, make_band, njy_to_ab
+from .bands import Band, ab_to_njy, make_bands, njy_to_ab
 from .columns import POINT_KINDS, SOURCE_KINDS
 from .config import Scenario, config_hash, to_yaml
 from .grid import Grid
@@ -72,12 +72,6 @@ class _Timer:
         self.timings[name] = self.timings.get(name, 0.0) + dt
         if self.progress:
             log.info("%s done in %.2f s", name, dt)
-
-
-def make_bands(sc: Scenario) -> list[Band]:
-    """The scenario's bands as :class:`~simfield.bands.Band` objects."""
-    return [make_band(b.name, b.center_nm, b.width_nm, b.throughput, b.sky_mjy_sr)
-            for b in sc.telescope.bands]
 
 
 def _bands_table(bands: list[Band], area: float) -> Table:

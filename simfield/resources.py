@@ -111,7 +111,7 @@ _GALAXIES: dict[str, float] = {}  # expected galaxies by (population, bands, are
 
 def _expected_galaxies(sc: Scenario, area_arcsec2: float) -> float:
     """Candidate galaxies expected over ``area_arcsec2`` (remembered: ~0.2 s each)."""
-    from .pipeline import make_bands
+    from .bands import make_bands
     from .population.lightcone import expected_galaxies
 
     key = repr((sc.population, sc.telescope.bands, area_arcsec2))
