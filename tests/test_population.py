@@ -377,7 +377,8 @@ def test_population_table_columns_and_determinism():
     assert t1["x_arcsec"].min() >= -30 and t1["y_arcsec"].max() <= 25
     gal = t1["kind"] == "galaxy"
     assert np.all(t1["mag_b36"][gal] < 29.0)
-    assert np.all(t1["redshift"][~gal] == 0) and np.all(np.isnan(t1["abs_mag_uv"][~gal]))
+    point = np.isin(t1["kind"], ["star", "dwarf"])  # dusty/quiescent galaxies have redshifts
+    assert np.all(t1["redshift"][point] == 0) and np.all(np.isnan(t1["abs_mag_uv"][point]))
     for c in t1.colnames:
         a, b = np.asarray(t1[c]), np.asarray(t2[c])
         assert np.array_equal(a, b, equal_nan=a.dtype.kind == "f"), c
@@ -403,20 +404,32 @@ def test_preselection_loses_no_visible_galaxies(band):
 
 
 def test_number_counts_near_infrared():
-    """b17 galaxy counts lie within 2.5x of published deep H-band counts (AB) [mem]."""
-    # log10 N (deg^-2 mag^-1) at H_AB = 20.5 ... 27.5, recalled from deep-field compilations
-    # (Metcalfe et al. 2006, MNRAS 370, 1257; Windhorst et al. 2011, ApJS 193, 27) [mem]:
-    # ~0.25-0.3 dex/mag at AB 20-24, flattening to ~0.15 dex/mag fainter.
-    published = {20.5: 4.0, 21.5: 4.3, 22.5: 4.55, 23.5: 4.8, 24.5: 5.0, 25.5: 5.2,
-                 26.5: 5.35, 27.5: 5.5}
-    pop = _pop(selection_band="b17", mag_limit=28.0, star_density_arcmin2=0.0)
-    t = make_population(pop, BANDS, (-150, 150), (-150, 150), np.random.default_rng(5))
-    area_deg2 = 300.0 * 300.0 / 3600.0**2
-    h, _ = np.histogram(t["mag_b17"], bins=np.arange(20.0, 28.01, 1.0))
-    model = np.log10(h / area_deg2)
-    assert_allclose(model, list(published.values()), atol=np.log10(2.5))
-    slope = np.polyfit(list(published)[:5], model[:5], 1)[0]
-    assert 0.15 < slope < 0.35
+    """Galaxy counts at 1.6 um against the published deep near-infrared counts of Windhorst et
+    al. 2011, ApJS 193, 27 [mem] (the reference table of simfield.population.counts, its
+    normalisation checked there against Yan et al. 1998, ApJ 503, L19), per half-magnitude bin
+    from AB 20 to 28: within 30 % from AB 25 to 28; from AB 20 to 25 the population gives
+    0.45-0.8 of the published counts (remaining gap: the rest-K function of Cirasuolo et al.
+    2010 [mem] below z = 2 with the template's colours gives ~0.5 of the bright counts; see the
+    counts module) and the whole slope 20-24 stays within 0.2-0.4 dex/mag."""
+    from simfield.population.counts import population_counts, reference_counts
+
+    band = [make_band("b16", 1600, 360, 0.40)]
+    ratios = []
+    # bright bins over 144 arcmin^2 to AB 24, faint ones over 25 arcmin^2 (Poisson <= 7 %)
+    for side, lim, lo, hi, seed in ((720.0, 24.0, 20.0, 24.0, 1), (300.0, 28.0, 24.0, 28.0, 2)):
+        pop = _pop(selection_band="b16", mag_limit=lim, star_density_arcmin2=0.0,
+                   dwarf_density_arcmin2=0.0, placement="uniform")
+        h = side / 2
+        t = make_population(pop, band, (-h, h), (-h, h), np.random.default_rng(seed))
+        mid, n, _ = population_counts(t, "b16", side ** 2, np.arange(lo, hi + 0.01, 0.5))
+        ratios.append(n / reference_counts(mid))
+    r = np.concatenate(ratios)
+    faint = np.arange(20.25, 28.0, 0.5) > 25.0
+    assert np.all((r[faint] > 0.7) & (r[faint] < 1.3)), r
+    assert np.all((r[~faint] > 0.45) & (r[~faint] < 0.8)), r
+    slope = np.polyfit(np.arange(20.25, 24.0, 0.5), np.log10(ratios[0] * reference_counts(
+        np.arange(20.25, 24.0, 0.5))), 1)[0]
+    assert 0.2 < slope < 0.4
 
 
 def test_uniform_mode_magnitudes_and_k_correction():

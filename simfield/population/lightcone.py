@@ -35,13 +35,15 @@ from .components import add_components
 from .contaminants import draw_dusty, draw_quiescent
 from .dwarfs import draw_dwarfs, dwarf_band_magnitudes
 from .lines import LineParameters, draw_halpha_ew
-from .luminosity import draw_redshift_magnitude, expected_counts, uv_lf_parameters
+from .luminosity import (draw_redshift_magnitude, expected_counts, nir_lf_parameters,
+                         uv_lf_parameters)
 from .morphology import Morphology, draw_morphology
-from .seds import (BETA_SCATTER, evolved_probability, rest_fnu_shape,
+from .seds import (BETA_SCATTER, SEDParameters, evolved_probability, rest_fnu_shape,
                    sed_parameters_from_deviates, uv_slope_relation)
 from .stars import draw_stars, star_band_magnitudes
 
-__all__ = ["make_population", "expected_galaxies", "selection_band_index", "COLUMN_UNITS"]
+__all__ = ["make_population", "expected_galaxies", "selection_band_index", "COLUMN_UNITS",
+           "NIR_LF_Z_MAX", "quiescent_fraction"]
 
 #: Units of the table columns (unit strings as astropy writes them).
 COLUMN_UNITS = {
@@ -50,6 +52,22 @@ COLUMN_UNITS = {
     "ew_halpha": "Angstrom", "ew_oiii_hbeta": "Angstrom", "ew_oii": "Angstrom",
 }
 _MARGIN_MAG = 0.05  # safety margin of the pre-selection envelope (mag)
+#: Below this redshift the light cone draws rest-K magnitudes (module docstring).
+NIR_LF_Z_MAX = 2.0
+#: Rest J (nm) at which a rest-K magnitude sets the template: the template's near-infrared
+#: knee, where its optical segment ends (seds module docstring).
+_J_NM = 1200.0
+#: Rest-frame J - K of galaxies in AB: ~0.9 in Vega (local galaxies, e.g. Jarrett et al.
+#: 2003, AJ 125, 525 [mem]) with AB - Vega = 0.91 (J) and 1.85 (K) (Blanton & Roweis 2007,
+#: AJ 133, 734 [mem]): -0.04.
+_J_MINUS_K_AB = -0.04
+#: Bounds used to pre-select rest-K draws (mag): every template has M_UV - M_J >= -2.21
+#: (bluest beta -3.2, beta_opt -2.8, break >= 1: 2.5 log10 of (380/150)^-1.2 (1200/380)^-0.8)
+#: and no band brighter than rest J by more than those 2.21 mag plus the strongest lines
+#: (EW(Halpha) 1500 A over a >= 20 % wide band with [NII]-free Halpha + Hbeta + [OIII]: < 1
+#: mag); margins rounded up.
+_UV_MINUS_J_MIN = -2.5
+_BAND_MINUS_J_MIN = -3.5
 _ENVELOPE_BETAS = np.linspace(-3.2, 0.5, 16)
 
 
@@ -163,21 +181,111 @@ def expected_galaxies(pop: PopulationConfig, bands: list[Band], area_arcsec2: fl
         return pop.uniform_density_arcmin2 * area_arcsec2 / 3600.0
     cosmo = cosmo or default_cosmology()
     phot = _photometry(pop, bands, selection_band_index(pop, bands), cosmo)
-    _, weight = _lf_weight(pop, phot)
-    return expected_counts(pop.z_min, pop.z_max, pop.abs_mag_faint, area_arcsec2, cosmo=cosmo,
-                           weight=weight)
+    n = 0.0
+    if _nir_range(pop):
+        n += expected_counts(*_nir_range(pop), pop.abs_mag_faint - _UV_MINUS_J_MIN
+                             - _J_MINUS_K_AB, area_arcsec2, mag_cut=_nir_cut(pop, phot),
+                             cosmo=cosmo, lf=nir_lf_parameters)
+    if _uv_range(pop):
+        _, weight = _lf_weight(pop, phot)
+        n += expected_counts(*_uv_range(pop), pop.abs_mag_faint, area_arcsec2, cosmo=cosmo,
+                             weight=weight)
+    return n
 
 
-def _galaxies_from_lf(pop, phot, area, rng, cosmo):
-    env, weight = _lf_weight(pop, phot)
+def quiescent_fraction(z, abs_mag_k):
+    """Fraction of galaxies with the evolved template among those of rest-K magnitude
+    ``abs_mag_k`` (AB) at redshift ``z``.
+
+    f = q(z) / (1 + 10^(0.4 (M_K - M*_K(z)))), q(z) = 1 / (1 + (z / 2)^2): half of the
+    galaxies at M*_K (~5e10 Msun at every z, Mortlock et al. 2017, MNRAS 465, 672 [mem]) are
+    quiescent locally and a quarter at z = 2, falling with luminosity (factor 10 per 2.5 mag,
+    as stellar mass); shaped by the quiescent fractions versus mass and z of Baldry et al.
+    2006, MNRAS 373, 469 and Muzzin et al. 2013, ApJ 777, 18 [mem] (project choice).
+    """
+    z = np.asarray(z, dtype=float)
+    q = 1.0 / (1.0 + (z / 2.0) ** 2)
+    return q / (1.0 + 10.0 ** (0.4 * (np.asarray(abs_mag_k, float)
+                                       - nir_lf_parameters(z).m_star)))
+
+
+def _nir_cut(pop, phot):
+    """Faintest rest-K magnitude that could pass ``mag_limit`` and ``abs_mag_faint``."""
+    def cut(z):
+        m_flat = phot.dist.dm(z) - 2.5 * np.log10(1.0 + z)
+        m_j = np.minimum(pop.mag_limit - _BAND_MINUS_J_MIN - m_flat,
+                         pop.abs_mag_faint - _UV_MINUS_J_MIN)
+        return m_j - _J_MINUS_K_AB
+    return cut
+
+
+def _nir_range(pop):
+    """(z_lo, z_hi) drawn from the rest-K function, None if none of the range."""
+    return (pop.z_min, min(pop.z_max, NIR_LF_Z_MAX)) if pop.z_min < NIR_LF_Z_MAX else None
+
+
+def _uv_range(pop):
+    """(z_lo, z_hi) drawn from the rest-UV function, None if none of the range."""
+    return (max(pop.z_min, NIR_LF_Z_MAX), pop.z_max) if pop.z_max > NIR_LF_Z_MAX else None
+
+
+def _draw(pop, *args, **kw):
     try:
-        draw = draw_redshift_magnitude(pop.z_min, pop.z_max, pop.abs_mag_faint, area, rng,
-                                       weight=weight, cosmo=cosmo,
-                                       max_expected=pop.max_sources)
+        return draw_redshift_magnitude(*args, max_expected=pop.max_sources, **kw)
     except OverflowError as exc:
         raise ConfigError("population.max_sources", pop.max_sources,
                           f"is too small: {exc}; raise it or lower population.mag_limit / "
                           "population.abs_mag_faint") from None
+
+
+def _galaxies_from_nir_lf(pop, phot, area, rng, cosmo, z_lo, z_hi):
+    """Galaxies below :data:`NIR_LF_Z_MAX`: (z, M_K) from the rest-K function, the template
+    (evolved with :func:`quiescent_fraction`), then M_UV such that the template's rest-J
+    magnitude is M_K + (J - K)_AB (a few fixed-point steps: beta depends weakly on M_UV)."""
+    draw = _draw(pop, z_lo, z_hi, pop.abs_mag_faint - _UV_MINUS_J_MIN - _J_MINUS_K_AB, area,
+                 rng, mag_cut=_nir_cut(pop, phot), cosmo=cosmo, lf=nir_lf_parameters)
+    z, m_j = draw.redshift, draw.abs_mag + _J_MINUS_K_AB
+    evolved = rng.random(z.size) < quiescent_fraction(z, draw.abs_mag)
+    dev = rng.standard_normal((3, z.size))
+    m = m_j + 2.0  # start: a typical star-forming M_UV - M_J
+    for _ in range(4):
+        sed = sed_parameters_from_deviates(z, m, evolved, dev)
+        m = m_j + 2.5 * np.log10(rest_fnu_shape(_J_NM, sed.beta, sed.break_strength,
+                                                sed.beta_opt))
+    sed = sed_parameters_from_deviates(z, m, evolved, dev)
+    ew = _halpha_ew(phot, z, evolved, rng)
+    m_sel = phot.mags(z, m, sed.beta, sed.break_strength, sed.beta_opt, True,
+                      ew_halpha=ew)[:, 0]
+    keep = (m <= pop.abs_mag_faint) & (m_sel < pop.mag_limit)
+    return z[keep], m[keep], evolved[keep], _sed_subset(sed, keep), ew[keep], draw.expected
+
+
+def _sed_subset(sed, keep):
+    return SEDParameters(sed.template[keep], sed.beta[keep], sed.beta_opt[keep],
+                         sed.break_strength[keep])
+
+
+def _galaxies_from_lf(pop, phot, area, rng, cosmo):
+    """Light-cone galaxies: rest-K draws below :data:`NIR_LF_Z_MAX`, rest-UV draws above."""
+    parts = []
+    if _nir_range(pop):
+        parts.append(_galaxies_from_nir_lf(pop, phot, area, rng, cosmo, *_nir_range(pop)))
+    if _uv_range(pop):
+        parts.append(_galaxies_from_uv_lf(pop, phot, area, rng, cosmo, *_uv_range(pop)))
+    z, m, evolved = (np.concatenate([p[i] for p in parts]) for i in range(3))
+    sed = SEDParameters(*(np.concatenate([getattr(p[3], f) for p in parts])
+                          for f in ("template", "beta", "beta_opt", "break_strength")))
+    ew = np.concatenate([p[4] for p in parts])
+    expected = sum(p[5] for p in parts)
+    mags = phot.mags(z, m, sed.beta, sed.break_strength, sed.beta_opt, ew_halpha=ew)
+    return z, m, evolved, sed, np.ones(z.size, bool), mags, expected, ew
+
+
+def _galaxies_from_uv_lf(pop, phot, area, rng, cosmo, z_lo, z_hi):
+    """Galaxies above :data:`NIR_LF_Z_MAX`: (z, M_UV) from the rest-UV function thinned by
+    the envelope, the template (:func:`evolved_probability`), then the exact cut."""
+    env, weight = _lf_weight(pop, phot)
+    draw = _draw(pop, z_lo, z_hi, pop.abs_mag_faint, area, rng, weight=weight, cosmo=cosmo)
     z, m = draw.redshift, draw.abs_mag
     p = evolved_probability(z, m, uv_lf_parameters(z).m_star)
     ok_sf, ok_ev = env.passes(z, m)
@@ -189,10 +297,7 @@ def _galaxies_from_lf(pop, phot, area, rng, cosmo):
     m_sel = phot.mags(z, m, sed.beta, sed.break_strength, sed.beta_opt, True,
                       ew_halpha=ew)[:, 0]
     keep = (w > 0) & (m_sel < pop.mag_limit)
-    z, m = z[keep], m[keep]
-    mags = phot.mags(z, m, sed.beta[keep], sed.break_strength[keep], sed.beta_opt[keep],
-                     ew_halpha=ew[keep])
-    return z, m, evolved[keep], sed, keep, mags, draw.expected, ew[keep]
+    return z[keep], m[keep], evolved[keep], _sed_subset(sed, keep), ew[keep], draw.expected
 
 
 def _halpha_ew(phot, z, evolved, rng):

@@ -15,7 +15,20 @@ Parameters versus redshift:
   alpha = -1.87 - 0.10 (z - 6).
 - z < 3.5: linear interpolation in z of M*, log10 phi* and alpha between published fits
   (:data:`LOW_Z_NODES`, values recalled [mem]) and the Bouwens et al. fit evaluated at z = 3.5;
-  held constant below the lowest node.
+  held constant below the lowest node. At z ~ 2-3 the published faint-end slopes disagree:
+  alpha ~ -1.7 (Reddy & Steidel 2009, ApJ 692, 778; Alavi et al. 2014, 2016) against
+  alpha = -1.32 +- 0.03 (Parsa et al. 2016, MNRAS 456, 3194, photometric redshifts over the
+  nested ultra-deep/deep/wide fields, reaching M_1500 = -14.5); the nodes take Parsa et al.'s
+  fits (choice made because their sample reaches 3-4 mag fainter at these redshifts, and the
+  faint end fixes the faint near-infrared counts).
+
+Rest-frame near-infrared luminosity function (:func:`nir_lf_parameters`), used by the light
+cone below z ~ 2 where the near-infrared bands see rest-optical light (red and dusty galaxies
+are missing from a UV-selected function): the K-band (rest 2.2 um, AB) parametrisation of
+Cirasuolo et al. 2010, MNRAS 401, 1166 (maximum-likelihood fit over 0 < z < 4) [mem]:
+
+    M*_K(z) = -22.26 - (z / 1.78)^0.47,  phi*(z) = 3.5e-3 exp(-(z / 1.70)^1.47) Mpc^-3,
+    alpha = -1.07.
 
 Distances and volumes come from :mod:`simfield.cosmo` (flat LambdaCDM, H0 = 70, Omega_m = 0.3,
 the cosmology of the fits). Magnitudes in AB mag, densities in Mpc^-3, solid angles in arcsec^2.
@@ -36,6 +49,7 @@ __all__ = [
     "HIGH_Z_START",
     "SchechterParameters",
     "uv_lf_parameters",
+    "nir_lf_parameters",
     "schechter_phi",
     "upper_incomplete_gamma",
     "schechter_number_brighter",
@@ -49,16 +63,18 @@ __all__ = [
 #: (z, M*, phi* [Mpc^-3], alpha) of published rest-UV Schechter fits used below z = 3.5 [mem]:
 #: z = 0.055 Wyder et al. 2005, ApJ 619, L15 (1530 A, local); z = 1.0 a rounded compromise of
 #: Arnouts et al. 2005, ApJ 619, L43 and Oesch et al. 2010, ApJ 725, L150 [mem, approximate];
-#: z = 2.3 and 3.05 Reddy & Steidel 2009, ApJ 692, 778 (table 3).
+#: z = 2.0 and 2.8 Parsa et al. 2016, MNRAS 456, 3194 (alpha -1.32 from the abstract; M*,
+#: phi* [mem]).
 LOW_Z_NODES = (
     (0.055, -18.04, 4.07e-3, -1.22),
     (1.0, -19.60, 3.0e-3, -1.50),
-    (2.3, -20.70, 2.75e-3, -1.73),
-    (3.05, -20.97, 1.71e-3, -1.73),
+    (2.0, -19.99, 6.2e-3, -1.32),
+    (2.8, -20.20, 4.3e-3, -1.32),
 )
 #: Redshift from which the Bouwens et al. 2015 evolution fit is used as published.
 HIGH_Z_START = 3.5
 
+_NIR_ALPHA = -1.07  # Cirasuolo et al. 2010 (fixed over z in their fit) [mem]
 _LN10_04 = 0.4 * np.log(10.0)  # dM -> dL/L: |d ln L / dM| = 0.4 ln 10
 
 
@@ -113,6 +129,26 @@ def uv_lf_parameters(z) -> SchechterParameters:
         phi_star=np.where(hi, ps_hi, 10.0**lps_lo),
         alpha=np.where(hi, al_hi, al_lo),
     )
+
+
+def nir_lf_parameters(z) -> SchechterParameters:
+    """Rest-frame K-band (2.2 um) Schechter parameters at redshift ``z``: the evolution fit of
+    Cirasuolo et al. 2010, MNRAS 401, 1166 [mem] (module docstring).
+
+    Parameters
+    ----------
+    z : float or array_like
+        Redshift (>= 0).
+
+    Returns
+    -------
+    SchechterParameters
+        M*_K (AB mag), phi* (Mpc^-3), alpha, each with the shape of ``z``.
+    """
+    z = np.maximum(np.asarray(z, dtype=float), 0.0)
+    return SchechterParameters(m_star=-22.26 - (z / 1.78) ** 0.47,
+                               phi_star=3.5e-3 * np.exp(-((z / 1.70) ** 1.47)),
+                               alpha=np.full(z.shape, _NIR_ALPHA))
 
 
 def schechter_phi(abs_mag, m_star, phi_star, alpha):
@@ -223,11 +259,12 @@ class LightConeDraw:
     expected: float
 
 
-def _grid(z_min, z_max, abs_mag_faint, area_arcsec2, mag_cut, cosmo, nz, dmag, weight=None):
+def _grid(z_min, z_max, abs_mag_faint, area_arcsec2, mag_cut, cosmo, nz, dmag, weight=None,
+          lf=uv_lf_parameters):
     # cells uniform in ln(1 + z): narrow at low z where dV/dz changes fastest
     z_edges = np.expm1(np.linspace(np.log1p(z_min), np.log1p(z_max), nz + 1))
     z_mid = 0.5 * (z_edges[1:] + z_edges[:-1])
-    p = uv_lf_parameters(z_mid)
+    p = lf(z_mid)
     m_faint = np.full(nz, float(abs_mag_faint))
     if mag_cut is not None:
         # most permissive cut over each cell (the cut need not be monotonic in z)
@@ -252,7 +289,8 @@ def _grid(z_min, z_max, abs_mag_faint, area_arcsec2, mag_cut, cosmo, nz, dmag, w
 
 def expected_counts(z_min: float, z_max: float, abs_mag_faint: float, area_arcsec2: float,
                     mag_cut: Optional[Callable] = None, cosmo=None, nz: int = 300,
-                    dmag: float = 0.04, weight: Optional[Callable] = None) -> float:
+                    dmag: float = 0.04, weight: Optional[Callable] = None,
+                    lf: Callable = uv_lf_parameters) -> float:
     """Expected number of galaxies, int dz dV/dz/dOmega Omega int dM phi(M, z).
 
     Parameters
@@ -273,9 +311,12 @@ def expected_counts(z_min: float, z_max: float, abs_mag_faint: float, area_arcse
     weight : callable, optional
         ``weight(z, M) -> [0, 1]``: fraction of the galaxies at (z, M) to count (evaluated at
         cell centres, e.g. the fraction whose apparent magnitude could pass a limit).
+    lf : callable
+        ``lf(z) -> SchechterParameters`` of the magnitudes counted (default the rest-UV
+        function, :func:`uv_lf_parameters`; :func:`nir_lf_parameters` for rest-K).
     """
     _, _, cum, dvol = _grid(z_min, z_max, abs_mag_faint, area_arcsec2, mag_cut, cosmo, nz, dmag,
-                            weight)
+                            weight, lf)
     return float(np.sum(cum[:, -1] * dvol))
 
 
@@ -283,7 +324,8 @@ def draw_redshift_magnitude(z_min: float, z_max: float, abs_mag_faint: float,
                             area_arcsec2: float, rng: np.random.Generator,
                             mag_cut: Optional[Callable] = None, cosmo=None, nz: int = 300,
                             dmag: float = 0.04, weight: Optional[Callable] = None,
-                            max_expected: float = np.inf) -> LightConeDraw:
+                            max_expected: float = np.inf,
+                            lf: Callable = uv_lf_parameters) -> LightConeDraw:
     """Draw (z, M_UV) of the galaxies of a light cone.
 
     The total is Poisson with the mean of :func:`expected_counts`. Each galaxy's redshift cell
@@ -314,9 +356,12 @@ def draw_redshift_magnitude(z_min: float, z_max: float, abs_mag_faint: float,
         variation of ``weight``).
     max_expected : float
         Raise ``OverflowError`` (before drawing) if more galaxies than this are expected.
+    lf : callable
+        ``lf(z) -> SchechterParameters`` (as in :func:`expected_counts`); the drawn magnitudes
+        are in its band.
     """
     z_edges, m_nodes, cum, dvol = _grid(z_min, z_max, abs_mag_faint, area_arcsec2, mag_cut,
-                                        cosmo, nz, dmag, weight)
+                                        cosmo, nz, dmag, weight, lf)
     cell_n = cum[:, -1] * dvol
     expected = float(cell_n.sum())
     if expected > max_expected:
