@@ -1,12 +1,23 @@
 """The truth table of all sources of a field: light-cone galaxies, stars and contaminants.
 
-``make_population`` draws, in this order from one generator: galaxies (redshift and rest-UV
-magnitude from :mod:`.luminosity`, or the uniform injection mode), their templates, emission
+``make_population`` draws, in this order from one generator: galaxies (redshift and magnitude
+from :mod:`.luminosity`, or the uniform injection mode), their templates, emission
 lines and spectra (:mod:`.seds`, :mod:`.lines`), their shapes (:mod:`.morphology`), the stars
 (:mod:`.stars`), positions uniform over the given tangent-plane ranges; then the contaminant
 families, each with its positions: dusty and quiescent galaxies (:mod:`.contaminants`) and
 cool dwarfs (:mod:`.dwarfs`). The families come last, so they leave the light cone's draws
 unchanged.
+
+Light-cone galaxies come from two published luminosity functions, each galaxy once:
+
+- below z = 2 (:data:`NIR_LF_Z_MAX`), (z, M_K) from the rest-K function (Cirasuolo et al.
+  2010, :func:`.luminosity.nir_lf_parameters`), the evolved template with
+  :func:`quiescent_fraction`, and M_UV such that the template's rest-J (1.2 um) magnitude is
+  M_K + (J - K)_AB;
+- at every z, (z, M_UV) from the rest-UV function, thinned below z = 2 by
+  :func:`uv_excess_fraction` to the star-forming galaxies the rest-K function does not
+  already hold (its faint end, where the rest-K fit is extrapolated); evolved templates
+  (:func:`.seds.evolved_probability`) only from z = 2 on.
 
 Only galaxies whose apparent magnitude in the selection band could pass ``mag_limit`` are drawn:
 for every redshift the brightest selection-band colour each template can have (its parameters at
@@ -36,14 +47,14 @@ from .contaminants import draw_dusty, draw_quiescent
 from .dwarfs import draw_dwarfs, dwarf_band_magnitudes
 from .lines import LineParameters, draw_halpha_ew
 from .luminosity import (draw_redshift_magnitude, expected_counts, nir_lf_parameters,
-                         uv_lf_parameters)
+                         schechter_phi, uv_lf_parameters, uv_luminosity_function)
 from .morphology import Morphology, draw_morphology
 from .seds import (BETA_SCATTER, SEDParameters, evolved_probability, rest_fnu_shape,
                    sed_parameters_from_deviates, uv_slope_relation)
 from .stars import draw_stars, star_band_magnitudes
 
 __all__ = ["make_population", "expected_galaxies", "selection_band_index", "COLUMN_UNITS",
-           "NIR_LF_Z_MAX", "quiescent_fraction"]
+           "NIR_LF_Z_MAX", "quiescent_fraction", "uv_excess_fraction"]
 
 #: Units of the table columns (unit strings as astropy writes them).
 COLUMN_UNITS = {
@@ -155,12 +166,63 @@ def _lf_weight(pop, phot):
     env = _Envelope(phot, pop.z_min, pop.z_max, pop.mag_limit)
 
     def weight(z, m):
-        ms = uv_lf_parameters(z).m_star
-        p = evolved_probability(z, m, ms)
+        p = _uv_evolved_probability(z, m)
         ok_sf, ok_ev = env.passes(z, m)
-        return (1.0 - p) * ok_sf + p * ok_ev
+        return ((1.0 - p) * ok_sf + p * ok_ev) * uv_excess_fraction(z, m)
 
     return env, weight
+
+
+def _uv_evolved_probability(z, m):
+    """:func:`evolved_probability` above :data:`NIR_LF_Z_MAX`; 0 below, where the evolved
+    galaxies come from the rest-K function."""
+    z = np.asarray(z, dtype=float)
+    return np.where(z >= NIR_LF_Z_MAX, evolved_probability(z, m, uv_lf_parameters(z).m_star),
+                    0.0)
+
+
+def _mean_uv_minus_j(z, m_uv):
+    """M_UV - M_J (AB mag) of the mean star-forming template (all deviates 0)."""
+    z = np.asarray(z, dtype=float)
+    m_uv = np.broadcast_to(np.asarray(m_uv, dtype=float), z.shape)
+    sed = sed_parameters_from_deviates(z.ravel(), m_uv.ravel(), np.zeros(z.size, bool),
+                                       np.zeros((3, z.size)))
+    c = 2.5 * np.log10(rest_fnu_shape(_J_NM, sed.beta, sed.break_strength, sed.beta_opt))
+    return c.reshape(z.shape)
+
+
+def uv_excess_fraction(z, abs_mag_uv):
+    """Fraction of the rest-UV function's galaxies at (z, M_UV) drawn as rest-UV galaxies.
+
+    1 at z >= :data:`NIR_LF_Z_MAX`. Below, every galaxy is in the rest-K function and the
+    star-forming ones also in the rest-UV one; a galaxy must be drawn once, from either. With
+    M_J(M_UV) of the mean star-forming template, the star-forming rest-K galaxies per unit
+    M_UV are phi_K(M_J - (J-K)) (1 - f_q) dM_J/dM_UV (:func:`quiescent_fraction`); the
+    rest-UV draws add what the rest-UV function has beyond them,
+    max(0, 1 - that / phi_UV(M_UV)), so that at each M_UV the star-forming density is the
+    larger of the two published functions (the rest-K one at the bright end, the rest-UV one
+    at the faint end, where the rest-K fit is extrapolated beyond its data).
+    """
+    z = np.asarray(z, dtype=float)
+    m = np.asarray(abs_mag_uv, dtype=float)
+    z, m = np.broadcast_arrays(z, m)
+    low = z < NIR_LF_Z_MAX
+    out = np.ones(z.shape)
+    if not np.any(low):
+        return out
+    zl, ml = z[low], m[low]
+    h = 0.05  # mag: finite difference of M_J(M_UV)
+    m_j = ml - _mean_uv_minus_j(zl, ml)
+    dj = ((ml + h - _mean_uv_minus_j(zl, ml + h)) - (ml - h - _mean_uv_minus_j(zl, ml - h))) \
+        / (2.0 * h)
+    m_k = m_j - _J_MINUS_K_AB
+    pk = nir_lf_parameters(zl)
+    phi_k = schechter_phi(m_k, pk.m_star, pk.phi_star, pk.alpha) \
+        * (1.0 - quiescent_fraction(zl, m_k)) * dj
+    phi_uv = uv_luminosity_function(ml, zl)
+    out[low] = np.clip(1.0 - np.divide(phi_k, phi_uv, out=np.ones_like(phi_k),
+                                       where=phi_uv > 0), 0.0, 1.0)
+    return out
 
 
 def expected_galaxies(pop: PopulationConfig, bands: list[Band], area_arcsec2: float,
@@ -225,8 +287,9 @@ def _nir_range(pop):
 
 
 def _uv_range(pop):
-    """(z_lo, z_hi) drawn from the rest-UV function, None if none of the range."""
-    return (max(pop.z_min, NIR_LF_Z_MAX), pop.z_max) if pop.z_max > NIR_LF_Z_MAX else None
+    """(z_lo, z_hi) drawn from the rest-UV function: the whole range (thinned below
+    :data:`NIR_LF_Z_MAX` by :func:`uv_excess_fraction`)."""
+    return pop.z_min, pop.z_max
 
 
 def _draw(pop, *args, **kw):
@@ -282,12 +345,13 @@ def _galaxies_from_lf(pop, phot, area, rng, cosmo):
 
 
 def _galaxies_from_uv_lf(pop, phot, area, rng, cosmo, z_lo, z_hi):
-    """Galaxies above :data:`NIR_LF_Z_MAX`: (z, M_UV) from the rest-UV function thinned by
-    the envelope, the template (:func:`evolved_probability`), then the exact cut."""
+    """Rest-UV galaxies: (z, M_UV) from the rest-UV function thinned by the envelope and
+    :func:`uv_excess_fraction`, the template (evolved only above :data:`NIR_LF_Z_MAX`, with
+    :func:`evolved_probability`), then the exact cut."""
     env, weight = _lf_weight(pop, phot)
     draw = _draw(pop, z_lo, z_hi, pop.abs_mag_faint, area, rng, weight=weight, cosmo=cosmo)
     z, m = draw.redshift, draw.abs_mag
-    p = evolved_probability(z, m, uv_lf_parameters(z).m_star)
+    p = _uv_evolved_probability(z, m)
     ok_sf, ok_ev = env.passes(z, m)
     w = (1.0 - p) * ok_sf + p * ok_ev
     p_ev = np.divide(p * ok_ev, w, out=np.zeros_like(w), where=w > 0)

@@ -1,6 +1,6 @@
-"""Evolving rest-UV Schechter luminosity function and light-cone sampling of (z, M_UV).
+"""Evolving rest-UV and rest-K Schechter luminosity functions; light-cone sampling of (z, M).
 
-The luminosity function in absolute AB magnitude at rest 1500 A (Schechter 1976, ApJ 203, 297):
+The luminosity function in absolute AB magnitude (Schechter 1976, ApJ 203, 297):
 
     phi(M) dM = 0.4 ln10 phi* 10^(-0.4 (M - M*)(alpha + 1)) exp(-10^(-0.4 (M - M*))) dM
 
@@ -8,27 +8,32 @@ in Mpc^-3 mag^-1. With x = L/L* = 10^(-0.4 (M - M*)), the number density brighte
 phi* Gamma(alpha + 1, x), the upper incomplete gamma function (negative first argument allowed,
 see :func:`upper_incomplete_gamma`).
 
-Parameters versus redshift:
+Rest-UV (1500 A) parameters versus redshift (:func:`uv_lf_parameters`):
 
-- z >= 3.5: the evolution fit of Bouwens et al. 2015, ApJ 803, 34 (section 5.1):
+- z >= 4.5: the evolution fit of Bouwens et al. 2015, ApJ 803, 34 (section 5.1):
   M* = -20.95 + 0.01 (z - 6), phi* = 0.47e-3 10^(-0.27 (z - 6)) Mpc^-3,
   alpha = -1.87 - 0.10 (z - 6).
-- z < 3.5: linear interpolation in z of M*, log10 phi* and alpha between published fits
-  (:data:`LOW_Z_NODES`, values recalled [mem]) and the Bouwens et al. fit evaluated at z = 3.5;
-  held constant below the lowest node. At z ~ 2-3 the published faint-end slopes disagree:
-  alpha ~ -1.7 (Reddy & Steidel 2009, ApJ 692, 778; Alavi et al. 2014, 2016) against
-  alpha = -1.32 +- 0.03 (Parsa et al. 2016, MNRAS 456, 3194, photometric redshifts over the
-  nested ultra-deep/deep/wide fields, reaching M_1500 = -14.5); the nodes take Parsa et al.'s
-  fits (choice made because their sample reaches 3-4 mag fainter at these redshifts, and the
-  faint end fixes the faint near-infrared counts).
+- z < 4.5: linear interpolation in z of M*, log10 phi* and alpha between published fits
+  (:data:`LOW_Z_NODES`, values recalled [mem]) and the Bouwens et al. fit evaluated at z = 4.5;
+  held constant below the lowest node. At z ~ 2-4 the published faint-end slopes disagree:
+  alpha ~ -1.7 at z ~ 2-3 (Reddy & Steidel 2009, ApJ 692, 778; Alavi et al. 2016, ApJ 832, 56
+  [mem]) and -1.64 at z ~ 4 (Bouwens et al. 2015) against alpha = -1.32 +- 0.03 at z ~ 2-3
+  and -1.43 +- 0.04 at z ~ 4 (Parsa et al. 2016, MNRAS 456, 3194, abstract). The nodes at
+  z = 2.0, 2.8 and 3.8 take Parsa et al.'s fits: one analysis across z = 2-4 (photometric
+  redshifts over nested ultra-deep, deep and wide fields), reaching M_1500 = -14.5 to -16,
+  3-4 mag fainter than the colour-selected samples of the steeper fits.
 
-Rest-frame near-infrared luminosity function (:func:`nir_lf_parameters`), used by the light
-cone below z ~ 2 where the near-infrared bands see rest-optical light (red and dusty galaxies
-are missing from a UV-selected function): the K-band (rest 2.2 um, AB) parametrisation of
-Cirasuolo et al. 2010, MNRAS 401, 1166 (maximum-likelihood fit over 0 < z < 4) [mem]:
+Rest-K (2.2 um) parameters (:func:`nir_lf_parameters`), used by the light cone below z = 2,
+where the near-infrared bands see rest-optical light and red, quiescent galaxies missing from
+a UV-selected function dominate the bright end: the evolution fit of Cirasuolo et al. 2010,
+MNRAS 401, 1166 (maximum likelihood over 0 < z < 4, AB, H0 = 70) [mem]:
 
     M*_K(z) = -22.26 - (z / 1.78)^0.47,  phi*(z) = 3.5e-3 exp(-(z / 1.70)^1.47) Mpc^-3,
-    alpha = -1.07.
+    alpha = -1.07 (fixed at the local value).
+
+Its faint end is an extrapolation beyond the data at z > 0.5 (deeper data give alpha ~ -1.3
+to -1.5, Mortlock et al. 2017, MNRAS 465, 672); the light cone takes the faint star-forming
+galaxies from the rest-UV function there (see :mod:`.lightcone`).
 
 Distances and volumes come from :mod:`simfield.cosmo` (flat LambdaCDM, H0 = 70, Omega_m = 0.3,
 the cosmology of the fits). Magnitudes in AB mag, densities in Mpc^-3, solid angles in arcsec^2.
@@ -60,19 +65,20 @@ __all__ = [
     "draw_redshift_magnitude",
 ]
 
-#: (z, M*, phi* [Mpc^-3], alpha) of published rest-UV Schechter fits used below z = 3.5 [mem]:
+#: (z, M*, phi* [Mpc^-3], alpha) of published rest-UV Schechter fits used below z = 4.5 [mem]:
 #: z = 0.055 Wyder et al. 2005, ApJ 619, L15 (1530 A, local); z = 1.0 a rounded compromise of
 #: Arnouts et al. 2005, ApJ 619, L43 and Oesch et al. 2010, ApJ 725, L150 [mem, approximate];
-#: z = 2.0 and 2.8 Parsa et al. 2016, MNRAS 456, 3194 (alpha -1.32 from the abstract; M*,
-#: phi* [mem]).
+#: z = 2.0, 2.8 and 3.8 Parsa et al. 2016, MNRAS 456, 3194 (alpha -1.32, -1.32, -1.43 from
+#: the abstract; M*, phi* [mem]).
 LOW_Z_NODES = (
     (0.055, -18.04, 4.07e-3, -1.22),
     (1.0, -19.60, 3.0e-3, -1.50),
     (2.0, -19.99, 6.2e-3, -1.32),
     (2.8, -20.20, 4.3e-3, -1.32),
+    (3.8, -20.71, 2.3e-3, -1.43),
 )
 #: Redshift from which the Bouwens et al. 2015 evolution fit is used as published.
-HIGH_Z_START = 3.5
+HIGH_Z_START = 4.5
 
 _NIR_ALPHA = -1.07  # Cirasuolo et al. 2010 (fixed over z in their fit) [mem]
 _LN10_04 = 0.4 * np.log(10.0)  # dM -> dL/L: |d ln L / dM| = 0.4 ln 10
