@@ -403,7 +403,25 @@ def test_preselection_loses_no_visible_galaxies(band):
     assert n_ref > 300 and abs(n - n_ref) < 4 * np.sqrt(n_ref), (n, n_ref)
 
 
-def test_number_counts_near_infrared():
+_B16 = [make_band("b16", 1600, 360, 0.40)]
+#: (side arcsec, mag_limit, first bin, last edge, seed): bright bins over 144 arcmin^2 to AB
+#: 24, faint ones over 25 arcmin^2 to AB 28 (Poisson errors <= 7 % per half-magnitude bin)
+_COUNT_FIELDS = ((720.0, 24.0, 20.0, 24.0, 1), (300.0, 28.0, 24.0, 28.0, 2))
+
+
+@pytest.fixture(scope="module")
+def count_fields():
+    """Population-stage tables (galaxies only) of :data:`_COUNT_FIELDS` in one 1.6 um band."""
+    out = []
+    for side, lim, *_, seed in _COUNT_FIELDS:
+        pop = _pop(selection_band="b16", mag_limit=lim, star_density_arcmin2=0.0,
+                   dwarf_density_arcmin2=0.0, placement="uniform")
+        h = side / 2
+        out.append(make_population(pop, _B16, (-h, h), (-h, h), np.random.default_rng(seed)))
+    return out
+
+
+def test_number_counts_near_infrared(count_fields):
     """Galaxy counts at 1.6 um against the published deep near-infrared counts of Windhorst et
     al. 2011, ApJS 193, 27 [mem] (the reference table of simfield.population.counts, its
     normalisation checked there against Yan et al. 1998, ApJ 503, L19), per half-magnitude bin
@@ -413,14 +431,8 @@ def test_number_counts_near_infrared():
     ~1.4 at AB 27.5-28 (faint z = 1-5 galaxies of the rest-UV functions)."""
     from simfield.population.counts import population_counts, reference_counts
 
-    band = [make_band("b16", 1600, 360, 0.40)]
     ratios = []
-    # bright bins over 144 arcmin^2 to AB 24, faint ones over 25 arcmin^2 (Poisson <= 7 %)
-    for side, lim, lo, hi, seed in ((720.0, 24.0, 20.0, 24.0, 1), (300.0, 28.0, 24.0, 28.0, 2)):
-        pop = _pop(selection_band="b16", mag_limit=lim, star_density_arcmin2=0.0,
-                   dwarf_density_arcmin2=0.0, placement="uniform")
-        h = side / 2
-        t = make_population(pop, band, (-h, h), (-h, h), np.random.default_rng(seed))
+    for t, (side, _, lo, hi, _) in zip(count_fields, _COUNT_FIELDS):
         mid, n, _ = population_counts(t, "b16", side ** 2, np.arange(lo, hi + 0.01, 0.5))
         ratios.append(n / reference_counts(mid))
     r = np.concatenate(ratios)
@@ -429,9 +441,52 @@ def test_number_counts_near_infrared():
     assert np.all((r[ok] > 0.7) & (r[ok] < 1.3)), r
     assert np.all((r[mid < 23.0] > 0.4) & (r[mid < 23.0] < 0.8)), r
     assert np.all(r[mid > 27.5] < 1.6), r
-    slope = np.polyfit(np.arange(20.25, 24.0, 0.5), np.log10(ratios[0] * reference_counts(
-        np.arange(20.25, 24.0, 0.5))), 1)[0]
-    assert 0.2 < slope < 0.4
+    bright = mid[:8]
+    slope = np.polyfit(bright, np.log10(ratios[0] * reference_counts(bright)), 1)[0]
+    assert 0.2 < slope < 0.4  # ~0.25-0.3 dex/mag at AB 20-24 (counts module docstring)
+
+
+def _cirasuolo2010(z):
+    """Cirasuolo et al. 2010, MNRAS 401, 1166 rest-K evolution fit [mem] (typed here)."""
+    return -22.26 - (z / 1.78) ** 0.47, 3.5e-3 * np.exp(-((z / 1.70) ** 1.47)), -1.07
+
+
+def test_rest_k_function_local_and_evolution():
+    """Rest-K parameters: the Cirasuolo et al. 2010 fit; at z = 0 within 0.1 mag and 15 % of
+    the local K-band function of Kochanek et al. 2001, ApJ 560, 566 [mem]: M* - 5 log h =
+    -23.39 (Vega), phi* = 1.16e-2 h^3 Mpc^-3, alpha = -1.09, i.e. -22.31 AB (K_AB - K_Vega =
+    1.85, Blanton & Roweis 2007 [mem]) and 3.98e-3 Mpc^-3 for h = 0.7."""
+    for z in (0.0, 0.5, 1.5, 3.0):
+        p = luminosity.nir_lf_parameters(z)
+        assert_allclose([p.m_star, p.phi_star, p.alpha], _cirasuolo2010(z), rtol=1e-12)
+    p0 = luminosity.nir_lf_parameters(0.0)
+    assert abs(p0.m_star - (-23.39 + 5 * np.log10(0.7) + 1.85)) < 0.1
+    assert_allclose(p0.phi_star, 1.16e-2 * 0.7 ** 3, rtol=0.15)
+
+
+def test_bright_light_cone_follows_rest_k_function(count_fields):
+    """Below z = 2 the bright galaxies are those of the rest-K function: the number with
+    M_K < -22 at 0.5 < z < 1 (M_K from each galaxy's rest-1.2 um template magnitude and
+    (J - K)_AB = -0.04) matches int dz dV/dz dOmega int phi_K dM (Cirasuolo et al. 2010 typed
+    here, astropy volumes) within 4 Poisson sigma."""
+    t = count_fields[0]
+    side = _COUNT_FIELDS[0][0]
+    g = (np.asarray(t["kind"]).astype(str) == "galaxy") & (t["redshift"] > 0.5) \
+        & (t["redshift"] < 1.0)
+    shape = seds.rest_fnu_shape(1200.0, t["beta_uv"][g], t["break_strength"][g],
+                                t["beta_opt"][g])
+    m_k = np.asarray(t["abs_mag_uv"][g]) - 2.5 * np.log10(shape) + 0.04
+    n = int(np.sum(m_k < -22.0))
+    cd = sf_cosmo.default_cosmology()
+    sr = side ** 2 / sf_cosmo.ARCSEC2_PER_SR
+
+    def dndz(z):
+        ms, ps, al = _cirasuolo2010(z)
+        dens = integrate.quad(_schechter, ms - 10, -22.0, args=(ms, ps, al))[0]
+        return dens * cd.differential_comoving_volume(z).value * sr
+
+    ref = integrate.quad(dndz, 0.5, 1.0)[0]
+    assert ref > 100 and abs(n - ref) < 4 * np.sqrt(ref), (n, ref)
 
 
 def test_uniform_mode_magnitudes_and_k_correction():

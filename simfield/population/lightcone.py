@@ -248,10 +248,9 @@ def expected_galaxies(pop: PopulationConfig, bands: list[Band], area_arcsec2: fl
         n += expected_counts(*_nir_range(pop), pop.abs_mag_faint - _UV_MINUS_J_MIN
                              - _J_MINUS_K_AB, area_arcsec2, mag_cut=_nir_cut(pop, phot),
                              cosmo=cosmo, lf=nir_lf_parameters)
-    if _uv_range(pop):
-        _, weight = _lf_weight(pop, phot)
-        n += expected_counts(*_uv_range(pop), pop.abs_mag_faint, area_arcsec2, cosmo=cosmo,
-                             weight=weight)
+    _, weight = _lf_weight(pop, phot)
+    n += expected_counts(*_uv_range(pop), pop.abs_mag_faint, area_arcsec2, cosmo=cosmo,
+                         weight=weight)
     return n
 
 
@@ -292,9 +291,11 @@ def _uv_range(pop):
     return pop.z_min, pop.z_max
 
 
-def _draw(pop, *args, **kw):
+def _draw(pop, *args, budget=None, **kw):
+    """draw_redshift_magnitude refusing more than ``budget`` (default ``max_sources``)."""
     try:
-        return draw_redshift_magnitude(*args, max_expected=pop.max_sources, **kw)
+        return draw_redshift_magnitude(*args, max_expected=pop.max_sources if budget is None
+                                       else budget, **kw)
     except OverflowError as exc:
         raise ConfigError("population.max_sources", pop.max_sources,
                           f"is too small: {exc}; raise it or lower population.mag_limit / "
@@ -304,14 +305,16 @@ def _draw(pop, *args, **kw):
 def _galaxies_from_nir_lf(pop, phot, area, rng, cosmo, z_lo, z_hi):
     """Galaxies below :data:`NIR_LF_Z_MAX`: (z, M_K) from the rest-K function, the template
     (evolved with :func:`quiescent_fraction`), then M_UV such that the template's rest-J
-    magnitude is M_K + (J - K)_AB (a few fixed-point steps: beta depends weakly on M_UV)."""
+    magnitude is M_K + (J - K)_AB (fixed-point steps: beta depends weakly on M_UV)."""
     draw = _draw(pop, z_lo, z_hi, pop.abs_mag_faint - _UV_MINUS_J_MIN - _J_MINUS_K_AB, area,
                  rng, mag_cut=_nir_cut(pop, phot), cosmo=cosmo, lf=nir_lf_parameters)
     z, m_j = draw.redshift, draw.abs_mag + _J_MINUS_K_AB
     evolved = rng.random(z.size) < quiescent_fraction(z, draw.abs_mag)
     dev = rng.standard_normal((3, z.size))
+    # fixed point M_UV = M_J + (M_UV - M_J)(beta(M_UV)): |d(M_UV - M_J)/dM_UV| <= 0.45
+    # (2.26 mag per unit beta, d beta / d M_UV = -0.2), so 10 steps leave < 1e-3 mag
     m = m_j + 2.0  # start: a typical star-forming M_UV - M_J
-    for _ in range(4):
+    for _ in range(10):
         sed = sed_parameters_from_deviates(z, m, evolved, dev)
         m = m_j + 2.5 * np.log10(rest_fnu_shape(_J_NM, sed.beta, sed.break_strength,
                                                 sed.beta_opt))
@@ -329,12 +332,14 @@ def _sed_subset(sed, keep):
 
 
 def _galaxies_from_lf(pop, phot, area, rng, cosmo):
-    """Light-cone galaxies: rest-K draws below :data:`NIR_LF_Z_MAX`, rest-UV draws above."""
+    """Light-cone galaxies: rest-K draws below :data:`NIR_LF_Z_MAX`, then rest-UV draws
+    (module docstring)."""
     parts = []
     if _nir_range(pop):
         parts.append(_galaxies_from_nir_lf(pop, phot, area, rng, cosmo, *_nir_range(pop)))
-    if _uv_range(pop):
-        parts.append(_galaxies_from_uv_lf(pop, phot, area, rng, cosmo, *_uv_range(pop)))
+    # max_sources bounds the sum of both expectations
+    budget = max(pop.max_sources - sum(p[5] for p in parts), 0.0)
+    parts.append(_galaxies_from_uv_lf(pop, phot, area, rng, cosmo, *_uv_range(pop), budget))
     z, m, evolved = (np.concatenate([p[i] for p in parts]) for i in range(3))
     sed = SEDParameters(*(np.concatenate([getattr(p[3], f) for p in parts])
                           for f in ("template", "beta", "beta_opt", "break_strength")))
@@ -344,12 +349,13 @@ def _galaxies_from_lf(pop, phot, area, rng, cosmo):
     return z, m, evolved, sed, np.ones(z.size, bool), mags, expected, ew
 
 
-def _galaxies_from_uv_lf(pop, phot, area, rng, cosmo, z_lo, z_hi):
+def _galaxies_from_uv_lf(pop, phot, area, rng, cosmo, z_lo, z_hi, budget):
     """Rest-UV galaxies: (z, M_UV) from the rest-UV function thinned by the envelope and
     :func:`uv_excess_fraction`, the template (evolved only above :data:`NIR_LF_Z_MAX`, with
     :func:`evolved_probability`), then the exact cut."""
     env, weight = _lf_weight(pop, phot)
-    draw = _draw(pop, z_lo, z_hi, pop.abs_mag_faint, area, rng, weight=weight, cosmo=cosmo)
+    draw = _draw(pop, z_lo, z_hi, pop.abs_mag_faint, area, rng, weight=weight, cosmo=cosmo,
+                 budget=budget)
     z, m = draw.redshift, draw.abs_mag
     p = _uv_evolved_probability(z, m)
     ok_sf, ok_ev = env.passes(z, m)
