@@ -10,12 +10,10 @@ unchanged.
 
 Light-cone galaxies come from two published luminosity functions, each galaxy once:
 
-- below z = 2 (:data:`NIR_LF_Z_MAX`), (z, M_K) from the rest-K function (Cirasuolo et al.
-  2010, :func:`.luminosity.nir_lf_parameters`), the evolved template with
-  :func:`quiescent_fraction`, and M_UV such that the template's rest-J (1.2 um) magnitude is
-  M_K + (J - K)_AB;
+- below z = 2, (z, M_K) from the rest-K function (Cirasuolo et al. 2010), with templates and
+  M_UV from :mod:`.restk`;
 - at every z, (z, M_UV) from the rest-UV function, thinned below z = 2 by
-  :func:`uv_excess_fraction` to the star-forming galaxies the rest-K function does not
+  :func:`.restk.uv_excess_fraction` to the star-forming galaxies the rest-K function does not
   already hold (its faint end, where the rest-K fit is extrapolated); evolved templates
   (:func:`.seds.evolved_probability`) only from z = 2 on.
 
@@ -47,14 +45,15 @@ from .contaminants import draw_dusty, draw_quiescent
 from .dwarfs import draw_dwarfs, dwarf_band_magnitudes
 from .lines import LineParameters, draw_halpha_ew
 from .luminosity import (draw_redshift_magnitude, expected_counts, nir_lf_parameters,
-                         schechter_phi, uv_lf_parameters, uv_luminosity_function)
+                         uv_lf_parameters)
 from .morphology import Morphology, draw_morphology
+from .restk import (NIR_LF_Z_MAX, abs_mag_k_faint, faint_k_cut, quiescent_fraction,
+                    uv_excess_fraction, uv_from_k)
 from .seds import (BETA_SCATTER, SEDParameters, evolved_probability, rest_fnu_shape,
                    sed_parameters_from_deviates, uv_slope_relation)
 from .stars import draw_stars, star_band_magnitudes
 
-__all__ = ["make_population", "expected_galaxies", "selection_band_index", "COLUMN_UNITS",
-           "NIR_LF_Z_MAX", "quiescent_fraction", "uv_excess_fraction"]
+__all__ = ["make_population", "expected_galaxies", "selection_band_index", "COLUMN_UNITS"]
 
 #: Units of the table columns (unit strings as astropy writes them).
 COLUMN_UNITS = {
@@ -63,22 +62,6 @@ COLUMN_UNITS = {
     "ew_halpha": "Angstrom", "ew_oiii_hbeta": "Angstrom", "ew_oii": "Angstrom",
 }
 _MARGIN_MAG = 0.05  # safety margin of the pre-selection envelope (mag)
-#: Below this redshift the light cone draws rest-K magnitudes (module docstring).
-NIR_LF_Z_MAX = 2.0
-#: Rest J (nm) at which a rest-K magnitude sets the template: the template's near-infrared
-#: knee, where its optical segment ends (seds module docstring).
-_J_NM = 1200.0
-#: Rest-frame J - K of galaxies in AB: ~0.9 in Vega (local galaxies, e.g. Jarrett et al.
-#: 2003, AJ 125, 525 [mem]) with AB - Vega = 0.91 (J) and 1.85 (K) (Blanton & Roweis 2007,
-#: AJ 133, 734 [mem]): -0.04.
-_J_MINUS_K_AB = -0.04
-#: Bounds used to pre-select rest-K draws (mag): every template has M_UV - M_J >= -2.21
-#: (bluest beta -3.2, beta_opt -2.8, break >= 1: 2.5 log10 of (380/150)^-1.2 (1200/380)^-0.8)
-#: and no band brighter than rest J by more than those 2.21 mag plus the strongest lines
-#: (EW(Halpha) 1500 A over a >= 20 % wide band with [NII]-free Halpha + Hbeta + [OIII]: < 1
-#: mag); margins rounded up.
-_UV_MINUS_J_MIN = -2.5
-_BAND_MINUS_J_MIN = -3.5
 _ENVELOPE_BETAS = np.linspace(-3.2, 0.5, 16)
 
 
@@ -174,55 +157,11 @@ def _lf_weight(pop, phot):
 
 
 def _uv_evolved_probability(z, m):
-    """:func:`evolved_probability` above :data:`NIR_LF_Z_MAX`; 0 below, where the evolved
+    """:func:`evolved_probability` above :data:`.restk.NIR_LF_Z_MAX`; 0 below, where the evolved
     galaxies come from the rest-K function."""
     z = np.asarray(z, dtype=float)
     return np.where(z >= NIR_LF_Z_MAX, evolved_probability(z, m, uv_lf_parameters(z).m_star),
                     0.0)
-
-
-def _mean_uv_minus_j(z, m_uv):
-    """M_UV - M_J (AB mag) of the mean star-forming template (all deviates 0)."""
-    z = np.asarray(z, dtype=float)
-    m_uv = np.broadcast_to(np.asarray(m_uv, dtype=float), z.shape)
-    sed = sed_parameters_from_deviates(z.ravel(), m_uv.ravel(), np.zeros(z.size, bool),
-                                       np.zeros((3, z.size)))
-    c = 2.5 * np.log10(rest_fnu_shape(_J_NM, sed.beta, sed.break_strength, sed.beta_opt))
-    return c.reshape(z.shape)
-
-
-def uv_excess_fraction(z, abs_mag_uv):
-    """Fraction of the rest-UV function's galaxies at (z, M_UV) drawn as rest-UV galaxies.
-
-    1 at z >= :data:`NIR_LF_Z_MAX`. Below, every galaxy is in the rest-K function and the
-    star-forming ones also in the rest-UV one; a galaxy must be drawn once, from either. With
-    M_J(M_UV) of the mean star-forming template, the star-forming rest-K galaxies per unit
-    M_UV are phi_K(M_J - (J-K)) (1 - f_q) dM_J/dM_UV (:func:`quiescent_fraction`); the
-    rest-UV draws add what the rest-UV function has beyond them,
-    max(0, 1 - that / phi_UV(M_UV)), so that at each M_UV the star-forming density is the
-    larger of the two published functions (the rest-K one at the bright end, the rest-UV one
-    at the faint end, where the rest-K fit is extrapolated beyond its data).
-    """
-    z = np.asarray(z, dtype=float)
-    m = np.asarray(abs_mag_uv, dtype=float)
-    z, m = np.broadcast_arrays(z, m)
-    low = z < NIR_LF_Z_MAX
-    out = np.ones(z.shape)
-    if not np.any(low):
-        return out
-    zl, ml = z[low], m[low]
-    h = 0.05  # mag: finite difference of M_J(M_UV)
-    m_j = ml - _mean_uv_minus_j(zl, ml)
-    dj = ((ml + h - _mean_uv_minus_j(zl, ml + h)) - (ml - h - _mean_uv_minus_j(zl, ml - h))) \
-        / (2.0 * h)
-    m_k = m_j - _J_MINUS_K_AB
-    pk = nir_lf_parameters(zl)
-    phi_k = schechter_phi(m_k, pk.m_star, pk.phi_star, pk.alpha) \
-        * (1.0 - quiescent_fraction(zl, m_k)) * dj
-    phi_uv = uv_luminosity_function(ml, zl)
-    out[low] = np.clip(1.0 - np.divide(phi_k, phi_uv, out=np.ones_like(phi_k),
-                                       where=phi_uv > 0), 0.0, 1.0)
-    return out
 
 
 def expected_galaxies(pop: PopulationConfig, bands: list[Band], area_arcsec2: float,
@@ -245,39 +184,13 @@ def expected_galaxies(pop: PopulationConfig, bands: list[Band], area_arcsec2: fl
     phot = _photometry(pop, bands, selection_band_index(pop, bands), cosmo)
     n = 0.0
     if _nir_range(pop):
-        n += expected_counts(*_nir_range(pop), pop.abs_mag_faint - _UV_MINUS_J_MIN
-                             - _J_MINUS_K_AB, area_arcsec2, mag_cut=_nir_cut(pop, phot),
-                             cosmo=cosmo, lf=nir_lf_parameters)
+        n += expected_counts(*_nir_range(pop), abs_mag_k_faint(pop.abs_mag_faint),
+                             area_arcsec2, mag_cut=_k_cut(pop, phot), cosmo=cosmo,
+                             lf=nir_lf_parameters)
     _, weight = _lf_weight(pop, phot)
     n += expected_counts(*_uv_range(pop), pop.abs_mag_faint, area_arcsec2, cosmo=cosmo,
                          weight=weight)
     return n
-
-
-def quiescent_fraction(z, abs_mag_k):
-    """Fraction of galaxies with the evolved template among those of rest-K magnitude
-    ``abs_mag_k`` (AB) at redshift ``z``.
-
-    f = q(z) / (1 + 10^(0.4 (M_K - M*_K(z)))), q(z) = 1 / (1 + (z / 2)^2): half of the
-    galaxies at M*_K (~5e10 Msun at every z, Mortlock et al. 2017, MNRAS 465, 672 [mem]) are
-    quiescent locally and a quarter at z = 2, falling with luminosity (factor 10 per 2.5 mag,
-    as stellar mass); shaped by the quiescent fractions versus mass and z of Baldry et al.
-    2006, MNRAS 373, 469 and Muzzin et al. 2013, ApJ 777, 18 [mem] (project choice).
-    """
-    z = np.asarray(z, dtype=float)
-    q = 1.0 / (1.0 + (z / 2.0) ** 2)
-    return q / (1.0 + 10.0 ** (0.4 * (np.asarray(abs_mag_k, float)
-                                       - nir_lf_parameters(z).m_star)))
-
-
-def _nir_cut(pop, phot):
-    """Faintest rest-K magnitude that could pass ``mag_limit`` and ``abs_mag_faint``."""
-    def cut(z):
-        m_flat = phot.dist.dm(z) - 2.5 * np.log10(1.0 + z)
-        m_j = np.minimum(pop.mag_limit - _BAND_MINUS_J_MIN - m_flat,
-                         pop.abs_mag_faint - _UV_MINUS_J_MIN)
-        return m_j - _J_MINUS_K_AB
-    return cut
 
 
 def _nir_range(pop):
@@ -287,7 +200,7 @@ def _nir_range(pop):
 
 def _uv_range(pop):
     """(z_lo, z_hi) drawn from the rest-UV function: the whole range (thinned below
-    :data:`NIR_LF_Z_MAX` by :func:`uv_excess_fraction`)."""
+    :data:`.restk.NIR_LF_Z_MAX` by :func:`.restk.uv_excess_fraction`)."""
     return pop.z_min, pop.z_max
 
 
@@ -302,23 +215,19 @@ def _draw(pop, *args, budget=None, **kw):
                           "population.abs_mag_faint") from None
 
 
+def _k_cut(pop, phot):
+    return faint_k_cut(pop.mag_limit, pop.abs_mag_faint, phot.dist)
+
+
 def _galaxies_from_nir_lf(pop, phot, area, rng, cosmo, z_lo, z_hi):
-    """Galaxies below :data:`NIR_LF_Z_MAX`: (z, M_K) from the rest-K function, the template
-    (evolved with :func:`quiescent_fraction`), then M_UV such that the template's rest-J
-    magnitude is M_K + (J - K)_AB (fixed-point steps: beta depends weakly on M_UV)."""
-    draw = _draw(pop, z_lo, z_hi, pop.abs_mag_faint - _UV_MINUS_J_MIN - _J_MINUS_K_AB, area,
-                 rng, mag_cut=_nir_cut(pop, phot), cosmo=cosmo, lf=nir_lf_parameters)
-    z, m_j = draw.redshift, draw.abs_mag + _J_MINUS_K_AB
+    """Galaxies below :data:`.restk.NIR_LF_Z_MAX`: (z, M_K) from the rest-K function, the
+    template (evolved with :func:`.restk.quiescent_fraction`), M_UV (:func:`.restk.uv_from_k`),
+    then the exact cuts."""
+    draw = _draw(pop, z_lo, z_hi, abs_mag_k_faint(pop.abs_mag_faint), area, rng,
+                 mag_cut=_k_cut(pop, phot), cosmo=cosmo, lf=nir_lf_parameters)
+    z = draw.redshift
     evolved = rng.random(z.size) < quiescent_fraction(z, draw.abs_mag)
-    dev = rng.standard_normal((3, z.size))
-    # fixed point M_UV = M_J + (M_UV - M_J)(beta(M_UV)): |d(M_UV - M_J)/dM_UV| <= 0.45
-    # (2.26 mag per unit beta, d beta / d M_UV = -0.2), so 10 steps leave < 1e-3 mag
-    m = m_j + 2.0  # start: a typical star-forming M_UV - M_J
-    for _ in range(10):
-        sed = sed_parameters_from_deviates(z, m, evolved, dev)
-        m = m_j + 2.5 * np.log10(rest_fnu_shape(_J_NM, sed.beta, sed.break_strength,
-                                                sed.beta_opt))
-    sed = sed_parameters_from_deviates(z, m, evolved, dev)
+    m, sed = uv_from_k(z, draw.abs_mag, evolved, rng.standard_normal((3, z.size)))
     ew = _halpha_ew(phot, z, evolved, rng)
     m_sel = phot.mags(z, m, sed.beta, sed.break_strength, sed.beta_opt, True,
                       ew_halpha=ew)[:, 0]
@@ -332,7 +241,7 @@ def _sed_subset(sed, keep):
 
 
 def _galaxies_from_lf(pop, phot, area, rng, cosmo):
-    """Light-cone galaxies: rest-K draws below :data:`NIR_LF_Z_MAX`, then rest-UV draws
+    """Light-cone galaxies: rest-K draws below :data:`.restk.NIR_LF_Z_MAX`, then rest-UV draws
     (module docstring)."""
     parts = []
     if _nir_range(pop):
@@ -351,8 +260,8 @@ def _galaxies_from_lf(pop, phot, area, rng, cosmo):
 
 def _galaxies_from_uv_lf(pop, phot, area, rng, cosmo, z_lo, z_hi, budget):
     """Rest-UV galaxies: (z, M_UV) from the rest-UV function thinned by the envelope and
-    :func:`uv_excess_fraction`, the template (evolved only above :data:`NIR_LF_Z_MAX`, with
-    :func:`evolved_probability`), then the exact cut."""
+    :func:`.restk.uv_excess_fraction`, the template (evolved only above
+    :data:`.restk.NIR_LF_Z_MAX`, with :func:`evolved_probability`), then the exact cut."""
     env, weight = _lf_weight(pop, phot)
     draw = _draw(pop, z_lo, z_hi, pop.abs_mag_faint, area, rng, weight=weight, cosmo=cosmo,
                  budget=budget)
