@@ -1,6 +1,6 @@
 """Each heavy stage against its floor, as ratios measured in one run.
 
-    python benchmarks/bench_floors.py              # renderer, exposures, drizzle, default run
+    python benchmarks/bench_floors.py              # renderer, field, exposures, drizzle, default
     python benchmarks/bench_floors.py renderer exposures drizzle   # some of them
     python benchmarks/bench_floors.py dask         # Dask LocalCluster (2 workers) vs local
                                                    # processes at 4x the default area (minutes;
@@ -10,6 +10,9 @@
   against one whole-window FFT convolution with the same PSF (scipy.fft real transforms of the
   padded window and kernel, their product, the inverse), at the default density and at 4x and
   16x it (the same sources folded into the window).
+- field: ``fieldconv.convolve_modes`` (the scene's field-dependent PSF, mean + 4 eigen-PSFs)
+  of a 3000^2 window against one whole-window FFT convolution (scipy.fft, kernel transformed
+  each time; convolve_modes tiles the window and caches its kernels' transforms).
 - exposures: ``detector.expose`` of a 2500 x 2500 window with the default detector and its
   pixel-tied noise against one Poisson and one normal deviate per pixel (numpy's Generator,
   ``poisson(lam)`` at the sky level + ``standard_normal``), the floor named in the notes.
@@ -138,6 +141,27 @@ def bench_renderer(repeat: int, side_arcsec: float = 30.0) -> None:
               f"{t_band / t_fft:.2f} (unit stamps, shared by the bands: {t_stamps:.2f} s)")
 
 
+def bench_field(repeat: int, n: int = 3000, n_modes: int = 4, k: int = 121) -> None:
+    """Print ``convolve_modes`` (mean + ``n_modes`` eigen-PSFs, the field-dependent PSF of the
+    scene stage) against one whole-window FFT convolution: the cost per extra mode."""
+    from scipy import fft
+
+    from simfield.fieldconv import convolve_modes
+
+    rng = np.random.default_rng(4)
+    img = rng.random((n, n), np.float32)
+    ker = rng.random((k, k), np.float32)
+    modes = [rng.standard_normal((k, k)).astype(np.float32) for _ in range(n_modes)]
+    w = [rng.random((n, n), np.float32) for _ in range(n_modes)]
+    t = _best(lambda: convolve_modes(img, ker, modes, w), repeat)
+    fshape = [fft.next_fast_len(n + k - 1, real=True)] * 2
+    t_fft = _best(lambda: fft.irfft2(fft.rfft2(img, fshape) * fft.rfft2(ker, fshape), fshape),
+                  repeat)
+    print(f"field PSF: convolve_modes {n}^2 with mean + {n_modes} modes {t:.3f} s vs one "
+          f"whole-window FFT convolution {t_fft:.3f} s, ratio {t / t_fft:.2f} (tiled, kernel "
+          f"transforms cached; {n_modes + 1} forward transforms and one inverse per tile)")
+
+
 def bench_drizzle(repeat: int) -> None:
     """Print drizzle_mosaic vs the drizzle library alone (4 exposures, default mosaic)."""
     from drizzle.resample import Drizzle
@@ -235,7 +259,8 @@ def bench_dask(repeat: int) -> None:
 
 def main(argv: list[str]) -> None:
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
-    ap.add_argument("parts", nargs="*", default=["renderer", "exposures", "drizzle", "default"])
+    ap.add_argument("parts", nargs="*",
+                    default=["renderer", "field", "exposures", "drizzle", "default"])
     ap.add_argument("--repeat", type=int, default=3)
     a = ap.parse_args(argv)
     print(f"load average (1, 5, 15 min): {', '.join(f'{x:.2f}' for x in os.getloadavg())} on "
@@ -243,6 +268,8 @@ def main(argv: list[str]) -> None:
     floor = None
     if "renderer" in a.parts:
         bench_renderer(a.repeat)
+    if "field" in a.parts:
+        bench_field(a.repeat)
     if "exposures" in a.parts or "default" in a.parts:
         floor = bench_exposures(a.repeat)
     if "drizzle" in a.parts:

@@ -9,6 +9,8 @@ convolution, and time / peak memory against field size and number of sources.
     python benchmarks/bench_scale.py sizes --sizes 20 160 --densities 1000
     python benchmarks/bench_scale.py area             # default survey at 1x, 4x, 16x the area
     python benchmarks/bench_scale.py area --areas 1 4 # ... only some of them
+    python benchmarks/bench_scale.py dask             # Dask LocalCluster vs processes, 4x area
+    python benchmarks/bench_scale.py dask --areas 1   # ... at the default area
 
 Each scenario runs in its own subprocess so that its peak memory (max RSS, from
 ``resource.getrusage(RUSAGE_CHILDREN)`` after it exits) is its own. The area series also
@@ -183,6 +185,32 @@ def bench_area(areas=(1, 4, 16)) -> None:
     print("  (s/k constant = run time linear in area; tree PSS = all processes together)")
 
 
+def bench_dask(k: float = 4.0, n: int = 2) -> None:
+    """The default scenario at ``k`` times the area, its tiles (mosaic and detection) in ``n``
+    local processes (``workers=n``) and then on a Dask LocalCluster of ``n`` single-threaded
+    worker processes (``cluster=local``); everything else is the same run."""
+    side = 100.0 * float(k) ** 0.5
+    common = [f"survey.width_arcsec={side:g}", f"survey.height_arcsec={side:g}",
+              f"population.max_sources={int(2e5 * max(1.0, k))}"]
+    print(f"== default scenario at {k:g}x the area ({side:.0f}\" side): {n} local processes vs "
+          f"a Dask LocalCluster of {n} workers, one subprocess each")
+    print(f"  {'engine':>22s} {'run s':>7s} {'tiles s':>8s} {'detect s':>8s} {'maxRSS MB':>9s} "
+          f"{'tree PSS MB':>11s}  load before -> after (1-min average)")
+    for label, extra in ((f"workers={n}", [f"workers={n}"]),
+                         (f"cluster=local x{n}", ["cluster=local", f"cluster.n_workers={n}",
+                                                   "cluster.threads_per_worker=1",
+                                                   "cluster.processes=true"])):
+        load0 = os.getloadavg()[0]
+        r = run_child(common + extra, sample_tree=True)
+        t = r["timings_s"]
+        print(f"  {label:>22s} {r['wall_s']:7.1f} {t.get('tiles', float('nan')):8.1f} "
+              f"{t.get('detect', float('nan')):8.1f} {r['max_rss_mb']:9.0f} "
+              f"{r['peak_tree_pss_mb']:11.0f}  {load0:.1f} -> {os.getloadavg()[0]:.1f}",
+              flush=True)
+    print("  (maxRSS: the launching process; tree PSS: it and all its worker processes; load "
+          f"on {os.cpu_count()} cores: other jobs sharing the machine slow both runs)")
+
+
 # --------------------------------------------------------------------------------------------
 # scene renderer against naive per-object convolution
 # --------------------------------------------------------------------------------------------
@@ -319,9 +347,10 @@ def main(argv: list[str]) -> None:
         return
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     p.add_argument("what", nargs="*", default=["default", "scene", "sizes", "area"],
-                   choices=["default", "scene", "sizes", "area"])
+                   choices=["default", "scene", "sizes", "area", "dask"])
     p.add_argument("--areas", type=float, nargs="+", default=[1, 4, 16],
-                   help="field area factors of the area series (default field = 1)")
+                   help="field area factors of the area series (default field = 1; "
+                   "dask: 4)")
     p.add_argument("--side", type=float, default=24.0,
                    help="field side (arcsec) of the scene comparison")
     p.add_argument("--sizes", type=float, nargs="+", default=[10, 20, 40, 80],
@@ -336,6 +365,9 @@ def main(argv: list[str]) -> None:
             bench_scene(a.side)
         elif what == "area":
             bench_area(a.areas)
+        elif what == "dask":
+            for k in (a.areas if "--areas" in argv else [4]):
+                bench_dask(k)
         else:
             bench_sizes(a.sizes, a.densities)
 

@@ -22,6 +22,7 @@ from typing import Any, Optional
 from omegaconf import MISSING, DictConfig, OmegaConf
 from omegaconf.errors import ConfigKeyError, MissingMandatoryValue, ValidationError
 
+from ._typed import build_exact
 from .errors import ConfigError, check_range, require
 
 #: The Hydra configuration folder: the repository's ``conf/``, installed as package data
@@ -553,10 +554,13 @@ class Scenario:
 
 
 def register_configs() -> None:
-    """Register the schemas with Hydra's ConfigStore (called by the command-line entry points)."""
+    """Register the schemas with Hydra's ConfigStore (called by the command-line entry points;
+    once per process: the store is a process-wide singleton and storing costs ~0.1 s)."""
     from hydra.core.config_store import ConfigStore
 
     cs = ConfigStore.instance()
+    if "scenario_schema.yaml" in cs.repo and "selection_schema.yaml" in cs.repo.get("selection", {}):
+        return
     cs.store(name="scenario_schema", node=Scenario)
     cs.store(group="selection", name="selection_schema", node=SelectionConfig)
 
@@ -564,6 +568,17 @@ def register_configs() -> None:
 # --------------------------------------------------------------------------------------------
 # validation
 # --------------------------------------------------------------------------------------------
+def _check_ranges(prefix: str, cfg, table) -> None:
+    """:func:`~simfield.errors.check_range` of ``cfg.<field>``, named ``<prefix>.<field>``, for
+    each row ``(field, lo, hi)`` or ``(field, lo, hi, ends)`` of ``table``, in its order;
+    ``ends`` are the interval's brackets: ``"[]"`` (the default), ``"(]"``, ``"[)"`` or
+    ``"()"``."""
+    for name, lo, hi, *ends in table:
+        left, right = ends[0] if ends else "[]"
+        check_range(f"{prefix}.{name}", getattr(cfg, name), lo, hi, lo_open=left == "(",
+                    hi_open=right == ")")
+
+
 def _validate_telescope(t: TelescopeConfig) -> None:
     check_range("telescope.diameter_m", t.diameter_m, 0.01, 100)
     check_range("telescope.collecting_area_m2", t.collecting_area_m2, 0,
@@ -614,12 +629,10 @@ def _validate_telescope(t: TelescopeConfig) -> None:
     require("\0" not in s.cache_dir, "telescope.psf.cache_dir", s.cache_dir,
             "must be a directory path (empty: the per-user cache)")
     f = t.field_psf
-    check_range("telescope.field_psf.corner_focus_nm", f.corner_focus_nm, 0, 500)
-    check_range("telescope.field_psf.corner_astig_nm", f.corner_astig_nm, 0, 500)
-    check_range("telescope.field_psf.grid", f.grid, 2, 7)
+    _check_ranges("telescope.field_psf", f, (("corner_focus_nm", 0, 500),
+                                             ("corner_astig_nm", 0, 500), ("grid", 2, 7)))
     check_range("telescope.field_psf.n_modes", f.n_modes, 1, f.grid * f.grid - 1)
-    check_range("telescope.drift.step_nm", t.drift.step_nm, 0, 200)
-    check_range("telescope.drift.n_modes", t.drift.n_modes, 1, 8)
+    _check_ranges("telescope.drift", t.drift, (("step_nm", 0, 200), ("n_modes", 1, 8)))
     check_range("telescope.pupil.strut_offset_m", p.strut_offset_m, -t.diameter_m / 2,
                 t.diameter_m / 2)
 
@@ -771,36 +784,22 @@ def _resolve_read_noise(d: DetectorConfig) -> None:
 
 def _validate_detector(d: DetectorConfig) -> None:
     _resolve_read_noise(d)
-    check_range("detector.read_noise_e", d.read_noise_e, 0, 1000)
-    check_range("detector.dark_e_s", d.dark_e_s, 0, 100)
-    check_range("detector.gain_e_adu", d.gain_e_adu, 0, 100, lo_open=True)
-    check_range("detector.full_well_e", d.full_well_e, 0, 1e7, lo_open=True)
-    check_range("detector.n_groups", d.n_groups, 2, 1000)
-    check_range("detector.n_frames", d.n_frames, 1, 100)
-    check_range("detector.ipc_alpha", d.ipc_alpha, 0, 0.05)
-    check_range("detector.flat_rms", d.flat_rms, 0, 0.5)
-    check_range("detector.flat_error_rms", d.flat_error_rms, 0, 0.5)
-    check_range("detector.hot_pixel_fraction", d.hot_pixel_fraction, 0, 0.1)
-    check_range("detector.hot_dark_e_s", d.hot_dark_e_s, 0, 1e4)
-    check_range("detector.dead_pixel_fraction", d.dead_pixel_fraction, 0, 0.1)
-    check_range("detector.cosmic_ray_rate_cm2_s", d.cosmic_ray_rate_cm2_s, 0, 1000)
-    check_range("detector.cosmic_ray_charge_e", d.cosmic_ray_charge_e, 0, 1e7)
-    check_range("detector.jump_threshold_sigma", d.jump_threshold_sigma, 0, 1000, lo_open=True)
-    check_range("detector.dark_cal_ramps", d.dark_cal_ramps, 0, 10000)
-    check_range("detector.n_channels", d.n_channels, 1, 64)
+    _check_ranges("detector", d, (
+        ("read_noise_e", 0, 1000), ("dark_e_s", 0, 100), ("gain_e_adu", 0, 100, "(]"),
+        ("full_well_e", 0, 1e7, "(]"), ("n_groups", 2, 1000), ("n_frames", 1, 100),
+        ("ipc_alpha", 0, 0.05), ("flat_rms", 0, 0.5), ("flat_error_rms", 0, 0.5),
+        ("hot_pixel_fraction", 0, 0.1), ("hot_dark_e_s", 0, 1e4),
+        ("dead_pixel_fraction", 0, 0.1), ("cosmic_ray_rate_cm2_s", 0, 1000),
+        ("cosmic_ray_charge_e", 0, 1e7), ("jump_threshold_sigma", 0, 1000, "(]"),
+        ("dark_cal_ramps", 0, 10000), ("n_channels", 1, 64)))
     require(isinstance(d.n_channels, int), "detector.n_channels", d.n_channels,
             "must be a whole number")
-    check_range("detector.pixel_time_us", d.pixel_time_us, 0, 1e4, lo_open=True)
-    check_range("detector.row_overhead_pix", d.row_overhead_pix, 0, 10000)
-    check_range("detector.pink_common_e", d.pink_common_e, 0, 1000)
-    check_range("detector.pink_channel_e", d.pink_channel_e, 0, 1000)
-    check_range("detector.channel_offset_e", d.channel_offset_e, 0, 1e5)
-    check_range("detector.reference_pixels", d.reference_pixels, 0, 64)
-    check_range("detector.refpix_half_rows", d.refpix_half_rows, 0, 10000)
-    check_range("detector.persistence_onset_e", d.persistence_onset_e, 0, 1e7, lo_open=True)
-    check_range("detector.exposure_gap_s", d.exposure_gap_s, 0, 1e6)
-    check_range("detector.nonlinearity_at_full_well", d.nonlinearity_at_full_well, 0, 0.25)
-    check_range("detector.nonlinearity_cal_rms", d.nonlinearity_cal_rms, 0, 1)
+    _check_ranges("detector", d, (  # readout: 1/f noise, reference pixels, persistence, NL
+        ("pixel_time_us", 0, 1e4, "(]"), ("row_overhead_pix", 0, 10000),
+        ("pink_common_e", 0, 1000), ("pink_channel_e", 0, 1000), ("channel_offset_e", 0, 1e5),
+        ("reference_pixels", 0, 64), ("refpix_half_rows", 0, 10000),
+        ("persistence_onset_e", 0, 1e7, "(]"), ("exposure_gap_s", 0, 1e6),
+        ("nonlinearity_at_full_well", 0, 0.25), ("nonlinearity_cal_rms", 0, 1)))
     fr, ta = list(d.persistence_fractions), list(d.persistence_tau_s)
     require(len(fr) == len(ta) and len(fr) >= 1, "detector.persistence_fractions", fr,
             f"must be a non-empty list as long as detector.persistence_tau_s ({len(ta)})")
@@ -995,8 +994,7 @@ def _validate_selection(s: SelectionConfig, bands: list[str], z_max: float = 30.
                                  f"({', '.join(f'{zc:g}' for zc in photoz.z_cuts)})")
 
 def _validate_limits(lim: LimitsConfig) -> None:
-    check_range("limits.disk_gb", lim.disk_gb, 0, 1e6, lo_open=True)
-    check_range("limits.memory_gb", lim.memory_gb, 0, 1e5, lo_open=True)
+    _check_ranges("limits", lim, (("disk_gb", 0, 1e6, "(]"), ("memory_gb", 0, 1e5, "(]")))
 
 
 def _validate_cluster(c: ClusterConfig) -> None:
@@ -1004,11 +1002,9 @@ def _validate_cluster(c: ClusterConfig) -> None:
 
     require(c.kind in CLUSTER_KINDS, "cluster.kind", c.kind, f"must be one of "
             f"{', '.join(CLUSTER_KINDS)}")
-    check_range("cluster.n_workers", c.n_workers, 1, 10000)
-    check_range("cluster.threads_per_worker", c.threads_per_worker, 1, 256)
-    check_range("cluster.connect_timeout_s", c.connect_timeout_s, 0, 600, lo_open=True)
-    check_range("cluster.cores", c.cores, 1, 1024)
-    check_range("cluster.memory_gb", c.memory_gb, 0, 1e5, lo_open=True)
+    _check_ranges("cluster", c, (("n_workers", 1, 10000), ("threads_per_worker", 1, 256),
+                                 ("connect_timeout_s", 0, 600, "(]"), ("cores", 1, 1024),
+                                 ("memory_gb", 0, 1e5, "(]")))
     if c.kind == "scheduler":
         require(bool(re.fullmatch(r"(tcp://|tls://)?[\w.\-]+:\d{1,5}", c.address)),
                 "cluster.address", c.address, "must be a scheduler address host:port or "
@@ -1059,10 +1055,10 @@ def to_scenario(cfg: DictConfig | dict[str, Any]) -> Scenario:
         data = dict(cfg)
         _check_raw_booleans(data)  # a DictConfig has converted them already
     data.pop("hydra", None)
-    schema = OmegaConf.structured(Scenario)
     try:
-        merged = OmegaConf.merge(schema, data)
-        sc = OmegaConf.to_object(merged)
+        sc = build_exact(Scenario, data)  # exactly typed data: OmegaConf's result, ~50x sooner
+        if sc is None:
+            sc = OmegaConf.to_object(OmegaConf.merge(OmegaConf.structured(Scenario), data))
     except ConfigKeyError as exc:  # a key the schema does not know
         key = str(exc.full_key or exc.key)
         parent = key.rpartition(".")[0]

@@ -357,14 +357,26 @@ def _detect_tile(job: _TileJob, tile):
     return cat, labels, own, gx, gy, seg, int(det.segmentation.max(initial=0))
 
 
-def _map_detect(job: _TileJob, tiles: list, workers: int):
+def _detect_task(ctx: tuple, i: int):
+    """:func:`_detect_tile` of tile ``i`` of ``ctx = (job, tiles)`` (a Dask task)."""
+    job, tiles = ctx
+    return _detect_tile(job, tiles[i])
+
+
+def _map_detect(job: _TileJob, tiles: list, workers: int, engine=None):
     """:func:`_detect_tile` over ``tiles`` in order, in ``workers`` forked processes (0: one
-    per core, at most one per tile); a generator, so results are used as they arrive."""
+    per core, at most one per tile), or as tasks of a Dask ``engine``
+    (:class:`simfield.engine.DaskEngine`, which reads the mosaic from the run folder); a
+    generator, so results are used as they arrive."""
     import multiprocessing
     import os
     from concurrent.futures import ProcessPoolExecutor
     from functools import partial
 
+    if engine is not None:
+        yield from engine.imap(_detect_task, (job, tiles), len(tiles),
+                               desc=f"detect {job.path.name}")
+        return
     n = min(len(tiles), os.cpu_count() or 1) if workers == 0 else min(workers, len(tiles))
     if n <= 1:
         yield from (_detect_tile(job, t) for t in tiles)
@@ -378,7 +390,7 @@ def _map_detect(job: _TileJob, tiles: list, workers: int):
 
 def detect_mosaic(path, segm_out, cfg: DetectionConfig, psf_fwhm_arcsec: float,
                   core: int | None = None, margin: int | None = None,
-                  progress: bool = False, workers: int = 1) -> Table:
+                  progress: bool = False, workers: int = 1, engine=None) -> Table:
     """Detect sources on a mosaic file tile by tile, in memory bounded by the tile size.
 
     The mosaic (``IMAGE``, ``INVVAR`` and, if present, ``FLAGS`` extensions) is opened as a memory map
@@ -421,6 +433,10 @@ def detect_mosaic(path, segm_out, cfg: DetectionConfig, psf_fwhm_arcsec: float,
     workers : int
         Processes for the tiles (0: one per core; never more than the tiles). Each holds one
         tile (~1.2 GB for a full 3072-pixel core), and the result does not depend on it.
+    engine : simfield.engine.DaskEngine, optional
+        Run the tiles as tasks of this Dask cluster instead of ``workers`` processes (its
+        workers read the mosaic at ``path``, so it must be on a filesystem they share); the
+        result is the same.
 
     Returns
     -------
@@ -473,7 +489,7 @@ def detect_mosaic(path, segm_out, cfg: DetectionConfig, psf_fwhm_arcsec: float,
         bar = tqdm(total=len(tiles), desc=f"detect {Path(path).name}", unit="tile",
                    disable=not progress, leave=False)
         for (yb, xb), (cat, labels, own, gx, gy, seg, n_labels) in zip(
-                tiles, _map_detect(job, tiles, workers)):
+                tiles, _map_detect(job, tiles, workers, engine)):
             kept.append(cat[own])
             provisional.append((offset, labels, own, gx, gy))
             if seg is not None:
@@ -532,7 +548,8 @@ def detect_mosaic(path, segm_out, cfg: DetectionConfig, psf_fwhm_arcsec: float,
     return cat
 
 
-def run_detection(run_dir, sc, bands, prov, progress: bool = False, workers: int = 1) -> dict:
+def run_detection(run_dir, sc, bands, prov, progress: bool = False, workers: int = 1,
+                  engine=None) -> dict:
     """Run :func:`detect_mosaic` on each mosaic of a run directory; write
     ``detections_<band>.fits``.
 
@@ -555,6 +572,8 @@ def run_detection(run_dir, sc, bands, prov, progress: bool = False, workers: int
         Progress bars over each mosaic's tiles.
     workers : int
         Processes for each mosaic's tiles (see :func:`detect_mosaic`).
+    engine : simfield.engine.DaskEngine, optional
+        Run each mosaic's tiles on this Dask cluster instead (see :func:`detect_mosaic`).
 
     Returns
     -------
@@ -580,7 +599,8 @@ def run_detection(run_dir, sc, bands, prov, progress: bool = False, workers: int
         out = run_dir / f"detections_{name}.fits"
         with section_files([(out, [spec], [("BAND", name, "simfield band name")])],
                            prov) as (sf,):
-            cat = detect_mosaic(mpath, sf, cfg, fwhm, progress=progress, workers=workers)
+            cat = detect_mosaic(mpath, sf, cfg, fwhm, progress=progress, workers=workers,
+                                engine=engine)
             cat.meta.update({"BAND": name})
             tab = fits.BinTableHDU(cat, name="DETECTIONS")
             for key, value, comment in prov.header_cards():

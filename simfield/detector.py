@@ -72,6 +72,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from .config import DetectorConfig, frame_read_noise_e
+from . import pixelops
 from .errors import check_range, require
 
 __all__ = [
@@ -362,32 +363,22 @@ def _deposit(shape, cx, cy, theta, length, q, interval):
     on an image of ``shape`` (tracks are clipped at its edges)."""
     ny, nx = shape
     n = int(np.size(cx))
-    charge = np.zeros(ny * nx)  # replaced below when there are events
-    when = np.full(ny * nx, -1, dtype=np.int32)  # frame intervals: few
     if n == 0:
-        return charge.reshape(shape), when.reshape(shape), 0
+        return np.zeros(shape), np.full(shape, -1, dtype=np.int32), 0
     s = (np.arange(_CR_POINTS) + 0.5) / _CR_POINTS - 0.5
-    px = (cx[:, None] + s[None, :] * (length * np.cos(theta))[:, None]).ravel()
-    py = (cy[:, None] + s[None, :] * (length * np.sin(theta))[:, None]).ravel()
-    pq = np.repeat(q / _CR_POINTS, _CR_POINTS)
-    pe = np.repeat(interval, _CR_POINTS)
-    x0, y0 = np.floor(px).astype(np.int64), np.floor(py).astype(np.int64)
-    fx, fy = px - x0, py - y0
-    xx = np.concatenate([x0, x0 + 1, x0, x0 + 1])
-    yy = np.concatenate([y0, y0, y0 + 1, y0 + 1])
-    wgt = np.concatenate([(1 - fx) * (1 - fy), fx * (1 - fy), (1 - fx) * fy, fx * fy])
-    ok = (xx >= 0) & (xx < nx) & (yy >= 0) & (yy < ny) & (wgt > 1e-3)
-    idx = yy[ok] * nx + xx[ok]
-    charge = np.bincount(idx, weights=(np.tile(pq, 4) * wgt)[ok], minlength=ny * nx)
-    when[idx] = np.tile(pe, 4)[ok]
-    return charge.reshape(shape), when.reshape(shape), n
+    # each of the _CR_POINTS points along a track carries q / _CR_POINTS, spread over the
+    # four pixels around it with bilinear weights (those below 1e-3 dropped): one numba loop
+    charge, when = pixelops.deposit(shape, cx, cy, theta, length, q / _CR_POINTS, interval, s)
+    return charge, when, n
 
 
 def _best_runs_one_break(n_ok: np.ndarray, kc: np.ndarray, skip: np.ndarray):
     """:func:`_best_runs` in closed form for ramps with groups ``0 ... n_ok - 1`` usable, at most
     one jump, before group ``kc`` (``kc`` = n_groups: none), and group ``kc`` itself unusable
     where ``skip``: the run before the jump, [0, min(kc, n_ok)), or the run after it,
-    [kc + skip, n_ok); the earlier wins a tie (as in :func:`_best_runs`)."""
+    [kc + skip, n_ok); the earlier wins a tie (as in :func:`_best_runs`). :func:`expose` runs
+    it per pixel in :func:`simfield.pixelops.refit`; this numpy form is its reference, as
+    :func:`_dilate_square` and :func:`_max_cross` are for :func:`simfield.pixelops.jumps`."""
     la = np.minimum(kc, n_ok)
     sb = kc + skip.astype(np.int64)
     lb = np.maximum(n_ok - sb, 0)
@@ -490,15 +481,16 @@ class PixelNoise:
         """
         from scipy import special, stats
 
-        lam = np.asarray(lam, float)
-        z = self._field("counts").astype(float)
-        out = lam + np.sqrt(lam) * z
-        out += (z * z - 1.0) / 6.0
-        np.maximum(out, 0.0, out=out)
-        small = lam < POISSON_EXACT_BELOW
-        if small.any():
-            out[small] = stats.poisson.ppf(special.ndtr(z[small]), lam[small])
-        return out.astype(np.float32)
+        from .pixelops import cornish_fisher
+
+        lam = np.asarray(lam, np.float32)
+        z = self._field("counts")
+        out, n_small = cornish_fisher(lam, z, POISSON_EXACT_BELOW)  # one fused pass
+        if n_small:
+            small = lam < POISSON_EXACT_BELOW
+            out[small] = stats.poisson.ppf(special.ndtr(z[small].astype(float)),
+                                           lam[small].astype(float))
+        return out
 
     def cosmic_rays(self, det: DetectorConfig, pixel_size_um: float, duration_s: float,
                     n_intervals: int):
@@ -653,8 +645,9 @@ def expose(rate: np.ndarray, sky_rate, dark, det: DetectorConfig, exptime_s: flo
     dark_nom = np.asarray(dark_nom, np.float32) if det.dark_current else np.zeros(1, np.float32)
     dark_true = dark_nom + (fixed.hot_dark if det.bad_pixels else 0.0)
     sky = np.asarray(sky_rate, dtype=np.float32)
-    f_sky = sky * resp + dark_true  # expected e-/s without sources
-    f = rate * resp + f_sky  # expected e-/s
+    # expected e-/s without sources, f_sky = sky resp + dark, and with them, f = rate resp +
+    # f_sky (one fused pass, simfield.pixelops)
+    f_sky, f = pixelops.expected_rates(rate, resp, sky, dark_true)
 
     if det.poisson:
         # one scaled Poisson deviate with the slope's exact mean and variance (module notes)
@@ -680,102 +673,70 @@ def expose(rate: np.ndarray, sky_rate, dark, det: DetectorConfig, exptime_s: flo
         cr_q, when, n_cr = noise.cosmic_rays(det, pixel_size_um, duration, n_int)
         cr_q = cr_q.astype(np.float32)
         if alpha > 0:
-            cr_q = apply_ipc(cr_q, alpha)
-            when = np.where(when >= 0, when, _max_cross(when))
-        hit = (cr_q > 0) & (when >= 0)
-        hit_at = np.nonzero(hit)
-        sig_diff = np.sqrt(2.0 * sig_f2 / m + f[hit_at] * tg)  # noise of a group difference
-        jump = np.zeros(rate.shape, bool)
-        jump[hit_at] = cr_q[hit_at] > det.jump_threshold_sigma * sig_diff
-        # the neighbours of a detected jump are refitted too, at the same time (common
-        # practice in ramp fitting: the faint fringe of a track would otherwise stay in)
-        jump |= hit & _dilate_square(jump)
-        faint = hit & ~jump
-        # an undetected deposit in interval i adds charge x D_i to the fitted slope (the
-        # deposit is already spread by IPC, so it is not convolved again below)
-        bias = np.zeros(rate.shape, np.float32)
-        bias[faint] = cr_q[faint] * d_int[when[faint]]
-    if alpha > 0:
-        slope = apply_ipc(slope, alpha)
-    if n_cr:
-        slope += bias
+            cr_q = pixelops.ipc(cr_q, alpha)
+        # per pixel (simfield.pixelops.jumps): an IPC-spread deposit arrives with its
+        # neighbour's event; a deposit above jump_threshold_sigma x the noise of a group
+        # difference, sqrt(2 sig_f2 / m + f t_g), is detected, and hit neighbours of a
+        # detected jump are refitted too, at the same time (common practice in ramp fitting:
+        # the faint fringe of a track would otherwise stay in); an undetected deposit in
+        # interval i adds charge x D_i to the fitted slope (already spread by IPC)
+        when, jump, bias = pixelops.jumps(cr_q, when, alpha > 0, f, 2.0 * sig_f2 / m, tg,
+                                          det.jump_threshold_sigma, d_int)
     z_read = noise.normal("read") if sig_f2 > 0 else None
-    if z_read is not None:
-        slope += np.float32(math.sqrt(a_full * sig_f2)) * z_read
+    if alpha > 0 and z_read is not None:  # IPC, the faint-deposit bias and read noise fused
+        slope = pixelops.ipc_noise(slope, alpha, bias if n_cr else None,
+                                   math.sqrt(a_full * sig_f2), z_read)
+    else:
+        if alpha > 0:
+            slope = pixelops.ipc(slope, alpha)
+        if n_cr:
+            slope += bias
+        if z_read is not None:
+            slope += np.float32(math.sqrt(a_full * sig_f2)) * z_read
 
     # group k is usable while the charge at its last read, f (k + 1) t_g, is below full well
     sat = f * (n * tg) >= det.full_well_e if det.saturation else np.zeros(rate.shape, bool)
     special = sat | jump
     if special.any():
         idx = np.nonzero(special)
-        n_ok = np.full(idx[0].size, n, np.int64)
-        s_idx = sat[idx]
-        q = det.full_well_e / (f[idx][s_idx] * tg)
-        n_ok[s_idx] = np.clip(np.ceil(np.minimum(q, n + 1)) - 1, 0, n).astype(np.int64)
-        kc = np.full(idx[0].size, n, np.int64)
-        skip = np.zeros(idx[0].size, bool)
-        if when is not None:
-            w = when[idx]
-            jmp = jump[idx]
-            kc = np.where(jmp, w // m, n)
-            # a jump inside group kc (not at its first frame) spoils that group
-            skip = jmp & ((w % m) != 0)
-        start, length = _best_runs_one_break(n_ok, kc, skip)
         table_a = np.zeros(n + 1)
         table_b = np.zeros(n + 1)
         for cnt in range(2, n + 1):
             table_a[cnt], table_b[cnt] = slope_variance_factors(n, m, tf, cnt)
-        fa, fb = table_a[length], table_b[length]
-        sd = np.sqrt(fa * sig_f2 + (fb * f[idx] * ipc_var if det.poisson else 0.0))
         # the refitted slope replaces the pixel's whole slope: its read-noise deviate, used
         # nowhere else, is free for it (a window-independent deviate of the pixel)
-        z_fit = z_read[idx].astype(float) if z_read is not None else noise.normal_at("refit", idx)
-        new = apply_ipc(f, alpha)[idx].astype(float) if alpha > 0 else f[idx].astype(float)
-        new += sd * z_fit
-        new[length < 2] = 0.0
-        slope[idx] = new
-        flags = np.where(n_ok < n, DQ_SATURATED, 0) | np.where(jump[idx], DQ_COSMIC_RAY, 0) | \
-            np.where(length < 2, DQ_NO_SLOPE, 0)
-        dq[idx] |= flags.astype(np.int32)
+        z_fit = z_read[idx] if z_read is not None else noise.normal_at("refit", idx)
+        # per pixel (simfield.pixelops.refit): groups below full well, n_ok; the jump's group
+        # kc (spoilt unless the jump falls on its first frame); the longer of the runs before
+        # and after it (_best_runs_one_break); its slope variance; sci ~ N(IPC f, that)
+        length = pixelops.refit(idx, sat, jump, when, f, pixelops.ipc(f, alpha) if alpha > 0
+                                else f, z_fit, n, m, tg, det.full_well_e, table_a, table_b,
+                                sig_f2, ipc_var, det.poisson, slope, dq,
+                                (DQ_SATURATED, DQ_COSMIC_RAY, DQ_NO_SLOPE))
 
     # the reduction subtracts its calibration dark: every pixel's own dark after IPC, with the
     # noise of the dark ramps averaged into it (a fixed pattern of the detector)
     if det.dark_current:
-        dark_seen = apply_ipc(np.broadcast_to(dark_true, rate.shape).astype(np.float32), alpha) \
+        dark_seen = pixelops.ipc(np.broadcast_to(dark_true, rate.shape), alpha) \
             if alpha > 0 else dark_true
         var_dcal = _dark_cal_var(det, a_full, b_full, sig_f2, ipc_var, dark_true)
         dark_cal = dark_seen + np.sqrt(var_dcal) * fixed.dark_z
     else:
         var_dcal, dark_cal = 0.0, 0.0
-    inv_cal = np.float32(1.0) / cal
-    sci = slope
-    sci -= dark_cal
-    sci *= inv_cal
-    if special.any():
-        sci[idx] = np.where(length < 2, 0.0, sci[idx])
-    inv_cal2 = inv_cal * inv_cal
     pois = ipc_var if det.poisson else 0.0
     # the calibration flat's error leaves -epsilon x signal, epsilon ~ N(0, flat_error_rms):
     # variance ferr2 x (signal / cal)^2, signal = (sky + rate) x resp = f - dark
     ferr2 = np.float32(det.flat_error_rms ** 2 if det.flat else 0.0)
     base = np.float32(a_full * sig_f2) + var_dcal  # read + calibration dark, before 1 / cal^2
     pb = np.float32(b_full * pois)
-    s_sky = sky * resp
-    var_sky = pb * f_sky
-    var_sky += base
-    var_sky += ferr2 * s_sky * s_sky
-    var_sky *= inv_cal2
-    s_all = rate * resp
-    s_all += s_sky
-    var = pb * f
-    var += base
-    var += ferr2 * s_all * s_all
-    var *= inv_cal2
+    # sci = (slope - dark_cal) / cal in place; var and var_sky = (pb f + base + ferr2
+    # signal^2) / cal^2 at the expected rate and at the sky (one fused pass)
+    sci = slope
+    var, var_sky = pixelops.calibrate(sci, dark_cal, cal, f, f_sky, rate, resp, sky, base,
+                                      pb, ferr2)
     if special.any():
-        sig2 = s_all[idx] * s_all[idx] * inv_cal2[idx]
-        dcal = var_dcal[idx] if np.ndim(var_dcal) else var_dcal
-        var[idx] = (fa * sig_f2 + fb * pois * f[idx] + dcal) * inv_cal2[idx] + ferr2 * sig2
-    artefact = bias * inv_cal if n_cr else None
-    return Exposure(sci=sci, var=var, var_sky=np.broadcast_to(var_sky, rate.shape).astype(np.float32),
-                    dq=dq, exptime=float(exptime_s), sky=float(np.mean(sky)), n_cr=int(n_cr),
-                    artefact=artefact)
+        pixelops.refit_variance(idx, length, f, cal, rate, resp, sky, var_dcal, table_a,
+                                table_b, sig_f2, pois, ferr2, sci, var)
+    artefact = bias * (np.float32(1.0) / cal) if n_cr else None
+    return Exposure(sci=sci, var=var, var_sky=var_sky, dq=dq, exptime=float(exptime_s),
+                    sky=float(np.mean(sky)), n_cr=int(n_cr), artefact=artefact)

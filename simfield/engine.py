@@ -93,34 +93,51 @@ class DaskEngine:
         services = self.client.scheduler_info().get("services", {})
         return self.client.dashboard_link if "dashboard" in services else ""
 
-    def map(self, fn: Callable, ctx, n: int, sync: Sequence[str] = (), desc: str = "tiles",
-            progress: bool = False) -> list:
-        """``[fn(ctx, i) for i in range(n)]``, one Dask task per ``i``, results in order.
+    def map(self, fn: Callable, ctx, n: int | Sequence[int], sync: Sequence[str] = (),
+            desc: str = "tiles", progress: bool = False) -> list:
+        """``[fn(ctx, i) for i in items]``, one Dask task per ``i``, results in order; ``n`` is
+        the items (tile indices) or their number (``range(n)``). See :meth:`imap`."""
+        return list(self.imap(fn, ctx, n, sync, desc, progress))
+
+    def imap(self, fn: Callable, ctx, n: int | Sequence[int], sync: Sequence[str] = (),
+             desc: str = "tiles", progress: bool = False) -> Iterator:
+        """:meth:`map` as a generator: every task is submitted at once and the results are
+        yielded in order as they arrive (each released once yielded, so the caller holds one
+        at a time).
 
         ``ctx`` is sent to every worker once; after each task the files ``sync`` are flushed on
         the worker. Raises :class:`WorkerLost` if a worker dies (Dask retries a task on
         another worker first) or the scheduler goes away.
         """
-        from distributed import as_completed
         from distributed.comm.core import CommClosedError
         from distributed.scheduler import KilledWorker
         from tqdm import tqdm
 
+        items = range(n) if isinstance(n, int) else list(n)
+        if not items:
+            return
         c = self.client
         ctx_f = c.scatter(ctx, broadcast=True, hash=False)
         futures = [c.submit(_run_task, fn, ctx_f, i, list(sync), pure=False,
-                            key=f"simfield-{desc}-{i}") for i in range(n)]
+                            key=f"simfield-{desc.replace(' ', '-')}-{i}") for i in items]
+        bar = tqdm(total=len(futures), desc=desc, unit="tile", disable=not progress,
+                   leave=False)
         try:
-            for _ in tqdm(as_completed(futures), total=n, desc=desc, unit="tile",
-                          disable=not progress, leave=False):
-                pass
-            return c.gather(futures)
-        except (KilledWorker, CommClosedError, OSError, TimeoutError) as exc:
-            raise WorkerLost(f"a Dask worker was lost during the {desc} ({type(exc).__name__}: "
-                             f"{str(exc).splitlines()[0] if str(exc) else 'no detail'}); no "
-                             f"file was renamed into place: run the same command again") from None
+            for k in range(len(futures)):
+                try:
+                    out = futures[k].result()
+                except (KilledWorker, CommClosedError, OSError, TimeoutError) as exc:
+                    raise WorkerLost(
+                        f"a Dask worker was lost during the {desc} ({type(exc).__name__}: "
+                        f"{str(exc).splitlines()[0] if str(exc) else 'no detail'}); no file "
+                        f"was renamed into place: run the same command again (finished "
+                        f"mosaic tiles are kept)") from None
+                futures[k] = None
+                bar.update()
+                yield out
         finally:
-            c.cancel(futures + [ctx_f], force=True)
+            bar.close()
+            c.cancel([f for f in futures if f is not None] + [ctx_f], force=True)
 
     def close(self) -> None:
         with contextlib.suppress(Exception):

@@ -13,6 +13,7 @@ from __future__ import annotations
 import logging
 import multiprocessing
 import os
+import sys
 import time
 from concurrent.futures import ProcessPoolExecutor
 from contextlib import contextmanager
@@ -30,9 +31,9 @@ from .bands import Band, ab_to_njy, make_band, njy_to_ab
 from .columns import POINT_KINDS, SOURCE_KINDS
 from .config import Scenario, config_hash, to_yaml
 from .grid import Grid
-from .io import (COMPLETE_MARKER, Provenance, section_files, write_fits, write_json, write_table,
+from .io import (COMPLETE_MARKER, Provenance, write_fits, write_json, write_table,
                  write_text)
-from .fieldconv import convolve_modes
+from .fieldconv import add_bright_field, convolve_modes, field_axes
 from .random import stream
 from .scene import (Stamp, accumulate, add_bright, convolve_tiled, dominant_source,
                     STAMP_HALF_MAX, draw_source_stamp, draw_window, point_stamp,
@@ -123,9 +124,10 @@ def run_scenario(sc: Scenario, out_dir: str | Path, progress: bool = False) -> R
 
 def _run_scenario(sc: Scenario, out_dir: str | Path, progress: bool, engine) -> RunResult:
     # stage modules are imported here so that ``import simfield.pipeline`` stays light
-    from .optics.drift import drift_psf_model
-    from .optics.field import field_hdus, field_psf_model, shape_cards
+    from .optics.drift import drift_hdus, drift_psf_model
+    from .optics.field import field_hdus, field_panels, field_psf_model, shape_cards
     from .optics.psf import cached_band_psf, cached_psf_png, effective_psf
+    from .population.components import source_bulge_fractions
     from .population.lightcone import make_population
     from .survey import exposure_grids, mosaic_grid, scene_grid
 
@@ -200,10 +202,11 @@ def _run_scenario(sc: Scenario, out_dir: str | Path, progress: bool, engine) -> 
                                     effective_psf(psf_core[b.name], tel.pixel_scale_arcsec),
                                     b, prov, shape_cards(fm, psf_core[b.name].image, scale),
                                     (field_hdus(fm, mgrid) if fm is not None else [])
-                                    + _drift_hdus(drifts.get(b.name), psf_core[b.name])))
+                                    + drift_hdus(drifts.get(b.name), psf_core[b.name])))
         files.append(cached_psf_png(tel, [psf_wide[b.name] for b in bands], sc.seed,
                                     out / "psf.png", cache, roll_deg=sc.survey.roll_deg,
-                                    field=_field_panels(fields, bands, srv)))
+                                    field=field_panels(fields, bands, srv.width_arcsec / 2,
+                                                      srv.height_arcsec / 2)))
 
     # ---------------------------------------------------------------- tiles
     from .survey import plan_tiles
@@ -222,11 +225,17 @@ def _run_scenario(sc: Scenario, out_dir: str | Path, progress: bool, engine) -> 
                        mgrid=mgrid, egrids=egrids, tiles=tiles, psf_core=psf_core,
                        psf_wide=psf_wide, rates=rates, bright=bright, files={},
                        field_psfs=fields, drift=drifts,
-                       bulge=_bulge_fractions(sources, bands))
+                       bulge=source_bulge_fractions(sources, [b.name for b in bands]))
     if sc.detector.persistence:
-        ctx.stimuli = _persistence_stimuli(sc, bands, sources, egrids, psf_core, rates)
-    with timer("tiles"), section_files(_image_files(out, sc, bands, mgrid, egrids, noise),
-                                       prov) as sfiles:
+        from ._readout_hooks import persistence_stimuli
+
+        ctx.stimuli = persistence_stimuli(sc, bands, sources, egrids, psf_core, rates)
+    from .resume import resumable_section_files, resume_key
+
+    # kept in the run's .resume folder until every tile is done, so a relaunch resumes
+    with timer("tiles"), resumable_section_files(
+            out, _image_files(out, sc, bands, mgrid, egrids, noise), prov,
+            resume_key(prov.config_hash, __version__)) as (sfiles, ctx.ledger):
         ctx.files = {f.final.name: f for f in sfiles}
         for b in bands:
             ctx.files[f"mosaic_{b.name}.fits"].array("NOISECOR")[:] = noise[b.name].rho
@@ -269,7 +278,8 @@ def _run_scenario(sc: Scenario, out_dir: str | Path, progress: bool, engine) -> 
         with timer("detect"):
             from .detect import run_detection
 
-            summary["detections"] = run_detection(out, sc, bands, prov, progress, sc.workers)
+            summary["detections"] = run_detection(out, sc, bands, prov, progress, sc.workers,
+                                                  engine)
             files.extend(out / f"detections_{b}.fits" for b in summary["detections"])
     if sc.photometry.enabled and sc.detection.enabled:
         with timer("photometry"):
@@ -328,13 +338,23 @@ class _TileContext:
     stimuli: list = field(default_factory=list)  #: persistence stimuli (simfield.readout)
     field_psfs: dict = None  #: band -> optics.field.FieldPSF (field-dependent PSF), if enabled
     drift: dict = None  #: band -> optics.drift.DriftPSF (exposure-to-exposure PSF), if enabled
+    ledger: object = None  #: simfield.resume.TileLedger: tiles done (recorded by each tile)
 
 
 _CTX: _TileContext | None = None  # set in the parent before forking tile workers
 
 
+def _tile_task(ctx: _TileContext, i: int) -> dict:
+    """Render tile ``i``, then record it as done in ``ctx.ledger`` (after its sections are
+    flushed to disk), where it ran: a local process or a Dask worker."""
+    out = _render_tile(ctx, i)
+    if ctx.ledger is not None:
+        ctx.ledger.record(i, out)
+    return out
+
+
 def _tile_worker(i: int):
-    return _render_tile(_CTX, i)
+    return _tile_task(_CTX, i)
 
 
 def _map_tiles(ctx: _TileContext, workers: int, progress: bool = False,
@@ -343,26 +363,40 @@ def _map_tiles(ctx: _TileContext, workers: int, progress: bool = False,
     or as tasks of a Dask ``engine`` (:class:`simfield.engine.DaskEngine`).
 
     Tiles draw only from their own named random streams and write disjoint sections of the
-    output files, so the files do not depend on the number of workers.
+    output files, so the files do not depend on the number of workers. Tiles that
+    ``ctx.ledger`` (:class:`simfield.resume.TileLedger`) records as done by an earlier launch
+    are skipped (their results are read back from it).
     """
     from tqdm import tqdm
 
-    n_tiles = len(ctx.tiles)
+    n_tiles, ledger = len(ctx.tiles), ctx.ledger
+    todo = [i for i in range(n_tiles) if ledger is None or not ledger.done(i)]
+    if len(todo) < n_tiles:
+        msg = f"simfield: resuming, {n_tiles - len(todo)} of {n_tiles} tiles already done"
+        log.info(msg)
+        if progress:
+            print(msg, file=sys.stderr)
     if engine is not None:
-        return engine.map(_render_tile, ctx, n_tiles, [str(f.path) for f in ctx.files.values()],
-                          "tiles", progress)
-    n = min(n_tiles, os.cpu_count() or 1) if workers == 0 else min(workers, n_tiles)
-    bar = dict(total=n_tiles, desc="tiles", unit="tile", disable=not progress, leave=False)
-    if n <= 1:
-        return [_render_tile(ctx, i) for i in tqdm(range(n_tiles), **bar)]
-    global _CTX
-    _CTX = ctx
-    try:
-        with ProcessPoolExecutor(n, mp_context=multiprocessing.get_context("fork"),
-                                 initializer=die_with_parent, initargs=(os.getpid(),)) as pool:
-            return list(tqdm(pool.map(_tile_worker, range(n_tiles)), **bar))
-    finally:
-        _CTX = None
+        sync = [] if ledger is not None else [str(f.path) for f in ctx.files.values()]
+        new = engine.map(_tile_task, ctx, todo, sync, "tiles", progress)
+    else:
+        n = min(len(todo), os.cpu_count() or 1) if workers == 0 else min(workers, len(todo))
+        bar = dict(total=len(todo), desc="tiles", unit="tile", disable=not progress,
+                   leave=False)
+        if n <= 1:
+            new = [_tile_task(ctx, i) for i in tqdm(todo, **bar)]
+        else:
+            global _CTX
+            _CTX = ctx
+            try:
+                with ProcessPoolExecutor(n, mp_context=multiprocessing.get_context("fork"),
+                                         initializer=die_with_parent,
+                                         initargs=(os.getpid(),)) as pool:
+                    new = list(tqdm(pool.map(_tile_worker, todo), **bar))
+            finally:
+                _CTX = None
+    got = dict(zip(todo, new))
+    return [got[i] if i in got else ledger.result(i) for i in range(n_tiles)]
 
 
 def _grow(box, pad: int, shape) -> tuple[int, int, int, int]:
@@ -374,6 +408,7 @@ def _render_tile(ctx: _TileContext, i: int) -> dict:
     """Stamps of the sources that reach tile ``i`` (drawn once), then per band its scene
     window, truth image, exposure windows and drizzled mosaic section, written into the run's
     files. Returns the stage timings (s)."""
+    from ._readout_hooks import correlated_readout, nonlinearity, persistence
     from .detector import PixelNoise, expose, fixed_pattern_window
     from .survey import MOSAIC_SATURATED, drizzle_mosaic, sample_scene
 
@@ -416,7 +451,7 @@ def _render_tile(ctx: _TileContext, i: int) -> dict:
             if fm is None:
                 conv = convolve_tiled(acc, core)
             else:  # each source pixel spread by the PSF of its field position
-                u, v = _field_axes(sgrid, acc_box)
+                u, v = field_axes(sgrid, acc_box)
                 conv = convolve_modes(acc, fm.mean, fm.modes, fm.weight_maps(u, v))
             # wavefront drift: the light convolved with each eigen-PSF of the exposures' changes
             dr = (ctx.drift or {}).get(b.name)
@@ -431,8 +466,8 @@ def _render_tile(ctx: _TileContext, i: int) -> dict:
                 add_bright(scene, stamps, rate, brt, ctx.psf_wide[b.name].image,
                            origin=(sy0, sx0), bulge_fraction=bt)
             else:
-                _add_bright_field(scene, stamps, rate, brt, ctx.psf_wide[b.name].image, core,
-                                  fm, sgrid, (sy0, sx0), bt)
+                add_bright_field(scene, stamps, rate, brt, ctx.psf_wide[b.name].image, core,
+                                 fm.at, sgrid, (sy0, sx0), bt)
             np.maximum(scene, 0.0, out=scene)  # FFT round-off leaves ~1e-7 negatives
         with timer("truth_image"):
             sky_mosaic = b.sky_rate(area, mgrid.scale)
@@ -468,12 +503,13 @@ def _render_tile(ctx: _TileContext, i: int) -> dict:
                                tel.pixel_size_um, noise, fixed[k])
                     del r
                     if sc.detector.nonlinearity:
-                        e = _nonlinearity(sc, e, tile.exposures[k])
+                        e = nonlinearity(sc, e, tile.exposures[k])
                     if sc.detector.correlated_noise:
-                        e = _correlated_readout(sc, b.name, k, ctx.egrids[k].shape, e,
-                                                tile.exposures[k])
+                        e = correlated_readout(sc, b.name, k, ctx.egrids[k].shape, e,
+                                               tile.exposures[k])
                     if sc.detector.persistence:
-                        e = _persistence(sc, ctx, b, k, e, tile.exposures[k])
+                        e = persistence(sc, ctx.stimuli, ctx.bands, b, k, e,
+                                        tile.exposures[k])
                     if srv.write_exposures:
                         _write_exposure_section(ctx.files[f"exp_{b.name}_{k:02d}.fits"],
                                                 e, tile, k, mgrid)
@@ -503,104 +539,6 @@ def _render_tile(ctx: _TileContext, i: int) -> dict:
 
         forget_grid(ctx.lens, acc_grid)
     return {"timings": timings}
-
-
-def _readout(sc: Scenario, band: str, k: int, shape, white=None):
-    """Correlated read noise and reference-pixel correction of exposure ``k`` of ``band``
-    (:mod:`simfield.readout`), with the detector's own white frame read noise at the
-    reference pixels (the same pixel-tied deviates :func:`detector.expose` draws)."""
-    from .config import frame_read_noise_e
-    from .detector import PixelNoise, frame_time, slope_variance_factors
-    from .readout import readout_for
-
-    det = sc.detector
-    a_full, _ = slope_variance_factors(det.n_groups, det.n_frames,
-                                       frame_time(det, sc.survey.exposure_time_s))
-    sig_f = np.sqrt(frame_read_noise_e(det) ** 2
-                    + (det.gain_e_adu ** 2 / 12.0 if det.quantize else 0.0))
-
-    def pixel_white(y0, y1, x0, x1):
-        z = PixelNoise(sc.seed, ("exposure", band, k), y0, x0, (y1 - y0, x1 - x0)).normal("read")
-        return z.astype(float)
-
-    unit = pixel_white if white is None else white
-    return readout_for(det, shape, sc.seed, band, k, float(np.sqrt(a_full)),
-                       lambda *box: sig_f * unit(*box))
-
-
-def _correlated_readout(sc: Scenario, band: str, k: int, shape, e, box):
-    from .readout import apply_readout
-
-    return apply_readout(e, _readout(sc, band, k, shape), box)
-
-
-def _exposure_order(sc: Scenario, bands: list, b, k: int) -> int:
-    """Index of exposure ``k`` of band ``b`` in time order: band after band, dither order."""
-    return [x.name for x in bands].index(b.name) * sc.survey.n_exposures + k
-
-
-def _ramp_duration(sc: Scenario) -> float:
-    """Ramp duration n_groups t_g (s) of an exposure of slope baseline exposure_time_s."""
-    det = sc.detector
-    return sc.survey.exposure_time_s * det.n_groups / (det.n_groups - 1)
-
-
-#: Half side (detector pixels) of the PSF stamp followed for persistence around a source.
-PERSISTENCE_HALF = 5
-
-
-def _persistence_stimuli(sc: Scenario, bands: list, sources: Table, egrids: list, psf_core,
-                         rates) -> list:
-    """Bright point sources of every exposure whose peak fluence exceeds the onset
-    (:func:`simfield.readout.find_stimuli`), with the band's PSF integrated over detector
-    pixels (:func:`simfield.optics.psf.effective_psf`, sampled at detector pixel centres)."""
-    from .optics.psf import effective_psf
-    from .readout import find_stimuli
-
-    tel, det = sc.telescope, sc.detector
-    point = np.isin(np.asarray(sources["kind"]).astype(str), POINT_KINDS)
-    xs = np.asarray(sources["x_arcsec"], float)[point]
-    ys = np.asarray(sources["y_arcsec"], float)[point]
-    out = []
-    for b in bands:
-        eff = effective_psf(psf_core[b.name], tel.pixel_scale_arcsec)
-        os_ = int(round(tel.pixel_scale_arcsec / eff.scale_arcsec))
-        c, h = eff.image.shape[0] // 2, PERSISTENCE_HALF
-        stamp = eff.image[c - h * os_:c + h * os_ + 1:os_, c - h * os_:c + h * os_ + 1:os_]
-        stamp = np.asarray(stamp, float) * os_ * os_  # fraction of the flux per detector pixel
-        for k, g in enumerate(egrids):
-            x, y = g.offsets_to_pixel(xs, ys)
-            out += find_stimuli(_exposure_order(sc, bands, b, k), x, y,
-                                np.asarray(rates[b.name], float)[point], stamp,
-                                _ramp_duration(sc), det.persistence_onset_e, det.full_well_e)
-    return out
-
-
-#: Ramps collecting less than this (e-) skip the non-linearity: its bias there is below
-#: 1e-3 of the signal uncorrected and 1e-5 corrected (the default law, 5% at full well).
-NONLINEARITY_MIN_FLUENCE_E = 1000.0
-
-
-def _nonlinearity(sc: Scenario, e, box):
-    from .detector import frame_time, slope_weights
-    from .readout.nonlinearity import ramp_weights, window_bias
-
-    det = sc.detector
-    tf = frame_time(det, sc.survey.exposure_time_s)
-    w = ramp_weights(slope_weights(det.n_groups, det.n_frames, tf), tf)
-    return window_bias(e, sc.seed, box, det.nonlinearity_at_full_well / det.full_well_e,
-                       det.nonlinearity_cal_rms, w, det.nonlinearity_correction,
-                       _ramp_duration(sc), NONLINEARITY_MIN_FLUENCE_E)
-
-
-def _persistence(sc: Scenario, ctx, b, k: int, e, box):
-    from .readout import apply_persistence, persistence_window
-
-    det = sc.detector
-    ghost = persistence_window(ctx.stimuli, _exposure_order(sc, ctx.bands, b, k),
-                               _ramp_duration(sc), det.exposure_gap_s,
-                               det.persistence_fractions, det.persistence_tau_s, box)
-    return apply_persistence(e, ghost, det.persistence_flagged)
 
 
 def _crop_mosaic(m, cut):
@@ -665,38 +603,17 @@ def _noise_correlations(sc: Scenario, bands: list[Band], egrids: list, mgrid: Gr
     alpha = det.ipc_alpha if det.ipc else 0.0
     cov_w, cov_c = drizzle_noise_covariance(egrids, mgrid, srv.drizzle_kernel, srv.pixfrac,
                                             alpha, stream(sc.seed, "noise_correlation"))
-    cov_r = _readout_covariance(sc, egrids, mgrid) if det.correlated_noise else None
+    cov_r = None
+    if det.correlated_noise:
+        from ._readout_hooks import readout_covariance
+
+        cov_r = readout_covariance(sc, egrids, mgrid)
     out = {}
     for b in bands:
         sky = b.sky_rate(tel.collecting_area_m2, tel.pixel_scale_arcsec)
         white, charge, _ = sky_noise_terms(det, srv.exposure_time_s, sky)
         out[b.name] = noise_correlation(cov_w, cov_c, white, charge, cov_r)
     return out
-
-
-#: Lags (mosaic pixels) of the correlated read noise's covariance, so apertures up to 10
-#: pixels in radius see all of it within them; realisations drizzled to measure it.
-READOUT_COV_LAGS = 20
-READOUT_COV_REALISATIONS = 8
-
-
-def _readout_covariance(sc: Scenario, egrids: list, mgrid: Grid) -> np.ndarray:
-    """Covariance of the mosaic at lags up to ``READOUT_COV_LAGS`` of what the correlated read
-    noise leaves after the reference-pixel correction (:mod:`simfield.readout`), drizzled
-    through the run's own exposure grids (the same for every band: its amplitudes are e- per
-    frame). Realisations have streams of their own, apart from the exposures'."""
-    from .survey import drizzle_field_covariance
-
-    srv = sc.survey
-
-    def field(i, box, r):
-        rng = stream(sc.seed, "readout_covariance", r, i)
-        ro = _readout(sc, f"cov{r}", i, egrids[i].shape,
-                      white=lambda y0, y1, x0, x1: rng.standard_normal((y1 - y0, x1 - x0)))
-        return ro.residual(*box)
-
-    return drizzle_field_covariance(egrids, mgrid, srv.drizzle_kernel, srv.pixfrac, field,
-                                    READOUT_COV_LAGS, READOUT_COV_REALISATIONS)
 
 
 #: Empty-sky apertures drawn over the whole mosaic for the measured depth and noise check.
@@ -850,14 +767,6 @@ def _image_files(out: Path, sc: Scenario, bands: list[Band], mgrid: Grid, egrids
 
 
 # ---------------------------------------------------------------------------- helpers
-def _bulge_fractions(sources: Table, bands: list[Band]) -> dict:
-    """Band -> B/T per source row (0 where a row has none), or None without bulges."""
-    if "n_components" not in sources.colnames:
-        return {b.name: None for b in bands}
-    return {b.name: np.asarray(np.ma.filled(sources[f"bt_{b.name}"], 0.0), float)
-            for b in bands}
-
-
 def _stack_sources(a: Table, b: Table) -> Table:
     from astropy.table import vstack
 
@@ -1080,64 +989,6 @@ def _image_hdu(data, name, grid: Grid, bunit: str, cards=()) -> fits.ImageHDU:
     for k, v, c in cards:
         hdu.header[k] = (v, c)
     return hdu
-
-
-def _field_axes(sgrid: Grid, box) -> tuple[np.ndarray, np.ndarray]:
-    """Field positions (arcsec) of the columns and rows of the scene window ``box`` = (y0, y1,
-    x0, x1): along the north-up scene grid's x and y from its centre, the tangent point."""
-    cx, cy = sgrid.center_pixel
-    return ((np.arange(box[2], box[3]) - cx) * sgrid.scale,
-            (np.arange(box[0], box[1]) - cy) * sgrid.scale)
-
-
-def _add_bright_field(scene, stamps, rate, brt, wide, core, fm, sgrid: Grid, origin,
-                      bulge_fraction=None) -> None:
-    """Bright sources with the large PSF of the field centre plus, in its core, the difference
-    between the field model's PSF at the source (its stamp's centre) and the centre's core."""
-    hw, hc = wide.shape[0] // 2, core.shape[0] // 2
-    cx, cy = sgrid.center_pixel
-    for st in stamps:
-        if not brt[st.index] or rate[st.index] == 0:
-            continue
-        sy = st.iy0 + (st.image.shape[0] - 1) / 2.0
-        sx = st.ix0 + (st.image.shape[1] - 1) / 2.0
-        k = wide.copy()
-        k[hw - hc:hw + hc + 1, hw - hc:hw + hc + 1] += (
-            fm.at((sx - cx) * sgrid.scale, (sy - cy) * sgrid.scale) - core)
-        one = np.zeros_like(brt)
-        one[st.index] = True
-        add_bright(scene, [st], rate, one, k, origin=origin, bulge_fraction=bulge_fraction)
-
-
-def _drift_hdus(dr, core) -> list:
-    """``PSF_MOSAIC`` (the mosaic's effective PSF at the field centre, mean of the exposures')
-    and ``PSF_EXPOSURES`` (each exposure's PSF as rendered) of a drifting wavefront."""
-    if dr is None:
-        return []
-    mos = fits.ImageHDU(dr.mosaic.astype(np.float32), name="PSF_MOSAIC")
-    exp = fits.ImageHDU(np.stack([dr.exposure_psf(core.image, e)
-                                  for e in range(dr.coeffs.shape[0])]).astype(np.float32),
-                        name="PSF_EXPOSURES")
-    for h in (mos, exp):
-        h.header["PIXSCALE"] = (core.scale_arcsec, "[arcsec] PSF pixel")
-        h.header["NORM"] = ("sum=1", "each image normalised to unit sum")
-    mos.header["PSFDESC"] = "mean of the exposures' PSFs (wavefront drift), field centre"
-    exp.header["PSFDESC"] = "PSF of each exposure in dither order (wavefront drift)"
-    mos.header["DRIFTMAX"] = (round(float(dr.rms_change.max()), 6),
-                              "largest sum|P_e - P| over exposures")
-    return [mos, exp]
-
-
-def _field_panels(field: dict, bands, srv) -> list:
-    """psf.png panels of the field-dependent PSF: the bluest band's core PSF at the field centre
-    and at its most elongated corner, with that corner's field position."""
-    if not field:
-        return []
-    b = min(bands, key=lambda x: x.pivot_nm)
-    fm = field[b.name]
-    u, v = fm.worst_corner()
-    return [(b.name, fm, (0.0, 0.0), (srv.width_arcsec / 2, srv.height_arcsec / 2)),
-            (b.name, fm, (u, v), (srv.width_arcsec / 2, srv.height_arcsec / 2))]
 
 
 def _write_psf(path, core, wide, eff, b: Band, prov, cards=(), extra=()) -> Path:

@@ -1,11 +1,40 @@
 """Shared fixtures: compose scenarios from conf/ without the command line."""
 
+import os
+import shutil
+import tempfile
+
 import pytest
 from hydra import compose, initialize_config_dir
 
 from simfield.config import CONF_DIR, register_configs, to_scenario
 
 CONF = CONF_DIR
+
+#: One PSF disk cache for the whole test session, shared by the xdist workers (they inherit the
+#: variable): each PSF is computed once per session instead of once per test folder, and no test
+#: writes to the user's cache. Tests of the cache itself pass their own folder.
+_PSF_CACHE_ENV = "SIMFIELD_TEST_PSF_CACHE"
+
+
+def pytest_configure(config):
+    if not hasattr(config, "workerinput") and _PSF_CACHE_ENV not in os.environ:
+        config._simfield_psf_cache = tempfile.mkdtemp(prefix="simfield-test-psf-")
+        os.environ[_PSF_CACHE_ENV] = config._simfield_psf_cache
+
+
+def pytest_unconfigure(config):
+    path = getattr(config, "_simfield_psf_cache", None)
+    if path:
+        shutil.rmtree(path, ignore_errors=True)
+        os.environ.pop(_PSF_CACHE_ENV, None)
+
+
+def shared_psf_cache() -> str:
+    """The session's PSF cache folder (made on first use if the session did not set one)."""
+    if _PSF_CACHE_ENV not in os.environ:
+        os.environ[_PSF_CACHE_ENV] = tempfile.mkdtemp(prefix="simfield-test-psf-")
+    return os.environ[_PSF_CACHE_ENV]
 
 
 def make_scenario(*overrides: str):
@@ -14,10 +43,13 @@ def make_scenario(*overrides: str):
     The field-dependent PSF and the wavefront drift are off unless an override names
     ``telescope.field_psf`` / ``telescope.drift`` or picks a telescope: their extra PSFs cost
     seconds per band with the empty PSF cache of a test, and only tests/test_field_psf.py and
-    tests/test_drift.py test them.
+    tests/test_drift.py test them. The PSF cache is the session's (:func:`shared_psf_cache`)
+    unless an override names ``telescope.psf.cache_dir``.
     """
     register_configs()
     overrides = list(overrides)
+    if not any(o.startswith("telescope.psf.cache_dir=") for o in overrides):
+        overrides.insert(0, f"telescope.psf.cache_dir={shared_psf_cache()}")
     for key in ("telescope.field_psf", "telescope.drift"):
         if not any(o.startswith((key, "telescope=")) for o in overrides):
             overrides.insert(0, f"{key}.enabled=false")

@@ -373,8 +373,7 @@ def test_quick_run_has_every_kind_renders_them_and_scores_galaxies_only(tmp_path
                        "population.star_density_arcmin2=400",
                        "population.dwarf_density_arcmin2=400",
                        "population.dusty_density_arcmin2=400",
-                       "population.quiescent_density_arcmin2=400",
-                       f"telescope.psf.cache_dir={tmp_path / 'psf_cache'}")
+                       "population.quiescent_density_arcmin2=400")
     sc.telescope.bands = [b for b in sc.telescope.bands if b.name in ("b13", "b23")]
     res = run_scenario(sc, tmp_path / "run")
     out = res.out_dir

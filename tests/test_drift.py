@@ -34,8 +34,7 @@ def test_drift_is_a_seeded_random_walk():
 @pytest.fixture(scope="module")
 def case(tmp_path_factory):
     sc = make_scenario("telescope.drift.enabled=true", "telescope.drift.n_modes=3",
-                       "telescope.psf.n_wavelengths=3",
-                       f"telescope.psf.cache_dir={tmp_path_factory.mktemp('psf')}")
+                       "telescope.psf.n_wavelengths=3")
     tel, b = sc.telescope, make_bands(sc)[0]
     static = band_psf(tel, b, 0.02, 0.4, sc.seed, pixel_integrated=False).image
     direct = [band_psf(tel, b, 0.02, 0.4, sc.seed, pixel_integrated=False,

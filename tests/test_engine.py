@@ -1,5 +1,6 @@
 """Tiles on Dask (simfield.engine): same files as local processes, one-line failures, the Slurm
-job script. Kept small: one band, one PSF wavelength, an 8" field cut into four tiles."""
+job script; detection tiles on Dask; tile-level resume of an interrupted run (simfield.resume).
+Kept small: one band, one PSF wavelength, an 8" field cut into four tiles."""
 
 import json
 import socket
@@ -10,11 +11,14 @@ from types import SimpleNamespace
 import pytest
 from astropy.io import fits
 
+from simfield import __version__
 from simfield.config import config_hash, to_yaml
-from simfield.engine import ClusterUnavailable, WorkerLost, slurm_job_script
+from simfield.engine import ClusterUnavailable, WorkerLost, open_engine, slurm_job_script
 from simfield.errors import ConfigError
 from simfield.io import COMPLETE_MARKER
 from simfield.pipeline import run_scenario
+from simfield.resume import PART_SUFFIX, RESUME_DIR, resume_key
+from simfield.sweep import remove_partial_files
 from tests.conftest import make_scenario
 
 pytest.importorskip("distributed")
@@ -42,6 +46,21 @@ def _free_port() -> int:
 def local_run(tmp_path_factory):
     tmp = tmp_path_factory.mktemp("engine")
     return tmp, run_scenario(tiny(tmp), tmp / "local")
+
+
+def assert_same_files(a: Path, b: Path) -> list[str]:
+    """Every file of run folder ``a`` is in ``b`` byte for byte and nothing else is (hidden
+    resume folders included); summary.json may differ only by its timings."""
+    names = sorted(str(p.relative_to(a)) for p in a.rglob("*") if p.is_file())
+    assert names == sorted(str(p.relative_to(b)) for p in b.rglob("*") if p.is_file())
+    for n in names:
+        if n == "summary.json":
+            sa, sb = (json.loads((d / n).read_text()) for d in (a, b))
+            sa.pop("timings_s"), sb.pop("timings_s")
+            assert sa == sb
+        else:
+            assert (a / n).read_bytes() == (b / n).read_bytes(), n
+    return names
 
 
 def test_cluster_is_not_part_of_what_a_run_makes(tmp_path):
@@ -81,9 +100,10 @@ def test_unreachable_scheduler_is_one_line_and_writes_nothing(tmp_path, monkeypa
 
 def test_dask_run_survives_a_lost_worker_and_writes_the_same_bytes(local_run, monkeypatch):
     """cluster=local (a Dask LocalCluster, two workers): a worker lost mid-run (Dask's
-    KilledWorker from a tile) gives WorkerLost, with no final image file, no temporary file and
-    no COMPLETE; the same run relaunched then writes every file byte for byte as the local
-    processes did (the same seed); summary.json differs only by its timings."""
+    KilledWorker from a tile) gives WorkerLost, with no final image file and no COMPLETE (the
+    files being written only in the run's resume folder); the same run relaunched renders only
+    the tiles not recorded as done and writes every file byte for byte as the local processes
+    did (the same seed); summary.json differs only by its timings."""
     from distributed.scheduler import KilledWorker
 
     from simfield import pipeline
@@ -103,19 +123,24 @@ def test_dask_run_survives_a_lost_worker_and_writes_the_same_bytes(local_run, mo
     with pytest.raises(WorkerLost, match="run the same command again"):
         run_scenario(sc, b)
     assert not (b / "mosaic_b17.fits").exists() and not (b / COMPLETE_MARKER).exists()
-    assert not list(b.rglob("*.part"))
-    monkeypatch.setattr(pipeline, "_render_tile", real)
+    # the files being written stay in the resume folder only, never under a final name
+    outside = [p.name for p in b.rglob("*") if p.is_file() and RESUME_DIR not in p.parts]
+    assert not [n for n in outside if n.endswith((".part", PART_SUFFIX))]
+    assert list((b / RESUME_DIR).glob(f"*/mosaic_b17.fits{PART_SUFFIX}"))
+    n_done = len(list((b / RESUME_DIR).rglob("tile_*.done")))
+    assert n_done <= 3
+    rendered = []
+
+    def counting(ctx, i):
+        rendered.append(i)
+        return real(ctx, i)
+
+    monkeypatch.setattr(pipeline, "_render_tile", counting)
     run_scenario(sc, b)
-    names = sorted(str(p.relative_to(a)) for p in a.rglob("*") if p.is_file())
-    assert names == sorted(str(p.relative_to(b)) for p in b.rglob("*") if p.is_file())
+    assert len(rendered) == 4 - n_done and 2 in rendered  # done tiles are not rendered again
+    names = assert_same_files(a, b)
     assert "mosaic_b17.fits" in names and COMPLETE_MARKER in names
-    for n in names:
-        if n == "summary.json":
-            sa, sb = (json.loads((d / n).read_text()) for d in (a, b))
-            sa.pop("timings_s"), sb.pop("timings_s")
-            assert sa == sb
-        else:
-            assert (a / n).read_bytes() == (b / n).read_bytes(), n
+    assert not (b / RESUME_DIR).exists()
     # read back from outside the writer: the tiles were really written (not an empty file)
     with fits.open(b / "mosaic_b17.fits") as hl:
         assert (hl["INVVAR"].data > 0).mean() > 0.9
@@ -139,3 +164,80 @@ def test_slurm_job_script_is_printed_not_submitted(tmp_path, monkeypatch, capsys
     cap = capsys.readouterr()
     assert cap.out.startswith("#!/") and "#SBATCH -p long" in cap.out
     assert "not submitted" in cap.err
+
+
+def test_interrupted_run_resumes_from_its_done_tiles(local_run, monkeypatch):
+    """A run stopped at its third tile (the tile raising, as an interruption would; local
+    processes, one worker) leaves no image file under a final name, no COMPLETE, and markers
+    for exactly the two tiles done, under the key of its configuration. Relaunched in the same
+    folder (after the command line's clean-up of temporary files) it renders only the two
+    other tiles, removes a resume folder of another
+    configuration (never reused), and writes every file byte for byte as the uninterrupted
+    run of the same seed did."""
+    from simfield import pipeline
+
+    tmp, res = local_run
+    real, rendered = pipeline._render_tile, []
+
+    def stop_at_2(ctx, i):
+        if i == 2:
+            raise RuntimeError("interrupted")
+        rendered.append(i)
+        return real(ctx, i)
+
+    sc, b = tiny(tmp), tmp / "resumed"
+    key = resume_key(config_hash(sc), __version__)
+    assert key != resume_key(config_hash(tiny(tmp, "seed=2")), __version__)
+    monkeypatch.setattr(pipeline, "_render_tile", stop_at_2)
+    with pytest.raises(RuntimeError, match="interrupted"):
+        run_scenario(sc, b)
+    assert rendered == [0, 1]
+    assert not (b / "mosaic_b17.fits").exists() and not (b / COMPLETE_MARKER).exists()
+    done = sorted(p.name for p in (b / RESUME_DIR / key).glob("tile_*.done"))
+    assert done == ["tile_000000.done", "tile_000001.done"]
+    stale = b / RESUME_DIR / ("0" * 16)  # what a run of another configuration left
+    stale.mkdir()
+    for i in range(4):
+        (stale / f"tile_{i:06d}.done").write_text('{"timings": {}}')
+    remove_partial_files(b)  # what the command line does first in an existing run folder
+    rendered.clear()
+
+    def counting(ctx, i):
+        rendered.append(i)
+        return real(ctx, i)
+
+    monkeypatch.setattr(pipeline, "_render_tile", counting)
+    run_scenario(sc, b)
+    assert rendered == [2, 3]
+    assert_same_files(res.out_dir, b)
+    assert not (b / RESUME_DIR).exists()
+
+
+def test_detection_tiles_on_dask_match_local_processes(local_run, tmp_path, monkeypatch):
+    """Detection cut into four tiles (100-pixel cores, 24-pixel margins) as tasks of a Dask
+    LocalCluster writes the same detections file, byte for byte, as in one local process."""
+    from simfield import detect
+    from simfield.io import Provenance
+    from simfield.pipeline import make_bands
+
+    tmp, res = local_run
+    sc = tiny(tmp, "cluster=local", "cluster.processes=false")
+    monkeypatch.setattr(detect, "TILE_CORE_PIX", 100)
+    monkeypatch.setattr(detect, "TILE_MARGIN_PIX", 24)
+    prov = Provenance(sc.seed, config_hash(sc), to_yaml(sc))
+    dirs = []
+    for name in ("local", "dask"):
+        d = tmp_path / name
+        d.mkdir()
+        for f in ("mosaic_b17.fits", "psf_b17.fits"):
+            (d / f).symlink_to(res.out_dir / f)
+        dirs.append(d)
+    n_local = detect.run_detection(dirs[0], sc, make_bands(sc), prov, workers=1)
+    with open_engine(sc.cluster) as engine:
+        n_dask = detect.run_detection(dirs[1], sc, make_bands(sc), prov, engine=engine)
+    assert n_local == n_dask and n_local["b17"] > 0
+    a, b = (d / "detections_b17.fits" for d in dirs)
+    assert a.read_bytes() == b.read_bytes()
+    with fits.open(b) as hl:
+        assert hl["DETECTIONS"].header["NTILES"] == 4
+        assert hl["SEGMAP"].data.max() == n_dask["b17"]

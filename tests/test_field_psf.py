@@ -32,8 +32,7 @@ SCALE, RADIUS = 0.02, 0.5  # arcsec
 
 @pytest.fixture(scope="module")
 def model(tmp_path_factory):
-    sc = make_scenario("telescope.field_psf.enabled=true",
-                       f"telescope.psf.cache_dir={tmp_path_factory.mktemp('psf')}")
+    sc = make_scenario("telescope.field_psf.enabled=true")
     b = make_bands(sc)[0]  # b10: the largest effect
     return sc, b, field_psf_model(sc.telescope, b, SCALE, RADIUS, sc.seed, HALF, HALF)
 
@@ -147,3 +146,23 @@ def test_field_psf_config_validated(key, value):
     """Out-of-range field-PSF settings are refused naming the key (RULES)."""
     with pytest.raises(ConfigError, match=key.replace(".", r"\.")):
         make_scenario(f"{key}={value}")
+
+
+def test_convolve_modes_equals_separate_convolutions():
+    """The frequency-domain sum of convolve_modes equals image (x) mean + sum_k (image w_k)
+    (x) mode_k done one by one with scipy.signal.fftconvolve (mode 'same'), to float32
+    round-off, including tiles (tile=40 forces overlap-add across 4 x 4 tiles)."""
+    rng = np.random.default_rng(5)
+    img = np.zeros((150, 130), np.float32)
+    img[rng.integers(0, 150, 60), rng.integers(0, 130, 60)] = rng.exponential(1.0, 60)
+    yy, xx = np.mgrid[-6:7, -6:7]
+    mean = np.exp(-(xx ** 2 + yy ** 2) / 8.0)
+    mean /= mean.sum()
+    modes = [mean * (xx ** 2 - yy ** 2) / 40.0, mean * xx * yy / 40.0]
+    w = [rng.uniform(-1, 1, img.shape), rng.uniform(-1, 1, img.shape)]
+    ref = signal.fftconvolve(img.astype(float), mean, mode="same")
+    for m, wk in zip(modes, w):
+        ref += signal.fftconvolve(img * wk.astype(np.float32), m, mode="same")
+    out = convolve_modes(img, mean.astype(np.float32), [m.astype(np.float32) for m in modes],
+                         w, tile=40)
+    assert np.abs(out - ref).max() < 1e-6 * np.abs(ref).max()

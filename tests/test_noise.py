@@ -36,8 +36,7 @@ def _field(tmp, *overrides, bands=BANDS):
                        "survey.n_exposures=4", "detection.enabled=false", "score.enabled=false",
                        "detector.correlated_noise=false",
                        "telescope.psf.spike_radius_arcsec=2.0",
-                       "telescope.psf.core_radius_arcsec=1.0",
-                       f"telescope.psf.cache_dir={tmp / 'psf_cache'}", *overrides)
+                       "telescope.psf.core_radius_arcsec=1.0", *overrides)
     sc.telescope.bands = [b for b in sc.telescope.bands if b.name in bands]
     return sc
 
@@ -243,8 +242,7 @@ def test_reported_numbers_do_not_depend_on_the_tiling(tmp_path):
     and one tile, and with one or two workers (README: nothing depends on the tiling)."""
     out = {}
     for name, ov in (("one", ()), ("tiled", ("survey.tile_pixels=128", "workers=2"))):
-        sc = make_scenario("survey=quick", "score.report=false",
-                           f"telescope.psf.cache_dir={tmp_path / 'psf_cache'}", *ov)
+        sc = make_scenario("survey=quick", "score.report=false", *ov)
         res = run_scenario(sc, tmp_path / name)
         s = dict(res.summary)
         s.pop("timings_s")

@@ -21,7 +21,7 @@ def small_scenario(tmp_path, *overrides):
                        "telescope.psf.spike_radius_arcsec=2.0",
                        "telescope.psf.core_radius_arcsec=1.0",
                        "population.star_density_arcmin2=400", "score.report=false",
-                       f"telescope.psf.cache_dir={tmp_path / 'psf_cache'}", *overrides)
+                       *overrides)
     sc.telescope.bands = [b for b in sc.telescope.bands if b.name in ("b13", "b23")]
     return sc
 

@@ -13,12 +13,6 @@ from tests.conftest import make_scenario
 LAYOUT = ReadoutLayout((256, 512), 4, 12, 10e-6)
 
 
-@pytest.fixture(scope="module")
-def psf_cache(tmp_path_factory):
-    """One PSF cache for the runs below (band b36, the same PSF radii): built once."""
-    return tmp_path_factory.mktemp("psf")
-
-
 def _bands(f, p, model, lo, hi, n=8):
     edges = np.geomspace(lo, hi, n + 1)
     out = []
@@ -108,7 +102,7 @@ def test_switches_are_validated():
         make_scenario("detector.persistence_fractions=[0.001]")
 
 
-def test_persistence_ghosts_of_earlier_bright_stars_are_scored(tmp_path, psf_cache):
+def test_persistence_ghosts_of_earlier_bright_stars_are_scored(tmp_path):
     """A run with persistence on: where a bright star fell on the detector in the first
     exposure, the second exposure (same detector pixels, 3" further along the dither) shows a
     ghost in the mosaic, the truth's ARTEFACT map marks it (ARTPERSI), and the scorer names
@@ -127,8 +121,7 @@ def test_persistence_ghosts_of_earlier_bright_stars_are_scored(tmp_path, psf_cac
                        "population.star_mag_max=18.5", "photometry.enabled=false",
                        "photoz.enabled=false", "selection=none", "score.report=false",
                        "telescope.psf.spike_radius_arcsec=2.0",
-                       "telescope.psf.core_radius_arcsec=1.0",
-                       f"telescope.psf.cache_dir={psf_cache}")
+                       "telescope.psf.core_radius_arcsec=1.0")
     sc.telescope.bands = [b for b in sc.telescope.bands if b.name == "b36"]
     sc.detection.bands = ["b36"]
     run = tmp_path / "run"
@@ -203,7 +196,7 @@ def test_flagged_persistence_is_left_out():
         assert out.var_sky[0, 0] == 1 and out.dq[0, 0] == 0
 
 
-def test_switched_off_the_exposures_are_todays(tmp_path, monkeypatch, psf_cache):
+def test_switched_off_the_exposures_are_todays(tmp_path, monkeypatch):
     """With correlated_noise, persistence and nonlinearity off the readout package is never
     called, so the exposures are exactly the white-noise ones of simfield.detector."""
     import simfield.readout as ro
@@ -221,8 +214,7 @@ def test_switched_off_the_exposures_are_todays(tmp_path, monkeypatch, psf_cache)
                        "detector.correlated_noise=false", "detector.persistence=false",
                        "detector.nonlinearity=false", "detection.enabled=false", "score.enabled=false", "workers=1",
                        "telescope.psf.spike_radius_arcsec=2.0",
-                       "telescope.psf.core_radius_arcsec=1.0",
-                       f"telescope.psf.cache_dir={psf_cache}")
+                       "telescope.psf.core_radius_arcsec=1.0")
     sc.telescope.bands = [b for b in sc.telescope.bands if b.name == "b36"]
     sc.detection.bands = ["b36"]
     run_scenario(sc, tmp_path / "run")

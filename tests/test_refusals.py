@@ -21,7 +21,7 @@ from omegaconf import OmegaConf
 from simfield import cli
 from simfield.config import CONF_DIR, schema_type
 from simfield.errors import ConfigError
-from tests.conftest import make_scenario
+from tests.conftest import make_scenario, shared_psf_cache
 
 BASE = ["survey=quick"]
 CLUSTER = ["survey=quick", "lens=cluster"]
@@ -135,6 +135,7 @@ def test_preflight_composes_like_hydra():
                ["lens=cluster", "survey=quick", "detector.ipc=false",
                 "telescope.field_psf.enabled=true", "telescope.drift.enabled=true"],
                ["telescope=circular", "survey=quick", "score.mag_step=0.5"]):
+        ov = [*ov, f"telescope.psf.cache_dir={shared_psf_cache()}"]  # make_scenario's default
         assert cli.preflight(ov) == [make_scenario(*ov)], ov
 
 

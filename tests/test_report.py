@@ -47,7 +47,9 @@ def figures(tmp_path_factory):
 
         mp.setattr(mod, "_save", keep)
     tmp = tmp_path_factory.mktemp("report")
-    sc = small_scenario(tmp, "score.report=true", "selection.report=true")
+    # its own PSF cache: the PSF picture is drawn (and captured) only when not cached yet
+    sc = small_scenario(tmp, "score.report=true", "selection.report=true",
+                        f"telescope.psf.cache_dir={tmp / 'psf_cache'}")
     sc.selection.samples = [SampleConfig(  # two bands: an S/N sample, no colour diagram
         "bright", 0.0, 15.0, [ConditionConfig(kind="snr", bands=["b23"], above=3.0)])]
     try:

@@ -27,7 +27,7 @@ from ..config import TelescopeConfig
 from ..random import stream
 from .pupil import segment_centers
 
-__all__ = ["DriftPSF", "drift_terms", "drift_psf_model"]
+__all__ = ["DriftPSF", "drift_terms", "drift_psf_model", "drift_hdus"]
 
 
 def drift_terms(tel: TelescopeConfig, seed: int, n_exposures: int) -> np.ndarray:
@@ -86,3 +86,28 @@ def drift_psf_model(tel: TelescopeConfig, band: Band, scale_arcsec: float,
     mosaic = static + (coeffs.mean(axis=0) @ modes).reshape(n, n)
     return DriftPSF(modes=modes.reshape(k, n, n), coeffs=coeffs, mosaic=mosaic,
                     rms_change=np.abs(flat).sum(axis=1))
+
+
+def drift_hdus(model: DriftPSF | None, core) -> list:
+    """HDUs for the PSF file: ``PSF_MOSAIC`` (the mosaic's effective PSF at the field centre,
+    mean of the exposures') and ``PSF_EXPOSURES`` (each exposure's PSF as rendered), both of
+    pixel ``core.scale_arcsec`` (arcsec) and unit sum; none without drift (``model`` None).
+
+    ``core``: the static core :class:`~simfield.optics.psf.PSFImage` the drift is added to.
+    """
+    if model is None:
+        return []
+    from astropy.io import fits
+
+    mos = fits.ImageHDU(model.mosaic.astype(np.float32), name="PSF_MOSAIC")
+    exp = fits.ImageHDU(np.stack([model.exposure_psf(core.image, e)
+                                  for e in range(model.coeffs.shape[0])]).astype(np.float32),
+                        name="PSF_EXPOSURES")
+    for h in (mos, exp):
+        h.header["PIXSCALE"] = (core.scale_arcsec, "[arcsec] PSF pixel")
+        h.header["NORM"] = ("sum=1", "each image normalised to unit sum")
+    mos.header["PSFDESC"] = "mean of the exposures' PSFs (wavefront drift), field centre"
+    exp.header["PSFDESC"] = "PSF of each exposure in dither order (wavefront drift)"
+    mos.header["DRIFTMAX"] = (round(float(model.rms_change.max()), 6),
+                              "largest sum|P_e - P| over exposures")
+    return [mos, exp]

@@ -36,7 +36,7 @@ from ..bands import Band
 from ..config import TelescopeConfig
 
 __all__ = ["FieldPSF", "field_zernike", "field_psf_model", "lagrange_weights",
-           "psf_shape", "psf_at_position", "field_hdus", "shape_cards"]
+           "psf_shape", "psf_at_position", "field_hdus", "shape_cards", "field_panels"]
 
 
 def field_zernike(tel: TelescopeConfig, u, v, half_w: float, half_h: float) -> np.ndarray:
@@ -134,7 +134,9 @@ class FieldPSF:
         (k, len(v), len(u)), float32."""
         lu = lagrange_weights(self.u_nodes, u)  # (nu, ncols)
         lv = lagrange_weights(self.v_nodes, v)  # (nv, nrows)
-        return np.einsum("jr,kji,ic->krc", lv, self.coeffs, lu).astype(np.float32)
+        # sum_ji lv[j, r] coeffs[k, j, i] lu[i, c] as two matrix products (an unoptimised
+        # three-operand einsum loops over every (k, j, i, r, c): seconds per tile)
+        return (lv.T @ (self.coeffs @ lu)).astype(np.float32)
 
     def worst_corner(self) -> tuple[float, float]:
         """Field position (u, v), arcsec, of the grid corner whose PSF is most elongated."""
@@ -259,6 +261,20 @@ def shape_cards(model: FieldPSF | None, centre_image: np.ndarray | None = None,
             ("CORNERU", "[arcsec] corner field position along scene x"),
             ("CORNERV", "[arcsec] corner field position along scene y"))
     return [(k, round(float(x), 6), com) for (k, com), x in zip(keys, vals)]
+
+
+def field_panels(models: dict, bands, half_w: float, half_h: float) -> list:
+    """Panels of the field-dependent PSF for the PSF picture
+    (:func:`simfield.optics.psf.cached_psf_png`'s ``field``): the bluest band's core PSF at the
+    field centre and at its most elongated corner, with the field's half-width and
+    half-height ``half_w``, ``half_h`` (arcsec). ``models``: band name -> :class:`FieldPSF`
+    (empty: no panels); ``bands``: the run's :class:`~simfield.bands.Band` objects."""
+    if not models:
+        return []
+    b = min(bands, key=lambda x: x.pivot_nm)
+    fm = models[b.name]
+    u, v = fm.worst_corner()
+    return [(b.name, fm, (0.0, 0.0), (half_w, half_h)), (b.name, fm, (u, v), (half_w, half_h))]
 
 
 def psf_at_position(psf_file: str | os.PathLike, x: float, y: float) -> np.ndarray:

@@ -50,7 +50,7 @@ from .seds import rest_fnu_shape
 
 __all__ = ["BULGE_N", "DISK_N", "BULGE_SED", "enclosed_fraction",
            "composite_half_light_radius", "mean_bulge_fraction", "band_bulge_fractions",
-           "add_components"]
+           "add_components", "source_bulge_fractions"]
 
 BULGE_N = 4.0
 DISK_N = 1.0
@@ -199,3 +199,15 @@ def add_components(t: Table, phot, bands, mag_max: float) -> None:
         t[c].unit = "arcsec"
     t["r_half_disk"][point] = 0.0
 
+
+
+def source_bulge_fractions(sources: Table, bands) -> dict:
+    """Band name -> B/T (dimensionless) per row of a SOURCES table (0 where a row has none:
+    masked in rows stacked without the column, e.g. cluster members), or band name -> None
+    when the table has no bulge + disk galaxies (no ``n_components`` column).
+
+    ``bands``: the band names (str) of the table's ``bt_<band>`` columns.
+    """
+    if "n_components" not in sources.colnames:
+        return {b: None for b in bands}
+    return {b: np.asarray(np.ma.filled(sources[f"bt_{b}"], 0.0), float) for b in bands}

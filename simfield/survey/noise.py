@@ -84,6 +84,48 @@ def _covering_window(g: Grid, target: Grid, pad: int = 3) -> Grid:
     return g.window(x0, y0, x1 - x0, y1 - y0)
 
 
+def _noise_exposure(z: np.ndarray) -> _NoiseExposure:
+    """An exposure holding the noise ``z`` (e-/s) with unit variance and no flags."""
+    v = np.ones(z.shape, np.float32)
+    return _NoiseExposure(z, v, v, np.zeros(z.shape, np.int32))
+
+
+def _noise_patch(exp_grids: list[Grid], mosaic_grid: Grid, patch: int) -> tuple:
+    """The square patch of side ``patch`` (mosaic pixels, smaller if the mosaic is) at the
+    mosaic centre, and the window of each exposure grid covering it."""
+    n = int(min(patch, mosaic_grid.nx, mosaic_grid.ny))
+    pg = mosaic_grid.window((mosaic_grid.nx - n) // 2, (mosaic_grid.ny - n) // 2, n, n)
+    return pg, [_covering_window(g, pg) for g in exp_grids]
+
+
+def _lag_covariance(mosaics, k: int, cut: int, subtract_mean: bool) -> np.ndarray:
+    """Covariance of mosaic pixels at lags up to ``k`` (mosaic pixels), from realisations.
+
+    Each drizzled realisation in ``mosaics`` loses a rim of ``cut`` pixels; its covered pixels
+    (weight > 0), less their mean with ``subtract_mean``, are autocorrelated by FFT. Products
+    and pair counts are summed over the realisations, divided, and made symmetric
+    (C(lag) = C(-lag), which halves the estimate's noise).
+
+    Returns
+    -------
+    ndarray, shape (2k+1, 2k+1) (square of the mosaic's unit, e.g. (e-/s)^2)
+    """
+    num = np.zeros((2 * k + 1, 2 * k + 1))
+    cnt = np.zeros_like(num)
+    for m in mosaics:
+        good = (m.wht > 0)[cut:-cut, cut:-cut]
+        u = m.sci.astype(float)[cut:-cut, cut:-cut]
+        u = np.where(good, u - (u[good].mean() if subtract_mean else 0.0), 0.0)
+        g = good.astype(float)
+        full_u = signal.fftconvolve(u, u[::-1, ::-1], mode="full")
+        full_g = signal.fftconvolve(g, g[::-1, ::-1], mode="full")
+        cy, cx = u.shape[0] - 1, u.shape[1] - 1
+        num += full_u[cy - k:cy + k + 1, cx - k:cx + k + 1]
+        cnt += np.round(full_g[cy - k:cy + k + 1, cx - k:cx + k + 1])
+    cov = num / np.maximum(cnt, 1)
+    return 0.5 * (cov + cov[::-1, ::-1])
+
+
 def aperture_factors(rho: np.ndarray, radii_pix) -> np.ndarray:
     """F(r) for circular apertures of each radius (mosaic pixels), given the correlation rho.
 
@@ -143,35 +185,21 @@ def drizzle_noise_covariance(exp_grids: list[Grid], mosaic_grid: Grid, kernel: s
     # estimate's own noise, so they are left out.
     reach = ratio * (pixfrac + 1) + (2 if kernel in ("gaussian", "lanczos3") else 0)
     k = int(min(10, max(1, math.ceil(reach - 1e-9))))
-    n = int(min(patch, mosaic_grid.nx, mosaic_grid.ny))
-    pg = mosaic_grid.window((mosaic_grid.nx - n) // 2, (mosaic_grid.ny - n) // 2, n, n)
-    wins = [_covering_window(g, pg) for g in exp_grids]
-    cut = k + 2
+    pg, wins = _noise_patch(exp_grids, mosaic_grid, patch)
     covs = []
     for ipc in (0.0, ipc_alpha):
-        num = np.zeros((2 * k + 1, 2 * k + 1))
-        cnt = np.zeros_like(num)
-        for _ in range(realisations):
-            def exposures():
-                for w in wins:
-                    z = rng.standard_normal(w.shape, np.float32)
-                    if ipc > 0:
-                        z = ndimage.correlate(z, _ipc_kernel(ipc), mode="constant")
-                    v = np.ones(w.shape, np.float32)
-                    yield _NoiseExposure(z, v, v, np.zeros(w.shape, np.int32))
+        def mosaics():
+            for _ in range(realisations):
+                def exposures():
+                    for w in wins:
+                        z = rng.standard_normal(w.shape, np.float32)
+                        if ipc > 0:
+                            z = ndimage.correlate(z, _ipc_kernel(ipc), mode="constant")
+                        yield _noise_exposure(z)
 
-            m = drizzle_mosaic(exposures(), wins, pg, kernel, pixfrac, subtract_sky=False)
-            good = (m.wht > 0)[cut:-cut, cut:-cut]
-            u = m.sci.astype(float)[cut:-cut, cut:-cut]
-            u = np.where(good, u - u[good].mean(), 0.0)
-            g = good.astype(float)
-            full_u = signal.fftconvolve(u, u[::-1, ::-1], mode="full")
-            full_g = signal.fftconvolve(g, g[::-1, ::-1], mode="full")
-            cy, cx = u.shape[0] - 1, u.shape[1] - 1
-            num += full_u[cy - k:cy + k + 1, cx - k:cx + k + 1]
-            cnt += np.round(full_g[cy - k:cy + k + 1, cx - k:cx + k + 1])
-        cov = num / np.maximum(cnt, 1)
-        covs.append(0.5 * (cov + cov[::-1, ::-1]))  # C(lag) = C(-lag): halves the noise
+                yield drizzle_mosaic(exposures(), wins, pg, kernel, pixfrac, subtract_sky=False)
+
+        covs.append(_lag_covariance(mosaics(), k, cut=k + 2, subtract_mean=True))
     if ipc_alpha == 0:  # the charge noise is white too
         covs[1] = covs[0]
     return covs[0], covs[1]
@@ -193,35 +221,21 @@ def drizzle_field_covariance(exp_grids: list[Grid], mosaic_grid: Grid, kernel: s
     -------
     ndarray, shape (2k+1, 2k+1) ((e-/s)^2)
     """
-    n = int(min(patch, mosaic_grid.nx, mosaic_grid.ny))
-    pg = mosaic_grid.window((mosaic_grid.nx - n) // 2, (mosaic_grid.ny - n) // 2, n, n)
-    wins = [_covering_window(g, pg) for g in exp_grids]
+    pg, wins = _noise_patch(exp_grids, mosaic_grid, patch)
     boxes = []
     for g, w in zip(exp_grids, wins):
         x0, y0 = (int(round(v)) for v in g.offsets_to_pixel(*w.pixel_to_offsets(0, 0)))
         boxes.append((y0, y0 + w.ny, x0, x0 + w.nx))
-    cut = 3
-    num = np.zeros((2 * k + 1, 2 * k + 1))
-    cnt = np.zeros_like(num)
-    for r in range(realisations):
-        def exposures():
-            for i, w in enumerate(wins):
-                z = np.asarray(field(i, boxes[i], r), np.float32)
-                v = np.ones(w.shape, np.float32)
-                yield _NoiseExposure(z, v, v, np.zeros(w.shape, np.int32))
 
-        m = drizzle_mosaic(exposures(), wins, pg, kernel, pixfrac, subtract_sky=False)
-        good = (m.wht > 0)[cut:-cut, cut:-cut]
-        u = m.sci.astype(float)[cut:-cut, cut:-cut]
-        u = np.where(good, u - (u[good].mean() if subtract_mean else 0.0), 0.0)
-        g = good.astype(float)
-        full_u = signal.fftconvolve(u, u[::-1, ::-1], mode="full")
-        full_g = signal.fftconvolve(g, g[::-1, ::-1], mode="full")
-        cy, cx = u.shape[0] - 1, u.shape[1] - 1
-        num += full_u[cy - k:cy + k + 1, cx - k:cx + k + 1]
-        cnt += np.round(full_g[cy - k:cy + k + 1, cx - k:cx + k + 1])
-    cov = num / np.maximum(cnt, 1)
-    return 0.5 * (cov + cov[::-1, ::-1])
+    def mosaics():
+        for r in range(realisations):
+            def exposures():
+                for i in range(len(wins)):
+                    yield _noise_exposure(np.asarray(field(i, boxes[i], r), np.float32))
+
+            yield drizzle_mosaic(exposures(), wins, pg, kernel, pixfrac, subtract_sky=False)
+
+    return _lag_covariance(mosaics(), k, cut=3, subtract_mean=subtract_mean)
 
 
 def _pad_lags(cov: np.ndarray, k: int) -> np.ndarray:

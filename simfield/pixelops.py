@@ -1,0 +1,306 @@
+"""Fused per-pixel loops of the detector model (numba), for :mod:`simfield.detector`.
+
+Each function does in one pass over the image what a chain of whole-image numpy operations
+would do in several, with the same operations in the same order and the same precision
+(float32 images, float32 constants; the Poisson expansion in float64), so the results equal
+the numpy chains bit for bit (checked in tests/test_detector_fast.py). Units are those of the
+caller: e-/s per pixel for rates and slopes, (e-/s)^2 for variances.
+"""
+
+from __future__ import annotations
+
+import numba
+import numpy as np
+
+__all__ = ["ipc", "cornish_fisher", "expected_rates", "calibrate", "refit", "refit_variance",
+           "deposit", "jumps"]
+
+_jit = numba.njit(cache=True, nogil=True)
+
+
+@_jit
+def _ipc(img, centre, alpha, out):
+    ny, nx = img.shape
+    for y in range(ny):
+        for x in range(nx):
+            v = centre * img[y, x]
+            if y > 0:
+                v += alpha * img[y - 1, x]
+            if y < ny - 1:
+                v += alpha * img[y + 1, x]
+            if x > 0:
+                v += alpha * img[y, x - 1]
+            if x < nx - 1:
+                v += alpha * img[y, x + 1]
+            out[y, x] = v
+    return out
+
+
+def ipc(img: np.ndarray, alpha: float) -> np.ndarray:
+    """:func:`simfield.detector.apply_ipc` of a float32 image in one pass (a new array)."""
+    img = np.asarray(img, np.float32)
+    return _ipc(img, np.float32(1.0 - 4.0 * alpha), np.float32(alpha),
+                np.empty(img.shape, np.float32))
+
+
+@_jit
+def _cornish_fisher(lam, z, small_below, out):
+    n_small = 0
+    for y in range(lam.shape[0]):
+        for x in range(lam.shape[1]):
+            m = np.float64(lam[y, x])
+            zz = np.float64(z[y, x])
+            v = m + np.sqrt(m) * zz
+            v += (zz * zz - 1.0) / 6.0
+            out[y, x] = np.float32(max(v, 0.0))
+            if m < small_below:
+                n_small += 1
+    return n_small
+
+
+def cornish_fisher(lam: np.ndarray, z: np.ndarray, small_below: float):
+    """Poisson counts lam + sqrt(lam) z + (z^2 - 1) / 6, clipped at 0, as float32 (computed
+    in float64), and the number of pixels with lam < ``small_below`` (which the caller
+    replaces by exact counts)."""
+    out = np.empty(lam.shape, np.float32)
+    n_small = _cornish_fisher(np.asarray(lam, np.float32), np.asarray(z, np.float32),
+                              float(small_below), out)
+    return out, n_small
+
+
+@_jit
+def _expected(rate, resp, sky, dark, f_sky, f):
+    for y in range(rate.shape[0]):
+        for x in range(rate.shape[1]):
+            fs = sky[y, x] * resp[y, x] + dark[y, x]
+            f_sky[y, x] = fs
+            f[y, x] = rate[y, x] * resp[y, x] + fs
+
+
+def expected_rates(rate, resp, sky, dark):
+    """(f_sky, f) = (sky resp + dark, rate resp + f_sky), float32, e-/s; ``sky`` and ``dark``
+    may be scalars or arrays broadcastable to ``rate``."""
+    shape = rate.shape
+    args = [np.broadcast_to(np.asarray(a, np.float32), shape) for a in (rate, resp, sky, dark)]
+    f_sky, f = np.empty(shape, np.float32), np.empty(shape, np.float32)
+    _expected(*args, f_sky, f)
+    return f_sky, f
+
+
+@_jit
+def _calibrate(slope, dark_cal, cal, f, f_sky, rate, resp, sky, base, pb, ferr2, var, var_sky):
+    one = np.float32(1.0)
+    for y in range(slope.shape[0]):
+        for x in range(slope.shape[1]):
+            inv = one / cal[y, x]
+            s = slope[y, x] - dark_cal[y, x]
+            slope[y, x] = s * inv
+            inv2 = inv * inv
+            s_sky = sky[y, x] * resp[y, x]
+            vs = pb * f_sky[y, x]
+            vs += base[y, x]
+            vs += ferr2 * s_sky * s_sky
+            var_sky[y, x] = vs * inv2
+            s_all = rate[y, x] * resp[y, x]
+            s_all += s_sky
+            v = pb * f[y, x]
+            v += base[y, x]
+            v += ferr2 * s_all * s_all
+            var[y, x] = v * inv2
+
+
+def calibrate(slope, dark_cal, cal, f, f_sky, rate, resp, sky, base, pb, ferr2):
+    """In place: slope -> (slope - dark_cal) / cal (e-/s); returns (var, var_sky), the noise
+    model pb f + base + ferr2 (signal)^2, over cal^2, at the expected rate and at the sky
+    (``signal`` = rate resp + sky resp). Scalars or broadcastable arrays, float32."""
+    shape = slope.shape
+    b = [np.broadcast_to(np.asarray(a, np.float32), shape)
+         for a in (dark_cal, cal, f, f_sky, rate, resp, sky, base)]
+    var, var_sky = np.empty(shape, np.float32), np.empty(shape, np.float32)
+    _calibrate(slope, *b, np.float32(pb), np.float32(ferr2), var, var_sky)
+    return var, var_sky
+
+
+@_jit
+def _refit(iy, ix, sat, jump, when, has_when, f, f_src, z, n, m, tg, full_well, table_a,
+           table_b, sig_f2, ipc_var, poisson, slope, dq, dq_sat, dq_cr, dq_none, length):
+    for k in range(iy.size):
+        y, x = iy[k], ix[k]
+        n_ok = n
+        if sat[y, x]:
+            q = min(np.float32(full_well) / (f[y, x] * np.float32(tg)), np.float32(n + 1))
+            n_ok = min(max(int(np.ceil(q)) - 1, 0), n)
+        kc, skip = n, 0
+        jmp = has_when and jump[y, x]
+        if jmp:
+            w = when[y, x]
+            kc = w // m
+            skip = 1 if w % m != 0 else 0
+        # the longest clean run: before the jump, [0, min(kc, n_ok)), or after it
+        la = min(kc, n_ok)
+        lb = max(n_ok - (kc + skip), 0)
+        ln = lb if lb > la else la
+        length[k] = ln
+        var = table_a[ln] * sig_f2 + (table_b[ln] * np.float64(f[y, x]) * ipc_var
+                                       if poisson else 0.0)
+        new = np.float64(f_src[y, x]) + np.sqrt(var) * z[k]
+        slope[y, x] = np.float32(0.0 if ln < 2 else new)
+        flags = (dq_sat if n_ok < n else 0) | (dq_cr if jmp else 0) | (dq_none if ln < 2 else 0)
+        dq[y, x] |= flags
+
+
+def refit(idx, sat, jump, when, f, f_src, z, n, m, tg, full_well, table_a, table_b, sig_f2,
+          ipc_var, poisson, slope, dq, dq_bits):
+    """Refit the slopes of pixels ``idx`` (saturated or hit by a detected jump) to their
+    longest clean run of groups, in place in ``slope`` (e-/s, N(f_src, var of the run) from
+    the pixel's deviate ``z``) and ``dq`` (``dq_bits`` = saturated, cosmic ray, no slope);
+    returns the run lengths. The loop of :func:`simfield.detector.expose`, per pixel."""
+    iy, ix = (np.ascontiguousarray(a, np.int64) for a in idx)
+    length = np.empty(iy.size, np.int64)
+    has_when = when is not None
+    when = when if has_when else np.zeros((1, 1), np.int32)
+    _refit(iy, ix, sat, jump, when, has_when, f, f_src, np.asarray(z, np.float64), int(n),
+           int(m), float(tg), float(full_well), table_a, table_b, float(sig_f2),
+           float(ipc_var), bool(poisson), slope, dq, *(int(b) for b in dq_bits), length)
+    return length
+
+
+@_jit
+def _refit_variance(iy, ix, length, f, cal, rate, resp, sky, dcal, table_a, table_b, sig_f2,
+                    fb_pois, ferr2, sci, var):
+    one = np.float32(1.0)
+    for k in range(iy.size):
+        y, x = iy[k], ix[k]
+        ln = length[k]
+        if ln < 2:
+            sci[y, x] = np.float32(0.0)
+        inv = one / cal[y, x]
+        inv2 = inv * inv
+        s_all = rate[y, x] * resp[y, x]
+        s_all += sky[y, x] * resp[y, x]
+        sig2 = s_all * s_all * inv2
+        v = (table_a[ln] * sig_f2 + table_b[ln] * fb_pois * np.float64(f[y, x])
+             + np.float64(dcal[y, x])) * np.float64(inv2) + np.float64(ferr2 * sig2)
+        var[y, x] = np.float32(v)
+
+
+def refit_variance(idx, length, f, cal, rate, resp, sky, dcal, table_a, table_b, sig_f2, pois,
+                   ferr2, sci, var):
+    """After :func:`calibrate`: refitted pixels without a slope get sci = 0, and every
+    refitted pixel the variance of its run, (a sig_f2 + b pois f + dcal) / cal^2 + ferr2
+    (signal / cal)^2 ((e-/s)^2), in place."""
+    iy, ix = (np.ascontiguousarray(a, np.int64) for a in idx)
+    shape = sci.shape
+    b = [np.broadcast_to(np.asarray(a, np.float32), shape)
+         for a in (f, cal, rate, resp, sky, dcal)]
+    _refit_variance(iy, ix, length, *b, table_a, table_b, float(sig_f2), float(pois),
+                    np.float32(ferr2), sci, var)
+
+
+@_jit
+def _deposit(cx, cy, dx, dy, q, interval, s, ny, nx, charge, when):
+    # corner-major order, as the concatenated bincount this replaces summed them
+    for corner in range(4):
+        ox, oy = corner % 2, corner // 2
+        for e in range(cx.size):
+            for p in range(s.size):
+                px = cx[e] + s[p] * dx[e]
+                py = cy[e] + s[p] * dy[e]
+                x0, y0 = np.floor(px), np.floor(py)
+                fx, fy = px - x0, py - y0
+                wx = fx if ox else 1 - fx
+                wy = fy if oy else 1 - fy
+                w = wx * wy
+                xx, yy = int(x0) + ox, int(y0) + oy
+                if 0 <= xx < nx and 0 <= yy < ny and w > 1e-3:
+                    charge[yy, xx] += q[e] * w
+                    when[yy, xx] = interval[e]
+
+
+def deposit(shape, cx, cy, theta, length, q_point, interval, s):
+    """Charge (e-, float64) and arrival-interval (int32, -1: none) images of straight tracks,
+    each ``s.size`` points of charge ``q_point`` spread bilinearly (see
+    :func:`simfield.detector._deposit`)."""
+    ny, nx = shape
+    charge = np.zeros(shape)
+    when = np.full(shape, -1, np.int32)
+    _deposit(np.asarray(cx, float), np.asarray(cy, float), length * np.cos(theta),
+             length * np.sin(theta), np.asarray(q_point, float),
+             np.asarray(interval, np.int64), np.asarray(s, float), ny, nx, charge, when)
+    return charge, when
+
+
+@_jit
+def _jumps(cr_q, when_raw, spread, f, c0, tg, thr, d_int, when, hit, jump, bias):
+    ny, nx = cr_q.shape
+    for y in range(ny):
+        for x in range(nx):
+            w = when_raw[y, x]
+            if w < 0 and spread:  # IPC-spread charge arrives with its neighbour's event
+                if y > 0:
+                    w = max(w, when_raw[y - 1, x])
+                if y < ny - 1:
+                    w = max(w, when_raw[y + 1, x])
+                if x > 0:
+                    w = max(w, when_raw[y, x - 1])
+                if x < nx - 1:
+                    w = max(w, when_raw[y, x + 1])
+            when[y, x] = w
+            h = cr_q[y, x] > 0 and w >= 0
+            hit[y, x] = h
+            jump[y, x] = h and cr_q[y, x] > thr * np.sqrt(c0 + f[y, x] * tg)
+    for y in range(ny):
+        for x in range(nx):
+            if not hit[y, x]:
+                bias[y, x] = np.float32(0.0)
+                continue
+            j = False
+            for yy in range(max(y - 1, 0), min(y + 2, ny)):
+                for xx in range(max(x - 1, 0), min(x + 2, nx)):
+                    j = j or jump[yy, xx]
+            hit[y, x] = j  # hit now holds the refitted pixels (jump or next to one)
+            bias[y, x] = np.float32(0.0) if j else np.float32(np.float64(cr_q[y, x])
+                                                                * d_int[when[y, x]])
+    return hit
+
+
+def jumps(cr_q, when_raw, spread, f, c0, tg, thr, d_int):
+    """Cosmic-ray jump detection of :func:`simfield.detector.expose` in two fused passes.
+
+    ``when_raw``: arrival interval (-1: no charge); with ``spread`` (IPC on) a pixel without
+    its own event takes the latest of its four neighbours'. A pixel is hit where it has
+    charge and an interval; a jump is detected where cr_q > thr sqrt(c0 + f tg) (e-, the
+    noise of a group difference); hit pixels next to (3 x 3) a detected jump are refitted
+    too; the others keep their charge as a slope bias cr_q D_i (e-/s). Returns (when,
+    refitted bool image, bias float32 image)."""
+    shape = cr_q.shape
+    when = np.empty(shape, np.int32)
+    hit = np.empty(shape, np.bool_)
+    jump = np.empty(shape, np.bool_)
+    bias = np.empty(shape, np.float32)
+    refit = _jumps(np.asarray(cr_q, np.float32), np.asarray(when_raw, np.int32), bool(spread),
+                   f, np.float32(c0), np.float32(tg), np.float32(thr),
+                   np.asarray(d_int, np.float64), when, hit, jump, bias)
+    return when, refit, bias
+
+
+@_jit
+def _ipc_noise(img, centre, alpha, bias, has_bias, c, z, out):
+    _ipc(img, centre, alpha, out)
+    for y in range(out.shape[0]):
+        for x in range(out.shape[1]):
+            v = out[y, x]
+            if has_bias:
+                v += bias[y, x]
+            out[y, x] = v + c * z[y, x]
+    return out
+
+
+def ipc_noise(slope, alpha, bias, read_sd, z):
+    """``ipc(slope, alpha) (+ bias) + read_sd z`` (float32, e-/s): the charge slope spread by
+    IPC, the undetected cosmic-ray bias (or None) and the read noise, in one call."""
+    slope = np.asarray(slope, np.float32)
+    has_bias = bias is not None
+    bias = bias if has_bias else np.zeros((1, 1), np.float32)
+    return _ipc_noise(slope, np.float32(1.0 - 4.0 * alpha), np.float32(alpha), bias, has_bias,
+                      np.float32(read_sd), z, np.empty(slope.shape, np.float32))
