@@ -12,10 +12,12 @@ Light-cone galaxies come from two published luminosity functions, each galaxy on
 
 - below z = 2, (z, M_K) from the rest-K function (Cirasuolo et al. 2010), with templates and
   M_UV from :mod:`.restk`;
+- at z = 2-4, the quiescent galaxies of the rest-K function (:func:`.restk.quiescent_fraction`
+  of it), all with the evolved template;
 - at every z, (z, M_UV) from the rest-UV function, thinned below z = 2 by
   :func:`.restk.uv_excess_fraction` to the star-forming galaxies the rest-K function does not
   already hold (its faint end, where the rest-K fit is extrapolated); evolved templates
-  (:func:`.seds.evolved_probability`) only from z = 2 on.
+  (:func:`.seds.evolved_probability`) only from z = 4 on.
 
 Only galaxies whose apparent magnitude in the selection band could pass ``mag_limit`` are drawn:
 for every redshift the brightest selection-band colour each template can have (its parameters at
@@ -47,8 +49,8 @@ from .lines import LineParameters, draw_halpha_ew
 from .luminosity import (draw_redshift_magnitude, expected_counts, nir_lf_parameters,
                          uv_lf_parameters)
 from .morphology import Morphology, draw_morphology
-from .restk import (NIR_LF_Z_MAX, abs_mag_k_faint, faint_k_cut, quiescent_fraction,
-                    uv_excess_fraction, uv_from_k)
+from .restk import (NIR_LF_Z_MAX, QUIESCENT_Z_MAX, abs_mag_k_faint, faint_k_cut,
+                    quiescent_fraction, uv_excess_fraction, uv_from_k)
 from .seds import (BETA_SCATTER, SEDParameters, evolved_probability, rest_fnu_shape,
                    sed_parameters_from_deviates, uv_slope_relation)
 from .stars import draw_stars, star_band_magnitudes
@@ -157,10 +159,10 @@ def _lf_weight(pop, phot):
 
 
 def _uv_evolved_probability(z, m):
-    """:func:`evolved_probability` above :data:`.restk.NIR_LF_Z_MAX`; 0 below, where the evolved
-    galaxies come from the rest-K function."""
+    """:func:`evolved_probability` above :data:`.restk.QUIESCENT_Z_MAX`; 0 below, where the
+    evolved galaxies come from the rest-K function."""
     z = np.asarray(z, dtype=float)
-    return np.where(z >= NIR_LF_Z_MAX, evolved_probability(z, m, uv_lf_parameters(z).m_star),
+    return np.where(z >= QUIESCENT_Z_MAX, evolved_probability(z, m, uv_lf_parameters(z).m_star),
                     0.0)
 
 
@@ -183,10 +185,11 @@ def expected_galaxies(pop: PopulationConfig, bands: list[Band], area_arcsec2: fl
     cosmo = cosmo or default_cosmology()
     phot = _photometry(pop, bands, selection_band_index(pop, bands), cosmo)
     n = 0.0
-    if _nir_range(pop):
-        n += expected_counts(*_nir_range(pop), abs_mag_k_faint(pop.abs_mag_faint),
-                             area_arcsec2, mag_cut=_k_cut(pop, phot), cosmo=cosmo,
-                             lf=nir_lf_parameters)
+    for rng_z, w in ((_nir_range(pop), None), (_quiescent_range(pop), quiescent_fraction)):
+        if rng_z:
+            n += expected_counts(*rng_z, abs_mag_k_faint(pop.abs_mag_faint), area_arcsec2,
+                                 mag_cut=_k_cut(pop, phot), cosmo=cosmo, lf=nir_lf_parameters,
+                                 weight=w)
     _, weight = _lf_weight(pop, phot)
     n += expected_counts(*_uv_range(pop), pop.abs_mag_faint, area_arcsec2, cosmo=cosmo,
                          weight=weight)
@@ -196,6 +199,12 @@ def expected_galaxies(pop: PopulationConfig, bands: list[Band], area_arcsec2: fl
 def _nir_range(pop):
     """(z_lo, z_hi) drawn from the rest-K function, None if none of the range."""
     return (pop.z_min, min(pop.z_max, NIR_LF_Z_MAX)) if pop.z_min < NIR_LF_Z_MAX else None
+
+
+def _quiescent_range(pop):
+    """(z_lo, z_hi) of the quiescent rest-K draws, None if none of the range."""
+    lo, hi = max(pop.z_min, NIR_LF_Z_MAX), min(pop.z_max, QUIESCENT_Z_MAX)
+    return (lo, hi) if lo < hi else None
 
 
 def _uv_range(pop):
@@ -219,14 +228,20 @@ def _k_cut(pop, phot):
     return faint_k_cut(pop.mag_limit, pop.abs_mag_faint, phot.dist)
 
 
-def _galaxies_from_nir_lf(pop, phot, area, rng, cosmo, z_lo, z_hi):
+def _galaxies_from_nir_lf(pop, phot, area, rng, cosmo, z_lo, z_hi, quiescent_only=False,
+                          budget=None):
     """Galaxies below :data:`.restk.NIR_LF_Z_MAX`: (z, M_K) from the rest-K function, the
     template (evolved with :func:`.restk.quiescent_fraction`), M_UV (:func:`.restk.uv_from_k`),
-    then the exact cuts."""
+    then the exact cuts. ``quiescent_only``: the function thinned by the quiescent fraction,
+    all evolved (z = 2-4)."""
     draw = _draw(pop, z_lo, z_hi, abs_mag_k_faint(pop.abs_mag_faint), area, rng,
-                 mag_cut=_k_cut(pop, phot), cosmo=cosmo, lf=nir_lf_parameters)
+                 mag_cut=_k_cut(pop, phot), cosmo=cosmo, lf=nir_lf_parameters,
+                 weight=quiescent_fraction if quiescent_only else None, budget=budget)
     z = draw.redshift
-    evolved = rng.random(z.size) < quiescent_fraction(z, draw.abs_mag)
+    if quiescent_only:
+        evolved = np.ones(z.size, bool)
+    else:
+        evolved = rng.random(z.size) < quiescent_fraction(z, draw.abs_mag)
     m, sed = uv_from_k(z, draw.abs_mag, evolved, rng.standard_normal((3, z.size)))
     ew = _halpha_ew(phot, z, evolved, rng)
     m_sel = phot.mags(z, m, sed.beta, sed.break_strength, sed.beta_opt, True,
@@ -246,7 +261,11 @@ def _galaxies_from_lf(pop, phot, area, rng, cosmo):
     parts = []
     if _nir_range(pop):
         parts.append(_galaxies_from_nir_lf(pop, phot, area, rng, cosmo, *_nir_range(pop)))
-    # max_sources bounds the sum of both expectations
+    # max_sources bounds the sum of the expectations
+    if _quiescent_range(pop):
+        budget = max(pop.max_sources - sum(p[5] for p in parts), 0.0)
+        parts.append(_galaxies_from_nir_lf(pop, phot, area, rng, cosmo, *_quiescent_range(pop),
+                                           quiescent_only=True, budget=budget))
     budget = max(pop.max_sources - sum(p[5] for p in parts), 0.0)
     parts.append(_galaxies_from_uv_lf(pop, phot, area, rng, cosmo, *_uv_range(pop), budget))
     z, m, evolved = (np.concatenate([p[i] for p in parts]) for i in range(3))

@@ -8,7 +8,11 @@ galaxies missing from a UV-selected function dominate the bright end. There the 
 near-infrared knee) magnitude is M_K + (J - K)_AB (:func:`uv_from_k`). The rest-K fit is
 extrapolated beyond its data at the faint end; the rest-UV function (measured 3-4 mag deeper)
 then supplies the star-forming galaxies beyond it, thinned by :func:`uv_excess_fraction` so
-that each galaxy is drawn once.
+that each galaxy is drawn once. From :data:`NIR_LF_Z_MAX` to :data:`QUIESCENT_Z_MAX` the
+rest-K function supplies only its quiescent part: a galaxy of the rest-UV function is
+UV-luminous by selection, and an evolved template normalised to its UV magnitude would be a
+~5 mag brighter rest-K galaxy (M_UV - M_J ~ 5.3 for the evolved template), ten times more
+numerous at z = 2-3 than the rest-K function allows for galaxies that bright.
 
 Units: magnitudes AB, wavelengths nm.
 """
@@ -18,20 +22,20 @@ from __future__ import annotations
 import numpy as np
 
 from .luminosity import nir_lf_parameters, schechter_phi, uv_luminosity_function
-from .seds import SEDParameters, rest_fnu_shape, sed_parameters_from_deviates
+from .seds import J_MINUS_K_AB, SEDParameters, rest_fnu_shape, sed_parameters_from_deviates
 
-__all__ = ["NIR_LF_Z_MAX", "J_MINUS_K_AB", "quiescent_fraction", "uv_excess_fraction",
+__all__ = ["NIR_LF_Z_MAX", "QUIESCENT_Z_MAX", "J_MINUS_K_AB", "quiescent_fraction", "uv_excess_fraction",
            "uv_from_k", "faint_k_cut", "abs_mag_k_faint"]
 
 #: Below this redshift the light cone draws rest-K magnitudes.
 NIR_LF_Z_MAX = 2.0
+#: From :data:`NIR_LF_Z_MAX` up to this redshift (the reach of the Cirasuolo et al. 2010 fit,
+#: z ~ 4) the rest-K function supplies the quiescent galaxies only (:func:`quiescent_fraction`
+#: of it); the star-forming ones come from the rest-UV function, measured there directly.
+QUIESCENT_Z_MAX = 4.0
 #: Rest J (nm) at which a rest-K magnitude sets the template: the template's near-infrared
 #: knee, where its optical segment ends (:mod:`.seds`).
 _J_NM = 1200.0
-#: Rest-frame J - K of galaxies in AB: ~0.9 in Vega (local galaxies, e.g. Jarrett et al.
-#: 2003, AJ 125, 525 [mem]) with AB - Vega = 0.91 (J) and 1.85 (K) (Blanton & Roweis 2007,
-#: AJ 133, 734 [mem]): -0.04.
-J_MINUS_K_AB = -0.04
 #: Bounds used to pre-select rest-K draws (mag): every template has M_UV - M_J >= -2.21
 #: (bluest beta -3.2, beta_opt -2.8, break >= 1: 2.5 log10 of (380/150)^-1.2 (1200/380)^-0.8)
 #: and no band brighter than rest J by more than those 2.21 mag plus the strongest lines
