@@ -212,6 +212,9 @@ class PopulationConfig:
     #: brighter than every galaxy (e.g. 0) leaves all galaxies one Sersic profile
     bulge_mag_max: float = 27.0
     placement: str = "clustered"  #: clustered | uniform positions of the field galaxies
+    #: write population.png: counts against published counts and colours
+    #: (simfield.population.figure)
+    figure: bool = False
 
 
 # --------------------------------------------------------------------------------------------

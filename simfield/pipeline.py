@@ -157,6 +157,11 @@ def _run_scenario(sc: Scenario, out_dir: str | Path, progress: bool, engine) -> 
                 members = _stack_sources(members, _icl_source(sc.lens, members, bands))
             sources = _stack_sources(sources, members)
         sources["id"] = np.arange(1, len(sources) + 1)
+        if sc.population.figure:
+            from .population.figure import write_population_figure
+
+            files.append(write_population_figure(out / "population.png", sources, bands,
+                                                 4 * hx * hy, sc.seed))
 
     with timer("lensing"):
         images, mag_total, n_images = _truth_images(sources, lens, sc, hx, hy)

@@ -276,8 +276,9 @@ def test_dusty_galaxies_are_redder_than_dust_free_ones(big):
 
 def test_seeded_reproducibility():
     """The same stream gives an identical table; another seed a different one."""
+    # 50 of each kind per arcmin^2: every kind present in the 0.44 arcmin^2 (P(none) ~ 1e-10)
     kw = dict(mag_limit=26.0, dwarf_density_arcmin2=50.0, dusty_density_arcmin2=50.0,
-              quiescent_density_arcmin2=50.0)
+              quiescent_density_arcmin2=50.0, star_density_arcmin2=50.0)
     a = make_population(_pop(**kw), BANDS, (-20, 20), (-20, 20), stream(5, "population"))
     b = make_population(_pop(**kw), BANDS, (-20, 20), (-20, 20), stream(5, "population"))
     c = make_population(_pop(**kw), BANDS, (-20, 20), (-20, 20), stream(6, "population"))

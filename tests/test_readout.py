@@ -106,7 +106,8 @@ def test_persistence_ghosts_of_earlier_bright_stars_are_scored(tmp_path):
     """A run with persistence on: where a bright star fell on the detector in the first
     exposure, the second exposure (same detector pixels, 3" further along the dither) shows a
     ghost in the mosaic, the truth's ARTEFACT map marks it (ARTPERSI), and the scorer names
-    the false detections there 'persistence'. Release law: sum of exponentials (module
+    the false detections there 'persistence'. Ghosts are checked on empty sky only (the
+    stars' places change with the galaxy draws that precede them). Release law: sum of exponentials (module
     docstring; demo amplitudes)."""
     from astropy.io import fits
     from astropy.table import Table
@@ -138,6 +139,7 @@ def test_persistence_ghosts_of_earlier_bright_stars_are_scored(tmp_path):
         sig = 1 / np.sqrt(np.where(m["INVVAR"].data > 0, m["INVVAR"].data, np.inf))
         art = t["ARTEFACT"].data
         bit = t["ARTEFACT"].header["ARTPERSI"]
+        scene = t["IMAGE"].data
     seen = 0
     for s in stars:
         # the star's detector pixel in exposure 0, seen on the sky in exposure 1
@@ -148,6 +150,12 @@ def test_persistence_ghosts_of_earlier_bright_stars_are_scored(tmp_path):
         if not (2 <= mx < diff.shape[1] - 2 and 2 <= my < diff.shape[0] - 2):
             continue
         box = (slice(my - 1, my + 2), slice(mx - 1, mx + 2))
+        if scene[box].sum() > 1.0:
+            # the ghost falls on another source's light (e-/s over the box; the ghosts here
+            # carry ~0.4): there the mosaic departs from the noiseless scene by a few per cent
+            # to tens of per cent of that light (saturated cores, the detector pixel and the
+            # drizzle drop blur the mosaic, not the scene), more than the ghost
+            continue
         seen += 1
         assert (art[box] & bit).any()
         assert diff[box].sum() > 5 * np.sqrt((sig[box] ** 2).sum())

@@ -1,12 +1,23 @@
 """The truth table of all sources of a field: light-cone galaxies, stars and contaminants.
 
-``make_population`` draws, in this order from one generator: galaxies (redshift and rest-UV
-magnitude from :mod:`.luminosity`, or the uniform injection mode), their templates, emission
+``make_population`` draws, in this order from one generator: galaxies (redshift and magnitude
+from :mod:`.luminosity`, or the uniform injection mode), their templates, emission
 lines and spectra (:mod:`.seds`, :mod:`.lines`), their shapes (:mod:`.morphology`), the stars
 (:mod:`.stars`), positions uniform over the given tangent-plane ranges; then the contaminant
 families, each with its positions: dusty and quiescent galaxies (:mod:`.contaminants`) and
 cool dwarfs (:mod:`.dwarfs`). The families come last, so they leave the light cone's draws
 unchanged.
+
+Light-cone galaxies come from two published luminosity functions, each galaxy once:
+
+- below z = 2, (z, M_K) from the rest-K function (Cirasuolo et al. 2010), with templates and
+  M_UV from :mod:`.restk`;
+- at z = 2-4, the quiescent galaxies of the rest-K function (:func:`.restk.quiescent_fraction`
+  of it), all with the evolved template;
+- at every z, (z, M_UV) from the rest-UV function, thinned below z = 2 by
+  :func:`.restk.uv_excess_fraction` to the star-forming galaxies the rest-K function does not
+  already hold (its faint end, where the rest-K fit is extrapolated); evolved templates
+  (:func:`.seds.evolved_probability`) only from z = 4 on.
 
 Only galaxies whose apparent magnitude in the selection band could pass ``mag_limit`` are drawn:
 for every redshift the brightest selection-band colour each template can have (its parameters at
@@ -35,9 +46,12 @@ from .components import add_components
 from .contaminants import draw_dusty, draw_quiescent
 from .dwarfs import draw_dwarfs, dwarf_band_magnitudes
 from .lines import LineParameters, draw_halpha_ew
-from .luminosity import draw_redshift_magnitude, expected_counts, uv_lf_parameters
+from .luminosity import (draw_redshift_magnitude, expected_counts, nir_lf_parameters,
+                         uv_lf_parameters)
 from .morphology import Morphology, draw_morphology
-from .seds import (BETA_SCATTER, evolved_probability, rest_fnu_shape,
+from .restk import (NIR_LF_Z_MAX, QUIESCENT_Z_MAX, abs_mag_k_faint, faint_k_cut,
+                    quiescent_fraction, uv_excess_fraction, uv_from_k)
+from .seds import (BETA_SCATTER, SEDParameters, evolved_probability, rest_fnu_shape,
                    sed_parameters_from_deviates, uv_slope_relation)
 from .stars import draw_stars, star_band_magnitudes
 
@@ -137,12 +151,19 @@ def _lf_weight(pop, phot):
     env = _Envelope(phot, pop.z_min, pop.z_max, pop.mag_limit)
 
     def weight(z, m):
-        ms = uv_lf_parameters(z).m_star
-        p = evolved_probability(z, m, ms)
+        p = _uv_evolved_probability(z, m)
         ok_sf, ok_ev = env.passes(z, m)
-        return (1.0 - p) * ok_sf + p * ok_ev
+        return ((1.0 - p) * ok_sf + p * ok_ev) * uv_excess_fraction(z, m)
 
     return env, weight
+
+
+def _uv_evolved_probability(z, m):
+    """:func:`evolved_probability` above :data:`.restk.QUIESCENT_Z_MAX`; 0 below, where the
+    evolved galaxies come from the rest-K function."""
+    z = np.asarray(z, dtype=float)
+    return np.where(z >= QUIESCENT_Z_MAX, evolved_probability(z, m, uv_lf_parameters(z).m_star),
+                    0.0)
 
 
 def expected_galaxies(pop: PopulationConfig, bands: list[Band], area_arcsec2: float,
@@ -163,23 +184,108 @@ def expected_galaxies(pop: PopulationConfig, bands: list[Band], area_arcsec2: fl
         return pop.uniform_density_arcmin2 * area_arcsec2 / 3600.0
     cosmo = cosmo or default_cosmology()
     phot = _photometry(pop, bands, selection_band_index(pop, bands), cosmo)
+    n = 0.0
+    for rng_z, w in ((_nir_range(pop), None), (_quiescent_range(pop), quiescent_fraction)):
+        if rng_z:
+            n += expected_counts(*rng_z, abs_mag_k_faint(pop.abs_mag_faint), area_arcsec2,
+                                 mag_cut=_k_cut(pop, phot), cosmo=cosmo, lf=nir_lf_parameters,
+                                 weight=w)
     _, weight = _lf_weight(pop, phot)
-    return expected_counts(pop.z_min, pop.z_max, pop.abs_mag_faint, area_arcsec2, cosmo=cosmo,
-                           weight=weight)
+    n += expected_counts(*_uv_range(pop), pop.abs_mag_faint, area_arcsec2, cosmo=cosmo,
+                         weight=weight)
+    return n
 
 
-def _galaxies_from_lf(pop, phot, area, rng, cosmo):
-    env, weight = _lf_weight(pop, phot)
+def _nir_range(pop):
+    """(z_lo, z_hi) drawn from the rest-K function, None if none of the range."""
+    return (pop.z_min, min(pop.z_max, NIR_LF_Z_MAX)) if pop.z_min < NIR_LF_Z_MAX else None
+
+
+def _quiescent_range(pop):
+    """(z_lo, z_hi) of the quiescent rest-K draws, None if none of the range."""
+    lo, hi = max(pop.z_min, NIR_LF_Z_MAX), min(pop.z_max, QUIESCENT_Z_MAX)
+    return (lo, hi) if lo < hi else None
+
+
+def _uv_range(pop):
+    """(z_lo, z_hi) drawn from the rest-UV function: the whole range (thinned below
+    :data:`.restk.NIR_LF_Z_MAX` by :func:`.restk.uv_excess_fraction`)."""
+    return pop.z_min, pop.z_max
+
+
+def _draw(pop, *args, budget=None, **kw):
+    """draw_redshift_magnitude refusing more than ``budget`` (default ``max_sources``)."""
     try:
-        draw = draw_redshift_magnitude(pop.z_min, pop.z_max, pop.abs_mag_faint, area, rng,
-                                       weight=weight, cosmo=cosmo,
-                                       max_expected=pop.max_sources)
+        return draw_redshift_magnitude(*args, max_expected=pop.max_sources if budget is None
+                                       else budget, **kw)
     except OverflowError as exc:
         raise ConfigError("population.max_sources", pop.max_sources,
                           f"is too small: {exc}; raise it or lower population.mag_limit / "
                           "population.abs_mag_faint") from None
+
+
+def _k_cut(pop, phot):
+    return faint_k_cut(pop.mag_limit, pop.abs_mag_faint, phot.dist)
+
+
+def _galaxies_from_nir_lf(pop, phot, area, rng, cosmo, z_lo, z_hi, quiescent_only=False,
+                          budget=None):
+    """Galaxies below :data:`.restk.NIR_LF_Z_MAX`: (z, M_K) from the rest-K function, the
+    template (evolved with :func:`.restk.quiescent_fraction`), M_UV (:func:`.restk.uv_from_k`),
+    then the exact cuts. ``quiescent_only``: the function thinned by the quiescent fraction,
+    all evolved (z = 2-4)."""
+    draw = _draw(pop, z_lo, z_hi, abs_mag_k_faint(pop.abs_mag_faint), area, rng,
+                 mag_cut=_k_cut(pop, phot), cosmo=cosmo, lf=nir_lf_parameters,
+                 weight=quiescent_fraction if quiescent_only else None, budget=budget)
+    z = draw.redshift
+    if quiescent_only:
+        evolved = np.ones(z.size, bool)
+    else:
+        evolved = rng.random(z.size) < quiescent_fraction(z, draw.abs_mag)
+    m, sed = uv_from_k(z, draw.abs_mag, evolved, rng.standard_normal((3, z.size)))
+    ew = _halpha_ew(phot, z, evolved, rng)
+    m_sel = phot.mags(z, m, sed.beta, sed.break_strength, sed.beta_opt, True,
+                      ew_halpha=ew)[:, 0]
+    keep = (m <= pop.abs_mag_faint) & (m_sel < pop.mag_limit)
+    return z[keep], m[keep], evolved[keep], _sed_subset(sed, keep), ew[keep], draw.expected
+
+
+def _sed_subset(sed, keep):
+    return SEDParameters(sed.template[keep], sed.beta[keep], sed.beta_opt[keep],
+                         sed.break_strength[keep])
+
+
+def _galaxies_from_lf(pop, phot, area, rng, cosmo):
+    """Light-cone galaxies: rest-K draws below :data:`.restk.NIR_LF_Z_MAX`, then rest-UV draws
+    (module docstring)."""
+    parts = []
+    if _nir_range(pop):
+        parts.append(_galaxies_from_nir_lf(pop, phot, area, rng, cosmo, *_nir_range(pop)))
+    # max_sources bounds the sum of the expectations
+    if _quiescent_range(pop):
+        budget = max(pop.max_sources - sum(p[5] for p in parts), 0.0)
+        parts.append(_galaxies_from_nir_lf(pop, phot, area, rng, cosmo, *_quiescent_range(pop),
+                                           quiescent_only=True, budget=budget))
+    budget = max(pop.max_sources - sum(p[5] for p in parts), 0.0)
+    parts.append(_galaxies_from_uv_lf(pop, phot, area, rng, cosmo, *_uv_range(pop), budget))
+    z, m, evolved = (np.concatenate([p[i] for p in parts]) for i in range(3))
+    sed = SEDParameters(*(np.concatenate([getattr(p[3], f) for p in parts])
+                          for f in ("template", "beta", "beta_opt", "break_strength")))
+    ew = np.concatenate([p[4] for p in parts])
+    expected = sum(p[5] for p in parts)
+    mags = phot.mags(z, m, sed.beta, sed.break_strength, sed.beta_opt, ew_halpha=ew)
+    return z, m, evolved, sed, np.ones(z.size, bool), mags, expected, ew
+
+
+def _galaxies_from_uv_lf(pop, phot, area, rng, cosmo, z_lo, z_hi, budget):
+    """Rest-UV galaxies: (z, M_UV) from the rest-UV function thinned by the envelope and
+    :func:`.restk.uv_excess_fraction`, the template (evolved only above
+    :data:`.restk.NIR_LF_Z_MAX`, with :func:`evolved_probability`), then the exact cut."""
+    env, weight = _lf_weight(pop, phot)
+    draw = _draw(pop, z_lo, z_hi, pop.abs_mag_faint, area, rng, weight=weight, cosmo=cosmo,
+                 budget=budget)
     z, m = draw.redshift, draw.abs_mag
-    p = evolved_probability(z, m, uv_lf_parameters(z).m_star)
+    p = _uv_evolved_probability(z, m)
     ok_sf, ok_ev = env.passes(z, m)
     w = (1.0 - p) * ok_sf + p * ok_ev
     p_ev = np.divide(p * ok_ev, w, out=np.zeros_like(w), where=w > 0)
@@ -189,10 +295,7 @@ def _galaxies_from_lf(pop, phot, area, rng, cosmo):
     m_sel = phot.mags(z, m, sed.beta, sed.break_strength, sed.beta_opt, True,
                       ew_halpha=ew)[:, 0]
     keep = (w > 0) & (m_sel < pop.mag_limit)
-    z, m = z[keep], m[keep]
-    mags = phot.mags(z, m, sed.beta[keep], sed.break_strength[keep], sed.beta_opt[keep],
-                     ew_halpha=ew[keep])
-    return z, m, evolved[keep], sed, keep, mags, draw.expected, ew[keep]
+    return z[keep], m[keep], evolved[keep], _sed_subset(sed, keep), ew[keep], draw.expected
 
 
 def _halpha_ew(phot, z, evolved, rng):

@@ -1,6 +1,6 @@
-"""Evolving rest-UV Schechter luminosity function and light-cone sampling of (z, M_UV).
+"""Evolving rest-UV and rest-K Schechter luminosity functions; light-cone sampling of (z, M).
 
-The luminosity function in absolute AB magnitude at rest 1500 A (Schechter 1976, ApJ 203, 297):
+The luminosity function in absolute AB magnitude (Schechter 1976, ApJ 203, 297):
 
     phi(M) dM = 0.4 ln10 phi* 10^(-0.4 (M - M*)(alpha + 1)) exp(-10^(-0.4 (M - M*))) dM
 
@@ -8,14 +8,32 @@ in Mpc^-3 mag^-1. With x = L/L* = 10^(-0.4 (M - M*)), the number density brighte
 phi* Gamma(alpha + 1, x), the upper incomplete gamma function (negative first argument allowed,
 see :func:`upper_incomplete_gamma`).
 
-Parameters versus redshift:
+Rest-UV (1500 A) parameters versus redshift (:func:`uv_lf_parameters`):
 
-- z >= 3.5: the evolution fit of Bouwens et al. 2015, ApJ 803, 34 (section 5.1):
+- z >= 4.5: the evolution fit of Bouwens et al. 2015, ApJ 803, 34 (section 5.1):
   M* = -20.95 + 0.01 (z - 6), phi* = 0.47e-3 10^(-0.27 (z - 6)) Mpc^-3,
   alpha = -1.87 - 0.10 (z - 6).
-- z < 3.5: linear interpolation in z of M*, log10 phi* and alpha between published fits
-  (:data:`LOW_Z_NODES`, values recalled [mem]) and the Bouwens et al. fit evaluated at z = 3.5;
-  held constant below the lowest node.
+- z < 4.5: linear interpolation in z of M*, log10 phi* and alpha between published fits
+  (:data:`LOW_Z_NODES`, values recalled [mem]) and the Bouwens et al. fit evaluated at z = 4.5;
+  held constant below the lowest node. At z ~ 2-4 the published faint-end slopes disagree:
+  alpha ~ -1.7 at z ~ 2-3 (Reddy & Steidel 2009, ApJ 692, 778; Alavi et al. 2016, ApJ 832, 56
+  [mem]) and -1.64 at z ~ 4 (Bouwens et al. 2015) against alpha = -1.32 +- 0.03 at z ~ 2-3
+  and -1.43 +- 0.04 at z ~ 4 (Parsa et al. 2016, MNRAS 456, 3194, abstract). The nodes at
+  z = 2.0, 2.8 and 3.8 take Parsa et al.'s fits: one analysis across z = 2-4 (photometric
+  redshifts over nested ultra-deep, deep and wide fields), reaching M_1500 = -14.5 to -16,
+  3-4 mag fainter than the colour-selected samples of the steeper fits.
+
+Rest-K (2.2 um) parameters (:func:`nir_lf_parameters`), used by the light cone below z = 2,
+where the near-infrared bands see rest-optical light and red, quiescent galaxies missing from
+a UV-selected function dominate the bright end: the evolution fit of Cirasuolo et al. 2010,
+MNRAS 401, 1166 (maximum likelihood over 0 < z < 4, AB, H0 = 70) [mem]:
+
+    M*_K(z) = -22.26 - (z / 1.78)^0.47,  phi*(z) = 3.5e-3 exp(-(z / 1.70)^1.47) Mpc^-3,
+    alpha = -1.07 (fixed at the local value).
+
+Its faint end is an extrapolation beyond the data at z > 0.5 (deeper data give alpha ~ -1.3
+to -1.5, Mortlock et al. 2017, MNRAS 465, 672); the light cone takes the faint star-forming
+galaxies from the rest-UV function there (see :mod:`.lightcone`).
 
 Distances and volumes come from :mod:`simfield.cosmo` (flat LambdaCDM, H0 = 70, Omega_m = 0.3,
 the cosmology of the fits). Magnitudes in AB mag, densities in Mpc^-3, solid angles in arcsec^2.
@@ -36,6 +54,7 @@ __all__ = [
     "HIGH_Z_START",
     "SchechterParameters",
     "uv_lf_parameters",
+    "nir_lf_parameters",
     "schechter_phi",
     "upper_incomplete_gamma",
     "schechter_number_brighter",
@@ -46,19 +65,22 @@ __all__ = [
     "draw_redshift_magnitude",
 ]
 
-#: (z, M*, phi* [Mpc^-3], alpha) of published rest-UV Schechter fits used below z = 3.5 [mem]:
+#: (z, M*, phi* [Mpc^-3], alpha) of published rest-UV Schechter fits used below z = 4.5 [mem]:
 #: z = 0.055 Wyder et al. 2005, ApJ 619, L15 (1530 A, local); z = 1.0 a rounded compromise of
 #: Arnouts et al. 2005, ApJ 619, L43 and Oesch et al. 2010, ApJ 725, L150 [mem, approximate];
-#: z = 2.3 and 3.05 Reddy & Steidel 2009, ApJ 692, 778 (table 3).
+#: z = 2.0, 2.8 and 3.8 Parsa et al. 2016, MNRAS 456, 3194 (alpha -1.32, -1.32, -1.43 from
+#: the abstract; M*, phi* [mem]).
 LOW_Z_NODES = (
     (0.055, -18.04, 4.07e-3, -1.22),
     (1.0, -19.60, 3.0e-3, -1.50),
-    (2.3, -20.70, 2.75e-3, -1.73),
-    (3.05, -20.97, 1.71e-3, -1.73),
+    (2.0, -19.99, 6.2e-3, -1.32),
+    (2.8, -20.20, 4.3e-3, -1.32),
+    (3.8, -20.71, 2.3e-3, -1.43),
 )
 #: Redshift from which the Bouwens et al. 2015 evolution fit is used as published.
-HIGH_Z_START = 3.5
+HIGH_Z_START = 4.5
 
+_NIR_ALPHA = -1.07  # Cirasuolo et al. 2010 (fixed over z in their fit) [mem]
 _LN10_04 = 0.4 * np.log(10.0)  # dM -> dL/L: |d ln L / dM| = 0.4 ln 10
 
 
@@ -113,6 +135,26 @@ def uv_lf_parameters(z) -> SchechterParameters:
         phi_star=np.where(hi, ps_hi, 10.0**lps_lo),
         alpha=np.where(hi, al_hi, al_lo),
     )
+
+
+def nir_lf_parameters(z) -> SchechterParameters:
+    """Rest-frame K-band (2.2 um) Schechter parameters at redshift ``z``: the evolution fit of
+    Cirasuolo et al. 2010, MNRAS 401, 1166 [mem] (module docstring).
+
+    Parameters
+    ----------
+    z : float or array_like
+        Redshift (>= 0).
+
+    Returns
+    -------
+    SchechterParameters
+        M*_K (AB mag), phi* (Mpc^-3), alpha, each with the shape of ``z``.
+    """
+    z = np.maximum(np.asarray(z, dtype=float), 0.0)
+    return SchechterParameters(m_star=-22.26 - (z / 1.78) ** 0.47,
+                               phi_star=3.5e-3 * np.exp(-((z / 1.70) ** 1.47)),
+                               alpha=np.full(z.shape, _NIR_ALPHA))
 
 
 def schechter_phi(abs_mag, m_star, phi_star, alpha):
@@ -223,11 +265,12 @@ class LightConeDraw:
     expected: float
 
 
-def _grid(z_min, z_max, abs_mag_faint, area_arcsec2, mag_cut, cosmo, nz, dmag, weight=None):
+def _grid(z_min, z_max, abs_mag_faint, area_arcsec2, mag_cut, cosmo, nz, dmag, weight=None,
+          lf=uv_lf_parameters):
     # cells uniform in ln(1 + z): narrow at low z where dV/dz changes fastest
     z_edges = np.expm1(np.linspace(np.log1p(z_min), np.log1p(z_max), nz + 1))
     z_mid = 0.5 * (z_edges[1:] + z_edges[:-1])
-    p = uv_lf_parameters(z_mid)
+    p = lf(z_mid)
     m_faint = np.full(nz, float(abs_mag_faint))
     if mag_cut is not None:
         # most permissive cut over each cell (the cut need not be monotonic in z)
@@ -252,7 +295,8 @@ def _grid(z_min, z_max, abs_mag_faint, area_arcsec2, mag_cut, cosmo, nz, dmag, w
 
 def expected_counts(z_min: float, z_max: float, abs_mag_faint: float, area_arcsec2: float,
                     mag_cut: Optional[Callable] = None, cosmo=None, nz: int = 300,
-                    dmag: float = 0.04, weight: Optional[Callable] = None) -> float:
+                    dmag: float = 0.04, weight: Optional[Callable] = None,
+                    lf: Callable = uv_lf_parameters) -> float:
     """Expected number of galaxies, int dz dV/dz/dOmega Omega int dM phi(M, z).
 
     Parameters
@@ -273,9 +317,12 @@ def expected_counts(z_min: float, z_max: float, abs_mag_faint: float, area_arcse
     weight : callable, optional
         ``weight(z, M) -> [0, 1]``: fraction of the galaxies at (z, M) to count (evaluated at
         cell centres, e.g. the fraction whose apparent magnitude could pass a limit).
+    lf : callable
+        ``lf(z) -> SchechterParameters`` of the magnitudes counted (default the rest-UV
+        function, :func:`uv_lf_parameters`; :func:`nir_lf_parameters` for rest-K).
     """
     _, _, cum, dvol = _grid(z_min, z_max, abs_mag_faint, area_arcsec2, mag_cut, cosmo, nz, dmag,
-                            weight)
+                            weight, lf)
     return float(np.sum(cum[:, -1] * dvol))
 
 
@@ -283,7 +330,8 @@ def draw_redshift_magnitude(z_min: float, z_max: float, abs_mag_faint: float,
                             area_arcsec2: float, rng: np.random.Generator,
                             mag_cut: Optional[Callable] = None, cosmo=None, nz: int = 300,
                             dmag: float = 0.04, weight: Optional[Callable] = None,
-                            max_expected: float = np.inf) -> LightConeDraw:
+                            max_expected: float = np.inf,
+                            lf: Callable = uv_lf_parameters) -> LightConeDraw:
     """Draw (z, M_UV) of the galaxies of a light cone.
 
     The total is Poisson with the mean of :func:`expected_counts`. Each galaxy's redshift cell
@@ -314,9 +362,12 @@ def draw_redshift_magnitude(z_min: float, z_max: float, abs_mag_faint: float,
         variation of ``weight``).
     max_expected : float
         Raise ``OverflowError`` (before drawing) if more galaxies than this are expected.
+    lf : callable
+        ``lf(z) -> SchechterParameters`` (as in :func:`expected_counts`); the drawn magnitudes
+        are in its band.
     """
     z_edges, m_nodes, cum, dvol = _grid(z_min, z_max, abs_mag_faint, area_arcsec2, mag_cut,
-                                        cosmo, nz, dmag, weight)
+                                        cosmo, nz, dmag, weight, lf)
     cell_n = cum[:, -1] * dvol
     expected = float(cell_n.sum())
     if expected > max_expected:

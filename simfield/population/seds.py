@@ -4,13 +4,17 @@ Rest-frame continuum in f_lambda (wavelengths lambda in nm, rest frame):
 
     lambda <= 380 nm        f_lambda ~ lambda^beta              (rest-UV slope beta)
     380 < lambda <= 1200 nm  f_lambda ~ lambda^beta_opt          (rest-optical slope)
-    lambda > 1200 nm         f_lambda ~ lambda^-2.8              (near-infrared fall-off)
+    1200 < lambda <= 2200 nm f_lambda ~ lambda^-2.06             (near infrared, J to K)
+    lambda > 2200 nm         f_lambda ~ lambda^-3.42             (beyond K)
 
 multiplied by a smooth step of height ``break_strength`` centred at 380 nm (the Balmer/4000 A
 break: ratio of the flux density just redward to just blueward, logistic in ln lambda with
 10-90 % width ~0.1 in ln lambda) and by ``lyc_escape`` below the Lyman limit (91.18 nm; ionising
 photons are mostly absorbed inside the galaxy). The three slopes and the break are a project
 template (common practice for broad-band colours), not a stellar-population synthesis.
+The two near-infrared slopes give the rest-frame AB colours of galaxies, which differ little
+between types there (light of cool giants): J - K = :data:`J_MINUS_K_AB` (f_nu nearly flat)
+and K - 3.6 um = :data:`K_MINUS_3P6_AB` (the Rayleigh-Jeans-like fall beyond K).
 
 Two template families (:func:`draw_sed_parameters`): star-forming galaxies with the
 UV-slope relation of Bouwens et al. 2014, ApJ 793, 115 (table 3, [mem]) and a weak break, and
@@ -39,6 +43,8 @@ __all__ = [
     "LYMAN_SERIES_NM",
     "MADAU_COEFFICIENTS",
     "LYMAN_LIMIT_NM",
+    "J_MINUS_K_AB",
+    "K_MINUS_3P6_AB",
     "SEDParameters",
     "igm_transmission",
     "rest_fnu_shape",
@@ -64,7 +70,18 @@ LYMAN_LIMIT_NM = 91.18
 _UV_REF_NM = 150.0  # M_UV is defined at rest 1500 A
 _BREAK_NM = 380.0
 _NIR_KNEE_NM = 1200.0
-_NIR_SLOPE = -2.8
+_K_NM = 2200.0
+#: Rest-frame J - K of galaxies in AB (mag): ~0.9 in Vega (local galaxies, e.g. Jarrett et al.
+#: 2003, AJ 125, 525 [from memory]) with AB - Vega = 0.91 (J) and 1.85 (K) (Blanton & Roweis
+#: 2007, AJ 133, 734 [from memory]): -0.04.
+J_MINUS_K_AB = -0.04
+#: Rest-frame K - 3.6 um of galaxies in AB (mag): ~0.2 in Vega [from memory] with AB - Vega =
+#: 1.85 (K) and 2.79 at 3.6 um (Vega 281 Jy [from memory]): -0.74.
+K_MINUS_3P6_AB = -0.74
+# f_lambda slopes: m_a - m_b = 2.5 (slope + 2) log10(lambda_b / lambda_a) (f_nu = f_lambda
+# lambda^2 / c); -2.06 from 1200 to 2200 nm, -3.42 beyond
+_NIR_SLOPE = -2.0 + J_MINUS_K_AB / (2.5 * np.log10(_K_NM / _NIR_KNEE_NM))
+_FIR_SLOPE = -2.0 + K_MINUS_3P6_AB / (2.5 * np.log10(3550.0 / _K_NM))
 # logistic width in ln(lambda): 10-90 % rise over 2 ln 9 w = 4.39 w ~ 0.1
 _BREAK_WIDTH = 0.023
 
@@ -144,14 +161,16 @@ def _ln_rest_fnu_shape(lnl, beta, break_strength, beta_opt, lyc_escape):
     beta = np.asarray(beta, dtype=float)
     beta_opt = np.asarray(beta_opt, dtype=float)
     ln_ref, ln_b, ln_k = np.log(_UV_REF_NM), np.log(_BREAK_NM), np.log(_NIR_KNEE_NM)
+    ln_kk = np.log(_K_NM)
     # ln f_lambda relative to 150 nm; the segments join continuously
     u = np.minimum(lnl, ln_b) - ln_ref
     o = np.clip(lnl, ln_b, ln_k) - ln_b
-    r = np.maximum(lnl, ln_k) - ln_k
+    r = np.clip(lnl, ln_k, ln_kk) - ln_k
+    f = np.maximum(lnl, ln_kk) - ln_kk
     step = 1.0 / (1.0 + np.exp(-(lnl - ln_b) / _BREAK_WIDTH))
     # 2 (lnl - ln_ref): f_nu = f_lambda lambda^2 / c; the step is ~1e-40 at 150 nm
     ln_fnu = (beta + 2.0) * u + (beta_opt + 2.0) * o + (_NIR_SLOPE + 2.0) * r \
-        + np.log(np.asarray(break_strength, dtype=float)) * step
+        + (_FIR_SLOPE + 2.0) * f + np.log(np.asarray(break_strength, dtype=float)) * step
     with np.errstate(divide="ignore"):
         ln_lyc = np.log(lyc_escape)
     return np.where(lnl < np.log(LYMAN_LIMIT_NM), ln_fnu + ln_lyc, ln_fnu)
