@@ -79,7 +79,7 @@ def split_counts(table, band: str, area_arcsec2: float, edges):
 def main(argv=None) -> int:
     """Command line: the figure of the scenario's counts against the reference."""
     from .. import cli
-    from ..pipeline import make_bands
+    from ..bands import make_bands
     from ..random import stream
     from .lightcone import make_population
 
