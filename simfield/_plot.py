@@ -88,6 +88,7 @@ def png_bytes(fig, dpi: int = 90) -> bytes:
     The count labels (``gid="count"``) sit beside their points inside the axes, so they are
     left out of the layout: measuring every one of them cost as much as drawing the figure.
     No ``bbox_inches="tight"``: it draws the whole figure a second time only to crop it.
+    ``dpi`` in dots per inch.
     """
     import io
 
@@ -96,6 +97,9 @@ def png_bytes(fig, dpi: int = 90) -> bytes:
             if t.get_gid() == "count":
                 t.set_in_layout(False)
     fig.tight_layout()
+    # tight_layout leaves a placeholder layout engine, and savefig draws a figure that has
+    # one twice (once to "lay it out"): the layout is done, so drop it
+    fig.set_layout_engine(None)
     buf = io.BytesIO()
     fig.savefig(buf, format="png", dpi=dpi)
     return buf.getvalue()
