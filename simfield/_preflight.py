@@ -177,6 +177,39 @@ _BASES: dict[tuple, tuple[object, bytes]] = {}
 _MAX_BASES = 64
 
 
+def _unknown_preset(hy, groups: list):
+    """The error Hydra's composition of ``groups`` raises when exactly one of them, a plain
+    ``group=name`` override, names a preset its group does not have; None when only composing
+    can tell. Hydra's composition would first load every preset file (~0.3 s); this asks the
+    same repository for the group's options (Hydra's message lists them)."""
+    import re
+
+    from hydra.core.object_type import ObjectType
+    from hydra.errors import MissingConfigException
+
+    if any(o.key_or_group == "hydra.searchpath" or o.key_or_group.startswith("hydra")
+           or o.is_add() or o.is_force_add() or o.is_delete() or o.is_sweep_override()
+           or o.package is not None for o in groups):
+        return None
+    repo = hy.config_loader.repository
+    unknown = []
+    for o in groups:
+        value = o.value()
+        if not isinstance(value, str) or not re.fullmatch(r"[A-Za-z0-9_-]+", value):
+            return None
+        options = repo.get_group_options(o.key_or_group, ObjectType.CONFIG)
+        if value not in options:
+            if not options:
+                return None
+            unknown.append((o, options))
+    if len(unknown) != 1:
+        return None
+    o, options = unknown[0]
+    path = f"{o.key_or_group}/{o.value()}"
+    return MissingConfigException(missing_cfg_file=path, options=options,
+                                  message=f"Could not find '{path}'")
+
+
 def _cached(hy, conf_dir: str, config_name: str, groups: list) -> tuple[object, bytes]:
     import pickle
 
@@ -184,6 +217,9 @@ def _cached(hy, conf_dir: str, config_name: str, groups: list) -> tuple[object, 
 
     key = (conf_dir, config_name, tuple(o.input_line for o in groups))
     if key not in _BASES:
+        missing = _unknown_preset(hy, groups)
+        if missing is not None:
+            raise missing
         if len(_BASES) >= _MAX_BASES:
             _BASES.clear()
         cfg = hy.compose_config(config_name, list(key[2]), run_mode=RunMode.MULTIRUN,
