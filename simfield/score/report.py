@@ -10,7 +10,6 @@ from __future__ import annotations
 
 import base64
 import html
-import io as _io
 from pathlib import Path
 
 import numpy as np

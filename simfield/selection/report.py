@@ -10,7 +10,6 @@ observed counts per M_UV bin. Images are embedded as base64 PNG.
 from __future__ import annotations
 
 import base64
-import io as _io
 from pathlib import Path
 
 import numpy as np
