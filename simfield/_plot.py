@@ -10,7 +10,7 @@ from __future__ import annotations
 import numpy as np
 
 __all__ = ["run_title", "count_labels", "scale_bar", "compass", "sky_directions",
-           "roll_directions"]
+           "roll_directions", "png_bytes"]
 
 
 def run_title(what: str, band: str | None = None, seed=None) -> str:
@@ -80,3 +80,26 @@ def compass(ax, north, east, size: float = 0.1, colour: str = "w", origin=(0.25,
         ax.annotate(lab, (origin[0] + 1.35 * size * v[0], origin[1] + 1.35 * size * v[1]),
                     xycoords="axes fraction", color=colour, fontsize=8, ha="center",
                     va="center", gid="compass", annotation_clip=False)
+
+
+def png_bytes(fig, dpi: int = 90) -> bytes:
+    """``fig`` laid out (``tight_layout``) and drawn once into PNG bytes.
+
+    The count labels (``gid="count"``) sit beside their points inside the axes, so they are
+    left out of the layout: measuring every one of them cost as much as drawing the figure.
+    No ``bbox_inches="tight"``: it draws the whole figure a second time only to crop it.
+    ``dpi`` in dots per inch.
+    """
+    import io
+
+    for ax in fig.axes:
+        for t in ax.texts:
+            if t.get_gid() == "count":
+                t.set_in_layout(False)
+    fig.tight_layout()
+    # tight_layout leaves a placeholder layout engine, and savefig draws a figure that has
+    # one twice (once to "lay it out"): the layout is done, so drop it
+    fig.set_layout_engine(None)
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=dpi)
+    return buf.getvalue()

@@ -10,6 +10,7 @@ times in s, areas in m^2.
 from __future__ import annotations
 
 import dataclasses
+import functools
 import math
 import hashlib
 import importlib.resources
@@ -1087,6 +1088,14 @@ def default_cache_dir() -> Path:
     return Path(base) / "simfield"
 
 
+@functools.lru_cache(maxsize=None)
+def _type_hints(cls) -> dict:
+    """``typing.get_type_hints`` of schema dataclass ``cls``, evaluated once (the annotations
+    are strings, ``from __future__ import annotations``; evaluating them anew for every key
+    cost ~1 s per scenario). Read it, do not change it."""
+    return typing.get_type_hints(cls)
+
+
 def schema_type(key: str) -> Any:
     """The schema's type of dotted ``key`` (list items by index), or None if it has none."""
     cls: Any = Scenario
@@ -1099,7 +1108,7 @@ def schema_type(key: str) -> Any:
             continue
         if not dataclasses.is_dataclass(cls):
             return None
-        cls = typing.get_type_hints(cls).get(part)
+        cls = _type_hints(cls).get(part)
         if cls is None:
             return None
     return cls
@@ -1152,7 +1161,7 @@ def _known_keys(parent: str) -> list[str]:
     for part in filter(None, parent.split(".")):
         if part.isdigit():  # list element: the list's item type was resolved already
             continue
-        hint = typing.get_type_hints(cls).get(part)
+        hint = _type_hints(cls).get(part)
         args = typing.get_args(hint)
         cls = args[0] if args else hint
         if not dataclasses.is_dataclass(cls):

@@ -181,7 +181,7 @@ def run(tmp_path_factory):
     # the perfect telescope: these checks are about errors and matching, not the wavefront
     sc = make_scenario("survey=quick", "survey.width_arcsec=24", "survey.height_arcsec=24",
                        "survey.n_exposures=4", "score.enabled=false", "telescope=lantern_ideal",
-                       "telescope.psf.spike_radius_arcsec=2.0")
+                       "telescope.psf.spike_radius_arcsec=2.0", "selection.report=false")
     sc.telescope.bands = [b for b in sc.telescope.bands if b.name in RUN_BANDS]
     res = run_scenario(sc, tmp / "run")
     return sc, res

@@ -16,12 +16,13 @@ from tests.conftest import make_scenario
 
 
 def small_scenario(tmp_path, *overrides):
-    """survey=quick shrunk to 10" with two bands and small PSFs (seconds to run)."""
+    """survey=quick shrunk to 10" with two bands and small PSFs (seconds to run); no report
+    pages (tests/test_report.py turns them on and checks them)."""
     sc = make_scenario("survey=quick", "survey.width_arcsec=10", "survey.height_arcsec=10",
                        "telescope.psf.spike_radius_arcsec=2.0",
                        "telescope.psf.core_radius_arcsec=1.0",
                        "population.star_density_arcmin2=400", "score.report=false",
-                       *overrides)
+                       "selection.report=false", *overrides)
     sc.telescope.bands = [b for b in sc.telescope.bands if b.name in ("b13", "b23")]
     return sc
 
@@ -135,10 +136,13 @@ def test_star_light_centred_on_truth_position(tmp_path):
 
 
 def test_same_seed_identical_other_seed_different(run, tmp_path):
-    """Same scenario and seed give byte-identical science arrays; another seed differs."""
+    """Same scenario and seed give byte-identical science arrays; another seed differs. The
+    reruns stop at the mosaics (the stages after them only read the mosaics, and each draws
+    from its own named streams)."""
     sc, res = run
-    again = run_scenario(small_scenario(tmp_path), tmp_path / "b")
-    other = run_scenario(small_scenario(tmp_path, "seed=2"), tmp_path / "c")
+    again = run_scenario(small_scenario(tmp_path, "detection.enabled=false"), tmp_path / "b")
+    other = run_scenario(small_scenario(tmp_path, "detection.enabled=false", "seed=2"),
+                         tmp_path / "c")
     a = fits.getdata(res.out_dir / "mosaic_b13.fits", "IMAGE")
     assert np.array_equal(a, fits.getdata(again.out_dir / "mosaic_b13.fits", "IMAGE"))
     assert not np.array_equal(a, fits.getdata(other.out_dir / "mosaic_b13.fits", "IMAGE"))
@@ -149,8 +153,10 @@ def test_lensed_run_lists_every_image_with_magnification(tmp_path):
     (Schneider, Ehlers & Falco 1992, eq. 5.26); lens maps are written."""
     from simfield.lensing import build_lens
 
+    # one exposure: the checks are of the truth tables and truth images, not of the mosaic
     sc = small_scenario(tmp_path, "lens=cluster", "survey.width_arcsec=24",
-                        "survey.height_arcsec=24", "detection.enabled=false")
+                        "survey.height_arcsec=24", "detection.enabled=false",
+                        "survey.n_exposures=1")
     res = run_scenario(sc, tmp_path / "lensed")
     for name in ("convergence.fits", "critical_curves.ecsv", "lens.png"):
         assert (res.out_dir / name).exists()
@@ -182,7 +188,8 @@ def test_lensed_run_lists_every_image_with_magnification(tmp_path):
     # (common practice: the result must not show how it was computed)
     tiled = run_scenario(small_scenario(tmp_path, "lens=cluster", "survey.width_arcsec=24",
                                         "survey.height_arcsec=24", "detection.enabled=false",
-                                        "survey.tile_pixels=150"), tmp_path / "lensed_tiled")
+                                        "survey.n_exposures=1", "survey.tile_pixels=150"),
+                           tmp_path / "lensed_tiled")
     for b in ("b13", "b23"):
         one = fits.getdata(res.out_dir / f"truth_image_{b}.fits", "IMAGE")
         many = fits.getdata(tiled.out_dir / f"truth_image_{b}.fits", "IMAGE")

@@ -24,11 +24,12 @@ from tests.conftest import make_scenario
 
 ROOT = Path(__file__).resolve().parent.parent
 
-# A field small enough for a few jobs in seconds: one band, 8 arcsec, no report.
+# A field small enough for a few jobs in seconds: one band, 8 arcsec, no detection (these tests
+# check seeds, mosaics, depths, completeness markers and collection, not the catalogues).
 TINY = [
     "survey=quick", "survey.width_arcsec=8", "survey.height_arcsec=8",
     "telescope.bands=[{name:b17,center_nm:1700,width_nm:380,throughput:0.4,sky_mjy_sr:0.18}]",
-    "selection=none",
+    "selection=none", "detection.enabled=false",
     "telescope.psf.n_wavelengths=3", "score.report=false", "telescope.field_psf.enabled=false",
     "telescope.drift.enabled=false",
 ]

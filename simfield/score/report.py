@@ -10,7 +10,6 @@ from __future__ import annotations
 
 import base64
 import html
-import io as _io
 from pathlib import Path
 
 import numpy as np
@@ -27,9 +26,9 @@ _CAUSE_COLOURS = {"artefact": "#7f7f7f", "persistence": "#8c564b", "spike": "#d6
 def _save(fig, path: Path) -> str:
     from ..io import atomic_path
 
-    buf = _io.BytesIO()
-    fig.savefig(buf, format="png", dpi=90, bbox_inches="tight")
-    data = buf.getvalue()
+    from .._plot import png_bytes
+
+    data = png_bytes(fig, dpi=90)
     with atomic_path(path) as tmp:
         tmp.write_bytes(data)
     import matplotlib.pyplot as plt
@@ -239,7 +238,6 @@ def make_report(out_dir, truth: dict, det, tables: dict, fits_: dict, summary: d
             bar = float(f"{r / 2:.0g}")
             scale_bar(ax, bar, f"{bar:g}\"" if sc else f"{bar:g} pix")
             compass(ax, north, east, size=0.15)
-        fig.tight_layout()
         figs.append(("PSFs", _save(fig, out / "psf.png"),
                      "Wide PSF of each band on the mosaic's axes, log10 of PSF / peak from 1e-7 "
                      "(black) to 1 (white); arrows: north and east."))
@@ -290,7 +288,6 @@ def make_report(out_dir, truth: dict, det, tables: dict, fits_: dict, summary: d
     ap.yaxis.set_tick_params(labelleft=True)
     ac.legend(fontsize=7, loc="lower left")
     ap.legend(fontsize=7, loc="lower right")
-    fig.tight_layout()
     figs.append(("Completeness and purity", _save(fig, out / "completeness_purity.png"),
                  "Left: fraction of the truth galaxies recovered, per bin of true observed "
                  "magnitude; right: fraction of the detections matched to a truth image, per bin "
@@ -315,7 +312,6 @@ def make_report(out_dir, truth: dict, det, tables: dict, fits_: dict, summary: d
             ax.set_xscale("log")
         ax.set(xlabel=lab, ylabel="completeness (fraction)", ylim=(-0.02, 1.12),
                title=run_title(f"against {what}", band, seed))
-    fig.tight_layout()
     figs.append(("Completeness against size, redshift and magnification",
                  _save(fig, out / "completeness_other.png"),
                  "Fraction of the truth galaxies recovered per bin, all magnitudes together; "
@@ -391,7 +387,6 @@ def make_report(out_dir, truth: dict, det, tables: dict, fits_: dict, summary: d
                 scale_bar(ax, 1.0, '1"')
                 compass(ax, north, east, size=0.15)
         fig.suptitle(run_title("false detections", band, seed), fontsize=9)
-        fig.tight_layout()
         figs.append(("Examples of false detections", _save(fig, out / "false_examples.png"),
                      "Up to four per cause: 3\" cut-outs of the mosaic (asinh stretch, padded "
                      "with the median at the mosaic's edges so every cut-out has one size), the "

@@ -10,7 +10,6 @@ observed counts per M_UV bin. Images are embedded as base64 PNG.
 from __future__ import annotations
 
 import base64
-import io as _io
 from pathlib import Path
 
 import numpy as np
@@ -27,12 +26,13 @@ def _save(fig, path: Path) -> str:
     from ..io import atomic_path
     import matplotlib.pyplot as plt
 
-    buf = _io.BytesIO()
-    fig.savefig(buf, format="png", dpi=90, bbox_inches="tight")
+    from .._plot import png_bytes
+
+    data = png_bytes(fig, dpi=90)
     plt.close(fig)
     with atomic_path(path) as tmp:
-        tmp.write_bytes(buf.getvalue())
-    return base64.b64encode(buf.getvalue()).decode("ascii")
+        tmp.write_bytes(data)
+    return base64.b64encode(data).decode("ascii")
 
 
 def _colour_axes(sample):
