@@ -32,9 +32,10 @@ from .grid import Grid
 from ._products import (SEGMENTATION_NSIGMA, artefact_map, image_files,
                         noise_correlations, write_lens_maps, write_psf, write_truth)
 from .io import COMPLETE_MARKER, Provenance, write_json, write_table, write_text
-from .fieldconv import add_bright_field, convolve_modes, field_axes
+from .fieldconv import add_bright_field, field_axes
 from .random import stream
-from .scene import (Stamp, accumulate, add_bright, convolve_tiled, dominant_source,
+from .scene import (Stamp, accumulate, add_bright, convolve_tiled, convolve_weighted,
+                    dominant_source,
                     STAMP_HALF_MAX, draw_source_stamp, draw_window, point_stamp,
                     stamp_half_size)
 
@@ -445,17 +446,23 @@ def _render_tile(ctx: _TileContext, i: int) -> dict:
             acc = accumulate(stamps, rate, (acc_box[1] - acc_box[0], acc_box[3] - acc_box[2]),
                              select=~brt, origin=(acc_box[0], acc_box[2]), bulge_fraction=bt)
             fm = (ctx.field_psfs or {}).get(b.name)
-            if fm is None:
-                conv = convolve_tiled(acc, core)
-            else:  # each source pixel spread by the PSF of its field position
-                u, v = field_axes(sgrid, acc_box)
-                conv = convolve_modes(acc, fm.mean, fm.modes, fm.weight_maps(u, v))
-            # wavefront drift: the light convolved with each eigen-PSF of the exposures' changes
+            # wavefront drift: the light convolved with each eigen-PSF of the exposures'
+            # changes, from the same forward transforms as the scene's own convolution
             dr = (ctx.drift or {}).get(b.name)
-            dscene = [] if dr is None else [np.ascontiguousarray(convolve_tiled(acc, m)[
-                sy0 - acc_box[0]:sy1 - acc_box[0], sx0 - acc_box[2]:sx1 - acc_box[2]])
-                for m in dr.modes.astype(np.float32)]
-            del acc
+            dmodes = [] if dr is None else list(dr.modes.astype(np.float32))
+            mean, modes, weights = core, (), ()
+            if fm is not None:  # each source pixel spread by the PSF of its field position
+                u, v = field_axes(sgrid, acc_box)
+                mean, modes, weights = fm.mean, fm.modes, fm.weight_maps(u, v)
+            if dmodes and all(m.shape == mean.shape for m in dmodes):
+                conv, dconv = convolve_weighted(acc, mean, modes, weights, also=dmodes)
+            else:
+                conv = convolve_weighted(acc, mean, modes, weights)
+                dconv = [convolve_tiled(acc, m) for m in dmodes]
+            dscene = [np.ascontiguousarray(d[sy0 - acc_box[0]:sy1 - acc_box[0],
+                                             sx0 - acc_box[2]:sx1 - acc_box[2]])
+                      for d in dconv]
+            del acc, dconv
             scene = np.ascontiguousarray(conv[sy0 - acc_box[0]:sy1 - acc_box[0],
                                               sx0 - acc_box[2]:sx1 - acc_box[2]])
             del conv

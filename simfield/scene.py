@@ -366,14 +366,21 @@ def convolve_tiled(image: np.ndarray, kernel: np.ndarray, tile: int = 2048,
 
 def convolve_weighted(image: np.ndarray, kernel: np.ndarray, modes: Sequence[np.ndarray],
                       weights: Sequence[np.ndarray], tile: int = 2048,
-                      workers: int = -1) -> np.ndarray:
+                      workers: int = -1, also: Sequence[np.ndarray] = ()):
     """``image (x) kernel + sum_k (image * weights[k]) (x) modes[k]`` (``mode='same'``) by the
     overlap-add of :func:`convolve_tiled`; the ``K + 1`` products of a tile are summed in the
     frequency domain and transformed back once. ``modes`` have the kernel's odd shape,
-    ``weights`` the image's (dimensionless). With no modes this is :func:`convolve_tiled`."""
+    ``weights`` the image's (dimensionless). With no modes this is :func:`convolve_tiled`.
+
+    ``also``: more kernels of the same shape, each convolved with the unweighted image from
+    the same forward transform of each tile (one inverse transform each, no forward); then
+    the result is ``(convolution, [image (x) also[j] for each j])``, each equal to
+    :func:`convolve_tiled` of the image with that kernel."""
     ky, kx = kernel.shape
     if ky % 2 == 0 or kx % 2 == 0:
         raise ValueError(f"kernel must have odd dimensions, got {kernel.shape}")
+    if any(k.shape != kernel.shape for k in also):
+        raise ValueError(f"kernels in also must have the kernel's shape {kernel.shape}")
     hy, hx = ky // 2, kx // 2
     ny, nx = image.shape
     ty, fy = _tiling(ny, ky, tile)
@@ -382,29 +389,41 @@ def convolve_weighted(image: np.ndarray, kernel: np.ndarray, modes: Sequence[np.
     # image's peak, far below any noise the scene will get
     real = np.float32 if image.dtype == np.float32 else np.float64
     kfs = [_kernel_transform(k, real, (fy, fx), workers) for k in (kernel, *modes)]
+    afs = [_kernel_transform(k, real, (fy, fx), workers) for k in also]
     out = np.zeros((ny, nx), dtype=image.dtype)
+    outs = [np.zeros((ny, nx), dtype=image.dtype) for _ in also]
     for y0 in range(0, ny, ty):
         for x0 in range(0, nx, tx):
             t = image[y0:y0 + ty, x0:x0 + tx]
             if not t.any():
                 continue
-            spec = sfft.rfft2(t, s=(fy, fx), workers=workers)
+            plain = sfft.rfft2(t, s=(fy, fx), workers=workers)
+            h, w = t.shape
+            for af, o in zip(afs, outs):
+                _add_back(plain * af, o, y0, x0, h, w, hy, hx, fx, workers)
+            spec = plain
             spec *= kfs[0]
-            for kf, w in zip(kfs[1:], weights):
-                tw = t * w[y0:y0 + ty, x0:x0 + tx].astype(image.dtype, copy=False)
+            for kf, wt in zip(kfs[1:], weights):
+                tw = t * wt[y0:y0 + ty, x0:x0 + tx].astype(image.dtype, copy=False)
                 part = sfft.rfft2(tw, s=(fy, fx), workers=workers)
                 part *= kf
                 spec += part
-            # the tile's full convolution spans output rows y0 - hy .. y0 + h + hy (columns
-            # likewise); only the rows inside the output are transformed back along x
-            h, w = t.shape
-            oy0, ox0 = max(y0 - hy, 0), max(x0 - hx, 0)
-            oy1, ox1 = min(y0 + h + hy, ny), min(x0 + w + hx, nx)
-            rows = sfft.ifft(spec, axis=0, workers=workers, overwrite_x=True)[
-                oy0 - y0 + hy:oy1 - y0 + hy]
-            c = sfft.irfft(rows, n=fx, axis=1, workers=workers)
-            out[oy0:oy1, ox0:ox1] += c[:, ox0 - x0 + hx:ox1 - x0 + hx]
-    return out
+            _add_back(spec, out, y0, x0, h, w, hy, hx, fx, workers)
+    return (out, outs) if len(also) else out
+
+
+def _add_back(spec, out, y0, x0, h, w, hy, hx, fx, workers) -> None:
+    """Add the inverse transform of a tile's product ``spec`` (rows y0.., columns x0.. of
+    the image, ``h`` x ``w``) into ``out``: the tile's full convolution spans output rows
+    y0 - hy .. y0 + h + hy (columns likewise); only the rows inside the output are
+    transformed back along x."""
+    ny, nx = out.shape
+    oy0, ox0 = max(y0 - hy, 0), max(x0 - hx, 0)
+    oy1, ox1 = min(y0 + h + hy, ny), min(x0 + w + hx, nx)
+    rows = sfft.ifft(spec, axis=0, workers=workers, overwrite_x=True)[
+        oy0 - y0 + hy:oy1 - y0 + hy]
+    c = sfft.irfft(rows, n=fx, axis=1, workers=workers)
+    out[oy0:oy1, ox0:ox1] += c[:, ox0 - x0 + hx:ox1 - x0 + hx]
 
 
 def add_bright(image: np.ndarray, stamps: Sequence[Stamp], flux: np.ndarray,

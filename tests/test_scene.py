@@ -139,3 +139,29 @@ def test_stacked_stamp_convolutions_equal_scipy_fftconvolve():
         else:
             assert np.abs(got - ref).max() < 1e-6 * ref.max()
     assert 1 < len(spectra) < len(imgs)  # stamps shared FFT shapes
+
+
+def test_kernels_sharing_the_forward_transforms_give_the_separate_convolutions():
+    """convolve_weighted(..., also=kernels) reuses each tile's forward transform for more
+    kernels: its outputs equal convolve_tiled with each kernel and the plain call exactly
+    (the same transforms), and convolve_tiled agrees with scipy.signal.fftconvolve
+    (mode='same'; the reference library) to float32 round-off."""
+    from scipy import signal
+
+    from simfield.scene import convolve_weighted
+
+    rng = np.random.default_rng(5)
+    img = rng.random((150, 130)).astype(np.float32)
+    kern, extra = rng.random((2, 11, 11)).astype(np.float32)
+    mode = rng.random((11, 11)).astype(np.float32)
+    weight = rng.random(img.shape).astype(np.float32)
+    for modes, weights in (((), ()), ((mode,), (weight,))):
+        plain = convolve_weighted(img, kern, modes, weights, tile=64)
+        got, (a, b) = convolve_weighted(img, kern, modes, weights, tile=64, also=(extra, kern))
+        assert np.array_equal(got, plain)
+        assert np.array_equal(a, convolve_tiled(img, extra, tile=64))
+        assert np.array_equal(b, convolve_tiled(img, kern, tile=64))
+    ref = signal.fftconvolve(img.astype(np.float64), extra.astype(np.float64), mode="same")
+    assert np.abs(a - ref).max() < 1e-5 * ref.max()
+    with pytest.raises(ValueError, match="shape"):
+        convolve_weighted(img, kern, (), (), also=(np.ones((5, 5), np.float32),))
