@@ -538,7 +538,6 @@ def write_psf_png(psfs: Sequence[PSFImage], pupil: Pupil, path: str | os.PathLik
 
     from .._plot import compass, roll_directions, scale_bar
 
-    with_opd = bool(np.any(pupil.opd_nm))
     first = 2 + (corner_pupil is not None)
     n = len(psfs) + first + len(field_panels)
     ncol = min(n, 3)
