@@ -10,7 +10,7 @@ from __future__ import annotations
 import numpy as np
 
 __all__ = ["run_title", "count_labels", "scale_bar", "compass", "sky_directions",
-           "roll_directions", "png_bytes"]
+           "roll_directions", "png_bytes", "save_png"]
 
 
 def run_title(what: str, band: str | None = None, seed=None) -> str:
@@ -103,3 +103,17 @@ def png_bytes(fig, dpi: int = 90) -> bytes:
     buf = io.BytesIO()
     fig.savefig(buf, format="png", dpi=dpi)
     return buf.getvalue()
+
+
+def save_png(fig, path, dpi: int = 90) -> bytes:
+    """Write ``fig`` (:func:`png_bytes`) to ``path`` atomically and close it; returns the PNG
+    bytes (the reports embed them). ``dpi`` in dots per inch."""
+    import matplotlib.pyplot as plt
+
+    from .io import atomic_path
+
+    data = png_bytes(fig, dpi=dpi)
+    plt.close(fig)
+    with atomic_path(path) as tmp:
+        tmp.write_bytes(data)
+    return data

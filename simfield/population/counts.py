@@ -23,8 +23,8 @@ The population's counts are those of its truth table in the band
 whose pivot is nearest 1.6 um (galaxies of every family, intrinsic magnitudes).
 
 ``python -m simfield.population.counts --out counts.png [overrides]`` draws the scenario's
-population over ``--side`` arcsec and writes the figure (counts and their ratio to the
-reference); it prints the ratio per half-magnitude bin and its split by redshift (light-cone
+population over ``--side`` arcsec and writes the figure a run writes on request
+(:mod:`.figure`: counts, their ratio to the reference, colours); it prints the ratio per half-magnitude bin and its split by redshift (light-cone
 galaxies) and by contaminant family. Units: AB mag, counts per mag per
 deg^2.
 """
@@ -81,6 +81,7 @@ def main(argv=None) -> int:
     from .. import cli
     from ..bands import make_bands
     from ..random import stream
+    from .figure import figure_bands, write_population_figure
     from .lightcone import make_population
 
     ap = argparse.ArgumentParser(prog="python -m simfield.population.counts",
@@ -92,7 +93,7 @@ def main(argv=None) -> int:
     a = ap.parse_args(argv)
     sc = cli.preflight(list(a.overrides))[0]
     bands = make_bands(sc)
-    band = min(bands, key=lambda b: abs(b.pivot_nm - 1600.0)).name
+    band = figure_bands(bands)[1]
     half = a.side / 2
     t = make_population(sc.population, bands, (-half, half), (-half, half),
                         stream(sc.seed, "population", "counts"))
@@ -105,28 +106,7 @@ def main(argv=None) -> int:
     for i, (c, v, r) in enumerate(zip(mid, n, ref)):
         print(f"{c:5.2f}  {v:10.0f}  {r:10.0f}  {v / r:5.2f}   " +
               " ".join(f"{p[i] / r:9.2f}" for p in parts.values()))
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
-    from .._plot import run_title
-
-    fig, (ax, ax2) = plt.subplots(2, 1, figsize=(5, 6), sharex=True,
-                                  gridspec_kw={"height_ratios": [2, 1]})
-    ax.errorbar(mid, n, err, fmt="o", ms=3, label=f"population ({band})")
-    ax.plot(mid, ref, "k-", label="Windhorst et al. 2011 [from memory]")
-    ax.set_yscale("log")
-    ax.set_ylabel("dN/dm (mag$^{-1}$ deg$^{-2}$)")
-    ax.legend(fontsize=7)
-    ax.set_title(run_title("galaxy counts", band, sc.seed), fontsize=9)
-    ax2.axhspan(0.7, 1.3, color="0.9")
-    ax2.plot(mid, n / ref, "o", ms=3)
-    ax2.axhline(1.0, color="k", lw=0.8)
-    ax2.set_xlabel(f"{band} (AB mag)")
-    ax2.set_ylabel("population / published")
-    fig.tight_layout()
-    fig.savefig(a.out, dpi=120)
+    write_population_figure(a.out, t, bands, a.side ** 2, sc.seed)
     print(f"wrote {a.out}")
     return 0
 

@@ -97,11 +97,14 @@ def population_figure(table, bands, area_arcsec2: float, seed=None):
 
 
 def save_figure(fig, path) -> Path:
-    """Write ``fig`` as a PNG to ``path`` and close it; returns the path."""
+    """Write ``fig`` as a PNG to ``path`` (atomically) and close it; returns the path."""
     import matplotlib.pyplot as plt
 
+    from ..io import atomic_path
+
     path = Path(path)
-    fig.savefig(path, dpi=110)
+    with atomic_path(path) as tmp:
+        fig.savefig(tmp, dpi=110, format="png")
     plt.close(fig)
     return path
 

@@ -24,17 +24,10 @@ _CAUSE_COLOURS = {"artefact": "#7f7f7f", "persistence": "#8c564b", "spike": "#d6
 
 
 def _save(fig, path: Path) -> str:
-    from ..io import atomic_path
+    """Write ``fig`` to ``path`` (PNG); returns it base64-encoded for the page."""
+    from .._plot import save_png
 
-    from .._plot import png_bytes
-
-    data = png_bytes(fig, dpi=90)
-    with atomic_path(path) as tmp:
-        tmp.write_bytes(data)
-    import matplotlib.pyplot as plt
-
-    plt.close(fig)
-    return base64.b64encode(data).decode("ascii")
+    return base64.b64encode(save_png(fig, path, dpi=90)).decode("ascii")
 
 
 def _stretch(img, lo, hi):

@@ -23,16 +23,10 @@ _CLASS_COLOURS = {"in_window": "#2ca02c", "lowz_galaxy": "#d62728", "higher_z_ga
 
 
 def _save(fig, path: Path) -> str:
-    from ..io import atomic_path
-    import matplotlib.pyplot as plt
+    """Write ``fig`` to ``path`` (PNG); returns it base64-encoded for the page."""
+    from .._plot import save_png
 
-    from .._plot import png_bytes
-
-    data = png_bytes(fig, dpi=90)
-    plt.close(fig)
-    with atomic_path(path) as tmp:
-        tmp.write_bytes(data)
-    return base64.b64encode(data).decode("ascii")
+    return base64.b64encode(save_png(fig, path, dpi=90)).decode("ascii")
 
 
 def _colour_axes(sample):
