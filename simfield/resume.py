@@ -147,14 +147,26 @@ def remove_resume(out) -> None:
     shutil.rmtree(Path(out) / RESUME_DIR, ignore_errors=True)
 
 
-def _complete_files(folder: Path, out: Path, finals: list[Path]) -> bool:
-    """Whether an earlier launch finished these files (recorded, present, same sizes)."""
-    path = folder / _COMPLETE
-    if not path.exists():
-        return False
-    saved = json.loads(path.read_text())
-    return saved.get("files") == [str(p.relative_to(out)) for p in finals] and all(
-        p.exists() and p.stat().st_size == n for p, n in zip(finals, saved["sizes"]))
+def _read(path: Path) -> dict | None:
+    """A record written by :func:`_write_atomic` (JSON), or None if there is none."""
+    return json.loads(path.read_text()) if path.exists() else None
+
+
+def _record(names: list[str], paths: list[Path], **more) -> str:
+    """The record of files ``names`` (relative to the run folder) written at ``paths``: their
+    sizes (bytes), as JSON."""
+    return json.dumps({"files": names, "sizes": [p.stat().st_size for p in paths], **more})
+
+
+def _matches(saved: dict | None, names: list[str], paths: list[Path]) -> bool:
+    """Whether record ``saved`` is of files ``names`` and ``paths`` still have its sizes."""
+    return saved is not None and saved.get("files") == names and all(
+        p.exists() and p.stat().st_size == n for p, n in zip(paths, saved["sizes"]))
+
+
+def _layouts(saved: dict) -> list[dict]:
+    """The files' layouts (extension -> (byte offset, shape, dtype)) of a layout record."""
+    return [{k: (v[0], tuple(v[1]), v[2]) for k, v in lay.items()} for lay in saved["layouts"]]
 
 
 @contextlib.contextmanager
@@ -191,22 +203,18 @@ def resumable_section_files(out: Path, items: Sequence, prov, key: str
     out = Path(out)
     folder = resume_folder(out, key)
     finals = [Path(p) for p, _, _ in items]
-    parts = [folder / (str(p.relative_to(out)) + PART_SUFFIX) for p in finals]
+    names = [str(p.relative_to(out)) for p in finals]
+    parts = [folder / (n + PART_SUFFIX) for n in names]
     layout_path = folder / _LAYOUT
-    layouts = None
-    if _complete_files(folder, out, finals):  # an earlier launch finished them: reuse
-        saved = json.loads(layout_path.read_text())["layouts"]
-        files = [SectionFile(final, final, {k: (v[0], tuple(v[1]), v[2]) for k, v in lay.items()})
-                 for final, lay in zip(finals, saved)]
-        yield files, TileLedger(folder)
+    saved = _read(layout_path)
+    if saved is not None and _matches(_read(folder / _COMPLETE), names, finals):
+        # an earlier launch finished them: reuse them under their final names
+        yield [SectionFile(f, f, lay) for f, lay in zip(finals, _layouts(saved))], \
+            TileLedger(folder)
         return
-    if layout_path.exists():
-        saved = json.loads(layout_path.read_text())
-        if saved.get("files") == [str(p.relative_to(out)) for p in finals] and all(
-                p.exists() and p.stat().st_size == n for p, n in zip(parts, saved["sizes"])):
-            layouts = [{k: (v[0], tuple(v[1]), v[2]) for k, v in lay.items()}
-                       for lay in saved["layouts"]]
-    if layouts is None:  # a first launch, or a folder left half laid out: start afresh
+    if _matches(saved, names, parts):
+        layouts = _layouts(saved)
+    else:  # a first launch, or a folder left half laid out: start afresh
         if folder.exists():
             shutil.rmtree(folder)
         folder.mkdir(parents=True)
@@ -214,17 +222,12 @@ def resumable_section_files(out: Path, items: Sequence, prov, key: str
         for part, (_, specs, cards) in zip(parts, items):
             part.parent.mkdir(parents=True, exist_ok=True)
             layouts.append(_create(part, specs, prov, cards))
-        _write_atomic(layout_path, json.dumps({
-            "files": [str(p.relative_to(out)) for p in finals],
-            "sizes": [p.stat().st_size for p in parts],
-            "layouts": [{k: [v[0], list(v[1]), v[2]] for k, v in lay.items()}
-                        for lay in layouts]}))
+        _write_atomic(layout_path, _record(names, parts, layouts=[
+            {k: [v[0], list(v[1]), v[2]] for k, v in lay.items()} for lay in layouts]))
     files = [SectionFile(part, final, lay) for part, final, lay in zip(parts, finals, layouts)]
     yield files, TileLedger(folder, tuple(str(p) for p in parts))
     for f in files:
         _fsync(f.path)  # what the block wrote after the last tile (e.g. depth cards)
         f.final.parent.mkdir(parents=True, exist_ok=True)
         os.replace(f.path, f.final)
-    _write_atomic(folder / _COMPLETE, json.dumps({
-        "files": [str(p.relative_to(out)) for p in finals],
-        "sizes": [p.stat().st_size for p in finals]}))
+    _write_atomic(folder / _COMPLETE, _record(names, finals))
