@@ -32,8 +32,7 @@ def numpy_add(c, e, g: Grid, w, iscale):
     c.n_sat += (dq & SAT) != 0
     c.n_cr += good & ((dq & CR) != 0)
     c.wsum += np.where(good, wk, 0.0)
-    for name, attr in (("art", "artefact"), ("stripes", "stripes"),
-                       ("persist", "persistence")):
+    for name, attr in c.ARTEFACTS:
         art = getattr(e, attr, None)
         if art is not None:
             if getattr(c, name) is None:

@@ -188,6 +188,9 @@ class _FlagCounter:
     repaired cosmic ray there, judged at the exposure pixel nearest to the mosaic pixel's
     centre; and the weighted mean of the exposures' artefact images at those pixels."""
 
+    #: (accumulator attribute, Exposure attribute) of the artefact images averaged
+    ARTEFACTS = (("art", "artefact"), ("stripes", "stripes"), ("persist", "persistence"))
+
     def __init__(self, grid: Grid):
         self.grid = grid
         shape = grid.shape
@@ -208,8 +211,7 @@ class _FlagCounter:
         a, b = _affine(self.grid, g)
         src, wk = nearest_counts(a, b, e.dq, w, DQ_SATURATED, DQ_COSMIC_RAY, self.n_cover,
                                  self.n_good, self.n_sat, self.n_cr, self.wsum)
-        for name, attr in (("art", "artefact"), ("stripes", "stripes"),
-                           ("persist", "persistence")):
+        for name, attr in self.ARTEFACTS:
             art = getattr(e, attr, None)
             if art is not None:
                 if getattr(self, name) is None:
