@@ -15,7 +15,7 @@ import numba
 import numpy as np
 
 __all__ = ["ipc", "cornish_fisher", "expected_rates", "calibrate", "refit", "refit_variance",
-           "deposit", "jumps", "nearest_counts", "nearest_weighted_add"]
+           "deposit", "jumps", "nearest_counts", "nearest_weighted_add", "box_sum"]
 
 _jit = numba.njit(cache=True, nogil=True)
 
@@ -377,3 +377,68 @@ def nearest_weighted_add(src, wk, art, iscale: float, acc) -> None:
     """``acc += wk * art[nearest pixel] * iscale`` where good (float32, in place), with the
     (``src``, ``wk``) of :func:`nearest_counts`."""
     _weighted_add(src, wk, np.ascontiguousarray(art, np.float32), np.float32(iscale), acc)
+
+
+# ------------------------------------------------------------------- scene on detector pixels
+@_jit
+def _box_rows(img, start, n, o, f, c0, nc, out):
+    # out[k, c] = (1 - f) img[start + o k, c0 + c] + img[.. + 1] + ... + f img[.. + o]: the
+    # numpy chain of survey.grids._box_sum_rows, same order, float64; rows or columns outside
+    # img count as 0.0 (its zero padding)
+    ny, nx = img.shape
+    g = 1.0 - f
+    for k in range(n):
+        r0 = start + o * k
+        for c in range(nc):
+            x = c0 + c
+            inside = 0 <= x < nx
+            v = 0.0
+            if inside and 0 <= r0 < ny:
+                v = np.float64(img[r0, x])
+            s = g * v
+            for j in range(1, o):
+                r = r0 + j
+                v = 0.0
+                if inside and 0 <= r < ny:
+                    v = np.float64(img[r, x])
+                s += v
+            if f > 0:
+                r = r0 + o
+                v = 0.0
+                if inside and 0 <= r < ny:
+                    v = np.float64(img[r, x])
+                s += f * v
+            out[k, c] = s
+
+
+@_jit
+def _box_cols(rows, start, n, o, f, out):
+    nk, nx = rows.shape
+    g = 1.0 - f
+    for k in range(nk):
+        for m in range(n):
+            c0 = start + o * m
+            v = rows[k, c0] if 0 <= c0 < nx else 0.0
+            s = g * v
+            for j in range(1, o):
+                c = c0 + j
+                s += rows[k, c] if 0 <= c < nx else 0.0
+            if f > 0:
+                c = c0 + o
+                s += f * (rows[k, c] if 0 <= c < nx else 0.0)
+            out[k, m] = np.float32(s)
+
+
+def box_sum(img, y0: int, ny: int, x0: int, nx: int, o: int, fy: float, fx: float):
+    """Sums of ``img`` over ``ny`` x ``nx`` boxes of ``o`` x ``o`` pixels whose edges start at
+    the fractional row ``y0 + fy`` and column ``x0 + fx`` (float32 result, float64 sums; pixels
+    outside ``img`` count as zero): the exact integral of a piecewise-constant image over
+    shifted, ``o`` times larger pixels (units of ``img`` per pixel, e.g. e-/s). Equal bit for
+    bit to :func:`simfield.survey.grids._box_sum_rows` applied to rows, then columns, of the
+    image in float64 (tests/test_survey.py), without a float64 copy of the image."""
+    rows = np.empty((ny, o * nx + 1), np.float64)
+    _box_rows(np.ascontiguousarray(img), int(y0), int(ny), int(o), float(fy), int(x0),
+              o * nx + 1, rows)
+    out = np.empty((ny, nx), np.float32)
+    _box_cols(rows, 0, int(nx), int(o), float(fx), out)
+    return out

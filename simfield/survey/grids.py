@@ -14,6 +14,7 @@ from scipy import ndimage
 from ..config import SurveyConfig, TelescopeConfig
 from ..errors import check_range, require
 from ..grid import Grid
+from ..pixelops import box_sum
 
 # R2 low-discrepancy sequence (Roberts 2018, "The unreasonable effectiveness of quasirandom
 # sequences" [mem]): phases k/g, k/g^2 mod 1 with g the plastic number, g^3 = g + 1.
@@ -166,26 +167,6 @@ def _is_aligned(a: np.ndarray) -> bool:
     return abs(a[0, 1]) < 1e-9 and abs(a[1, 0]) < 1e-9 and a[0, 0] > 0 and a[1, 1] > 0
 
 
-def _box_sum_rows(img: np.ndarray, start: int, n: int, o: int, f: float) -> np.ndarray:
-    """Sums over boxes of o rows starting at fractional row edge ``start + f``, n boxes.
-
-    Box k covers row edges [start + f + o k, start + f + o (k + 1)]: weights (1 - f) on row
-    start + o k, 1 on the o - 1 rows after it and f on row start + o (k + 1); exact integral of
-    a piecewise-constant image. Rows outside ``img`` count as zero.
-    """
-    need_lo, need_hi = start, start + o * n + 1
-    pad_lo, pad_hi = max(0, -need_lo), max(0, need_hi - img.shape[0])
-    a = img[max(0, need_lo):min(img.shape[0], need_hi)]
-    if pad_lo or pad_hi:
-        a = np.pad(a, ((pad_lo, pad_hi), (0, 0)))
-    out = (1.0 - f) * a[0:o * n:o]
-    for j in range(1, o):
-        out += a[j:o * n:o]
-    if f > 0:
-        out += f * a[o:o * n + 1:o]
-    return out
-
-
 def sample_scene(scene: np.ndarray, scene_grid: Grid, exp_grid: Grid) -> np.ndarray:
     """Integrate the scene over every detector pixel of one exposure.
 
@@ -209,7 +190,7 @@ def sample_scene(scene: np.ndarray, scene_grid: Grid, exp_grid: Grid) -> np.ndar
     (``k = ceil(ratio)``), which conserves flux to the interpolation's accuracy (<0.1% on smooth
     scenes). Detector pixels outside the scene see zero.
     """
-    scene = np.asarray(scene, dtype=float)
+    scene = np.asarray(scene)
     require(scene.shape == scene_grid.shape, "scene", scene.shape,
             f"must have the scene grid's shape {scene_grid.shape}")
     a, b = _affine(exp_grid, scene_grid)
@@ -221,10 +202,8 @@ def sample_scene(scene: np.ndarray, scene_grid: Grid, exp_grid: Grid) -> np.ndar
         ey = b[1] - o / 2 + 0.5
         x0, y0 = math.floor(ex), math.floor(ey)
         fx, fy = ex - x0, ey - y0
-        rows = _box_sum_rows(scene, y0, exp_grid.ny, o, fy)
-        return np.ascontiguousarray(_box_sum_rows(rows.T, x0, exp_grid.nx, o, fx).T,
-                                    dtype=np.float32)
-    return _sample_general(scene, a, b, exp_grid, ratio)
+        return box_sum(scene, y0, exp_grid.ny, x0, exp_grid.nx, o, fy, fx)
+    return _sample_general(np.asarray(scene, dtype=float), a, b, exp_grid, ratio)
 
 
 def _sample_general(scene, a, b, exp_grid: Grid, ratio: float, chunk: int = 256) -> np.ndarray:
