@@ -459,9 +459,9 @@ def _render_tile(ctx: _TileContext, i: int) -> dict:
             else:
                 conv = convolve_weighted(acc, mean, modes, weights)
                 dconv = [convolve_tiled(acc, m) for m in dmodes]
-            dscene = [np.ascontiguousarray(d[sy0 - acc_box[0]:sy1 - acc_box[0],
-                                             sx0 - acc_box[2]:sx1 - acc_box[2]])
-                      for d in dconv]
+            dscene = np.stack([d[sy0 - acc_box[0]:sy1 - acc_box[0],
+                                 sx0 - acc_box[2]:sx1 - acc_box[2]] for d in dconv]) \
+                if dconv else None
             del acc, dconv
             scene = np.ascontiguousarray(conv[sy0 - acc_box[0]:sy1 - acc_box[0],
                                               sx0 - acc_box[2]:sx1 - acc_box[2]])
@@ -491,14 +491,9 @@ def _render_tile(ctx: _TileContext, i: int) -> dict:
             """Each exposure window in turn, so only one is in memory while drizzling."""
             for k, eg in enumerate(tile.egrids):
                 with timer("exposures"):
-                    src = scene
-                    if dscene:  # this exposure's PSF: static + sum_k c_ek mode_k
-                        src = scene.copy()
-                        for c, d in zip(dr.coeffs[k], dscene):
-                            src += np.float32(c) * d
-                        np.maximum(src, 0.0, out=src)
-                    r = sample_scene(src, tile.sgrid, eg)
-                    del src
+                    # this exposure's PSF: static + sum_k c_ek mode_k, formed while sampling
+                    r = sample_scene(scene, tile.sgrid, eg, dscene,
+                                     None if dscene is None else dr.coeffs[k])
                     # noise tied to detector pixels: pixels shared with a neighbouring tile
                     # get the same noise there, so the mosaic has no seams
                     ey0, _, ex0, _ = tile.exposures[k]

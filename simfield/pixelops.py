@@ -381,34 +381,40 @@ def nearest_weighted_add(src, wk, art, iscale: float, acc) -> None:
 
 # ------------------------------------------------------------------- scene on detector pixels
 @_jit
-def _box_rows(img, start, n, o, f, c0, nc, out):
+def _value(img, modes, c, r, x):
+    # img + sum_k c_k modes_k at (r, x) in float32, clipped at 0 when there are modes (the
+    # numpy chain: copy, += c_k * mode_k in turn, np.maximum(., 0.0), NaN kept)
+    v = img[r, x]
+    if modes.shape[0] == 0:
+        return np.float64(v)
+    for k in range(modes.shape[0]):
+        v = v + c[k] * modes[k, r, x]
+    if not (v >= 0.0 or np.isnan(v)):
+        v = v - v  # +0.0 of the image's type
+    return np.float64(v)
+
+
+@_jit
+def _box_rows(img, modes, c, start, n, o, f, c0, nc, out):
     # out[k, c] = (1 - f) img[start + o k, c0 + c] + img[.. + 1] + ... + f img[.. + o]: the
-    # numpy chain of survey.grids._box_sum_rows, same order, float64; rows or columns outside
-    # img count as 0.0 (its zero padding)
+    # numpy chain of the rows pass (tests/test_survey.py), same order, float64; rows or
+    # columns outside img count as 0.0 (its zero padding)
     ny, nx = img.shape
     g = 1.0 - f
     for k in range(n):
         r0 = start + o * k
-        for c in range(nc):
-            x = c0 + c
+        for col in range(nc):
+            x = c0 + col
             inside = 0 <= x < nx
-            v = 0.0
-            if inside and 0 <= r0 < ny:
-                v = np.float64(img[r0, x])
+            v = _value(img, modes, c, r0, x) if inside and 0 <= r0 < ny else 0.0
             s = g * v
             for j in range(1, o):
                 r = r0 + j
-                v = 0.0
-                if inside and 0 <= r < ny:
-                    v = np.float64(img[r, x])
-                s += v
+                s += _value(img, modes, c, r, x) if inside and 0 <= r < ny else 0.0
             if f > 0:
                 r = r0 + o
-                v = 0.0
-                if inside and 0 <= r < ny:
-                    v = np.float64(img[r, x])
-                s += f * v
-            out[k, c] = s
+                s += f * (_value(img, modes, c, r, x) if inside and 0 <= r < ny else 0.0)
+            out[k, col] = s
 
 
 @_jit
@@ -429,16 +435,31 @@ def _box_cols(rows, start, n, o, f, out):
             out[k, m] = np.float32(s)
 
 
-def box_sum(img, y0: int, ny: int, x0: int, nx: int, o: int, fy: float, fx: float):
+def box_sum(img, y0: int, ny: int, x0: int, nx: int, o: int, fy: float, fx: float,
+            modes=None, coeffs=None):
     """Sums of ``img`` over ``ny`` x ``nx`` boxes of ``o`` x ``o`` pixels whose edges start at
     the fractional row ``y0 + fy`` and column ``x0 + fx`` (float32 result, float64 sums; pixels
     outside ``img`` count as zero): the exact integral of a piecewise-constant image over
     shifted, ``o`` times larger pixels (units of ``img`` per pixel, e.g. e-/s). Equal bit for
-    bit to :func:`simfield.survey.grids._box_sum_rows` applied to rows, then columns, of the
-    image in float64 (tests/test_survey.py), without a float64 copy of the image."""
+    bit to the rows-then-columns numpy chain in float64 (tests/test_survey.py), without a
+    float64 copy of the image.
+
+    ``modes`` (K, *img.shape) and ``coeffs`` (K,), optional: the image summed is
+    ``max(img + sum_k coeffs[k] modes[k], 0)``, formed pixel by pixel in the image's type
+    (equal to forming it first with numpy, in that order), not stored."""
+    img = np.ascontiguousarray(img)
+    if modes is None or len(modes) == 0:
+        modes = np.zeros((0, 1, 1), img.dtype)
+        coeffs = np.zeros(0, img.dtype)
+    else:
+        modes = np.asarray(modes, img.dtype)
+        coeffs = np.asarray(coeffs, img.dtype)
+        if modes.shape[1:] != img.shape or coeffs.shape != modes.shape[:1]:
+            raise ValueError(f"modes {modes.shape} and coeffs {coeffs.shape} must be (K, "
+                             f"{img.shape[0]}, {img.shape[1]}) and (K,)")
     rows = np.empty((ny, o * nx + 1), np.float64)
-    _box_rows(np.ascontiguousarray(img), int(y0), int(ny), int(o), float(fy), int(x0),
-              o * nx + 1, rows)
+    _box_rows(img, modes, coeffs, int(y0), int(ny), int(o), float(fy), int(x0), o * nx + 1,
+              rows)
     out = np.empty((ny, nx), np.float32)
     _box_cols(rows, 0, int(nx), int(o), float(fx), out)
     return out

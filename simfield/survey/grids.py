@@ -167,7 +167,8 @@ def _is_aligned(a: np.ndarray) -> bool:
     return abs(a[0, 1]) < 1e-9 and abs(a[1, 0]) < 1e-9 and a[0, 0] > 0 and a[1, 1] > 0
 
 
-def sample_scene(scene: np.ndarray, scene_grid: Grid, exp_grid: Grid) -> np.ndarray:
+def sample_scene(scene: np.ndarray, scene_grid: Grid, exp_grid: Grid, modes=None,
+                 coeffs=None) -> np.ndarray:
     """Integrate the scene over every detector pixel of one exposure.
 
     Parameters
@@ -176,6 +177,11 @@ def sample_scene(scene: np.ndarray, scene_grid: Grid, exp_grid: Grid) -> np.ndar
         Noiseless, PSF-convolved scene without sky.
     scene_grid, exp_grid : Grid
         Grids of the scene and of the exposure (same tangent point).
+    modes : ndarray (e-/s per scene pixel), shape (K, *scene.shape), optional
+    coeffs : ndarray (dimensionless), shape (K,), optional
+        The scene integrated is then ``max(scene + sum_k coeffs[k] modes[k], 0)`` (e.g. the
+        exposure's own PSF change), formed in the scene's type, without a copy in the
+        aligned case.
 
     Returns
     -------
@@ -202,7 +208,12 @@ def sample_scene(scene: np.ndarray, scene_grid: Grid, exp_grid: Grid) -> np.ndar
         ey = b[1] - o / 2 + 0.5
         x0, y0 = math.floor(ex), math.floor(ey)
         fx, fy = ex - x0, ey - y0
-        return box_sum(scene, y0, exp_grid.ny, x0, exp_grid.nx, o, fy, fx)
+        return box_sum(scene, y0, exp_grid.ny, x0, exp_grid.nx, o, fy, fx, modes, coeffs)
+    if modes is not None and len(modes):
+        scene = scene.copy()
+        for c, d in zip(np.asarray(coeffs, scene.dtype), modes):
+            scene += c * d
+        np.maximum(scene, 0.0, out=scene)
     return _sample_general(np.asarray(scene, dtype=float), a, b, exp_grid, ratio)
 
 
