@@ -381,40 +381,54 @@ def nearest_weighted_add(src, wk, art, iscale: float, acc) -> None:
 
 # ------------------------------------------------------------------- scene on detector pixels
 @_jit
-def _value(img, modes, c, r, x):
-    # img + sum_k c_k modes_k at (r, x) in float32, clipped at 0 when there are modes (the
-    # numpy chain: copy, += c_k * mode_k in turn, np.maximum(., 0.0), NaN kept)
-    v = img[r, x]
-    if modes.shape[0] == 0:
-        return np.float64(v)
+def _add_row(img, modes, c, r, c0, w, first, buf, out_row):
+    # out_row (=|+=) w x row r of img (+ sum_k c_k modes_k, clipped at 0, in img's type)
+    # over columns c0 ... c0 + len(out_row) - 1; columns outside img count as 0.0
+    nx = img.shape[1]
+    lo, hi = max(c0, 0), min(c0 + out_row.size, nx)
+    m = max(hi - lo, 0)
+    for i in range(m):
+        buf[i] = img[r, lo + i]
     for k in range(modes.shape[0]):
-        v = v + c[k] * modes[k, r, x]
-    if not (v >= 0.0 or np.isnan(v)):
-        v = v - v  # +0.0 of the image's type
-    return np.float64(v)
+        ck = c[k]
+        for i in range(m):
+            buf[i] = buf[i] + ck * modes[k, r, lo + i]
+    if modes.shape[0]:
+        for i in range(m):
+            t = buf[i]
+            if not (t >= 0.0 or np.isnan(t)):
+                buf[i] = t - t  # +0.0, as np.maximum(t, 0.0)
+    for col in range(out_row.size):
+        i = c0 + col - lo
+        v = np.float64(buf[i]) if 0 <= i < m else 0.0
+        if first:
+            out_row[col] = w * v
+        elif w == 1.0:
+            out_row[col] += v
+        else:
+            out_row[col] += w * v
 
 
 @_jit
-def _box_rows(img, modes, c, start, n, o, f, c0, nc, out):
-    # out[k, c] = (1 - f) img[start + o k, c0 + c] + img[.. + 1] + ... + f img[.. + o]: the
-    # numpy chain of the rows pass (tests/test_survey.py), same order, float64; rows or
-    # columns outside img count as 0.0 (its zero padding)
-    ny, nx = img.shape
-    g = 1.0 - f
+def _box_rows(img, modes, c, start, n, o, f, c0, out):
+    # out[k] = (1 - f) row(start + o k) + row(.. + 1) + ... + f row(.. + o): the numpy chain
+    # of the rows pass (tests/test_survey.py), term by term in the same order, float64; rows
+    # outside img count as 0.0 (its zero padding)
+    ny = img.shape[0]
+    zero = np.zeros((1, 1), img.dtype)
+    nomode = np.zeros((0, 1, 1), img.dtype)
+    buf = np.empty(out.shape[1], img.dtype)
     for k in range(n):
         r0 = start + o * k
-        for col in range(nc):
-            x = c0 + col
-            inside = 0 <= x < nx
-            v = _value(img, modes, c, r0, x) if inside and 0 <= r0 < ny else 0.0
-            s = g * v
-            for j in range(1, o):
-                r = r0 + j
-                s += _value(img, modes, c, r, x) if inside and 0 <= r < ny else 0.0
-            if f > 0:
-                r = r0 + o
-                s += f * (_value(img, modes, c, r, x) if inside and 0 <= r < ny else 0.0)
-            out[k, col] = s
+        for j in range(o + 1):
+            if j == o and not f > 0:
+                break
+            w = 1.0 - f if j == 0 else (f if j == o else 1.0)
+            r = r0 + j
+            if 0 <= r < ny:
+                _add_row(img, modes, c, r, c0, w, j == 0, buf, out[k])
+            else:
+                _add_row(zero, nomode, c, 0, -1, w, j == 0, buf, out[k])
 
 
 @_jit
@@ -458,8 +472,7 @@ def box_sum(img, y0: int, ny: int, x0: int, nx: int, o: int, fy: float, fx: floa
             raise ValueError(f"modes {modes.shape} and coeffs {coeffs.shape} must be (K, "
                              f"{img.shape[0]}, {img.shape[1]}) and (K,)")
     rows = np.empty((ny, o * nx + 1), np.float64)
-    _box_rows(img, modes, coeffs, int(y0), int(ny), int(o), float(fy), int(x0), o * nx + 1,
-              rows)
+    _box_rows(img, modes, coeffs, int(y0), int(ny), int(o), float(fy), int(x0), rows)
     out = np.empty((ny, nx), np.float32)
     _box_cols(rows, 0, int(nx), int(o), float(fx), out)
     return out
