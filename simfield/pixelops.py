@@ -15,7 +15,7 @@ import numba
 import numpy as np
 
 __all__ = ["ipc", "cornish_fisher", "expected_rates", "calibrate", "refit", "refit_variance",
-           "deposit", "jumps", "nearest_counts", "nearest_weighted_add", "box_sum"]
+           "deposit", "jumps", "nearest_counts", "nearest_weighted_add", "box_sum", "above"]
 
 _jit = numba.njit(cache=True, nogil=True)
 
@@ -476,3 +476,30 @@ def box_sum(img, y0: int, ny: int, x0: int, nx: int, o: int, fy: float, fx: floa
     out = np.empty((ny, nx), np.float32)
     _box_cols(rows, 0, int(nx), int(o), float(fx), out)
     return out
+
+
+# ------------------------------------------------------------------------- non-linearity
+@_jit
+def _above(img, add, factor, thresh, rows, cols, vals):
+    n = 0
+    for y in range(img.shape[0]):
+        for x in range(img.shape[1]):
+            f = np.float64(img[y, x]) + add
+            if not (f >= 0.0 or np.isnan(f)):
+                f = 0.0
+            if f * factor > thresh:
+                rows[n], cols[n], vals[n] = y, x, f
+                n += 1
+    return n
+
+
+def above(img, add: float, factor: float, thresh: float):
+    """Pixels where ``f = max(img + add, 0)`` (float64) has ``f * factor > thresh``: their
+    (rows, columns) in C order, as ``np.nonzero``, and their ``f``; one pass, no float64 copy
+    of the image (units: those of ``img``, e.g. e-/s; ``factor`` converts to ``thresh``'s)."""
+    img = np.ascontiguousarray(img)
+    rows = np.empty(img.size, np.int64)
+    cols = np.empty(img.size, np.int64)
+    vals = np.empty(img.size, np.float64)
+    n = _above(img, float(add), float(factor), float(thresh), rows, cols, vals)
+    return (rows[:n].copy(), cols[:n].copy()), vals[:n].copy()

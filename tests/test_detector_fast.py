@@ -79,3 +79,21 @@ def test_fused_pixel_loops_equal_the_numpy_chains():
     ref_bias = np.zeros(img.shape, np.float32)
     ref_bias[faint] = cr[faint] * d_int[w_ref[faint]]
     assert_array_equal(bias, ref_bias)
+
+
+def test_above_equals_the_numpy_chain():
+    """pixelops.above (the non-linearity's high-fluence pixels) gives np.nonzero's indices
+    and the float64 rates of max(img + add, 0) exactly, negatives clipped."""
+    from simfield.pixelops import above
+
+    rng = np.random.default_rng(5)
+    img = rng.normal(5.0, 20.0, (300, 200)).astype(np.float32)
+    f = np.maximum(np.asarray(img, float) + 1.5, 0.0)
+    idx = np.nonzero(f * 30.0 > 600.0)
+    got_idx, got_f = above(img, 1.5, 30.0, 600.0)
+    assert 0 < idx[0].size < img.size
+    np.testing.assert_array_equal(got_idx[0], idx[0])
+    np.testing.assert_array_equal(got_idx[1], idx[1])
+    np.testing.assert_array_equal(got_f, f[idx])
+    (r, c), v = above(img, -1e9, 1.0, 0.0)  # everything clipped to 0: nothing above
+    assert r.size == c.size == v.size == 0

@@ -27,6 +27,8 @@ import dataclasses
 
 import numpy as np
 
+from ..pixelops import above
+
 __all__ = ["ramp_weights", "nonlinearity_bias", "apply_nonlinearity", "calibration_error",
            "window_bias"]
 
@@ -96,11 +98,11 @@ def window_bias(e, seed: int, box: tuple, beta: float, cal_rms: float, weights: 
     """Exposure ``e`` (window ``box`` of its detector) with the non-linearity's slope bias added
     where the ramp collects more than ``min_fluence_e`` (elsewhere it is below 1e-4 of the
     signal for the default law); ``fluence_s`` is the ramp duration (s)."""
-    f = np.maximum(np.asarray(e.sci, float) + float(e.sky), 0.0)
-    idx = np.nonzero(f * fluence_s > min_fluence_e)
+    # f = max(sci + sky, 0) (float64) where f fluence_s > min_fluence_e, in one pass
+    idx, f = above(e.sci, float(e.sky), fluence_s, min_fluence_e)
     if idx[0].size == 0:
         return e
     beta_cal = beta * (1.0 + cal_rms * calibration_error(seed, box[0], box[2], idx))
     sci = np.array(e.sci, np.float32)
-    sci[idx] += nonlinearity_bias(f[idx], beta, beta_cal, weights, corrected)
+    sci[idx] += nonlinearity_bias(f, beta, beta_cal, weights, corrected)
     return dataclasses.replace(e, sci=sci)
