@@ -278,6 +278,38 @@ def _run_scenario(sc: Scenario, out_dir: str | Path, progress: bool, engine) -> 
             summary["detections"] = run_detection(out, sc, bands, prov, progress, sc.workers,
                                                   engine, resume_folder(out, key))
             files.extend(out / f"detections_{b}.fits" for b in summary["detections"])
+    # scoring reads only the images, the truth and the detections: with several local
+    # workers it runs in a process of its own beside photometry, photo-z and selection
+    scoring = None
+    if sc.score.enabled and sc.detection.enabled:
+        scoring = _Scoring(out, sc, prov, engine is None and sc.workers != 1
+                           and (sc.workers > 1 or (os.cpu_count() or 1) > 1))
+    try:
+        _measure_and_select(out, sc, bands, prov, summary, files, timer)
+        if scoring is not None:
+            summary["score"], res.timings["score"] = scoring.result()
+            if progress:
+                log.info("score done in %.2f s", res.timings["score"])
+            files.extend(out / "score" / b / "summary.json" for b in summary["score"])
+    finally:
+        if scoring is not None:
+            scoring.close()
+
+    summary["timings_s"] = dict(res.timings)
+
+    files.append(write_json(out / "summary.json", summary, prov))
+    res.summary = summary
+    listed = sorted({str(Path(f).relative_to(out)) for f in files if Path(f).is_relative_to(out)})
+    write_text(marker, f"simfield {__version__} seed {sc.seed} config {prov.config_hash}\n"
+               + "".join(f"{f}\n" for f in listed))
+    remove_resume(out)
+    return res
+
+
+def _measure_and_select(out: Path, sc: Scenario, bands: list, prov, summary: dict, files: list,
+                        timer) -> None:
+    """Photometry, photo-z and selection of a run's detections, in that order (each reads
+    the one before); their summaries go into ``summary`` and their files into ``files``."""
     if sc.photometry.enabled and sc.detection.enabled:
         with timer("photometry"):
             from .photometry import measure_run
@@ -291,12 +323,6 @@ def _run_scenario(sc: Scenario, out_dir: str | Path, progress: bool, engine) -> 
 
             summary["photoz"] = fit_run(out, sc, prov)
             files.append(out / "photoz.fits")
-    if sc.score.enabled and sc.detection.enabled:
-        with timer("score"):
-            from .score.run import score_pipeline_run
-
-            summary["score"] = score_pipeline_run(out, sc, prov)
-            files.extend(out / "score" / b / "summary.json" for b in summary["score"])
     if sc.selection.enabled and (out / "photometry.fits").exists():
         with timer("selection"):
             from .selection import score_run_selection
@@ -304,14 +330,35 @@ def _run_scenario(sc: Scenario, out_dir: str | Path, progress: bool, engine) -> 
             summary["selection"] = score_run_selection(out, sc, prov)
             files.extend(out / "selection" / s / "summary.json" for s in summary["selection"])
 
-    summary["timings_s"] = dict(res.timings)
-    files.append(write_json(out / "summary.json", summary, prov))
-    res.summary = summary
-    listed = sorted({str(Path(f).relative_to(out)) for f in files if Path(f).is_relative_to(out)})
-    write_text(marker, f"simfield {__version__} seed {sc.seed} config {prov.config_hash}\n"
-               + "".join(f"{f}\n" for f in listed))
-    remove_resume(out)
-    return res
+
+def _score_task(out: Path, sc: Scenario, prov) -> tuple[dict, float]:
+    from .score.run import score_pipeline_run
+
+    t0 = time.perf_counter()
+    return score_pipeline_run(out, sc, prov), time.perf_counter() - t0
+
+
+class _Scoring:
+    """The run's scoring (:func:`simfield.score.run.score_pipeline_run`), started now: in a
+    forked process of its own (which dies with this one) if ``apart``, else here and at once.
+    :meth:`result` gives (its summary, its seconds)."""
+
+    def __init__(self, out: Path, sc: Scenario, prov, apart: bool):
+        self._pool = self._future = self._done = None
+        if apart:
+            self._pool = ProcessPoolExecutor(1, mp_context=multiprocessing.get_context("fork"),
+                                             initializer=die_with_parent,
+                                             initargs=(os.getpid(),))
+            self._future = self._pool.submit(_score_task, out, sc, prov)
+        else:
+            self._done = _score_task(out, sc, prov)
+
+    def result(self) -> tuple[dict, float]:
+        return self._done if self._future is None else self._future.result()
+
+    def close(self) -> None:
+        if self._pool is not None:
+            self._pool.shutdown(wait=True, cancel_futures=True)
 
 
 # ---------------------------------------------------------------------------- tiles
