@@ -481,6 +481,7 @@ def box_sum(img, y0: int, ny: int, x0: int, nx: int, o: int, fy: float, fx: floa
 # ------------------------------------------------------------------------- non-linearity
 @_jit
 def _above(img, add, factor, thresh, rows, cols, vals):
+    # with rows.size == 0: count only; else fill the first n entries
     n = 0
     for y in range(img.shape[0]):
         for x in range(img.shape[1]):
@@ -488,18 +489,22 @@ def _above(img, add, factor, thresh, rows, cols, vals):
             if not (f >= 0.0 or np.isnan(f)):
                 f = 0.0
             if f * factor > thresh:
-                rows[n], cols[n], vals[n] = y, x, f
+                if rows.size:
+                    rows[n], cols[n], vals[n] = y, x, f
                 n += 1
     return n
 
 
 def above(img, add: float, factor: float, thresh: float):
     """Pixels where ``f = max(img + add, 0)`` (float64) has ``f * factor > thresh``: their
-    (rows, columns) in C order, as ``np.nonzero``, and their ``f``; one pass, no float64 copy
-    of the image (units: those of ``img``, e.g. e-/s; ``factor`` converts to ``thresh``'s)."""
+    (rows, columns) in C order, as ``np.nonzero``, and their ``f``; two passes (count, fill)
+    over the image and no float64 copy of it (units: those of ``img``, e.g. e-/s; ``factor``
+    converts to ``thresh``'s)."""
     img = np.ascontiguousarray(img)
-    rows = np.empty(img.size, np.int64)
-    cols = np.empty(img.size, np.int64)
-    vals = np.empty(img.size, np.float64)
-    n = _above(img, float(add), float(factor), float(thresh), rows, cols, vals)
-    return (rows[:n].copy(), cols[:n].copy()), vals[:n].copy()
+    args = (float(add), float(factor), float(thresh))
+    none = np.empty(0, np.int64)
+    n = _above(img, *args, none, none, np.empty(0))
+    rows, cols, vals = np.empty(n, np.int64), np.empty(n, np.int64), np.empty(n)
+    if n:
+        _above(img, *args, rows, cols, vals)
+    return (rows, cols), vals
