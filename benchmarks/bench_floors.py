@@ -2,6 +2,7 @@
 
     python benchmarks/bench_floors.py              # renderer, field, exposures, drizzle, default
     python benchmarks/bench_floors.py renderer exposures drizzle   # some of them
+    python benchmarks/bench_floors.py default1     # the default run in one process (workers=1)
     python benchmarks/bench_floors.py dask         # Dask LocalCluster (2 workers) vs local
                                                    # processes at 4x the default area (minutes;
                                                    # run it on a quiet machine)
@@ -21,6 +22,11 @@
   the maps made outside the timing).
 - default: the default run (``simfield``, subprocess, under ``/usr/bin/time -v`` when present),
   its stage times, and its exposures stage against the deviate floor for its 20 exposures.
+  Its stage times are summed over the tile processes, which run side by side and slow each
+  other (two processes on two cores share caches and memory bandwidth, and on a two-thread
+  core the core itself), while the floor is measured in one process.
+- default1: the same run with ``workers=1`` (tiles one after another in one process), so the
+  exposures stage and the floor are measured under the same conditions.
 
 Best of ``--repeat`` (3) for the stage timings. The machine's load (``os.getloadavg``) is
 printed first: on a shared machine the ratios are steadier than the seconds. Not a test.
@@ -204,11 +210,12 @@ def bench_drizzle(repeat: int) -> None:
           f"the drizzle library alone {t_lib:.3f} s, ratio {t_sim / t_lib:.2f}")
 
 
-def bench_default(floor_per_pixel: float | None) -> None:
-    """Run the default scenario once (subprocess) and print its times."""
+def bench_default(floor_per_pixel: float | None, extra: tuple = ()) -> None:
+    """Run the default scenario once (subprocess, with overrides ``extra``) and print its
+    times."""
     with tempfile.TemporaryDirectory() as tmp:
         cmd = [sys.executable, "-c", "from simfield.cli import main; main()",
-               f"hydra.run.dir={tmp}/run"]
+               f"hydra.run.dir={tmp}/run", *extra]
         timev = shutil.which("time") or ("/usr/bin/time" if Path("/usr/bin/time").exists()
                                          else None)
         if timev:
@@ -220,7 +227,7 @@ def bench_default(floor_per_pixel: float | None) -> None:
             print(f"default run failed:\n{p.stderr[-2000:]}")
             return
         timings = json.loads((Path(tmp) / "run" / "summary.json").read_text())["timings_s"]
-    print(f"default run: {wall:.1f} s wall")
+    print(f"default run{' ' + ' '.join(extra) if extra else ''}: {wall:.1f} s wall")
     for line in p.stderr.splitlines():
         if any(k in line for k in ("Elapsed", "Maximum resident", "User time", "System time",
                                    "Percent of CPU")):
@@ -270,12 +277,14 @@ def main(argv: list[str]) -> None:
         bench_renderer(a.repeat)
     if "field" in a.parts:
         bench_field(a.repeat)
-    if "exposures" in a.parts or "default" in a.parts:
+    if any(p in a.parts for p in ("exposures", "default", "default1")):
         floor = bench_exposures(a.repeat)
     if "drizzle" in a.parts:
         bench_drizzle(a.repeat)
     if "default" in a.parts:
         bench_default(floor)
+    if "default1" in a.parts:
+        bench_default(floor, ("workers=1",))
     if "dask" in a.parts:
         busy = os.getloadavg()[0] > 0.5 * (os.cpu_count() or 1)
         if busy and not os.environ.get("SIMFIELD_BENCH_FORCE"):
