@@ -485,6 +485,7 @@ def _render_tile(ctx: _TileContext, i: int) -> dict:
     dbox = _grow(tile.mosaic, grow, mgrid.shape)
     dgrid = mgrid.window(dbox[2], dbox[0], dbox[3] - dbox[2], dbox[1] - dbox[0])
     dcut = (slice(my0 - dbox[0], my1 - dbox[0]), slice(mx0 - dbox[2], mx1 - dbox[2]))
+    seg_at = None
     for b in ctx.bands:
         rate, brt = ctx.rates[b.name], ctx.bright[b.name]
         with timer("scene"):
@@ -527,7 +528,9 @@ def _render_tile(ctx: _TileContext, i: int) -> dict:
             small = _crop_center(core, 0.4 / sgrid.scale)
             seg_scene = dominant_source(stamps, rate, ids, scene.shape, small / small.sum(),
                                         thr_scene, origin=(sy0, sx0), bulge_fraction=bt)
-            seg = _resample_ids(seg_scene, tile.sgrid, tile.mgrid)
+            if seg_at is None:  # the same lookup for every band
+                seg_at = _nearest_pixels(tile.sgrid, tile.mgrid)
+            seg = seg_scene[seg_at]
             del seg_scene
             f = ctx.files[f"truth_image_{b.name}.fits"]
             f.array("IMAGE")[msec] = sample_scene(scene, tile.sgrid, tile.mgrid)
@@ -834,15 +837,16 @@ def _crop_center(img: np.ndarray, half: float) -> np.ndarray:
     return img[cy - h:cy + h + 1, cx - h:cx + h + 1]
 
 
-def _resample_ids(ids: np.ndarray, src: Grid, dst: Grid) -> np.ndarray:
-    """Nearest-neighbour lookup of an id image on grid ``src`` at the pixel centres of ``dst``."""
+def _nearest_pixels(src: Grid, dst: Grid) -> tuple[np.ndarray, np.ndarray]:
+    """(rows, columns) of the ``src`` pixel nearest to each pixel centre of ``dst``: index
+    an image on ``src`` with them to look it up on ``dst`` (nearest neighbour, e.g. ids)."""
     xi, eta = dst.pixel_offsets()
     x, y = src.offsets_to_pixel(xi, eta)
     # dst centres often fall on src pixel edges (a scale ratio of 2): round those up, with a
     # bias far above round-off, so every window of src gives the same answer
     ix = np.clip(np.floor(x + 0.5 + 1e-6).astype(np.int64), 0, src.nx - 1)
     iy = np.clip(np.floor(y + 0.5 + 1e-6).astype(np.int64), 0, src.ny - 1)
-    return ids[iy, ix]
+    return iy, ix
 
 
 def _image_mags(images: Table, sources: Table, band: str) -> np.ndarray:
