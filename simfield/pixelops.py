@@ -432,20 +432,18 @@ def _box_rows(img, modes, c, start, n, o, f, c0, out):
 
 
 @_jit
-def _box_cols(rows, start, n, o, f, out):
-    nk, nx = rows.shape
+def _box_cols(rows, n, o, f, out):
+    # out[:, m] = (1 - f) rows[:, o m] + rows[:, o m + 1] + ... + f rows[:, o m + o], the
+    # columns pass in the same order, cast to float32 (rows holds every column it needs)
     g = 1.0 - f
-    for k in range(nk):
+    for k in range(rows.shape[0]):
         for m in range(n):
-            c0 = start + o * m
-            v = rows[k, c0] if 0 <= c0 < nx else 0.0
-            s = g * v
+            c0 = o * m
+            s = g * rows[k, c0]
             for j in range(1, o):
-                c = c0 + j
-                s += rows[k, c] if 0 <= c < nx else 0.0
+                s += rows[k, c0 + j]
             if f > 0:
-                c = c0 + o
-                s += f * (rows[k, c] if 0 <= c < nx else 0.0)
+                s += f * rows[k, c0 + o]
             out[k, m] = np.float32(s)
 
 
@@ -474,7 +472,7 @@ def box_sum(img, y0: int, ny: int, x0: int, nx: int, o: int, fy: float, fx: floa
     rows = np.empty((ny, o * nx + 1), np.float64)
     _box_rows(img, modes, coeffs, int(y0), int(ny), int(o), float(fy), int(x0), rows)
     out = np.empty((ny, nx), np.float32)
-    _box_cols(rows, 0, int(nx), int(o), float(fx), out)
+    _box_cols(rows, int(nx), int(o), float(fx), out)
     return out
 
 
