@@ -1,32 +1,50 @@
 """Galaxy number counts of a population against published near-infrared deep-field counts.
 
-Reference: differential counts of galaxies in the 1.6 um band of deep space-based fields,
-log10 (dN/dm / (mag^-1 deg^-2)) at integer AB magnitudes 20-29, after Windhorst et al. 2011,
-ApJS 193, 27 (their near-infrared panchromatic counts; shape read off the figure [from memory,
-approximate: ~0.1 dex]), interpolated linearly in log between the magnitudes:
+Two references, differential counts log10 (dN/dm / (mag^-1 deg^-2)) against AB magnitude:
 
-    m:      20    21    22    23    24    25    26    27    28    29
-    log N: 4.00  4.28  4.52  4.75  4.95  5.12  5.27  5.40  5.52  5.62
+1. 1.6 um (:data:`REFERENCE_MAGS`, :data:`REFERENCE_LOG_COUNTS`, :func:`reference_counts`):
+   after Windhorst et al. 2011, ApJS 193, 27 (their near-infrared panchromatic counts; shape
+   read off the figure [from memory, approximate: ~0.1 dex]; no stored table of published
+   1.6 um counts per bin could be read), interpolated linearly in log between the magnitudes::
 
-The figure gives counts per 0.5 mag (the convention of that compilation [from memory]); the
-values above are per mag, i.e. the figure's values + log10 2. Checks of the normalisation:
-N(< 26.14 AB) = 4.5e5 deg^-2 from this table against 4e5 deg^-2 to H <= 24.75 (Vega) of Yan et
-al. 1998, ApJ 503, L19 (abstract; H_AB = H_Vega + 1.39 at 1.6 um [from memory]), and log N
-within 0.15 dex of the deep H-band counts recalled in tests/test_population.py (Metcalfe et al.
-2006, MNRAS 370, 1257 [from memory]). N(< 28) ~ 260 arcmin^-2; slope ~0.25-0.3 dex/mag at
-AB 20-23 flattening to ~0.12 dex/mag at 27-29. At AB 20-22 the table is ~0.2 dex above what
-the published K-band count of Cimatti et al. 2002, A&A 391, L1 (480 galaxies with Ks < 20
-Vega over 52 arcmin^2, abstract) implies with the H - K colours of galaxies
-(tests/test_population.py: the population meets that count and its redshift distribution).
+       m:      20    21    22    23    24    25    26    27    28    29
+       log N: 4.00  4.28  4.52  4.75  4.95  5.12  5.27  5.40  5.52  5.62
 
-The population's counts are those of its truth table in the band
-whose pivot is nearest 1.6 um (galaxies of every family, intrinsic magnitudes).
+   The figure gives counts per 0.5 mag (the convention of that compilation [from memory]);
+   the values above are per mag. Checked against what could be read: N(< 26.14 AB) = 4.5e5
+   deg^-2 from this table against 4e5 deg^-2 to H <= 24.75 (Vega) of Yan et al. 1998, ApJ 503,
+   L19 (abstract, read at https://core.ac.uk/works/43113350; H_AB = H_Vega + 1.39 at 1.6 um
+   [from memory]), which also gives a slope of 0.31 fainter than H = 20 Vega. N(< 28) ~ 260
+   arcmin^-2; slope ~0.25-0.3 dex/mag at AB 20-23 flattening to ~0.12 dex/mag at 27-29.
+
+2. 2.15 um (:data:`K_REFERENCE_MAGS`, :data:`K_REFERENCE_LOG_COUNTS`,
+   :func:`reference_counts_k`): the Ks-band galaxy counts of Weaver et al. 2022, ApJS 258, 11
+   (COSMOS2020, Table 2, "Farmer" catalogue, ultra-deep area), per mag per deg^2 at the centres
+   of 0.5 mag bins, read in a stored copy of that table (repository mirochaj/ares, file
+   ares/data/weaver2022.py, whose note leaves open whether the values are per mag or per
+   0.5-mag bin). Per mag is the reading that meets two independent published K counts, each
+   read in its abstract: 480 galaxies with Ks < 20 Vega (21.84 AB) over 52 arcmin^2 (Cimatti
+   et al. 2002, A&A 391, L1, read at https://arxiv.org/abs/astro-ph/0207191), i.e. 9.2
+   arcmin^-2, against 11.3 arcmin^-2 integrated from this table, and ~5e5
+   deg^-2 to K = 24 Vega (25.85 AB) (Djorgovski et al. 1995, ApJ 438, L13, read at
+   http://adsabs.harvard.edu/doi/10.1086/187703) against 3.95e5 (per 0.5-mag bin would give
+   half of each: 0.61 and 0.40 of them). Bins fainter than 25.75 are left out: the published counts turn over there
+   (5.24 at 25.75, 5.13 at 26.25), the survey's incompleteness. Ks_AB = Ks_Vega + 1.84
+   [from memory].
+
+The two do not agree at the bright end: at AB 20-22 the 1.6 um table is ~0.15 dex above the
+2.15 um counts carried to 1.6 um with the population's H - K colours (the population is
+0.42-0.50 of the 1.6 um table and 0.6-0.66 of the 2.15 um counts there), the 2.15 um counts
+being read and the 1.6 um table recalled.
+
+The population's counts are those of its truth table in the band whose pivot is nearest 1.6 um
+(galaxies of every family, intrinsic magnitudes).
 
 ``python -m simfield.population.counts --out counts.png [overrides]`` draws the scenario's
 population over ``--side`` arcsec and writes the figure a run writes on request
-(:mod:`.figure`: counts, their ratio to the reference, colours); it prints the ratio per half-magnitude bin and its split by redshift (light-cone
-galaxies) and by contaminant family. Units: AB mag, counts per mag per
-deg^2.
+(:mod:`.figure`: counts, their ratio to the reference, colours); it prints the ratio per
+half-magnitude bin and its split by redshift (light-cone galaxies) and by contaminant family.
+Units: AB mag, counts per mag per deg^2.
 """
 
 from __future__ import annotations
@@ -36,17 +54,33 @@ import sys
 
 import numpy as np
 
-__all__ = ["REFERENCE_MAGS", "REFERENCE_LOG_COUNTS", "reference_counts", "population_counts",
-           "split_counts", "main"]
+__all__ = ["REFERENCE_MAGS", "REFERENCE_LOG_COUNTS", "K_REFERENCE_MAGS", "K_REFERENCE_LOG_COUNTS",
+           "reference_counts", "reference_counts_k", "population_counts", "split_counts", "main"]
 
+#: 1.6 um counts after Windhorst et al. 2011 [from memory] (module docstring).
 REFERENCE_MAGS = np.arange(20.0, 29.5, 1.0)
 REFERENCE_LOG_COUNTS = np.array([4.00, 4.28, 4.52, 4.75, 4.95, 5.12, 5.27, 5.40, 5.52, 5.62])
+#: 2.15 um counts of Weaver et al. 2022, Table 2 (Farmer, ultra-deep), read in mirochaj/ares
+#: ares/data/weaver2022.py: bin centres (AB) and log10 counts per mag per deg^2.
+K_REFERENCE_MAGS = np.arange(19.25, 25.8, 0.5)
+K_REFERENCE_LOG_COUNTS = np.array([3.65, 3.86, 4.02, 4.16, 4.29, 4.42, 4.54, 4.66, 4.78, 4.88,
+                                   4.97, 5.07, 5.18, 5.24])
 _GALAXY_KINDS = ("galaxy", "dusty", "quiescent")
 
 
 def reference_counts(mag):
-    """Published differential counts dN/dm (mag^-1 deg^-2) at AB magnitude ``mag``."""
+    """Published differential counts dN/dm (mag^-1 deg^-2) at 1.6 um at AB magnitude ``mag``
+    (the recalled table)."""
     return 10.0 ** np.interp(mag, REFERENCE_MAGS, REFERENCE_LOG_COUNTS)
+
+
+def reference_counts_k(mag):
+    """Published differential counts dN/dm (mag^-1 deg^-2) at 2.15 um at AB magnitude ``mag``
+    (Weaver et al. 2022), NaN outside the tabulated bin centres 19.25-25.75."""
+    mag = np.asarray(mag, dtype=float)
+    inside = (mag >= K_REFERENCE_MAGS[0]) & (mag <= K_REFERENCE_MAGS[-1])
+    return np.where(inside, 10.0 ** np.interp(mag, K_REFERENCE_MAGS, K_REFERENCE_LOG_COUNTS),
+                    np.nan)
 
 
 def population_counts(table, band: str, area_arcsec2: float, edges):
