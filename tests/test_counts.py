@@ -65,7 +65,7 @@ def test_k_reference_is_per_mag_against_two_published_k_counts():
     deg^-2 to K = 24 Vega (Djorgovski et al. 1995, ApJ 438, L13); Ks_AB - Ks_Vega = 1.84 [from
     memory]. Read per 0.5-mag bin it would be 0.61 and 0.40 of them."""
     k20 = _k_cumulative(20.0 + 1.84) / 3600.0 / (480.0 / 52.0)
-    keck = _k_cumulative(24.0 + 1.84) / 5e5
-    assert 0.7 < k20 < 1.3 and 0.7 < keck < 1.3, (k20, keck)
+    deep = _k_cumulative(24.0 + 1.84) / 5e5
+    assert 0.7 < k20 < 1.3 and 0.7 < deep < 1.3, (k20, deep)
     assert_allclose(reference_counts_k(K_REFERENCE_MAGS), 10.0 ** K_REFERENCE_LOG_COUNTS)
     assert np.isnan(reference_counts_k(26.25))  # past the published turn-over: left out
