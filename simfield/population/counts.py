@@ -28,9 +28,9 @@ Two references, differential counts log10 (dN/dm / (mag^-1 deg^-2)) against AB m
    https://arxiv.org/abs/astro-ph/0207191), i.e. 9.2 arcmin^-2, against 11.3 arcmin^-2
    integrated from this table, and ~5e5 deg^-2 to K = 24 Vega (25.85 AB) (Djorgovski et al.
    1995, ApJ 438, L13, read at http://adsabs.harvard.edu/doi/10.1086/187703) against 3.95e5
-   (per 0.5-mag bin would give half of each: 0.61 and 0.40 of them). Bins fainter than 25.75 are left out: the published counts
-   turn over there (5.24 at 25.75, 5.13 at 26.25), the survey's incompleteness. Ks_AB =
-   Ks_Vega + 1.84 [from memory].
+   (per 0.5-mag bin would give half of each: 0.61 and 0.40 of them). Bins fainter than 25.75
+   are left out: the published counts turn over there (5.24 at 25.75, 5.13 at 26.25), the
+   survey's incompleteness. Ks_AB = Ks_Vega + 1.84 [from memory].
 
 The two do not agree at the bright end: at AB 20-22 the 1.6 um table is ~0.15 dex above the
 2.15 um counts carried to 1.6 um with the population's H - K colours (the population is
