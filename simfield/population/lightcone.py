@@ -28,8 +28,8 @@ Only galaxies whose apparent magnitude in the selection band could pass ``mag_li
 for every redshift the brightest selection-band colour the star-forming template can have (its
 parameters at their extreme deviates, which are clipped at 4 sigma; the band flux grows with
 the optical slope and the break) gives the faintest M_UV that can still pass, with a 0.05 mag
-margin; galaxies beyond that are never drawn, the rest
-are cut exactly on their synthetic magnitude. With emission lines on, the star-forming envelope
+margin; galaxies beyond that are never drawn, the rest are cut exactly on their synthetic
+magnitude. With emission lines on, the star-forming envelope
 carries the lines at their largest equivalent width (the +3 sigma clip of the draw).
 """
 
