@@ -194,11 +194,11 @@ class PopulationConfig:
     dusty_z_max: float = 4.0
     dusty_av_median: float = 2.0  #: median V-band attenuation (mag)
     dusty_av_sigma_dex: float = 0.2  #: log-normal scatter of A_V (dex)
-    quiescent_density_arcmin2: float = 0.3  #: quiescent galaxies per arcmin^2 in the range
+    quiescent_density_arcmin2: float = 0.04  #: quiescent galaxies per arcmin^2 in the range
     quiescent_mag_min: float = 21.0  #: selection-band magnitude range (AB)
     quiescent_mag_max: float = 27.0
-    quiescent_z_min: float = 2.0
-    quiescent_z_max: float = 5.0
+    quiescent_z_min: float = 4.0  #: below, the light cone holds them (rest-K function)
+    quiescent_z_max: float = 6.0
     quiescent_break: float = 2.6  #: median flux ratio across the Balmer break
     emission_lines: bool = True  #: nebular lines in star-forming and dusty galaxies
     ew_halpha_a: float = 20.0  #: rest EW(Halpha) = a (1+z)^slope (Angstrom)

@@ -742,8 +742,8 @@ def _draw_tile(ctx: _TileContext, acc_box, acc_grid: Grid, bright_box,
     ``acc_box`` is the tile's scene window grown by the core PSF (the light convolved there;
     ``acc_grid`` its window of the scene grid), ``bright_box`` grown by the large PSF, which
     sources bright in some band (``bright_any``) may reach. Lensed sources are ray traced on
-    the window of ``acc_box``; they are found from the box's source-plane bounds
-    (:func:`simfield.lensing.source_plane_bounds`). The diffuse intracluster light is drawn
+    the window of ``acc_box`` (bright ones on that of ``bright_box``); they are found from the
+    window's source-plane bounds (:func:`simfield.lensing.source_plane_bounds`). The diffuse intracluster light is drawn
     over the window only (:func:`simfield.scene.draw_window`).
     """
     import galsim
@@ -773,25 +773,41 @@ def _draw_tile(ctx: _TileContext, acc_box, acc_grid: Grid, bright_box,
         return iy0 < box[1] and iy0 + n > box[0] and ix0 < box[3] and ix0 + n > box[2]
 
     lensed = np.zeros(len(sources), bool)
+    stamps: list[Stamp] = []
     if lens is not None:
-        from .lensing import render_lensed, source_plane_bounds
+        from .lensing import forget_grid, render_lensed, source_plane_bounds
 
         lensed = (z > sc.lens.redshift) & ~np.isin(kinds, ("member", "icl"))
-        xlo, xhi, ylo, yhi = source_plane_bounds(lens, acc_grid)
+        # bright lensed sources are ray traced over the window their large-PSF light reaches
+        # (the bright box, on the same 4-pixel node lattice), like bright unlensed ones: over
+        # the core window only, a tile lost the spikes of arc parts beyond it (an arc just
+        # outside the field edge, tests/test_pipeline.py)
+        wide_box = (bright_box[0] // 4 * 4, bright_box[1], bright_box[2] // 4 * 4,
+                    bright_box[3])
+        wide_grid = sgrid.window(wide_box[2], wide_box[0], wide_box[3] - wide_box[2],
+                                 wide_box[1] - wide_box[0])
         r_max = 5.0  # arcsec, largest source radius drawn (lensing.render.source_radius)
-        seen = (xs > xlo - r_max) & (xs < xhi + r_max) & (ys > ylo - r_max) & (ys < yhi + r_max)
-    stamps: list[Stamp] = []
-    for i in np.nonzero(lensed & seen if lens is not None else lensed)[0]:
-        # lensed galaxies stay one Sersic profile (r_half, sersic_n): bulge and disk lensed
-        # apart differed across tile seams (tests/test_pipeline.py), left for later
-        row = sources[i]
-        if two[i]:
-            row = {k: row[k] for k in row.colnames}
-            row["n_components"] = 1
-        prof = make_profile(row, sc.seed)
-        for im, iy0, ix0 in render_lensed(lens, prof, xs[i], ys[i], z[i], acc_grid):
-            stamps.append(Stamp(np.asarray(im, np.float32), int(iy0) + acc_box[0],
-                                int(ix0) + acc_box[2], int(i)))
+        for box, grid, which in ((acc_box, acc_grid, lensed & ~bright_any),
+                                 (wide_box, wide_grid, lensed & bright_any)):
+            if not np.any(which):
+                continue
+            xlo, xhi, ylo, yhi = source_plane_bounds(lens, grid)
+            seen = ((xs > xlo - r_max) & (xs < xhi + r_max) & (ys > ylo - r_max)
+                    & (ys < yhi + r_max))
+            for i in np.nonzero(which & seen)[0]:
+                # lensed galaxies stay one Sersic profile (r_half, sersic_n): bulge and disk
+                # lensed apart differed across tile seams (tests/test_pipeline.py), left for
+                # later
+                row = sources[i]
+                if two[i]:
+                    row = {k: row[k] for k in row.colnames}
+                    row["n_components"] = 1
+                prof = make_profile(row, sc.seed)
+                for im, iy0, ix0 in render_lensed(lens, prof, xs[i], ys[i], z[i], grid):
+                    stamps.append(Stamp(np.asarray(im, np.float32), int(iy0) + box[0],
+                                        int(ix0) + box[2], int(i)))
+        if wide_box != acc_box:
+            forget_grid(lens, wide_grid)
     # the diffuse intracluster light spans the field: every tile draws its window of it
     wanted = (near(acc_box, cap) | (bright_any & near(bright_box, cap)) | (kinds == "icl"))
     for i in np.nonzero(~lensed & wanted)[0]:

@@ -252,8 +252,8 @@ def test_family_ranges_and_columns(big):
     q = big[big["kind"] == "quiescent"]
     w = big[big["kind"] == "dwarf"]
     assert np.all((d["mag_b36"] >= p.dusty_mag_min - 1e-9) & (d["mag_b36"] <= p.dusty_mag_max))
-    assert np.all((d["redshift"] >= 1.0) & (d["redshift"] <= 4.0))
-    assert np.all((q["redshift"] >= 2.0) & (q["redshift"] <= 5.0))
+    assert np.all((d["redshift"] >= p.dusty_z_min) & (d["redshift"] <= p.dusty_z_max))
+    assert np.all((q["redshift"] >= p.quiescent_z_min) & (q["redshift"] <= p.quiescent_z_max))
     assert np.all((w["mag_b13"] >= 20.0) & (w["mag_b13"] <= 29.0))
     assert np.all(d["dust_av"] >= 0.3) and 1.3 < np.median(d["dust_av"]) < 3.0
     assert np.all(d["ew_halpha"] > 0) and np.all(q["ew_halpha"] == 0)

@@ -101,6 +101,34 @@ def test_lf_parameters_follow_bouwens2015(z):
     assert_allclose([p.m_star, p.phi_star, p.alpha], [ms, ps, al], rtol=1e-12)
 
 
+#: Parsa et al. 2016, MNRAS 456, 3194, Table 2: binned rest-1500 A luminosity function
+#: (Mpc^-3 mag^-1) in 0.5-mag bins from the first M_UV, read in a stored copy (repository
+#: mirochaj/ares, file ares/data/parsa2016.py); typed here for -21 <= M_UV <= -16.
+_PARSA2016 = {
+    1.9: (-21.0, [0.000152, 0.000555, 0.001654, 0.003467, 0.004961, 0.006454, 0.007849,
+                  0.010007, 0.01256, 0.01432, 0.01766]),
+    2.8: (-21.0, [0.000462, 0.001462, 0.002511, 0.00383, 0.004387, 0.007382, 0.008353,
+                  0.012432, 0.012238, 0.012821, 0.015599]),
+    3.8: (-21.0, [0.000475, 0.001087, 0.001709, 0.001916, 0.00211, 0.004008, 0.005485,
+                  0.007384, 0.01603, 0.010337, 0.01351]),
+}
+
+
+@pytest.mark.parametrize("z", sorted(_PARSA2016))
+def test_rest_uv_function_at_z2_4_against_parsa2016_bins(z):
+    """The rest-UV function's galaxies from M_UV = -21.25 to -15.75 at the mean redshifts of
+    Parsa et al. 2016 (Table 2, read) within 25 % of their binned densities summed (their
+    bins' errors are 5-10 %; the interpolation between nodes and the Schechter shape leave the
+    rest): achieved 1.02, 0.79 and 0.94 at z = 1.9,
+    2.8 and 3.8, so these functions are not what puts the 1.6 um counts above the recalled
+    table at AB 27-28."""
+    m0, phi = _PARSA2016[z]
+    hi = m0 + 0.5 * len(phi) - 0.25
+    model = integrate.quad(lambda m: float(luminosity.uv_luminosity_function(m, z)), m0 - 0.25,
+                           hi)[0]
+    assert abs(model / (0.5 * np.sum(phi)) - 1.0) < 0.25, model / (0.5 * np.sum(phi))
+
+
 @pytest.mark.parametrize("s", [-1.8, -1.3, -1.0, -0.6, -1e-12, 0.0, 0.4, 1.5])
 @pytest.mark.parametrize("x", [1e-3, 0.05, 1.0, 4.0])
 def test_upper_incomplete_gamma_quadrature(s, x):
@@ -403,7 +431,7 @@ def test_preselection_loses_no_visible_galaxies(band):
     assert n_ref > 300 and abs(n - n_ref) < 4 * np.sqrt(n_ref), (n, n_ref)
 
 
-_B16 = [make_band("b16", 1600, 360, 0.40)]
+_B16 = [make_band("b16", 1600, 360, 0.40), make_band("bk", 2150, 320, 0.40)]
 #: (side arcsec, mag_limit, first bin, last edge, seed): bright bins over 144 arcmin^2 to AB
 #: 24, faint ones over 25 arcmin^2 to AB 28 (Poisson errors <= 7 % per half-magnitude bin)
 _COUNT_FIELDS = ((720.0, 24.0, 20.0, 24.0, 1), (300.0, 28.0, 24.0, 28.0, 2))
@@ -411,7 +439,8 @@ _COUNT_FIELDS = ((720.0, 24.0, 20.0, 24.0, 1), (300.0, 28.0, 24.0, 28.0, 2))
 
 @pytest.fixture(scope="module")
 def count_fields():
-    """Population-stage tables (galaxies only) of :data:`_COUNT_FIELDS` in one 1.6 um band."""
+    """Population-stage tables (galaxies only) of :data:`_COUNT_FIELDS`, selected in a 1.6 um
+    band, with a 2.15 um band."""
     out = []
     for side, lim, *_, seed in _COUNT_FIELDS:
         pop = _pop(selection_band="b16", mag_limit=lim, star_density_arcmin2=0.0,
@@ -422,17 +451,17 @@ def count_fields():
 
 
 def test_number_counts_near_infrared(count_fields):
-    """Galaxy counts at 1.6 um against the published deep near-infrared counts of Windhorst et
-    al. 2011, ApJS 193, 27 [from memory] (the reference table of simfield.population.counts,
-    its normalisation checked there against Yan et al. 1998, ApJ 503, L19), per half-magnitude
-    bin from AB 20 to 28. Achieved with the published luminosity functions (no tuning): within
-    30 % from AB 24 to 27; 0.42-0.72 of the table at AB 20-24, where the table is high: the
-    published K-band count of test_k_band_counts_and_redshifts_of_k20 (Cimatti et al. 2002),
-    which the population meets within 10 % with the right redshifts, carried to 1.6 um with
-    the population's H - K colours (~0.3-0.4 AB at z ~ 1, as recalled for galaxies), gives
-    N(AB 20-22.15) ~ 7.5 arcmin^-2 against the table's 12.4 (0.22 dex, beyond the table's
-    ~0.1 dex recall); 1.3-1.45 at AB 27-28 (faint z = 1-5 galaxies of the rest-UV
-    functions)."""
+    """Galaxy counts at 1.6 um against the deep near-infrared counts of Windhorst et al. 2011,
+    ApJS 193, 27 [from memory] (the recalled table of simfield.population.counts; no stored
+    table of published 1.6 um counts per bin could be read; its normalisation is checked there
+    against Yan et al. 1998, ApJ 503, L19, read in the abstract), per half-magnitude bin from
+    AB 20 to 28. Achieved with the published luminosity functions (no tuning): within 30 % from
+    AB 24 to 27; 0.42-0.71 of the table at AB 20-24, where the table is the likelier culprit:
+    the published 2.15 um counts (test_number_counts_k_band, read in a stored table) carried to
+    1.6 um with the population's H - K colours lie ~0.15 dex below it, and the population is
+    0.66-0.8 of those; 1.30-1.35 at AB 27-28 (faint z = 1-5 star-forming galaxies of the
+    rest-UV functions, ~0.4, 0.3, 0.3 of the table from z = 1-2, 2-3, 3-5), against a table
+    recalled to ~0.1 dex, with no published count read to settle it."""
     from simfield.population.counts import population_counts, reference_counts
 
     ratios = []
@@ -443,11 +472,32 @@ def test_number_counts_near_infrared(count_fields):
     mid = np.arange(20.25, 28.0, 0.5)
     ok = (mid > 24.0) & (mid < 27.0)
     assert np.all((r[ok] > 0.7) & (r[ok] < 1.3)), r
-    assert np.all((r[mid < 24.0] > 0.35) & (r[mid < 24.0] < 0.85)), r
-    assert np.all((r[mid > 27.0] > 1.0) & (r[mid > 27.0] < 1.6)), r
+    assert np.all((r[mid < 24.0] > 0.35) & (r[mid < 24.0] < 0.8)), r
+    assert np.all((r[mid > 27.0] > 1.1) & (r[mid > 27.0] < 1.5)), r
     bright = mid[:8]
     slope = np.polyfit(bright, np.log10(ratios[0] * reference_counts(bright)), 1)[0]
     assert 0.2 < slope < 0.4  # ~0.25-0.3 dex/mag at AB 20-24 (counts module docstring)
+
+
+def test_number_counts_k_band(count_fields):
+    """Galaxy counts at 2.15 um against the published Ks counts of Weaver et al. 2022, ApJS
+    258, 11, Table 2 (read in a stored copy, simfield.population.counts), per half-magnitude
+    bin from AB 20 to 25.5 (AB 20-23 from the field selected to 1.6 um AB 24, where every
+    galaxy that bright at 2.15 um is kept but the reddest, 23-25.5 from the deep one).
+    Achieved: within 30 % from AB 21.5 to 25.5; 0.66 at AB 20-21.5 (M* galaxies at z ~ 0.3-1
+    of the rest-K function, Cirasuolo et al. 2010 [mem]), where two published counts differ by
+    ~25 %: the same population is 0.8-0.9 of the K20 count (test_k_band_counts_and_redshifts_of_
+    k20), which this table's integral exceeds by 22 % (tests/test_counts.py)."""
+    from simfield.population.counts import population_counts, reference_counts_k
+
+    ratios = []
+    for t, (side, *_), (lo, hi) in zip(count_fields, _COUNT_FIELDS, ((20.0, 23.0), (23.0, 25.5))):
+        mid, n, _ = population_counts(t, "bk", side ** 2, np.arange(lo, hi + 0.01, 0.5))
+        ratios.append(n / reference_counts_k(mid))
+    r = np.concatenate(ratios)
+    mid = np.arange(20.25, 25.5, 0.5)
+    assert np.all((r[mid > 21.5] > 0.7) & (r[mid > 21.5] < 1.3)), r
+    assert np.all((r[mid < 21.5] > 0.5) & (r[mid < 21.5] < 0.8)), r
 
 
 def _cirasuolo2010(z):

@@ -15,12 +15,16 @@ distribution of submillimetre galaxies peaks at z ~ 2.2-2.6, Chapman et al. 2005
 Dudzeviciute et al. 2020, MNRAS 494, 3828 [mem]). Shapes: the star-forming size relation of
 :mod:`.morphology`, no knots.
 
-Quiescent galaxies with strong Balmer breaks (``kind`` "quiescent"), z ~ 2-5: the "evolved"
+Quiescent galaxies with strong Balmer breaks (``kind`` "quiescent"), by default at z = 4-6,
+beyond the light cone's own quiescent galaxies (drawn from the rest-K function up to z = 4,
+:mod:`.lightcone`; the rest-UV function's galaxies are all star-forming), at the density of
+``conf/population/evolving_lf.yaml`` (published number densities at z ~ 4 [mem]): the "evolved"
 template shape with a stronger break, N(``quiescent_break``, 0.2) clipped to [1.8, 3.5] (flux
 ratio across the break of post-starburst and quiescent galaxies at z > 3 ~ 2-3, e.g. Carnall
 et al. 2023, Nature 619, 716 [mem]); redshifts with p(z) ~ exp(-(z - z_min) / 0.8) (the number
 density of massive quiescent galaxies falls by ~10x from z ~ 2.5 to ~3.7, Muzzin et al. 2013,
-ApJ 777, 18; Straatman et al. 2014, ApJ 783, L14 [mem]); sizes from the quiescent relation of
+ApJ 777, 18; Straatman et al. 2014, ApJ 783, L14 [mem]; the same e-folding is kept beyond
+z = 4, with the volume element nearly flat there); sizes from the quiescent relation of
 :mod:`.sizes` (van der Wel et al. 2014; ~0.5 kpc at M* = 5e10 Msun and z = 4, compact like the
 ~0.5-1 kpc of Straatman et al. 2015, ApJ 808, L29 and Esdaile et al. 2021, ApJ 908, L35
 [mem]), Sersic n ~ 3.5; no lines, no dust.

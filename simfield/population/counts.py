@@ -1,32 +1,52 @@
 """Galaxy number counts of a population against published near-infrared deep-field counts.
 
-Reference: differential counts of galaxies in the 1.6 um band of deep space-based fields,
-log10 (dN/dm / (mag^-1 deg^-2)) at integer AB magnitudes 20-29, after Windhorst et al. 2011,
-ApJS 193, 27 (their near-infrared panchromatic counts; shape read off the figure [from memory,
-approximate: ~0.1 dex]), interpolated linearly in log between the magnitudes:
+Two references, differential counts log10 (dN/dm / (mag^-1 deg^-2)) against AB magnitude:
 
-    m:      20    21    22    23    24    25    26    27    28    29
-    log N: 4.00  4.28  4.52  4.75  4.95  5.12  5.27  5.40  5.52  5.62
+1. 1.6 um (:data:`REFERENCE_MAGS`, :data:`REFERENCE_LOG_COUNTS`, :func:`reference_counts`):
+   after Windhorst et al. 2011, ApJS 193, 27 (their near-infrared panchromatic counts; shape
+   read off the figure [from memory, approximate: ~0.1 dex]; no stored table of published
+   1.6 um counts per bin could be read), interpolated linearly in log between the magnitudes::
 
-The figure gives counts per 0.5 mag (the convention of that compilation [from memory]); the
-values above are per mag, i.e. the figure's values + log10 2. Checks of the normalisation:
-N(< 26.14 AB) = 4.5e5 deg^-2 from this table against 4e5 deg^-2 to H <= 24.75 (Vega) of Yan et
-al. 1998, ApJ 503, L19 (abstract; H_AB = H_Vega + 1.39 at 1.6 um [from memory]), and log N
-within 0.15 dex of the deep H-band counts recalled in tests/test_population.py (Metcalfe et al.
-2006, MNRAS 370, 1257 [from memory]). N(< 28) ~ 260 arcmin^-2; slope ~0.25-0.3 dex/mag at
-AB 20-23 flattening to ~0.12 dex/mag at 27-29. At AB 20-22 the table is ~0.2 dex above what
-the published K-band count of Cimatti et al. 2002, A&A 391, L1 (480 galaxies with Ks < 20
-Vega over 52 arcmin^2, abstract) implies with the H - K colours of galaxies
-(tests/test_population.py: the population meets that count and its redshift distribution).
+       m:      20    21    22    23    24    25    26    27    28    29
+       log N: 4.00  4.28  4.52  4.75  4.95  5.12  5.27  5.40  5.52  5.62
 
-The population's counts are those of its truth table in the band
-whose pivot is nearest 1.6 um (galaxies of every family, intrinsic magnitudes).
+   The figure gives counts per 0.5 mag (the convention of that compilation [from memory]);
+   the values above are per mag. Checked against what could be read: N(< 26.14 AB) = 4.5e5
+   deg^-2 from this table against 4e5 deg^-2 to H <= 24.75 (Vega) of Yan et al. 1998, ApJ 503,
+   L19 (abstract, read at https://core.ac.uk/works/43113350; H_AB = H_Vega + 1.39 at 1.6 um
+   [from memory]), which also gives a slope of 0.31 fainter than H = 20 Vega. N(< 28) ~ 260
+   arcmin^-2; slope ~0.25-0.3 dex/mag at AB 20-23 flattening to ~0.12 dex/mag at 27-29.
+
+2. 2.15 um (:data:`K_REFERENCE_MAGS`, :data:`K_REFERENCE_LOG_COUNTS`,
+   :func:`reference_counts_k`): the Ks-band galaxy counts of Weaver et al. 2022, ApJS 258, 11
+   (their Table 2, the profile-fitted catalogue over the deepest part of their 1.3 deg^2 [from
+   memory]), per mag per deg^2 at the centres of 0.5 mag bins, read in a stored copy of that
+   table (repository mirochaj/ares, file ares/data/weaver2022.py, whose note leaves open whether
+   the values are per mag or per 0.5-mag bin). Per mag is the reading that meets two independent
+   published K counts, each read in its abstract: 480 galaxies with Ks < 20 Vega (21.84 AB) over
+   52 arcmin^2 (Cimatti et al. 2002, A&A 391, L1, read at
+   https://arxiv.org/abs/astro-ph/0207191), i.e. 9.2 arcmin^-2, against 11.3 arcmin^-2
+   integrated from this table, and ~5e5 deg^-2 to K = 24 Vega (25.85 AB) (Djorgovski et al.
+   1995, ApJ 438, L13, read at http://adsabs.harvard.edu/doi/10.1086/187703) against 3.95e5
+   (per 0.5-mag bin would give half of each: 0.61 and 0.40 of them). Bins fainter than 25.75
+   are left out: the published counts turn over there (5.24 at 25.75, 5.13 at 26.25), the
+   survey's incompleteness. Ks_AB = Ks_Vega + 1.84 [from memory].
+
+The two do not agree at the bright end: at AB 20-22 the 1.6 um table is ~0.15 dex above the
+2.15 um counts carried to 1.6 um with the population's H - K colours (the population is
+0.42-0.50 of the 1.6 um table and 0.6-0.66 of the 2.15 um counts there), the 2.15 um counts
+being read and the 1.6 um table recalled.
+
+The population's counts are those of its truth table in the band whose pivot is nearest 1.6 um
+(galaxies of every family, intrinsic magnitudes).
 
 ``python -m simfield.population.counts --out counts.png [overrides]`` draws the scenario's
 population over ``--side`` arcsec and writes the figure a run writes on request
-(:mod:`.figure`: counts, their ratio to the reference, colours); it prints the ratio per half-magnitude bin and its split by redshift (light-cone
-galaxies) and by contaminant family. Units: AB mag, counts per mag per
-deg^2.
+(:mod:`.figure`: counts, their ratio to the reference, colours); it prints the ratio per
+half-magnitude bin and its split by redshift (light-cone galaxies) and by contaminant family,
+then the same against the 2.15 um counts in a top-hat band of that wavelength (:data:`K_BAND`,
+added to the draw for this comparison only; the selection band stays the scenario's).
+Units: AB mag, counts per mag per deg^2.
 """
 
 from __future__ import annotations
@@ -36,17 +56,37 @@ import sys
 
 import numpy as np
 
-__all__ = ["REFERENCE_MAGS", "REFERENCE_LOG_COUNTS", "reference_counts", "population_counts",
+__all__ = ["REFERENCE_MAGS", "REFERENCE_LOG_COUNTS", "K_REFERENCE_MAGS", "K_REFERENCE_LOG_COUNTS",
+           "K_BAND", "reference_counts", "reference_counts_k", "population_counts",
            "split_counts", "main"]
 
+#: 1.6 um counts after Windhorst et al. 2011 [from memory] (module docstring).
 REFERENCE_MAGS = np.arange(20.0, 29.5, 1.0)
 REFERENCE_LOG_COUNTS = np.array([4.00, 4.28, 4.52, 4.75, 4.95, 5.12, 5.27, 5.40, 5.52, 5.62])
+#: 2.15 um counts of Weaver et al. 2022, Table 2 (deepest area), read in mirochaj/ares
+#: ares/data/weaver2022.py: bin centres (AB) and log10 counts per mag per deg^2.
+K_REFERENCE_MAGS = np.arange(19.25, 25.8, 0.5)
+K_REFERENCE_LOG_COUNTS = np.array([3.65, 3.86, 4.02, 4.16, 4.29, 4.42, 4.54, 4.66, 4.78, 4.88,
+                                   4.97, 5.07, 5.18, 5.24])
 _GALAXY_KINDS = ("galaxy", "dusty", "quiescent")
+#: (name, centre nm, width nm, peak throughput) of the 2.15 um band of the command line's
+#: comparison with :func:`reference_counts_k` (a Ks-like top hat; project choice).
+K_BAND = ("k215", 2150.0, 320.0, 0.40)
 
 
 def reference_counts(mag):
-    """Published differential counts dN/dm (mag^-1 deg^-2) at AB magnitude ``mag``."""
+    """Published differential counts dN/dm (mag^-1 deg^-2) at 1.6 um at AB magnitude ``mag``
+    (the recalled table)."""
     return 10.0 ** np.interp(mag, REFERENCE_MAGS, REFERENCE_LOG_COUNTS)
+
+
+def reference_counts_k(mag):
+    """Published differential counts dN/dm (mag^-1 deg^-2) at 2.15 um at AB magnitude ``mag``
+    (Weaver et al. 2022), NaN outside the tabulated bin centres 19.25-25.75."""
+    mag = np.asarray(mag, dtype=float)
+    inside = (mag >= K_REFERENCE_MAGS[0]) & (mag <= K_REFERENCE_MAGS[-1])
+    return np.where(inside, 10.0 ** np.interp(mag, K_REFERENCE_MAGS, K_REFERENCE_LOG_COUNTS),
+                    np.nan)
 
 
 def population_counts(table, band: str, area_arcsec2: float, edges):
@@ -76,13 +116,23 @@ def split_counts(table, band: str, area_arcsec2: float, edges):
     return {k: np.histogram(m[v], bins=edges)[0] * scale for k, v in masks.items()}
 
 
+def _print_ratios(mid, n, ref, parts, label):
+    print(f"{label}\n  mag  population   reference  ratio   " + " ".join(f"{k:>9s}" for k in parts)
+          + "   (columns after ratio: share of the reference)")
+    for i, (c, v, r) in enumerate(zip(mid, n, ref)):
+        print(f"{c:5.2f}  {v:10.0f}  {r:10.0f}  {v / r:5.2f}   " +
+              " ".join(f"{p[i] / r:9.2f}" for p in parts.values()))
+
+
 def main(argv=None) -> int:
     """Command line: the figure of the scenario's counts against the reference."""
+    import dataclasses
+
     from .. import cli
-    from ..bands import make_bands
+    from ..bands import make_band, make_bands
     from ..random import stream
     from .figure import figure_bands, write_population_figure
-    from .lightcone import make_population
+    from .lightcone import make_population, selection_band_index
 
     ap = argparse.ArgumentParser(prog="python -m simfield.population.counts",
                                  description="Galaxy counts of the scenario's population "
@@ -94,18 +144,20 @@ def main(argv=None) -> int:
     sc = cli.preflight(list(a.overrides))[0]
     bands = make_bands(sc)
     band = figure_bands(bands)[1]
+    # the 2.15 um band joins the draw; the selection band is fixed first so it stays the same
+    pop = dataclasses.replace(sc.population,
+                              selection_band=bands[selection_band_index(sc.population,
+                                                                        bands)].name)
     half = a.side / 2
-    t = make_population(sc.population, bands, (-half, half), (-half, half),
+    t = make_population(pop, bands + [make_band(*K_BAND)], (-half, half), (-half, half),
                         stream(sc.seed, "population", "counts"))
-    edges = np.arange(20.0, 29.01, 0.5)
-    mid, n, err = population_counts(t, band, a.side ** 2, edges)
-    ref = reference_counts(mid)
-    parts = split_counts(t, band, a.side ** 2, edges)
-    print("  mag  population   reference  ratio   " + " ".join(f"{k:>9s}" for k in parts)
-          + "   (columns after ratio: share of the reference)")
-    for i, (c, v, r) in enumerate(zip(mid, n, ref)):
-        print(f"{c:5.2f}  {v:10.0f}  {r:10.0f}  {v / r:5.2f}   " +
-              " ".join(f"{p[i] / r:9.2f}" for p in parts.values()))
+    for name, ref_fn, edges, label in (
+            (band, reference_counts, np.arange(20.0, 29.01, 0.5),
+             f"{band} against the 1.6 um table [from memory]"),
+            (K_BAND[0], reference_counts_k, np.arange(19.0, 26.01, 0.5),
+             f"{K_BAND[0]} against the 2.15 um counts of Weaver et al. 2022")):
+        mid, n, _ = population_counts(t, name, a.side ** 2, edges)
+        _print_ratios(mid, n, ref_fn(mid), split_counts(t, name, a.side ** 2, edges), label)
     write_population_figure(a.out, t, bands, a.side ** 2, sc.seed)
     print(f"wrote {a.out}")
     return 0

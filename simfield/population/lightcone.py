@@ -16,15 +16,20 @@ Light-cone galaxies come from two published luminosity functions, each galaxy on
   of it), all with the evolved template;
 - at every z, (z, M_UV) from the rest-UV function, thinned below z = 2 by
   :func:`.restk.uv_excess_fraction` to the star-forming galaxies the rest-K function does not
-  already hold (its faint end, where the rest-K fit is extrapolated); evolved templates
-  (:func:`.seds.evolved_probability`) only from z = 4 on.
+  already hold (its faint end, where the rest-K fit is extrapolated); all star-forming: the
+  rest-UV function counts UV-selected galaxies, and an evolved template normalised to a UV
+  magnitude is a rest-optical galaxy ~5 mag brighter (M_UV - M_J ~ 5.3). Evolved templates on
+  these galaxies above z = 4 (the former :func:`.seds.evolved_probability` draw) made
+  ~0.8 quiescent galaxies per arcmin^2 at z = 4-5 brighter than AB 27 at 3.6 um, a comoving
+  density of ~3e-4 Mpc^-3, ten times the published densities of quiescent galaxies at z ~ 4
+  (:mod:`.contaminants`); quiescent galaxies beyond z = 4 are that family's.
 
 Only galaxies whose apparent magnitude in the selection band could pass ``mag_limit`` are drawn:
-for every redshift the brightest selection-band colour each template can have (its parameters at
-their extreme deviates, which are clipped at 4 sigma; the band flux grows with the optical slope
-and the break and is convex in beta, so the ends of each range bound it) gives the faintest
-M_UV that can still pass, with a 0.05 mag margin; galaxies beyond that are never drawn, the rest
-are cut exactly on their synthetic magnitude. With emission lines on, the star-forming envelope
+for every redshift the brightest selection-band colour the star-forming template can have (its
+parameters at their extreme deviates, which are clipped at 4 sigma; the band flux grows with
+the optical slope and the break) gives the faintest M_UV that can still pass, with a 0.05 mag
+margin; galaxies beyond that are never drawn, the rest are cut exactly on their synthetic
+magnitude. With emission lines on, the star-forming envelope
 carries the lines at their largest equivalent width (the +3 sigma clip of the draw).
 """
 
@@ -78,7 +83,8 @@ def selection_band_index(pop: PopulationConfig, bands: Sequence[Band]) -> int:
 
 
 class _Envelope:
-    """Faintest colour (m_sel - m_1500) each template can have, on a redshift grid."""
+    """Faintest colour (m_sel - m_1500) the star-forming template can have, on a redshift
+    grid."""
 
     def __init__(self, phot: Photometry, z_min, z_max, mag_limit):
         self.z = np.linspace(z_min, z_max, max(60, int(np.ceil((z_max - z_min) / 0.05)) + 1))
@@ -97,12 +103,6 @@ class _Envelope:
         k_sf -= m_flat[:, None]
         # redder-or-equal betas could all occur: running minimum along beta
         self.k_sf = np.minimum.accumulate(k_sf, axis=1)
-        # evolved: band flux rises with beta_opt and the break but is convex in beta (a sum of
-        # exponentials in beta), so its largest value is at an end of beta's range [0, 2]
-        ones = np.ones(nz)
-        k_ev = [phot.mags(self.z, 0 * ones, b * ones, 2.6 * ones, 0.1 * ones, True)[:, 0]
-                for b in (0.0, 2.0)]
-        self.k_ev = np.minimum(*k_ev) - m_flat
         self.m_flat = m_flat
 
     def _cell(self, z):
@@ -110,16 +110,14 @@ class _Envelope:
         return i - 1, i
 
     def passes(self, z, m_uv):
-        """(star-forming could pass, evolved could pass) for galaxies at (z, M_UV)."""
+        """Whether star-forming galaxies at (z, M_UV) could pass the limit."""
         z = np.asarray(z, dtype=float)
         a, b = self._cell(z)
         m_flat = np.interp(z, self.z, self.m_flat)
         beta_max = np.minimum(uv_slope_relation(z, m_uv) + 4.0 * BETA_SCATTER, 0.5)
         j = np.clip(np.searchsorted(_ENVELOPE_BETAS, beta_max), 0, _ENVELOPE_BETAS.size - 1)
         k_sf = np.minimum(self.k_sf[a, j], self.k_sf[b, j])
-        k_ev = np.minimum(self.k_ev[a], self.k_ev[b])
-        lim = self.mag_limit + _MARGIN_MAG
-        return m_uv + m_flat + k_sf < lim, m_uv + m_flat + k_ev < lim
+        return m_uv + m_flat + k_sf < self.mag_limit + _MARGIN_MAG
 
 
 def line_parameters(pop: PopulationConfig):
@@ -151,19 +149,9 @@ def _lf_weight(pop, phot):
     env = _Envelope(phot, pop.z_min, pop.z_max, pop.mag_limit)
 
     def weight(z, m):
-        p = _uv_evolved_probability(z, m)
-        ok_sf, ok_ev = env.passes(z, m)
-        return ((1.0 - p) * ok_sf + p * ok_ev) * uv_excess_fraction(z, m)
+        return env.passes(z, m) * uv_excess_fraction(z, m)
 
     return env, weight
-
-
-def _uv_evolved_probability(z, m):
-    """:func:`evolved_probability` above :data:`.restk.QUIESCENT_Z_MAX`; 0 below, where the
-    evolved galaxies come from the rest-K function."""
-    z = np.asarray(z, dtype=float)
-    return np.where(z >= QUIESCENT_Z_MAX, evolved_probability(z, m, uv_lf_parameters(z).m_star),
-                    0.0)
 
 
 def expected_galaxies(pop: PopulationConfig, bands: list[Band], area_arcsec2: float,
@@ -279,22 +267,18 @@ def _galaxies_from_lf(pop, phot, area, rng, cosmo):
 
 def _galaxies_from_uv_lf(pop, phot, area, rng, cosmo, z_lo, z_hi, budget):
     """Rest-UV galaxies: (z, M_UV) from the rest-UV function thinned by the envelope and
-    :func:`.restk.uv_excess_fraction`, the template (evolved only above
-    :data:`.restk.NIR_LF_Z_MAX`, with :func:`evolved_probability`), then the exact cut."""
+    :func:`.restk.uv_excess_fraction`, the star-forming template, then the exact cut."""
     env, weight = _lf_weight(pop, phot)
     draw = _draw(pop, z_lo, z_hi, pop.abs_mag_faint, area, rng, weight=weight, cosmo=cosmo,
                  budget=budget)
     z, m = draw.redshift, draw.abs_mag
-    p = _uv_evolved_probability(z, m)
-    ok_sf, ok_ev = env.passes(z, m)
-    w = (1.0 - p) * ok_sf + p * ok_ev
-    p_ev = np.divide(p * ok_ev, w, out=np.zeros_like(w), where=w > 0)
-    evolved = rng.random(z.size) < p_ev
+    ok = env.passes(z, m)
+    evolved = np.zeros(z.size, bool)
     sed = sed_parameters_from_deviates(z, m, evolved, rng.standard_normal((3, z.size)))
     ew = _halpha_ew(phot, z, evolved, rng)
     m_sel = phot.mags(z, m, sed.beta, sed.break_strength, sed.beta_opt, True,
                       ew_halpha=ew)[:, 0]
-    keep = (w > 0) & (m_sel < pop.mag_limit)
+    keep = ok & (m_sel < pop.mag_limit)
     return z[keep], m[keep], evolved[keep], _sed_subset(sed, keep), ew[keep], draw.expected
 
 

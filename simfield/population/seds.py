@@ -20,7 +20,9 @@ Two template families (:func:`draw_sed_parameters`): star-forming galaxies with 
 UV-slope relation of Bouwens et al. 2014, ApJ 793, 115 (table 3, [mem]) and a weak break, and
 evolved galaxies with a red UV slope and a strong break. The probability of "evolved" falls with
 redshift and with UV luminosity (quiescent galaxies are rare among UV-luminous sources; the
-quiescent fraction drops steeply beyond z ~ 2, e.g. Muzzin et al. 2013, ApJ 777, 18 [mem]).
+quiescent fraction drops steeply beyond z ~ 2, e.g. Muzzin et al. 2013, ApJ 777, 18 [mem]);
+:func:`evolved_probability` serves the uniform (injection) mode and :func:`draw_sed_parameters`:
+the light cone takes its evolved galaxies from the rest-K function instead (:mod:`.restk`).
 
 Intergalactic absorption: Madau 1995, ApJ 441, 18 (eqs. 12-15 and footnote 3), see
 :func:`igm_transmission`. Normalisation: the rest-1500 A absolute AB magnitude is M_UV, i.e. the
@@ -303,7 +305,8 @@ def uv_slope_relation(z, abs_mag_uv):
 
 
 def evolved_probability(z, abs_mag_uv, m_star):
-    """Probability that a galaxy of the UV luminosity function has an evolved template.
+    """Probability that a galaxy drawn by UV magnitude has an evolved template (the uniform
+    injection mode; the light cone's rest-UV galaxies are all star-forming, :mod:`.lightcone`).
 
     p = 0.25 / (1 + ((1 + z) / 2.5)^4) exp(-(M_UV - M* - 1.5)^2 / (2 1.5^2)): the redshift
     factor is 0.24 at z = 0, 0.12 at z = 1.5, 0.03 at z = 3 and < 0.01 beyond z = 4; the
