@@ -743,8 +743,8 @@ def _draw_tile(ctx: _TileContext, acc_box, acc_grid: Grid, bright_box,
     ``acc_grid`` its window of the scene grid), ``bright_box`` grown by the large PSF, which
     sources bright in some band (``bright_any``) may reach. Lensed sources are ray traced on
     the window of ``acc_box`` (bright ones on that of ``bright_box``); they are found from the
-    window's source-plane bounds (:func:`simfield.lensing.source_plane_bounds`). The diffuse intracluster light is drawn
-    over the window only (:func:`simfield.scene.draw_window`).
+    window's source-plane bounds (:func:`simfield.lensing.source_plane_bounds`). The diffuse
+    intracluster light is drawn over the window only (:func:`simfield.scene.draw_window`).
     """
     import galsim
 
