@@ -52,6 +52,9 @@ def figures(tmp_path_factory):
                         f"telescope.psf.cache_dir={tmp / 'psf_cache'}")
     sc.selection.samples = [SampleConfig(  # two bands: an S/N sample, no colour diagram
         "bright", 0.0, 15.0, [ConditionConfig(kind="snr", bands=["b23"], above=3.0)])]
+    # one process: with several workers the scoring runs in a process of its own, where the
+    # figures it saves could not be captured here
+    sc.workers = 1
     try:
         res = run_scenario(sc, tmp / "run")
     finally:
