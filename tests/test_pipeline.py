@@ -126,6 +126,7 @@ def test_star_light_centred_on_truth_position(tmp_path):
                         "population.uniform_density_arcmin2=0",
                         "population.star_mag_min=20", "population.star_mag_max=22",
                         "detection.enabled=false")
+    sc.telescope.bands = [b for b in sc.telescope.bands if b.name == "b23"]  # the band read
     res = run_scenario(sc, tmp_path / "stars")
     src = Table.read(res.out_dir / "truth.fits", hdu="SOURCES")
     img = fits.getdata(res.out_dir / "truth_image_b23.fits", "IMAGE").astype(float)
@@ -270,6 +271,7 @@ def test_written_exposures_are_whole_and_consistent_with_their_wcs(tmp_path):
     exposure's own WCS puts it (astropy.wcs all_world2pix)."""
     sc = small_scenario(tmp_path, "detection.enabled=false", "survey.write_exposures=true",
                         "survey.tile_pixels=64", "detector.cosmic_rays=false")
+    sc.telescope.bands = [b for b in sc.telescope.bands if b.name == "b23"]  # the band read
     res = run_scenario(sc, tmp_path / "exp")
     files = sorted((res.out_dir / "exposures").glob("exp_b23_*.fits"))
     assert len(files) == sc.survey.n_exposures
