@@ -24,14 +24,16 @@ from tests.conftest import make_scenario
 
 ROOT = Path(__file__).resolve().parent.parent
 
-# A field small enough for a few jobs in seconds: one band, 8 arcsec, no detection (these tests
-# check seeds, mosaics, depths, completeness markers and collection, not the catalogues).
+# A field small enough for a few jobs in seconds: one band, 8 arcsec, small PSFs (each job's
+# seed is its own, and so is its PSF), no detection (these tests check seeds, mosaics, depths,
+# completeness markers and collection, not the catalogues).
 TINY = [
     "survey=quick", "survey.width_arcsec=8", "survey.height_arcsec=8",
     "telescope.bands=[{name:b17,center_nm:1700,width_nm:380,throughput:0.4,sky_mjy_sr:0.18}]",
     "selection=none", "detection.enabled=false",
-    "telescope.psf.n_wavelengths=3", "score.report=false", "telescope.field_psf.enabled=false",
-    "telescope.drift.enabled=false",
+    "telescope.psf.n_wavelengths=3", "telescope.psf.spike_radius_arcsec=2.0",
+    "telescope.psf.core_radius_arcsec=1.0", "score.report=false",
+    "telescope.field_psf.enabled=false", "telescope.drift.enabled=false",
 ]
 
 
