@@ -138,7 +138,7 @@ def _run_scenario(sc: Scenario, out_dir: str | Path, progress: bool, engine) -> 
         sgrid: Grid = scene_grid(srv, tel)
         mgrid: Grid = mosaic_grid(srv)
         files.append(write_table(out / "bands.ecsv", _bands_table(bands, area), prov))
-        files.append(write_text(out / "scenario.yaml", to_yaml(sc)))
+        files.append(write_text(out / "scenario.yaml", prov.config_yaml))  # = to_yaml(sc)
 
     # ---------------------------------------------------------------- population (+ lens)
     with timer("population"):

@@ -1,5 +1,6 @@
 """Shared fixtures: compose scenarios from conf/ without the command line."""
 
+import copy
 import os
 import shutil
 import tempfile
@@ -44,7 +45,8 @@ def make_scenario(*overrides: str):
     ``telescope.field_psf`` / ``telescope.drift`` or picks a telescope: their extra PSFs cost
     seconds per band with the empty PSF cache of a test, and only tests/test_field_psf.py and
     tests/test_drift.py test them. The PSF cache is the session's (:func:`shared_psf_cache`)
-    unless an override names ``telescope.psf.cache_dir``.
+    unless an override names ``telescope.psf.cache_dir``. The same overrides give an equal
+    Scenario composed once per process (a deep copy each call).
     """
     register_configs()
     overrides = list(overrides)
@@ -53,9 +55,19 @@ def make_scenario(*overrides: str):
     for key in ("telescope.field_psf", "telescope.drift"):
         if not any(o.startswith((key, "telescope=")) for o in overrides):
             overrides.insert(0, f"{key}.enabled=false")
-    with initialize_config_dir(CONF, version_base=None):
-        cfg = compose("config", overrides=overrides)
-    return to_scenario(cfg)
+    memo = tuple(overrides)
+    if memo not in _COMPOSED:
+        with initialize_config_dir(CONF, version_base=None):
+            cfg = compose("config", overrides=overrides)
+        _COMPOSED[memo] = to_scenario(cfg)
+    return copy.deepcopy(_COMPOSED[memo])
+
+
+#: Scenarios composed so far in this process, by their full override list: Hydra's compose
+#: takes ~0.3 s, and many tests compose the same scenario; each caller gets its own deep copy
+#: (tests change bands and other fields in place). Refused overrides are not kept: they are
+#: composed, and refused, every time.
+_COMPOSED: dict = {}
 
 
 @pytest.fixture

@@ -84,9 +84,16 @@ def _option_helps(text: str) -> dict[str, str]:
     return out
 
 
+@pytest.fixture(scope="module")
+def score_help(tmp_path_factory):
+    """``simfield-score --help``, run once for the two tests that read it."""
+    return _run(tmp_path_factory.mktemp("score_help"), "--help", entry="score_main")
+
+
 @pytest.mark.parametrize("entry", ["score_main", "inject_main", "collect_main"])
-def test_every_option_shows_its_default(tmp_path, entry):
-    r = _run(tmp_path, "--help", entry=entry)
+def test_every_option_shows_its_default(tmp_path, entry, request):
+    r = request.getfixturevalue("score_help") if entry == "score_main" else \
+        _run(tmp_path, "--help", entry=entry)
     assert r.returncode == 0, r.stderr
     helps = _option_helps(r.stdout)
     assert helps
@@ -95,8 +102,8 @@ def test_every_option_shows_its_default(tmp_path, entry):
     assert "``" not in r.stdout and ":func:" not in r.stdout  # plain text, no reST markup
 
 
-def test_score_help_states_radius_and_flux_unit_defaults(tmp_path):
-    helps = _option_helps(_run(tmp_path, "--help", entry="score_main").stdout)
+def test_score_help_states_radius_and_flux_unit_defaults(score_help):
+    helps = _option_helps(score_help.stdout)
     assert "default: nJy" in helps["--flux-unit"]
     assert "match_radius_arcsec" in helps["--radius"] and "default" in helps["--radius"]
     assert "default: ra" in helps["--ra-col"] and "default: dec" in helps["--dec-col"]

@@ -18,6 +18,8 @@ from pathlib import Path
 
 import pytest
 
+from tests.conftest import shared_psf_cache
+
 SIMFIELD = [sys.executable, "-c", "from simfield.cli import main; main()"]
 
 
@@ -149,11 +151,12 @@ def _alive(pid: int) -> bool:
 @pytest.mark.skipif(not Path("/proc/self/task").is_dir(), reason="needs Linux /proc")
 def test_killed_run_takes_its_workers_with_it(tmp_path):
     """kill -9 of a run with two tile processes: no worker is alive 5 s later."""
+    # the band and PSF of tests/test_robustness.py's tiny runs, from the session's PSF cache
     args = ["survey=quick", "survey.tile_pixels=200", "workers=2", "score.report=false",
-            "telescope.bands=[{name:b17,center_nm:1700,width_nm:380}]",
-            "selection=none",
-            "telescope.psf.n_wavelengths=3", f"telescope.psf.cache_dir={tmp_path / 'psf'}",
-            f"hydra.run.dir={tmp_path / 'run'}"]
+            "telescope.bands=[{name:b17,center_nm:1700,width_nm:380,throughput:0.4,"
+            "sky_mjy_sr:0.18}]", "selection=none", "telescope.psf.n_wavelengths=3",
+            "telescope.field_psf.enabled=false", "telescope.drift.enabled=false",
+            f"telescope.psf.cache_dir={shared_psf_cache()}", f"hydra.run.dir={tmp_path / 'run'}"]
     proc = subprocess.Popen([*SIMFIELD, *args], cwd=tmp_path, stdout=subprocess.DEVNULL,
                             stderr=subprocess.DEVNULL)
     try:

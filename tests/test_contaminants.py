@@ -371,7 +371,8 @@ def test_quick_run_has_every_kind_renders_them_and_scores_galaxies_only(tmp_path
     sc = make_scenario("survey=quick", "survey.width_arcsec=10", "survey.height_arcsec=10",
                        "telescope.psf.spike_radius_arcsec=2.0",
                        "telescope.psf.core_radius_arcsec=1.0", "score.report=false",
-                       "selection.report=false", "population.star_density_arcmin2=400",
+                       "selection=none", "photoz.enabled=false",  # neither is examined
+                       "population.star_density_arcmin2=400",
                        "population.dwarf_density_arcmin2=400",
                        "population.dusty_density_arcmin2=400",
                        "population.quiescent_density_arcmin2=400")

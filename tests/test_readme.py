@@ -1,8 +1,9 @@
 """README.md's "From Python" example runs as written.
 
 Source: the README itself; the code block under "## From Python" is extracted and executed
-with two textual changes only (a smaller field on top of survey=quick, and a temporary output
-folder), so a broken import, call or key in the README fails here.
+with two textual changes only (overrides for a smaller, faster field on top of survey=quick
+with the test session's PSF cache, and a temporary output folder), so a broken import, call
+or key in the README fails here.
 """
 
 from __future__ import annotations
@@ -10,11 +11,16 @@ from __future__ import annotations
 import re
 from pathlib import Path
 
+from tests.conftest import shared_psf_cache
+
 README = Path(__file__).resolve().parents[1] / "README.md"
 
 FAST = ('"survey=quick", "survey.width_arcsec=8", "survey.height_arcsec=8", '
         '"telescope.psf.spike_radius_arcsec=2.0", "telescope.psf.core_radius_arcsec=1.0", '
-        '"score.report=false", "selection=none", "workers=1"')
+        '"score.report=false", "selection=none", "workers=1", '
+        # the field-dependent PSF and the drift: extra PSFs per band, tested in
+        # tests/test_field_psf.py and tests/test_drift.py
+        '"telescope.field_psf.enabled=false", "telescope.drift.enabled=false"')
 
 
 def _from_python_block() -> str:
@@ -35,8 +41,10 @@ def test_from_python_example_runs(tmp_path):
     code = _from_python_block()
     assert 'overrides=["survey=quick"]' in code and '"outputs/notebook_run"' in code
     out = tmp_path / "notebook_run"
+    # the session's PSF cache (tests/conftest.py), not the user's: the PSFs of other tests'
+    # small fields are read back instead of computed again
     code = code.replace('overrides=["survey=quick"]', f"overrides=[{FAST}, "
-                        f'"telescope.psf.cache_dir={tmp_path / "psf"}"]')
+                        f'"telescope.psf.cache_dir={shared_psf_cache()}"]')
     code = code.replace('"outputs/notebook_run"', repr(str(out)))
     namespace: dict = {}
     exec(compile(code, str(README), "exec"), namespace)

@@ -4,6 +4,7 @@ real figures (axes labels, titles, count annotations, scale bars, compasses) and
 from __future__ import annotations
 
 import re
+import shutil
 from pathlib import Path
 
 import numpy as np
@@ -12,6 +13,7 @@ from astropy.io import fits
 
 from simfield.config import ConditionConfig, SampleConfig
 from simfield.pipeline import run_scenario
+from tests.conftest import shared_psf_cache
 from tests.test_pipeline import small_scenario
 
 
@@ -47,7 +49,14 @@ def figures(tmp_path_factory):
 
         mp.setattr(mod, "_save", keep)
     tmp = tmp_path_factory.mktemp("report")
-    # its own PSF cache: the PSF picture is drawn (and captured) only when not cached yet
+    # its own PSF cache: the PSF picture is drawn (and captured) only when not cached yet; the
+    # band PSFs other tests already computed into the session's cache are copied in (whole
+    # files, written atomically there), not computed again
+    cache = tmp / "psf_cache"
+    cache.mkdir()
+    for f in Path(shared_psf_cache()).glob("psf_b[12]3_*.npz"):
+        shutil.copyfile(f, cache / f.name)
+    assert not list(cache.glob("psf_picture*"))
     sc = small_scenario(tmp, "score.report=true", "selection.report=true",
                         f"telescope.psf.cache_dir={tmp / 'psf_cache'}")
     sc.selection.samples = [SampleConfig(  # two bands: an S/N sample, no colour diagram

@@ -37,7 +37,7 @@ def test_estimate_matches_the_files_of_a_real_run(tmp_path):
     block (2880 bytes) per extension."""
     from simfield.pipeline import run_scenario
 
-    sc = make_scenario(*TINY, f"telescope.psf.cache_dir={tmp_path / 'psf'}")
+    sc = make_scenario(*TINY)  # the session's PSF cache: tests/test_robustness.py's PSF
     est = estimate(sc)
     out = tmp_path / "run"
     run_scenario(sc, out)

@@ -30,7 +30,7 @@ from simfield.config import register_configs, to_scenario
 from simfield.errors import ConfigError
 from simfield.io import COMPLETE_MARKER
 from simfield.sweep import remove_partial_files
-from tests.conftest import CONF, make_scenario
+from tests.conftest import CONF, make_scenario, shared_psf_cache
 
 ROOT = Path(__file__).resolve().parent.parent
 
@@ -348,6 +348,7 @@ def test_killed_run_leaves_whole_files_and_rerun_succeeds(tiny_run, tmp_path):
     a final name; running again into the same directory completes, identical to a clean run."""
     run = tmp_path / "run"
     cmd = [sys.executable, "-c", "from simfield.cli import main; main()", *TINY,
+           f"telescope.psf.cache_dir={shared_psf_cache()}",  # tiny_run's PSF, not the user's
            f"hydra.run.dir={run}"]
     proc = subprocess.Popen(cmd, cwd=ROOT, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
                             start_new_session=True)
