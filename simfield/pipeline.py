@@ -445,7 +445,11 @@ def _map_tiles(ctx: _TileContext, workers: int, progress: bool = False,
 
 
 def _grow(box, pad: int, shape) -> tuple[int, int, int, int]:
+    """``box`` (y0, y1, x0, x1) grown by ``pad`` on every side, cut to ``shape`` (None: not
+    cut, so it may reach beyond the grid)."""
     y0, y1, x0, x1 = box
+    if shape is None:
+        return (y0 - pad, y1 + pad, x0 - pad, x1 + pad)
     return (max(0, y0 - pad), min(shape[0], y1 + pad), max(0, x0 - pad), min(shape[1], x1 + pad))
 
 
@@ -474,7 +478,7 @@ def _render_tile(ctx: _TileContext, i: int) -> dict:
     bright_any = np.logical_or.reduce([ctx.bright[b.name] for b in ctx.bands])
     with timer("stamps"):
         stamps = _draw_tile(ctx, acc_box, acc_grid, _grow(tile.scene, hw, sgrid.shape),
-                            bright_any)
+                            bright_any, _grow(tile.scene, hw, None))
     ids = np.asarray(ctx.sources["id"])
     fixed = [fixed_pattern_window(sc.detector, sc.seed, *w) for w in tile.exposures]
     sy0, sy1, sx0, sx1 = tile.scene
@@ -736,14 +740,17 @@ def _truth_images(sources: Table, lens, sc: Scenario, hx: float, hy: float):
 
 
 def _draw_tile(ctx: _TileContext, acc_box, acc_grid: Grid, bright_box,
-               bright_any: np.ndarray) -> list[Stamp]:
+               bright_any: np.ndarray, lens_box=None) -> list[Stamp]:
     """Unit-flux stamps, in scene-grid indices, of every source whose light reaches a tile.
 
     ``acc_box`` is the tile's scene window grown by the core PSF (the light convolved there;
     ``acc_grid`` its window of the scene grid), ``bright_box`` grown by the large PSF, which
     sources bright in some band (``bright_any``) may reach. Lensed sources are ray traced on
-    the window of ``acc_box`` (bright ones on that of ``bright_box``); they are found from the
-    window's source-plane bounds (:func:`simfield.lensing.source_plane_bounds`). The diffuse
+    the window of ``acc_box``, bright ones on that of ``lens_box`` (default ``bright_box``):
+    the tile grown by the large PSF without being cut to the scene grid, so an arc just
+    beyond the scene's edge is drawn whole and its light reaches in the same way in every
+    tiling. They are found from the window's source-plane bounds
+    (:func:`simfield.lensing.source_plane_bounds`). The diffuse
     intracluster light is drawn over the window only (:func:`simfield.scene.draw_window`).
     """
     import galsim
@@ -779,11 +786,12 @@ def _draw_tile(ctx: _TileContext, acc_box, acc_grid: Grid, bright_box,
 
         lensed = (z > sc.lens.redshift) & ~np.isin(kinds, ("member", "icl"))
         # bright lensed sources are ray traced over the window their large-PSF light reaches
-        # (the bright box, on the same 4-pixel node lattice), like bright unlensed ones: over
-        # the core window only, a tile lost the spikes of arc parts beyond it (an arc just
-        # outside the field edge, tests/test_pipeline.py)
-        wide_box = (bright_box[0] // 4 * 4, bright_box[1], bright_box[2] // 4 * 4,
-                    bright_box[3])
+        # (on the same 4-pixel node lattice), like bright unlensed ones: over the core window
+        # only, a tile lost the spikes of arc parts beyond it; cut to the scene grid, an arc
+        # just beyond its edge was drawn to a depth that depended on the tile's window
+        # (tests/test_pipeline.py)
+        lb = bright_box if lens_box is None else lens_box
+        wide_box = (lb[0] // 4 * 4, lb[1], lb[2] // 4 * 4, lb[3])
         wide_grid = sgrid.window(wide_box[2], wide_box[0], wide_box[3] - wide_box[2],
                                  wide_box[1] - wide_box[0])
         r_max = 5.0  # arcsec, largest source radius drawn (lensing.render.source_radius)
