@@ -282,8 +282,8 @@ def _run_scenario(sc: Scenario, out_dir: str | Path, progress: bool, engine) -> 
     # workers it runs in a process of its own beside photometry, photo-z and selection
     scoring = None
     if sc.score.enabled and sc.detection.enabled:
-        scoring = _Scoring(out, sc, prov, engine is None and sc.workers != 1
-                           and (sc.workers > 1 or (os.cpu_count() or 1) > 1))
+        local = sc.workers or os.cpu_count() or 1  # processes (0: one per core)
+        scoring = _Scoring(out, sc, prov, engine is None and local > 1)
     try:
         _measure_and_select(out, sc, bands, prov, summary, files, timer)
         if scoring is not None:
@@ -740,17 +740,16 @@ def _truth_images(sources: Table, lens, sc: Scenario, hx: float, hy: float):
 
 
 def _draw_tile(ctx: _TileContext, acc_box, acc_grid: Grid, bright_box,
-               bright_any: np.ndarray, lens_box=None) -> list[Stamp]:
+               bright_any: np.ndarray, lens_box) -> list[Stamp]:
     """Unit-flux stamps, in scene-grid indices, of every source whose light reaches a tile.
 
     ``acc_box`` is the tile's scene window grown by the core PSF (the light convolved there;
     ``acc_grid`` its window of the scene grid), ``bright_box`` grown by the large PSF, which
     sources bright in some band (``bright_any``) may reach. Lensed sources are ray traced on
-    the window of ``acc_box``, bright ones on that of ``lens_box`` (default ``bright_box``):
-    the tile grown by the large PSF without being cut to the scene grid, so an arc just
-    beyond the scene's edge is drawn whole and its light reaches in the same way in every
-    tiling. They are found from the window's source-plane bounds
-    (:func:`simfield.lensing.source_plane_bounds`). The diffuse
+    the window of ``acc_box``, bright ones on that of ``lens_box``: the tile grown by the
+    large PSF without being cut to the scene grid, so an arc just beyond the scene's edge is
+    drawn whole and its light reaches in the same way in every tiling. They are found from the
+    window's source-plane bounds (:func:`simfield.lensing.source_plane_bounds`). The diffuse
     intracluster light is drawn over the window only (:func:`simfield.scene.draw_window`).
     """
     import galsim
@@ -790,8 +789,7 @@ def _draw_tile(ctx: _TileContext, acc_box, acc_grid: Grid, bright_box,
         # only, a tile lost the spikes of arc parts beyond it; cut to the scene grid, an arc
         # just beyond its edge was drawn to a depth that depended on the tile's window
         # (tests/test_pipeline.py)
-        lb = bright_box if lens_box is None else lens_box
-        wide_box = (lb[0] // 4 * 4, lb[1], lb[2] // 4 * 4, lb[3])
+        wide_box = (lens_box[0] // 4 * 4, lens_box[1], lens_box[2] // 4 * 4, lens_box[3])
         wide_grid = sgrid.window(wide_box[2], wide_box[0], wide_box[3] - wide_box[2],
                                  wide_box[1] - wide_box[0])
         r_max = 5.0  # arcsec, largest source radius drawn (lensing.render.source_radius)
