@@ -95,15 +95,42 @@ def _add_cards(header: fits.Header, cards) -> None:
             header[key] = (value, comment)
 
 
+#: Characters of a HISTORY card's text (80 less the 8 of the keyword field, FITS Standard 4.0
+#: section 4.4.2.4): astropy's ``add_history`` cuts a longer text into cards of this many.
+_HISTORY_CHARS = 72
+
+
+def _primary_header(prov: Provenance, primary_cards) -> fits.Header:
+    """The primary header of a file: the empty primary HDU's cards, the provenance (with the
+    configuration as HISTORY) and ``primary_cards``.
+
+    The same cards as :func:`_add_cards` on ``fits.PrimaryHDU().header``, but the hundreds of
+    HISTORY lines are formatted here and parsed in one :meth:`fits.Header.fromstring`
+    (appending them one by one costs ~25 ms a file in astropy); text that is not printable
+    ASCII takes astropy's own path, which refuses it."""
+    base = fits.PrimaryHDU().header
+    cards = prov.header_cards(full=True)
+    short = [c for c in cards if c[0] != "HISTORY"]
+    history = [c[1] for c in cards if c[0] == "HISTORY"]
+    _add_cards(base, short)
+    if not all(v and v.isascii() and v.isprintable() for v in history):
+        _add_cards(base, [("HISTORY", v, "") for v in history])
+        _add_cards(base, primary_cards)
+        return base
+    block = "".join(f"HISTORY {v[i:i + _HISTORY_CHARS]:<{_HISTORY_CHARS}}"
+                    for v in history for i in range(0, len(v), _HISTORY_CHARS))
+    header = fits.Header.fromstring(base.tostring(endcard=False, padding=False) + block)
+    _add_cards(header, primary_cards)
+    return header
+
+
 def write_fits(path, hdus: list[fits.hdu.base.ExtensionHDU], prov: Provenance,
                primary_cards: list[tuple[str, Any, str]] = ()) -> Path:
     """Write ``hdus`` after an empty primary HDU carrying provenance; atomic.
 
     Each extension gets the short provenance cards too.
     """
-    primary = fits.PrimaryHDU()
-    _add_cards(primary.header, prov.header_cards(full=True))
-    _add_cards(primary.header, primary_cards)
+    primary = fits.PrimaryHDU(header=_primary_header(prov, primary_cards))
     for h in hdus:
         _add_cards(h.header, prov.header_cards())
     hl = fits.HDUList([primary, *hdus])
@@ -221,12 +248,9 @@ def _extension_header(spec: ImageSpec, prov: Provenance) -> fits.Header:
 
 def _create(path: Path, specs: Sequence[ImageSpec], prov: Provenance, primary_cards) -> dict:
     """Write headers and reserve (zero-filled, sparse) data blocks; return the layout."""
-    primary = fits.PrimaryHDU()
-    _add_cards(primary.header, prov.header_cards(full=True))
-    _add_cards(primary.header, primary_cards)
     layout = {}
     with open(path, "wb") as f:
-        f.write(primary.header.tostring().encode("ascii"))
+        f.write(_primary_header(prov, primary_cards).tostring().encode("ascii"))
         for spec in specs:
             f.write(_extension_header(spec, prov).tostring().encode("ascii"))
             dtype = np.dtype(spec.dtype)

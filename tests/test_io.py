@@ -61,3 +61,37 @@ def test_unsupported_dtype_refused(tmp_path):
                            PROV):
             pass
     assert list(tmp_path.iterdir()) == []
+
+
+@pytest.mark.parametrize("config", [
+    "seed: 3\nsurvey:\n  name: quick\n",
+    "note: " + "a long line of configuration text " * 5 + "\n  x: 1\n",  # > 72 characters
+    "label: caf\u00e9\n",  # not ASCII: astropy's own path, which refuses it
+])
+def test_primary_header_equals_astropys_history_cards(tmp_path, config):
+    """The primary header (the configuration as HISTORY, formatted in one string) is byte for
+    byte the header astropy makes with ``add_history`` line by line (lines longer than 72
+    characters cut into cards of 72, FITS Standard 4.0 section 4.4.2.4); text astropy refuses
+    is refused the same way."""
+    from simfield.io import write_fits
+
+    prov = Provenance(3, "0123456789abcdef", config)
+    extra = [("BAND", "b10", "band")]
+    ref = fits.PrimaryHDU().header
+    try:
+        for key, value, comment in prov.header_cards(full=True) + extra:
+            if key == "HISTORY":
+                ref.add_history(value)
+            else:
+                ref[key] = (value, comment)
+        expected = ref.tostring()
+    except ValueError as exc:
+        with pytest.raises(ValueError, match=str(exc)[:30]):
+            write_fits(tmp_path / "a.fits", [fits.ImageHDU(np.zeros((2, 2)))], prov, extra)
+        return
+    write_fits(tmp_path / "a.fits", [fits.ImageHDU(np.zeros((2, 2)))], prov, extra)
+    with section_files([(tmp_path / "b.fits", [], extra)], prov):
+        pass
+    for name in ("a.fits", "b.fits"):
+        raw = (tmp_path / name).read_bytes()
+        assert raw[:len(expected)].decode("ascii") == expected, name
