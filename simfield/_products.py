@@ -67,6 +67,11 @@ def artefact_map(mosaic, saturated_bit: int) -> np.ndarray:
     return art
 
 
+#: Drizzled noise covariances of the last few geometries of this process (oldest first).
+_COVARIANCES: dict = {}
+_COVARIANCES_KEPT = 4
+
+
 def noise_correlations(sc: Scenario, bands: list[Band], egrids: list, mgrid: Grid) -> dict:
     """Each band's mosaic noise correlation (:mod:`simfield.survey.noise`): the drizzle's
     covariance for white and IPC-spread noise (the same geometry for all bands), weighted by
@@ -75,14 +80,25 @@ def noise_correlations(sc: Scenario, bands: list[Band], egrids: list, mgrid: Gri
     from .survey import drizzle_noise_covariance, noise_correlation
 
     tel, srv, det = sc.telescope, sc.survey, sc.detector
-    alpha = det.ipc_alpha if det.ipc else 0.0
-    cov_w, cov_c = drizzle_noise_covariance(egrids, mgrid, srv.drizzle_kernel, srv.pixfrac,
-                                            alpha, stream(sc.seed, "noise_correlation"))
-    cov_r = None
-    if det.correlated_noise:
-        from ._readout_hooks import readout_covariance
+    # the covariances depend on the seed, the detector, the survey and the grids only: a
+    # process that runs the same geometry again (a notebook, a test session) reuses them
+    key = repr((sc.seed, det, srv, list(egrids), mgrid))
+    if key not in _COVARIANCES:
+        alpha = det.ipc_alpha if det.ipc else 0.0
+        cov_w, cov_c = drizzle_noise_covariance(egrids, mgrid, srv.drizzle_kernel, srv.pixfrac,
+                                                alpha, stream(sc.seed, "noise_correlation"))
+        cov_r = None
+        if det.correlated_noise:
+            from ._readout_hooks import readout_covariance
 
-        cov_r = readout_covariance(sc, egrids, mgrid)
+            cov_r = readout_covariance(sc, egrids, mgrid)
+        for a in (cov_w, cov_c, cov_r):
+            if a is not None:
+                a.setflags(write=False)
+        while len(_COVARIANCES) >= _COVARIANCES_KEPT:
+            _COVARIANCES.pop(next(iter(_COVARIANCES)))
+        _COVARIANCES[key] = (cov_w, cov_c, cov_r)
+    cov_w, cov_c, cov_r = _COVARIANCES[key]
     out = {}
     for b in bands:
         sky = b.sky_rate(tel.collecting_area_m2, tel.pixel_scale_arcsec)

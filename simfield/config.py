@@ -56,6 +56,7 @@ __all__ = [
     "to_scenario",
     "validate",
     "config_hash",
+    "hash_and_yaml",
     "to_yaml",
     "default_cache_dir",
     "schema_type",
@@ -1173,6 +1174,14 @@ def config_hash(sc: Scenario) -> str:
     """Short SHA-256 of the resolved scenario (16 hex digits), recorded in every output."""
     text = OmegaConf.to_yaml(_content(sc), sort_keys=True)
     return hashlib.sha256(text.encode()).hexdigest()[:16]
+
+
+def hash_and_yaml(sc: Scenario) -> tuple[str, str]:
+    """(:func:`config_hash`, :func:`to_yaml`) of ``sc`` from one structured copy of it (making
+    that copy is most of the cost of each)."""
+    node = _content(sc)
+    text = OmegaConf.to_yaml(node, sort_keys=True)
+    return hashlib.sha256(text.encode()).hexdigest()[:16], OmegaConf.to_yaml(node)
 
 
 def _content(sc: Scenario) -> DictConfig:

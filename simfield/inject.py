@@ -28,7 +28,7 @@ from astropy.table import Table
 from astropy.wcs import WCS
 
 from .columns import POINT_KINDS
-from .config import Scenario, config_hash, to_yaml
+from .config import Scenario, hash_and_yaml
 from .errors import CatalogError
 from .grid import Grid
 from .io import COMPLETE_MARKER, Provenance, write_fits, write_json, write_table, write_text
@@ -185,7 +185,7 @@ def inject_into_image(image_path, sc: Scenario, band: str, out_dir, psf_path=Non
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
     (out / COMPLETE_MARKER).unlink(missing_ok=True)
-    prov = Provenance(sc.seed, config_hash(sc), to_yaml(sc))
+    prov = Provenance(sc.seed, *hash_and_yaml(sc))
 
     # the image footprint as tangent-plane offsets about its centre
     ny, nx = sci.shape
@@ -294,7 +294,7 @@ def inject_into_image(image_path, sc: Scenario, band: str, out_dir, psf_path=Non
     bt.meta["description"] = ("Band of the injection. zeropoint: AB magnitude of one unit of "
                               "the input image.")
     write_table(out / "bands.ecsv", bt, prov)
-    write_text(out / "scenario.yaml", to_yaml(sc))
+    write_text(out / "scenario.yaml", prov.config_yaml)  # = to_yaml(sc)
     summary = score_run(out, None, band, sc.score, out / "score" / band, prov=prov)
     counts = {"n_injected": int(len(src)), "n_detections_original": int(len(before)),
               "n_detections_injected": int(len(after)), "n_new_detections": int(len(new))}

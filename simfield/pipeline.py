@@ -27,7 +27,7 @@ from . import __version__
 from ._procs import die_with_parent
 from .bands import Band, ab_to_njy, make_bands, njy_to_ab
 from .columns import POINT_KINDS, SOURCE_KINDS
-from .config import Scenario, config_hash, to_yaml
+from .config import Scenario, hash_and_yaml
 from .grid import Grid
 from ._products import (SEGMENTATION_NSIGMA, artefact_map, image_files,
                         noise_correlations, write_lens_maps, write_psf, write_truth)
@@ -128,7 +128,7 @@ def _run_scenario(sc: Scenario, out_dir: str | Path, progress: bool, engine) -> 
         marker.unlink()
     res = RunResult(out_dir=out)
     timer = _Timer(res.timings, progress)
-    prov = Provenance(sc.seed, config_hash(sc), to_yaml(sc))
+    prov = Provenance(sc.seed, *hash_and_yaml(sc))
     tel, srv = sc.telescope, sc.survey
     area = tel.collecting_area_m2
     bands = make_bands(sc)
