@@ -462,7 +462,7 @@ def test_number_counts_near_infrared(count_fields):
     (z = 1-5 star-forming galaxies of the rest-UV functions, checked against Parsa et al. 2016
     above), where the table is one small deep field per data set (cosmic variance 21 % in the
     table's own column). The slope from AB 20 to 24 is that of the
-    table within 0.05 dex/mag (table 0.28; Yan et al. 1998 give 0.31)."""
+    table within 0.05 dex/mag (table 0.29, population 0.30; Yan et al. 1998 give 0.31)."""
     from simfield.population.counts import population_counts, reference_counts
 
     ratios = []

@@ -19,7 +19,7 @@ Two references, differential counts dN/dm (mag^-1 deg^-2) against AB magnitude:
    would give half. Its integral to H_AB = 26.14 is 1.2 times the 4e5 deg^-2 to H <= 24.75
    (Vega) of Yan et al. 1998, ApJ 503, L19 (abstract, read at https://core.ac.uk/works/43113350;
    H_AB = H_Vega + 1.39 at 1.6 um [from memory]), which also gives a slope of 0.31 fainter than
-   H = 20 Vega (0.28 in this table from AB 20 to 24).
+   H = 20 Vega (0.29 in this table from AB 20 to 24).
 
    The earlier reference, a table after Windhorst et al. 2011, ApJS 193, 27 recalled from their
    figure (:data:`RECALLED_MAGS`, :data:`RECALLED_LOG_COUNTS`, :func:`recalled_counts`; [from
@@ -44,7 +44,7 @@ Two references, differential counts dN/dm (mag^-1 deg^-2) against AB magnitude:
    are left out: the published counts turn over there (5.24 at 25.75, 5.13 at 26.25), the
    survey's incompleteness. Ks_AB = Ks_Vega + 1.84 [from memory]. The ground-based 2.15 um
    rows of Driver et al. 2016, Table 3 (read per 0.5 mag as above) lie 0.06 dex below these
-   at AB 20-20.5 (0.36 dex if both were read per mag), which supports both readings.
+   at AB 20-20.5 (0.36 dex if that table were read per mag), which supports both readings.
 
 The population's counts are those of its truth table in the band whose pivot is nearest 1.6 um
 (galaxies of every family, intrinsic magnitudes).
