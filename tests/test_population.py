@@ -120,8 +120,8 @@ def test_rest_uv_function_at_z2_4_against_parsa2016_bins(z):
     Parsa et al. 2016 (Table 2, read) within 25 % of their binned densities summed (their
     bins' errors are 5-10 %; the interpolation between nodes and the Schechter shape leave the
     rest): achieved 1.02, 0.79 and 0.94 at z = 1.9,
-    2.8 and 3.8, so these functions are not what puts the 1.6 um counts above the recalled
-    table at AB 27-28."""
+    2.8 and 3.8, so these functions are not what sets the 1.6 um counts at AB 26.5-28
+    (test_number_counts_near_infrared)."""
     m0, phi = _PARSA2016[z]
     hi = m0 + 0.5 * len(phi) - 0.25
     model = integrate.quad(lambda m: float(luminosity.uv_luminosity_function(m, z)), m0 - 0.25,
@@ -451,17 +451,18 @@ def count_fields():
 
 
 def test_number_counts_near_infrared(count_fields):
-    """Galaxy counts at 1.6 um against the deep near-infrared counts of Windhorst et al. 2011,
-    ApJS 193, 27 [from memory] (the recalled table of simfield.population.counts; no stored
-    table of published 1.6 um counts per bin could be read; its normalisation is checked there
-    against Yan et al. 1998, ApJ 503, L19, read in the abstract), per half-magnitude bin from
-    AB 20 to 28. Achieved with the published luminosity functions (no tuning): within 30 % from
-    AB 24 to 27; 0.42-0.71 of the table at AB 20-24, where the table is the likelier culprit:
-    the published 2.15 um counts (test_number_counts_k_band, read in a stored table) carried to
-    1.6 um with the population's H - K colours lie ~0.15 dex below it, and the population is
-    0.66-0.8 of those; 1.30-1.35 at AB 27-28 (faint z = 1-5 star-forming galaxies of the
-    rest-UV functions, ~0.4, 0.3, 0.3 of the table from z = 1-2, 2-3, 3-5), against a table
-    recalled to ~0.1 dex, with no published count read to settle it."""
+    """Galaxy counts at 1.6 um against the published counts of Driver et al. 2016, ApJ 827, 108,
+    Table 3 (read in a stored copy; units fixed by the background light their paper derives
+    from it and checked against Yan et al. 1998: simfield.population.counts, tests/
+    test_counts.py), per half-magnitude bin from AB 20 to 28. Achieved with the published
+    luminosity functions (no tuning): within 30 % from AB 22 to 26.5 (0.72-0.87); 0.65-0.76 at
+    AB 20-22 (as at 2.15 um against Weaver et al. 2022, test_number_counts_k_band; 93 % of
+    these galaxies are at z = 0.3-2, from the rest-K function, which meets its authors' binned
+    densities: test_rest_k_function_against_cirasuolo_bins); and 0.57-0.68 at AB 26.5-28
+    (z = 1-5 star-forming galaxies of the rest-UV functions, checked against Parsa et al. 2016
+    above), where the table is one small deep field per data set (cosmic variance 21 % in the
+    table's own column). The slope from AB 20 to 24 is that of the
+    table within 0.05 dex/mag (table 0.29, population 0.30; Yan et al. 1998 give 0.31)."""
     from simfield.population.counts import population_counts, reference_counts
 
     ratios = []
@@ -470,13 +471,13 @@ def test_number_counts_near_infrared(count_fields):
         ratios.append(n / reference_counts(mid))
     r = np.concatenate(ratios)
     mid = np.arange(20.25, 28.0, 0.5)
-    ok = (mid > 24.0) & (mid < 27.0)
+    ok = (mid > 22.0) & (mid < 26.5)
     assert np.all((r[ok] > 0.7) & (r[ok] < 1.3)), r
-    assert np.all((r[mid < 24.0] > 0.35) & (r[mid < 24.0] < 0.8)), r
-    assert np.all((r[mid > 27.0] > 1.1) & (r[mid > 27.0] < 1.5)), r
+    assert np.all((r[~ok] > 0.5) & (r[~ok] < 0.8)), r
     bright = mid[:8]
     slope = np.polyfit(bright, np.log10(ratios[0] * reference_counts(bright)), 1)[0]
-    assert 0.2 < slope < 0.4  # ~0.25-0.3 dex/mag at AB 20-24 (counts module docstring)
+    ref_slope = np.polyfit(bright, np.log10(reference_counts(bright)), 1)[0]
+    assert abs(slope - ref_slope) < 0.05, (slope, ref_slope)
 
 
 def test_number_counts_k_band(count_fields):
@@ -520,6 +521,87 @@ def test_rest_k_function_local_and_evolution():
     # phi* = 1.08e-2 h^3 Mpc^-3, alpha = -0.96: -22.37 AB and 3.70e-3 Mpc^-3 for h = 0.7
     assert abs(p0.m_star - (-23.44 + 5 * np.log10(0.7) + 1.85)) < 0.15
     assert_allclose(p0.phi_star, 1.08e-2 * 0.7 ** 3, rtol=0.15)
+
+
+#: Rest-K function of Cirasuolo et al. 2010, MNRAS 401, 1166: their 1/Vmax densities (Fig. 8),
+#: read in ICRAR/shark data/lf/lfKz_cirasuolo10.data (Vega; AB = Vega + 1.9 there; H0 = 70,
+#: Omega_m = 0.3, flat): {z: (brighter edge of the first 0.5-mag bin, [(log10 phi / Mpc^-3
+#: mag^-1, error up, error down), ...] in bins of 0.5 mag going brighter)}.
+_CIRASUOLO_BINS = {
+    0.5: (-20.0, [(-2.2426, 0.0191, 0.0157), (-2.3398, 0.0182, 0.0127),
+                  (-2.4383, 0.0233, 0.0107), (-2.5065, 0.0122, 0.0104),
+                  (-2.5729, 0.0114, 0.0112), (-2.6406, 0.0256, 0.0123),
+                  (-2.6913, 0.0148, 0.0129), (-2.7187, 0.0241, 0.0134),
+                  (-2.7966, 0.0252, 0.0147), (-2.9616, 0.0243, 0.0178),
+                  (-3.2043, 0.0719, 0.0251), (-3.7276, 0.1663, 0.0553)]),
+    1.0: (-21.5, [(-2.5340, 0.0767, 0.0175), (-2.5987, 0.0119, 0.0104),
+                  (-2.6965, 0.0125, 0.0089), (-2.7824, 0.0151, 0.0096),
+                  (-2.8636, 0.0230, 0.0106), (-2.9208, 0.0121, 0.0112),
+                  (-3.0345, 0.0170, 0.0128), (-3.2677, 0.0251, 0.0169),
+                  (-3.6412, 0.0638, 0.0274)]),
+    1.5: (-22.5, [(-2.8555, 0.0741, 0.0205), (-2.8454, 0.0282, 0.0111),
+                  (-2.9030, 0.0168, 0.0098), (-2.9990, 0.0116, 0.0106),
+                  (-3.0823, 0.0256, 0.0118), (-3.2510, 0.0211, 0.0143),
+                  (-3.5002, 0.0593, 0.0201)]),
+    2.0: (-23.5, [(-3.1328, 0.0623, 0.0185), (-3.1725, 0.0380, 0.0143),
+                  (-3.3377, 0.0243, 0.0154), (-3.5054, 0.0217, 0.0182),
+                  (-3.7682, 0.0286, 0.0249), (-4.1543, 0.0774, 0.0416)]),
+}
+
+
+def test_rest_k_function_against_cirasuolo_bins():
+    """The typed evolution fit (luminosity.nir_lf_parameters, [mem]) against the binned 1/Vmax
+    densities it was fitted to (Cirasuolo et al. 2010, Fig. 8, read: _CIRASUOLO_BINS) at z =
+    0.5, 1, 1.5 and 2, in every bin measured to 0.03 dex brighter than M_AB = -19.3: each
+    within 0.15 dex, rms 0.06 dex (achieved: largest 0.11 dex, at z = 1.5, M_AB = -23.35;
+    rms 0.046), so no parameter was mistyped. Fainter at z = 0.5 their points lie 0.12-0.20
+    dex above the fit (alpha = -1.07: their points are steeper there); such galaxies are
+    fainter than AB 23 at 1.6 um, so they do not make the bright counts."""
+    diffs, faint = [], []
+    for z, (first, rows) in _CIRASUOLO_BINS.items():
+        p = luminosity.nir_lf_parameters(z)
+        for i, (logphi, up, dn) in enumerate(rows):
+            m_ab = first - 0.25 - 0.5 * i + 1.9
+            model = np.log10(luminosity.schechter_phi(m_ab, p.m_star, p.phi_star, p.alpha))
+            if m_ab > -19.3:
+                faint.append(model - logphi)
+            elif max(up, dn) < 0.03:
+                diffs.append(model - logphi)
+    diffs = np.array(diffs)
+    assert diffs.size >= 20
+    assert np.all(np.abs(diffs) < 0.15), diffs
+    assert np.sqrt(np.mean(diffs ** 2)) < 0.06, diffs
+    assert np.all((np.array(faint) > -0.25) & (np.array(faint) < -0.1)), faint
+
+
+#: Local rest-K function of Driver et al. 2012, MNRAS 427, 3244 (1/Vmax, z < 0.1), read in
+#: ICRAR/shark data/lf/lfk_z0_driver12.data: bin centre M_AB - 5 log h, density (h^3 Mpc^-3 per
+#: 0.5 mag) and its error.
+_DRIVER2012_K = np.array([
+    (-22.75, 0.000286053575, 3.28125934e-05), (-22.25, 0.00084686873, 5.64579132e-05),
+    (-21.75, 0.00187439716, 8.3993742e-05),
+    (-21.25, 0.0028680684, 0.000103899161), (-20.75, 0.00361153041, 0.0001175453),
+    (-20.25, 0.00371022988, 0.000118277807), (-19.75, 0.00411500549, 0.000124811791),
+    (-19.25, 0.00443232432, 0.000132087676), (-18.75, 0.005041203, 0.000181319469)])
+
+
+def test_local_rest_k_function_against_driver2012_bins():
+    """The rest-K function at z = 0 (the Cirasuolo et al. 2010 fit, [mem], checked against its
+    own bins above) against the local binned densities of Driver et al. 2012 (read:
+    _DRIVER2012_K, bins measured to 11 %; h = 0.7: M_AB = M - 5 log h - 0.775, densities
+    x 0.343 x 2 per mag): within 20 % from M_AB = -21.8 to -19.3 (achieved 0.82-1.08), but
+    0.6-0.75 of them from -23.8 to -21.8 (errors 4-11 %): the fit's local M* (-22.26 AB) is
+    ~0.2 mag fainter than these bins, as it is than Kochanek et al. 2001 and Cole et al. 2001
+    [mem] by 0.05-0.1 mag (test above). Not changed (the functions stay as published): the
+    1.6 um counts at AB 20-22 come from z = 0.3-2 (93 % of them; 4 % from z < 0.3), where the
+    fit meets its own bins."""
+    p = luminosity.nir_lf_parameters(0.0)
+    m = _DRIVER2012_K[:, 0] + 5 * np.log10(0.7)
+    data = _DRIVER2012_K[:, 1] * 0.7 ** 3 * 2.0
+    r = luminosity.schechter_phi(m, p.m_star, p.phi_star, p.alpha) / data
+    mid = m > -21.8
+    assert mid.sum() == 5 and np.all(np.abs(r[mid] - 1.0) < 0.2), r
+    assert np.all((r[~mid] > 0.5) & (r[~mid] < 0.8)), r
 
 
 def test_template_near_infrared_colours():

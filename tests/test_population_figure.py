@@ -39,8 +39,8 @@ def test_key_is_off_by_default():
 
 
 def test_figure_axes_counts_and_colours(table, tmp_path):
-    """Every axis is labelled; the reference curve is the published table (Windhorst et al.
-    2011 [from memory], simfield.population.counts); the points are the galaxies per half
+    """Every axis is labelled; the reference curve is the published table (Driver et al.
+    2016, Table 3, read; simfield.population.counts); the points are the galaxies per half
     magnitude counted here from the table; the colour histograms hold every galaxy brighter
     than the colour limit once per colour; the PNG reads back at the figure's size."""
     import matplotlib.image as mpimg

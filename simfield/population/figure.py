@@ -3,8 +3,8 @@
 A run writes ``population.png`` when ``population.figure`` is true (default false). Panels:
 
 1. differential galaxy counts dN/dm (mag^-1 deg^-2) in the band whose pivot is nearest 1.6 um,
-   with Poisson errors, against the published deep-field counts of :mod:`.counts` (Windhorst
-   et al. 2011 [from memory]; their bright end is discussed there);
+   with Poisson errors, against the published deep-field counts of :mod:`.counts` (Driver et
+   al. 2016, Table 3, read in a stored copy; none drawn outside AB 20.25-28.25);
 2. their ratio, with the +-30 % band of the issue's check;
 3. the distributions of two colours of the galaxies brighter than AB 26 in that band: the
    bluest band minus it (the rest-UV/optical slope and the 380 nm break of z ~ 1-3 galaxies)
@@ -59,7 +59,7 @@ def population_figure(table, bands, area_arcsec2: float, seed=None):
     ax3 = fig.add_subplot(grid[:, 1])
     shown = n > 0
     ax.errorbar(mid[shown], n[shown], err[shown], fmt="o", ms=3, label=f"population ({band})")
-    ax.plot(mid, ref, "k-", label="Windhorst et al. 2011 [from memory]")
+    ax.plot(mid, ref, "k-", label="Driver et al. 2016 (Table 3)")
     ax.set_yscale("log")
     ax.set_ylabel("dN/dm (mag$^{-1}$ deg$^{-2}$)")
     ax.set_xlabel(f"{band} (AB mag)")

@@ -31,6 +31,10 @@ MNRAS 401, 1166 (maximum likelihood over 0 < z < 4, AB, H0 = 70) [mem]:
     M*_K(z) = -22.26 - (z / 1.78)^0.47,  phi*(z) = 3.5e-3 exp(-(z / 1.70)^1.47) Mpc^-3,
     alpha = -1.07 (fixed at the local value).
 
+Typed from memory, it reproduces the binned 1/Vmax densities of their Fig. 8 (read in a stored
+copy, ICRAR/shark data/lf/lfKz_cirasuolo10.data) at z = 0.5-2 within 0.11 dex (rms 0.05) in
+every bin measured to 0.03 dex brighter than M_AB = -19.3 (tests/test_population.py).
+
 Its faint end is an extrapolation beyond the data at z > 0.5 (deeper data give alpha ~ -1.3
 to -1.5, Mortlock et al. 2017, MNRAS 465, 672); the light cone takes the faint star-forming
 galaxies from the rest-UV function there (see :mod:`.lightcone`).
