@@ -8,6 +8,16 @@ import tempfile
 import pytest
 from hydra import compose, initialize_config_dir
 
+# numba: the tests compile the fused pixel loops (simfield.pixelops) at LLVM optimisation level
+# 1, not 3: about half the ~15 s each test process spends compiling them in a fresh clone, with
+# the same results bit for bit (no fast-math, so no reordered arithmetic; the bit-identity
+# tests of tests/test_detector_fast.py run on this code). They go to a cache folder of their
+# own, shared by the test processes and their command-line runs, so a run outside the tests
+# never loads code compiled this way. Set before simfield (and numba) is imported.
+_ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+os.environ.setdefault("NUMBA_OPT", "1")
+os.environ.setdefault("NUMBA_CACHE_DIR", os.path.join(_ROOT, ".numba-test-cache"))
+
 from simfield.config import CONF_DIR, register_configs, to_scenario
 
 CONF = CONF_DIR
