@@ -15,7 +15,8 @@ import numba
 import numpy as np
 
 __all__ = ["ipc", "cornish_fisher", "expected_rates", "calibrate", "refit", "refit_variance",
-           "deposit", "jumps", "nearest_counts", "nearest_weighted_add", "box_sum", "above"]
+           "deposit", "jumps", "nearest_counts", "nearest_weighted_add", "box_sum", "above",
+           "pink_window", "add_readout"]
 
 _jit = numba.njit(cache=True, nogil=True)
 
@@ -506,3 +507,73 @@ def above(img, add: float, factor: float, thresh: float):
     if n:
         _above(img, *args, rows, cols, vals)
     return (rows, cols), vals
+
+
+# ------------------------------------------------------------------ correlated read noise
+@_jit
+def _pink_window(grids, c0, width, row_len, step, s_off, y0, x0, per_col, cm, has_corr, spf,
+                 out):
+    inv = np.float32(1.0 / step)
+    one = np.float32(1.0)
+    for yy in range(out.shape[0]):
+        base = (y0 + yy) * row_len - s_off
+        for xx in range(out.shape[1]):
+            x = x0 + xx
+            c = x // width
+            u = x - c * width
+            if c % 2 == 1:
+                u = width - 1 - u
+            s = base + u
+            k = s // step
+            w = np.float32(s - k * step) * inv
+            g = grids[c - c0]
+            v = g[k] * (one - w) + g[k + 1] * w
+            if has_corr:
+                v = np.float32(np.float64(v) - (per_col[xx] + cm[yy]))
+            out[yy, xx] = spf * v
+
+
+def pink_window(grids, c0: int, width: int, row_len: int, step: int, s_off: int, y0: int,
+                x0: int, shape, per_col, cm, spf: float) -> np.ndarray:
+    """The correlated read noise left in a window's slope (e-/s, float32) in one pass:
+    :meth:`simfield.readout.CorrelatedNoise.window` (each output's pink grid, ``grids[c -
+    c0]``, float32, of grid points ``STEP`` samples apart from sample ``s_off`` on, linearly
+    interpolated at its pixels' read times y ``row_len`` + u), less the reference-pixel
+    correction ``per_col[x] + cm[y]`` (float64; None: none), times ``spf`` (1/s), as
+    :meth:`simfield.readout.ExposureReadout.residual` computes it with numpy."""
+    out = np.empty(tuple(shape), np.float32)
+    has = per_col is not None
+    z = np.zeros(1)
+    _pink_window(np.ascontiguousarray(grids, np.float32), int(c0), int(width), int(row_len),
+                 int(step), int(s_off), int(y0), int(x0),
+                 np.asarray(per_col, np.float64) if has else z,
+                 np.asarray(cm, np.float64) if has else z, has, np.float32(spf), out)
+    return out
+
+
+@_jit
+def _add_readout(sci, var, var_sky, res, v, y0, x0, n_ref, ny_det, nx_det, o_sci, o_var,
+                 o_sky):
+    for yy in range(sci.shape[0]):
+        y = y0 + yy
+        ref_row = y < n_ref or y >= ny_det - n_ref
+        for xx in range(sci.shape[1]):
+            x = x0 + xx
+            o_sci[yy, xx] = sci[yy, xx] + res[yy, xx]
+            o_var[yy, xx] = var[yy, xx] + v
+            if ref_row or x < n_ref or x >= nx_det - n_ref:
+                o_sky[yy, xx] = np.float32(0.0)
+            else:
+                o_sky[yy, xx] = var_sky[yy, xx] + v
+
+
+def add_readout(sci, var, var_sky, res, v: float, y0: int, x0: int, n_ref: int, det_shape):
+    """(sci + res, var + v, var_sky + v but 0 on the reference pixels, the border of ``n_ref``
+    of a detector of ``det_shape``), new float32 arrays of a window whose corner is detector
+    pixel (y0, x0); e-/s and (e-/s)^2."""
+    shape = res.shape
+    b = [np.broadcast_to(np.asarray(a, np.float32), shape) for a in (sci, var, var_sky)]
+    out = [np.empty(shape, np.float32) for _ in range(3)]
+    _add_readout(*b, res, np.float32(v), int(y0), int(x0), int(n_ref), int(det_shape[0]),
+                 int(det_shape[1]), *out)
+    return tuple(out)

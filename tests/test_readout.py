@@ -263,3 +263,45 @@ def test_nonlinearity_calibration_error_is_tied_to_pixels():
     b = calibration_error(3, 30, 17, (ys - 30, xs - 17))
     np.testing.assert_array_equal(a, b)
     assert abs(a.mean()) < 0.1 and abs(a.std() - 1) < 0.1
+
+
+@pytest.mark.parametrize("corrected", [False, True])
+def test_fused_residual_equals_the_numpy_chain(corrected):
+    """ExposureReadout.residual and apply_readout (one numba pass each, simfield.pixelops)
+    equal, bit for bit, the numpy chain they replace: the noise window less the correction,
+    times the slope factor, added to sci; var + v; var_sky + v and 0 on the reference
+    pixels (reference_mask). Windows inside one output, across outputs, and on the border."""
+    from simfield.detector import Exposure
+    from simfield.readout import ExposureReadout, apply_readout
+    from simfield.readout.refpix import reference_mask
+
+    rng = np.random.default_rng(3)
+    noise = _noise(offset=10.0, common=2.0, own=1.5)
+    white = lambda y0, y1, x0, x1: 8.5 * np.random.default_rng(  # noqa: E731
+        [y0, y1, x0, x1]).standard_normal((y1 - y0, x1 - x0))
+    corr = RefCorrection(noise, white, 4, 8) if corrected else None
+    ro = ExposureReadout(noise, corr, 4, 0.0123)
+    for box in ((0, 256, 0, 512), (37, 130, 101, 333), (5, 60, 130, 250), (200, 256, 400, 512)):
+        y0, y1, x0, x1 = box
+        r = noise.window(*box)
+        if corrected:
+            r -= corr.window(*box)
+        ref = (ro.slope_per_frame * r).astype(np.float32)
+        res = ro.residual(*box)
+        assert res.dtype == np.float32
+        np.testing.assert_array_equal(res, ref)
+        shape = (y1 - y0, x1 - x0)
+        e = Exposure(sci=rng.normal(size=shape).astype(np.float32),
+                     var=rng.random(shape).astype(np.float32),
+                     var_sky=rng.random(shape).astype(np.float32),
+                     dq=np.zeros(shape, np.int32), exptime=100.0, sky=0.3, n_cr=0)
+        sci0 = e.sci.copy()
+        got = apply_readout(e, ro, box)
+        v = np.float32(ro.pixel_variance())
+        sky = e.var_sky + v
+        sky[reference_mask(LAYOUT.shape, 4, *box)] = 0.0
+        for a, b in ((got.sci, e.sci + ref), (got.var, e.var + v), (got.var_sky, sky),
+                     (got.stripes, ref)):
+            assert a.dtype == np.float32
+            np.testing.assert_array_equal(a, b)
+        np.testing.assert_array_equal(e.sci, sci0)  # the exposure given is left as it was

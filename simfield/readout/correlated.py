@@ -52,6 +52,22 @@ class CorrelatedNoise:
             return 0.0
         return float(self.offset_e * stream(self.seed, *self.names, "offset", c).standard_normal())
 
+    def channel_grids(self, y0: int, y1: int, x0: int, x1: int) -> tuple[int, int, np.ndarray]:
+        """(i0, c0, grids): the summed pink grid (common + own + the offset, e- per frame,
+        float32) of each output c0, c0 + 1, ... reading columns ``x0:x1``, over rows
+        ``y0:y1``; grid point i0 + j is sample (i0 + j) ``STEP`` (:func:`pink_grid`).
+        :meth:`window` interpolates them at the pixels' read times."""
+        lay = self.layout
+        a_c = pink_coefficient(lay, self.pink_common_e)
+        a_o = pink_coefficient(lay, self.pink_channel_e)
+        i0, gc = pink_grid(lay, a_c, self.seed, (*self.names, "common"), y0, y1)
+        c0, c1 = x0 // lay.width, (x1 - 1) // lay.width
+        grids = np.empty((c1 - c0 + 1, gc.size), np.float32)
+        for c in range(c0, c1 + 1):
+            grids[c - c0] = gc + pink_grid(lay, a_o, self.seed, (*self.names, c), y0, y1)[1] \
+                + self.offset(c)
+        return i0, c0, grids
+
     def window(self, y0: int, y1: int, x0: int, x1: int) -> np.ndarray:
         """Correlated noise (e- per frame, float32) of detector rows ``y0:y1``, columns ``x0:x1``.
 

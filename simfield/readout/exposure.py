@@ -15,10 +15,11 @@ import dataclasses
 
 import numpy as np
 
+from ..pixelops import add_readout, pink_window
 from .correlated import CorrelatedNoise
 from .layout import ReadoutLayout
-from .pink import pink_coefficient, pink_variance
-from .refpix import RefCorrection, reference_mask
+from .pink import STEP, pink_coefficient, pink_variance
+from .refpix import RefCorrection
 
 __all__ = ["ExposureReadout", "readout_for", "apply_readout"]
 
@@ -44,11 +45,17 @@ class ExposureReadout:
     slope_per_frame: float
 
     def residual(self, y0: int, y1: int, x0: int, x1: int) -> np.ndarray:
-        """What the correlated noise leaves in the calibrated slope (e-/s), float32."""
-        r = self.noise.window(y0, y1, x0, x1)
+        """What the correlated noise leaves in the calibrated slope (e-/s), float32: the
+        noise (:meth:`CorrelatedNoise.window`) less the correction
+        (:meth:`RefCorrection.window`), times ``slope_per_frame``, in one pass
+        (:func:`simfield.pixelops.pink_window`)."""
+        lay = self.noise.layout
+        i0, c0, grids = self.noise.channel_grids(y0, y1, x0, x1)
+        per_col = per_row = None
         if self.correction is not None:
-            r -= self.correction.window(y0, y1, x0, x1)
-        return (self.slope_per_frame * r).astype(np.float32)
+            per_col, per_row = self.correction.parts(y0, y1, x0, x1)
+        return pink_window(grids, c0, lay.width, lay.row_len, STEP, i0 * STEP, y0, x0,
+                           (y1 - y0, x1 - x0), per_col, per_row, self.slope_per_frame)
 
     def pixel_variance(self) -> float:
         """Variance ((e-/s)^2) the correlated noise adds to a pixel: its pink parts as
@@ -91,8 +98,7 @@ def apply_readout(e, ro: ExposureReadout, box: tuple):
     correlated noise and the correction added, and the variances updated (a new Exposure)."""
     y0, y1, x0, x1 = box
     res = ro.residual(y0, y1, x0, x1)
-    v = np.float32(ro.pixel_variance())
-    var_sky = np.array(e.var_sky, np.float32) + v
-    ref = reference_mask(ro.noise.layout.shape, ro.n_ref, y0, y1, x0, x1)
-    var_sky[ref] = 0.0
-    return dataclasses.replace(e, sci=e.sci + res, var=e.var + v, var_sky=var_sky, stripes=res)
+    # sci + res, var + v, var_sky + v and 0 on the reference pixels (reference_mask), fused
+    sci, var, var_sky = add_readout(e.sci, e.var, e.var_sky, res, ro.pixel_variance(), y0, x0,
+                                    ro.n_ref, ro.noise.layout.shape)
+    return dataclasses.replace(e, sci=sci, var=var, var_sky=var_sky, stripes=res)

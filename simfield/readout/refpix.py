@@ -90,11 +90,17 @@ class RefCorrection:
         i = np.arange(y0, y1) - ya
         return win[i].sum(axis=1) / cwin[i].sum(axis=1)
 
-    def window(self, y0: int, y1: int, x0: int, x1: int) -> np.ndarray:
-        """The correction (e- per frame) a reduction subtracts on rows ``y0:y1``, columns
-        ``x0:x1``: its output's offset plus the row's common mode."""
+    def parts(self, y0: int, y1: int, x0: int, x1: int) -> tuple[np.ndarray, np.ndarray]:
+        """(per column, per row) parts of :meth:`window` (e- per frame, float64): each
+        column's output offset, each row's common mode."""
         lay = self.layout
         off = np.array([self.offset(int(c)) for c in
                         range(x0 // lay.width, (x1 - 1) // lay.width + 1)])
-        per_col = off[lay.channel_of(np.arange(x0, x1)) - x0 // lay.width]
-        return per_col[None, :] + self.common_mode(y0, y1)[:, None]
+        return off[lay.channel_of(np.arange(x0, x1)) - x0 // lay.width], \
+            self.common_mode(y0, y1)
+
+    def window(self, y0: int, y1: int, x0: int, x1: int) -> np.ndarray:
+        """The correction (e- per frame) a reduction subtracts on rows ``y0:y1``, columns
+        ``x0:x1``: its output's offset plus the row's common mode."""
+        per_col, per_row = self.parts(y0, y1, x0, x1)
+        return per_col[None, :] + per_row[:, None]
