@@ -20,7 +20,7 @@ from numpy.testing import assert_allclose
 
 from simfield import sweep
 from simfield.io import COMPLETE_MARKER
-from tests.conftest import make_scenario
+from tests.conftest import make_scenario, shared_psf_cache
 
 ROOT = Path(__file__).resolve().parent.parent
 
@@ -318,8 +318,11 @@ def test_launcher_presets_compose(preset, target):
 # end to end (needs the pipeline)
 # --------------------------------------------------------------------------------------------
 def _multirun(sweep_dir: Path, *extra: str, timeout: float = 240) -> subprocess.CompletedProcess:
+    # the session's PSF cache, not the user's: a job of the same seed (the relaunch, the other
+    # launcher) finds its PSFs and PSF picture there
     cmd = [sys.executable, "-c", "from simfield.cli import main; main()", "-m", *TINY,
-           f"hydra.sweep.dir={sweep_dir}", *extra]
+           f"telescope.psf.cache_dir={shared_psf_cache()}", f"hydra.sweep.dir={sweep_dir}",
+           *extra]
     return subprocess.run(cmd, cwd=ROOT, capture_output=True, text=True, timeout=timeout)
 
 
