@@ -239,7 +239,9 @@ def _jumps(cr_q, when_raw, spread, f, c0, tg, thr, d_int, when, hit, jump, bias)
     for y in range(ny):
         for x in range(nx):
             w = when_raw[y, x]
-            if w < 0 and spread:  # IPC-spread charge arrives with its neighbour's event
+            # IPC-spread charge arrives with its neighbour's event (only charged pixels: the
+            # interval is read nowhere else)
+            if w < 0 and spread and cr_q[y, x] > 0:
                 if y > 0:
                     w = max(w, when_raw[y - 1, x])
                 if y < ny - 1:
@@ -275,7 +277,8 @@ def jumps(cr_q, when_raw, spread, f, c0, tg, thr, d_int):
     charge and an interval; a jump is detected where cr_q > thr sqrt(c0 + f tg) (e-, the
     noise of a group difference); hit pixels next to (3 x 3) a detected jump are refitted
     too; the others keep their charge as a slope bias cr_q D_i (e-/s). Returns (when,
-    refitted bool image, bias float32 image)."""
+    refitted bool image, bias float32 image); ``when`` is the arrival interval of the pixels
+    with charge (cr_q > 0), ``when_raw`` elsewhere."""
     shape = cr_q.shape
     when = np.empty(shape, np.int32)
     hit = np.empty(shape, np.bool_)
