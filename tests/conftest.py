@@ -28,24 +28,6 @@ CONF = CONF_DIR
 _PSF_CACHE_ENV = "SIMFIELD_TEST_PSF_CACHE"
 
 
-#: Seconds the slowest test files took in a fresh-clone run on two idle cores (2026-12-03).
-#: Files are handed to the two xdist workers longest first (pyproject's
-#: ``--no-loadscope-reorder`` keeps the collection order this sets), so no long file starts
-#: last while the other worker idles. Unlisted files count as 0 and keep their order.
-_FILE_SECONDS = {
-    "tests/test_sweep.py": 49, "tests/test_noise.py": 45, "tests/test_pipeline.py": 45,
-    "tests/test_robustness.py": 39, "tests/test_contaminants.py": 30,
-    "tests/test_cli_refusals.py": 29, "tests/test_refusals.py": 23, "tests/test_engine.py": 19,
-    "tests/test_detect.py": 18, "tests/test_photometry.py": 16, "tests/test_score.py": 14,
-    "tests/test_resources.py": 12, "tests/test_packaging.py": 12, "tests/test_field_psf.py": 10,
-    "tests/test_inject.py": 9, "tests/test_report.py": 9, "tests/test_population.py": 9,
-}
-
-
-def pytest_collection_modifyitems(config, items):
-    items.sort(key=lambda item: -_FILE_SECONDS.get(item.nodeid.split("::")[0], 0))
-
-
 def pytest_configure(config):
     if not hasattr(config, "workerinput") and _PSF_CACHE_ENV not in os.environ:
         config._simfield_psf_cache = tempfile.mkdtemp(prefix="simfield-test-psf-")
