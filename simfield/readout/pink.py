@@ -116,22 +116,38 @@ def _chunk_shape(layout: ReadoutLayout, a: float) -> tuple:
     return n, gain, np.sin(s), np.cos(s)
 
 
-@lru_cache(maxsize=4096)
-def _chunk(layout: ReadoutLayout, a: float, seed: int, names: tuple, j: int) -> np.ndarray:
-    """High-frequency chunk j on the grid, tapered (e-): grid points j CHUNK - m ...
-    (j + 1) CHUNK + m - 1 (m = CHUNK // 8), from its own stream. Cached: the reference-pixel
-    correction asks again for the rows a window has just drawn."""
-    n, gain, up, down = _chunk_shape(layout, a)
-    z = stream(seed, *names, "high", j + 1).standard_normal((2, gain.size))  # j >= -1
-    spec = (z[0] + 1j * z[1]) * gain
-    spec[0] = 0.0
-    spec[-1] = z[0, -1] * gain[-1]
-    x = sfft.irfft(spec, n)
-    m = up.size
-    x[:m] *= up
-    x[-m:] *= down
-    x.setflags(write=False)
-    return x
+#: High-frequency chunks made so far in this process, (layout, a, seed, names, j) -> values:
+#: the reference-pixel correction asks again for the rows a window has just drawn.
+_CHUNKS: dict = {}
+_CHUNKS_KEPT = 4096
+
+
+def _chunks(layout: ReadoutLayout, a: float, seed: int, names: tuple, j0: int,
+            j1: int) -> list:
+    """High-frequency chunks j0 ... j1 - 1 on the grid, tapered (e-): chunk j holds grid points
+    j CHUNK - m ... (j + 1) CHUNK + m - 1 (m = CHUNK // 8) and comes from its own stream. The
+    ones not made yet are transformed together (one batched inverse FFT, the same numbers as
+    one transform each: pocketfft transforms every row alike)."""
+    keys = [(layout, a, seed, names, j) for j in range(j0, j1)]
+    got = {k: _CHUNKS[k] for k in keys if k in _CHUNKS}
+    todo = [k for k in keys if k not in got]
+    if todo:
+        n, gain, up, down = _chunk_shape(layout, a)
+        z = np.stack([stream(seed, *names, "high", k[-1] + 1).standard_normal((2, gain.size))
+                      for k in todo])  # j >= -1
+        spec = (z[:, 0] + 1j * z[:, 1]) * gain
+        spec[:, 0] = 0.0
+        spec[:, -1] = z[:, 0, -1] * gain[-1]
+        x = sfft.irfft(spec, n, axis=-1)
+        m = up.size
+        x[:, :m] *= up
+        x[:, -m:] *= down
+        x.setflags(write=False)
+        got.update(zip(todo, x))
+        if len(_CHUNKS) + len(todo) > _CHUNKS_KEPT:
+            _CHUNKS.clear()
+        _CHUNKS.update(zip(todo, x))
+    return [got[k] for k in keys]
 
 
 def _grid_values(layout: ReadoutLayout, a: float, seed: int, names: tuple, i0: int,
@@ -141,8 +157,7 @@ def _grid_values(layout: ReadoutLayout, a: float, seed: int, names: tuple, i0: i
     out = np.interp(np.arange(i0, i1) * (STEP / LOW_STEP), np.arange(low.size), low)
     m = CHUNK // 8
     j0, j1 = (i0 - m) // CHUNK, (i1 - 1 + m) // CHUNK + 1
-    for j in range(j0, j1):
-        x = _chunk(layout, a, seed, names, j)
+    for j, x in zip(range(j0, j1), _chunks(layout, a, seed, names, j0, j1)):
         s0 = j * CHUNK - m
         lo, hi = max(s0, i0), min(s0 + x.size, i1)
         if hi > lo:
