@@ -291,3 +291,19 @@ def test_run_stopped_in_detection_renders_nothing_again(local_run, tmp_path, mon
     assert calls == {"render": 0, "detect": 2}
     assert_same_files(ref, b)
     assert not (b / RESUME_DIR).exists()
+
+
+def test_local_cluster_workers_keep_the_default_allocator_settings():
+    """The LocalCluster's worker processes run without Dask's MALLOC_TRIM_THRESHOLD_: setting
+    it turns off glibc's dynamic mmap threshold (mallopt(3), Linux man-pages: setting
+    M_TRIM_THRESHOLD disables the dynamic adjustment), so every large temporary array would be
+    mapped and zeroed anew, as the local processes' are not. Dask's other worker settings
+    (one BLAS thread) stay."""
+    import os
+
+    from simfield.config import ClusterConfig
+
+    with open_engine(ClusterConfig(kind="local", n_workers=1)) as engine:
+        env = engine.client.run(lambda: (os.environ.get("MALLOC_TRIM_THRESHOLD_"),
+                                         os.environ.get("OMP_NUM_THREADS")))
+    assert list(env.values()) == [(None, "1")]
