@@ -46,6 +46,11 @@ class WorkerLost(SimfieldError, RuntimeError):
 #: The Dask setting that gives nanny-started workers a malloc trim threshold (see
 #: :func:`open_engine`).
 _TRIM = "distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_"
+#: The same setting unset for the workers of a Slurm job, in its script: Dask reads
+#: DASK_<SECTION>__<KEY> variables as configuration (their values as Python literals) and
+#: merges a dict into the default one, where None removes the variable from the workers'.
+NO_TRIM_EXPORT = ("export DASK_DISTRIBUTED__NANNY__PRE_SPAWN_ENVIRON="
+                  "\"{'MALLOC_TRIM_THRESHOLD_': None}\"")
 
 
 def _host_port(address: str) -> tuple[str, int]:
@@ -155,7 +160,8 @@ class DaskEngine:
 def _slurm_kwargs(cfg) -> dict:
     procs = max(1, cfg.cores // cfg.threads_per_worker)
     kw = dict(cores=cfg.cores, processes=procs, memory=f"{cfg.memory_gb:g}GB",
-              walltime=cfg.walltime, job_name="simfield", job_extra_directives=list(cfg.job_extra))
+              walltime=cfg.walltime, job_name="simfield", job_extra_directives=list(cfg.job_extra),
+              job_script_prologue=[NO_TRIM_EXPORT])  # glibc's defaults, as in open_engine
     if cfg.partition:
         kw["queue"] = cfg.partition
     if cfg.account:

@@ -166,6 +166,25 @@ def test_slurm_job_script_is_printed_not_submitted(tmp_path, monkeypatch, capsys
     assert "not submitted" in cap.err
 
 
+def test_slurm_workers_start_without_the_malloc_trim_threshold():
+    """The job script exports the Dask setting that leaves MALLOC_TRIM_THRESHOLD_ out of the
+    workers' environment (as for the LocalCluster); a shell running that line gives a Dask
+    whose nanny would start workers without it, with Dask's other settings kept."""
+    import subprocess
+
+    from simfield.config import ClusterConfig
+    from simfield.engine import NO_TRIM_EXPORT
+
+    text = slurm_job_script(ClusterConfig(kind="slurm"))
+    assert NO_TRIM_EXPORT in text.splitlines()
+    assert text.index(NO_TRIM_EXPORT) < text.index("distributed.cli.dask_worker")
+    probe = ("from distributed.nanny import _get_env_variables as g; "
+             "print(sorted(g('distributed.nanny.pre-spawn-environ')))")
+    out = subprocess.run(["bash", "-c", f"{NO_TRIM_EXPORT}; {sys.executable} -c \"{probe}\""],
+                         capture_output=True, text=True, check=True).stdout
+    assert "MALLOC_TRIM_THRESHOLD_" not in out and "OMP_NUM_THREADS" in out
+
+
 def test_interrupted_run_resumes_from_its_done_tiles(local_run, monkeypatch):
     """A run stopped at its third tile (the tile raising, as an interruption would; local
     processes, one worker) leaves no image file under a final name, no COMPLETE, and markers
