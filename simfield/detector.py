@@ -696,9 +696,9 @@ def expose(rate: np.ndarray, sky_rate, dark, det: DetectorConfig, exptime_s: flo
 
     # group k is usable while the charge at its last read, f (k + 1) t_g, is below full well
     sat = f * (n * tg) >= det.full_well_e if det.saturation else np.zeros(rate.shape, bool)
-    special = sat | jump
-    if special.any():
-        idx = np.nonzero(special)
+    idx = pixelops.either(sat, jump)  # np.nonzero(sat | jump) in one fused pass
+    special = idx[0].size > 0
+    if special:
         table_a = np.zeros(n + 1)
         table_b = np.zeros(n + 1)
         for cnt in range(2, n + 1):
@@ -734,7 +734,7 @@ def expose(rate: np.ndarray, sky_rate, dark, det: DetectorConfig, exptime_s: flo
     sci = slope
     var, var_sky = pixelops.calibrate(sci, dark_cal, cal, f, f_sky, rate, resp, sky, base,
                                       pb, ferr2)
-    if special.any():
+    if special:
         pixelops.refit_variance(idx, length, f, cal, rate, resp, sky, var_dcal, table_a,
                                 table_b, sig_f2, pois, ferr2, sci, var)
     artefact = bias * (np.float32(1.0) / cal) if n_cr else None

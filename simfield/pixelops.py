@@ -16,7 +16,7 @@ import numpy as np
 
 __all__ = ["ipc", "cornish_fisher", "expected_rates", "calibrate", "refit", "refit_variance",
            "deposit", "jumps", "nearest_counts", "nearest_weighted_add", "box_sum", "above",
-           "pink_window", "add_readout"]
+           "pink_window", "add_readout", "either"]
 
 _jit = numba.njit(cache=True, nogil=True)
 
@@ -580,3 +580,29 @@ def add_readout(sci, var, var_sky, res, v: float, y0: int, x0: int, n_ref: int, 
     _add_readout(*b, res, np.float32(v), int(y0), int(x0), int(n_ref), int(det_shape[0]),
                  int(det_shape[1]), *out)
     return tuple(out)
+
+
+# --------------------------------------------------------------------------- refit pixels
+@_jit
+def _either(a, b, rows, cols):
+    # with rows.size == 0: count only; else fill the first n entries
+    n = 0
+    for y in range(a.shape[0]):
+        for x in range(a.shape[1]):
+            if a[y, x] or b[y, x]:
+                if rows.size:
+                    rows[n], cols[n] = y, x
+                n += 1
+    return n
+
+
+def either(a: np.ndarray, b: np.ndarray) -> tuple:
+    """``np.nonzero(a | b)`` of two boolean images of one shape, (rows, columns) in C order,
+    in two passes (count, fill) without the combined image."""
+    a, b = np.ascontiguousarray(a, np.bool_), np.ascontiguousarray(b, np.bool_)
+    none = np.empty(0, np.int64)
+    n = _either(a, b, none, none)
+    rows, cols = np.empty(n, np.int64), np.empty(n, np.int64)
+    if n:
+        _either(a, b, rows, cols)
+    return rows, cols
