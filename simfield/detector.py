@@ -67,7 +67,7 @@ model at the expected (noiseless) rate, like a variance from a smoothed rate ima
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 
@@ -132,6 +132,9 @@ class FixedPattern:
     dead : ndarray of bool
     dark_z : ndarray (dimensionless)
         Standard normal deviates of the calibration dark's noise (scaled in :func:`expose`).
+    memo : dict
+        What :func:`expose` derives from the pattern alone, kept for the next exposure of the
+        same window (another band): read it, do not change it.
     """
 
     flat: np.ndarray
@@ -140,6 +143,7 @@ class FixedPattern:
     hot_dark: np.ndarray
     dead: np.ndarray
     dark_z: np.ndarray
+    memo: dict = field(default_factory=dict, repr=False, compare=False)
 
 
 @dataclass(frozen=True, eq=False)
@@ -592,6 +596,42 @@ def sky_noise_terms(det: DetectorConfig, exptime_s: float, sky_rate: float) -> t
     return float(white), float(charge), float(alpha)
 
 
+def _fixed_terms(fixed: FixedPattern, det: DetectorConfig, dark, shape, a_full: float,
+                 b_full: float, sig_f2: float, ipc_var: float, alpha: float) -> tuple:
+    """What :func:`expose` needs of the detector alone, float32 images of ``shape`` or
+    scalars: (response, calibration flat, true dark (e-/s), bad-pixel flags, variance of
+    the calibration dark ((e-/s)^2), the calibration dark (e-/s))."""
+    resp = fixed.flat if det.flat else np.ones(shape, np.float32)
+    cal = fixed.flat_cal if det.flat else np.ones(shape, np.float32)
+    if det.bad_pixels:
+        resp = np.where(fixed.dead, 0.0, resp)
+    dark_nom = det.dark_e_s if dark is None else dark
+    dark_nom = np.asarray(dark_nom, np.float32) if det.dark_current else np.zeros(1, np.float32)
+    dark_true = dark_nom + (fixed.hot_dark if det.bad_pixels else 0.0)
+    dq = np.zeros(shape, np.int32)
+    if det.bad_pixels:
+        dq[fixed.hot] |= DQ_HOT
+        dq[fixed.dead] |= DQ_DEAD
+        if alpha > 0:
+            bad = fixed.hot | fixed.dead
+            near = _dilate_cross(bad) & ~bad  # the four neighbours (cross)
+            dq[near] |= DQ_BAD_NEIGHBOUR
+    # the reduction subtracts its calibration dark: every pixel's own dark after IPC, with the
+    # noise of the dark ramps averaged into it (a fixed pattern of the detector)
+    if det.dark_current:
+        dark_seen = pixelops.ipc(np.broadcast_to(dark_true, shape), alpha) \
+            if alpha > 0 else dark_true
+        var_dcal = _dark_cal_var(det, a_full, b_full, sig_f2, ipc_var, dark_true)
+        dark_cal = dark_seen + np.sqrt(var_dcal) * fixed.dark_z
+    else:
+        var_dcal, dark_cal = 0.0, 0.0
+    own = [getattr(fixed, f) for f in ("flat", "flat_cal", "hot", "hot_dark", "dead", "dark_z")]
+    for a in (resp, cal, dark_true, dq, var_dcal, dark_cal):  # made here: kept, not changed
+        if isinstance(a, np.ndarray) and a.flags.owndata and not any(a is b for b in own):
+            a.setflags(write=False)
+    return resp, cal, dark_true, dq, var_dcal, dark_cal
+
+
 def expose(rate: np.ndarray, sky_rate, dark, det: DetectorConfig, exptime_s: float,
            pixel_size_um: float, rng, fixed: FixedPattern) -> Exposure:
     """Simulate and calibrate one up-the-ramp exposure.
@@ -637,13 +677,17 @@ def expose(rate: np.ndarray, sky_rate, dark, det: DetectorConfig, exptime_s: flo
     n_int = n * m
     duration = n_int * tf
 
-    resp = fixed.flat if det.flat else np.ones(rate.shape, np.float32)
-    cal = fixed.flat_cal if det.flat else np.ones(rate.shape, np.float32)
-    if det.bad_pixels:
-        resp = np.where(fixed.dead, 0.0, resp)
-    dark_nom = det.dark_e_s if dark is None else dark
-    dark_nom = np.asarray(dark_nom, np.float32) if det.dark_current else np.zeros(1, np.float32)
-    dark_true = dark_nom + (fixed.hot_dark if det.bad_pixels else 0.0)
+    # the detector's own terms (response, dark, its calibration, bad-pixel flags) depend on the
+    # fixed pattern, not on the light: made once per window and detector settings
+    key = (repr(det), a_full, b_full, sig_f2, ipc_var, alpha, rate.shape)
+    terms = fixed.memo.get(key) if dark is None else None
+    if terms is None:
+        terms = _fixed_terms(fixed, det, dark, rate.shape, a_full, b_full, sig_f2, ipc_var,
+                             alpha)
+        if dark is None:
+            fixed.memo.clear()
+            fixed.memo[key] = terms
+    resp, cal, dark_true, dq0, var_dcal, dark_cal = terms
     sky = np.asarray(sky_rate, dtype=np.float32)
     # expected e-/s without sources, f_sky = sky resp + dark, and with them, f = rate resp +
     # f_sky (one fused pass, simfield.pixelops)
@@ -657,14 +701,7 @@ def expose(rate: np.ndarray, sky_rate, dark, det: DetectorConfig, exptime_s: flo
         slope *= np.float32(scale)
     else:
         slope = f.copy()
-    dq = np.zeros(rate.shape, np.int32)
-    if det.bad_pixels:
-        dq[fixed.hot] |= DQ_HOT
-        dq[fixed.dead] |= DQ_DEAD
-        if alpha > 0:
-            bad = fixed.hot | fixed.dead
-            near = _dilate_cross(bad) & ~bad  # the four neighbours (cross)
-            dq[near] |= DQ_BAD_NEIGHBOUR
+    dq = dq0.copy()
 
     n_cr = 0
     jump = np.zeros(rate.shape, bool)
@@ -714,15 +751,6 @@ def expose(rate: np.ndarray, sky_rate, dark, det: DetectorConfig, exptime_s: flo
                                 sig_f2, ipc_var, det.poisson, slope, dq,
                                 (DQ_SATURATED, DQ_COSMIC_RAY, DQ_NO_SLOPE))
 
-    # the reduction subtracts its calibration dark: every pixel's own dark after IPC, with the
-    # noise of the dark ramps averaged into it (a fixed pattern of the detector)
-    if det.dark_current:
-        dark_seen = pixelops.ipc(np.broadcast_to(dark_true, rate.shape), alpha) \
-            if alpha > 0 else dark_true
-        var_dcal = _dark_cal_var(det, a_full, b_full, sig_f2, ipc_var, dark_true)
-        dark_cal = dark_seen + np.sqrt(var_dcal) * fixed.dark_z
-    else:
-        var_dcal, dark_cal = 0.0, 0.0
     pois = ipc_var if det.poisson else 0.0
     # the calibration flat's error leaves -epsilon x signal, epsilon ~ N(0, flat_error_rms):
     # variance ferr2 x (signal / cal)^2, signal = (sky + rate) x resp = f - dark

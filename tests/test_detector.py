@@ -324,3 +324,26 @@ def test_pixel_noise_windows_agree_where_they_overlap():
     assert_allclose(a.sci[sa], b.sci[sb], rtol=1e-5, atol=1e-6)
     assert np.array_equal(a.dq[sa], b.dq[sb])
     assert np.any(a.dq[sa] & dt.DQ_COSMIC_RAY)  # the overlap does hold cosmic-ray hits
+
+
+def test_second_band_on_a_window_equals_a_fresh_pattern():
+    """expose keeps what it derives from the fixed pattern alone (response, dark, its
+    calibration, bad-pixel flags) for the next exposure of the window: a second band, and a
+    change of detector settings, give bit for bit what a fresh copy of the pattern gives."""
+    import dataclasses
+
+    det = DetectorConfig()
+    fixed = dt.fixed_pattern_window(det, 3, 0, 96, 0, 80)
+    rate = np.random.default_rng(2).exponential(0.5, (96, 80)).astype(np.float32)
+
+    def run(d, fp, sky, k):
+        return dt.expose(rate, sky, None, d, 300.0, 18.0,
+                         dt.PixelNoise(3, ("exposure", "bx", k), 0, 0, rate.shape), fp)
+
+    run(det, fixed, 0.2, 0)  # fills the pattern's memo
+    for d, sky, k in ((det, 0.7, 1), (dataclasses.replace(det, ipc=False), 0.7, 1),
+                      (dataclasses.replace(det, dark_e_s=0.05), 0.3, 2)):
+        fresh = dataclasses.replace(fixed, memo={})
+        a, b = run(d, fixed, sky, k), run(d, fresh, sky, k)
+        for name in ("sci", "var", "var_sky", "dq"):
+            np.testing.assert_array_equal(getattr(a, name), getattr(b, name), err_msg=name)
