@@ -66,7 +66,7 @@ import sys
 import numpy as np
 
 __all__ = ["H_COUNTS_ROWS", "RECALLED_MAGS", "RECALLED_LOG_COUNTS", "K_REFERENCE_MAGS",
-           "K_REFERENCE_LOG_COUNTS", "K_BAND", "reference_counts", "recalled_counts",
+           "K_REFERENCE_LOG_COUNTS", "K_BAND", "binned_counts", "reference_counts", "recalled_counts",
            "reference_counts_k", "population_counts", "split_counts", "main"]
 
 #: 1.6 um counts of Driver et al. 2016, Table 3, read in ICRAR/shark
@@ -105,13 +105,14 @@ _GALAXY_KINDS = ("galaxy", "dusty", "quiescent")
 K_BAND = ("k215", 2150.0, 320.0, 0.40)
 
 
-def _h_bins():
-    """(bin centres AB, log10 counts per mag per deg^2) of :data:`H_COUNTS_ROWS`: the data sets
-    at each centre averaged with inverse-variance weights, doubled from per 0.5 mag to per mag."""
-    mags = np.unique(H_COUNTS_ROWS[:, 0])
+def binned_counts(rows: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """(bin centres AB, log10 counts per mag per deg^2) of rows of Driver et al. 2016, Table 3
+    as :data:`H_COUNTS_ROWS` holds them (centre, counts per 0.5 mag, error, data set): the data
+    sets at each centre averaged with inverse-variance weights, doubled to per mag."""
+    mags = np.unique(rows[:, 0])
     logn = np.empty(mags.size)
     for i, m in enumerate(mags):
-        n, err = H_COUNTS_ROWS[H_COUNTS_ROWS[:, 0] == m, 1:3].T
+        n, err = rows[rows[:, 0] == m, 1:3].T
         w = err ** -2.0
         logn[i] = np.log10(2.0 * np.sum(w * n) / np.sum(w))
     return mags, logn
@@ -121,7 +122,7 @@ def reference_counts(mag):
     """Published differential counts dN/dm (mag^-1 deg^-2) at 1.6 um at AB magnitude ``mag``
     (Driver et al. 2016, Table 3, read), NaN outside the bin centres 20.25-28.25."""
     mag = np.asarray(mag, dtype=float)
-    mags, logn = _h_bins()
+    mags, logn = binned_counts(H_COUNTS_ROWS)
     inside = (mag >= mags[0]) & (mag <= mags[-1])
     return np.where(inside, 10.0 ** np.interp(mag, mags, logn), np.nan)
 

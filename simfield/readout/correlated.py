@@ -76,13 +76,10 @@ class CorrelatedNoise:
         """
         lay = self.layout
         out = np.zeros((y1 - y0, x1 - x0), np.float32)
-        a_c = pink_coefficient(lay, self.pink_common_e)
-        a_o = pink_coefficient(lay, self.pink_channel_e)
-        i0, gc = pink_grid(lay, a_c, self.seed, (*self.names, "common"), y0, y1)
-        for c in range(x0 // lay.width, (x1 - 1) // lay.width + 1):
+        i0, c0, grids = self.channel_grids(y0, y1, x0, x1)
+        for c in range(c0, c0 + len(grids)):
             cols = lay.columns(c, x0, x1)
-            if cols.size == 0:
-                continue
-            g = gc + pink_grid(lay, a_o, self.seed, (*self.names, c), y0, y1)[1] + self.offset(c)
-            out[:, cols - x0] = grid_at(lay, i0, g, y0, y1, lay.fast_index(cols))
+            if cols.size:
+                out[:, cols - x0] = grid_at(lay, i0, grids[c - c0], y0, y1,
+                                            lay.fast_index(cols))
         return out
