@@ -1172,16 +1172,19 @@ def _known_keys(parent: str) -> list[str]:
 
 def config_hash(sc: Scenario) -> str:
     """Short SHA-256 of the resolved scenario (16 hex digits), recorded in every output."""
-    text = OmegaConf.to_yaml(_content(sc), sort_keys=True)
-    return hashlib.sha256(text.encode()).hexdigest()[:16]
+    return _hash(_content(sc))
 
 
 def hash_and_yaml(sc: Scenario) -> tuple[str, str]:
     """(:func:`config_hash`, :func:`to_yaml`) of ``sc`` from one structured copy of it (making
     that copy is most of the cost of each)."""
     node = _content(sc)
+    return _hash(node), OmegaConf.to_yaml(node)
+
+
+def _hash(node: DictConfig) -> str:
     text = OmegaConf.to_yaml(node, sort_keys=True)
-    return hashlib.sha256(text.encode()).hexdigest()[:16], OmegaConf.to_yaml(node)
+    return hashlib.sha256(text.encode()).hexdigest()[:16]
 
 
 def _content(sc: Scenario) -> DictConfig:
