@@ -22,7 +22,6 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
-from astropy.convolution import convolve_fft
 from astropy.table import Table
 from astropy.wcs import WCS
 
@@ -30,7 +29,7 @@ from .bands import AB_NJY_ZERO
 from .config import DetectionConfig
 from .errors import ConfigError, check_range, require
 
-__all__ = ["Detections", "detect_sources", "detect_mosaic", "run_detection", "tile_bounds",
+__all__ = ["Detections", "detect_sources", "matched_filter", "detect_mosaic", "run_detection", "tile_bounds",
            "TILE_CORE_PIX", "TILE_MARGIN_PIX", "SEAM_MATCH_PIX", "SEGM_MATCH_PIX"]
 
 # 2.5 / ln(10): magnitude error per unit fractional flux error
@@ -95,6 +94,25 @@ def _columns_empty(meta) -> Table:
     return t
 
 
+def matched_filter(image: np.ndarray, bad: np.ndarray, fwhm_pix: float) -> np.ndarray:
+    """``image`` convolved with a unit-sum circular Gaussian of FWHM ``fwhm_pix`` (pixels;
+    photutils' ``make_2dgaussian_kernel``, odd size ~4 FWHM), with zeros beyond the edges and
+    at ``bad`` pixels (bool), which are 0 in the result.
+
+    A linear convolution by overlap-add FFTs (``scipy.signal.oaconvolve``): equal to astropy's
+    ``convolve_fft`` with the bad pixels masked and the boundary and masked pixels filled
+    with 0 (tests/test_detect.py), ~10x faster on 2500^2 pixels (its padded complex FFTs).
+    """
+    from photutils.segmentation import make_2dgaussian_kernel
+    from scipy import signal
+
+    size = int(2 * np.ceil(2.0 * fwhm_pix) + 1)
+    k = np.asarray(make_2dgaussian_kernel(fwhm_pix, size=max(size, 3)).array, dtype=float)
+    conv = signal.oaconvolve(np.where(bad, 0.0, image), k / k.sum(), mode="same")
+    conv[bad] = 0.0
+    return conv
+
+
 def detect_sources(sci, wht, wcs: WCS, cfg: DetectionConfig, psf_fwhm_arcsec: float,
                    zeropoint: float, pixel_scale_arcsec: float, exptime: float | None = None,
                    mask=None, noise_table=None, flags=None) -> Detections:
@@ -143,7 +161,7 @@ def detect_sources(sci, wht, wcs: WCS, cfg: DetectionConfig, psf_fwhm_arcsec: fl
         segment), the segmentation image and the background.
     """
     from photutils.background import Background2D, MedianBackground
-    from photutils.segmentation import (SourceCatalog, deblend_sources, make_2dgaussian_kernel)
+    from photutils.segmentation import SourceCatalog, deblend_sources
     from photutils.segmentation import detect_sources as _segment
     from photutils.utils import NoDetectionsWarning, calc_total_error
 
@@ -177,11 +195,7 @@ def detect_sources(sci, wht, wcs: WCS, cfg: DetectionConfig, psf_fwhm_arcsec: fl
 
     # --- matched filter: unit-sum circular Gaussian of the PSF FWHM, size ~ 4 FWHM (odd)
     fwhm_pix = (cfg.kernel_fwhm_arcsec or psf_fwhm_arcsec) / pixel_scale_arcsec
-    size = int(2 * np.ceil(2.0 * fwhm_pix) + 1)
-    kernel = make_2dgaussian_kernel(fwhm_pix, size=max(size, 3))
-    conv = convolve_fft(sub, kernel, mask=bad, normalize_kernel=True, preserve_nan=False,
-                        boundary="fill", fill_value=0.0, nan_treatment="fill")
-    conv[bad] = 0.0
+    conv = matched_filter(sub, bad, fwhm_pix)
 
     threshold = cfg.threshold_sigma * np.where(bad, np.inf, rms)
     with warnings.catch_warnings():  # "no sources found" is an answer here, not a warning
