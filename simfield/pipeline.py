@@ -285,7 +285,8 @@ def _run_scenario(sc: Scenario, out_dir: str | Path, progress: bool, engine) -> 
         local = sc.workers or os.cpu_count() or 1  # processes (0: one per core)
         scoring = _Scoring(out, sc, prov, engine is None and local > 1)
     try:
-        _measure_and_select(out, sc, bands, prov, summary, files, timer)
+        _measure_and_select(out, sc, bands, prov, summary, files, timer,
+                            (sc.workers or os.cpu_count() or 1) if engine is None else 1)
         if scoring is not None:
             summary["score"], res.timings["score"] = scoring.result()
             if progress:
@@ -307,9 +308,10 @@ def _run_scenario(sc: Scenario, out_dir: str | Path, progress: bool, engine) -> 
 
 
 def _measure_and_select(out: Path, sc: Scenario, bands: list, prov, summary: dict, files: list,
-                        timer) -> None:
+                        timer, workers: int = 1) -> None:
     """Photometry, photo-z and selection of a run's detections, in that order (each reads
-    the one before); their summaries go into ``summary`` and their files into ``files``."""
+    the one before); their summaries go into ``summary`` and their files into ``files``.
+    The selection's samples are scored in ``workers`` local processes."""
     if sc.photometry.enabled and sc.detection.enabled:
         with timer("photometry"):
             from .photometry import measure_run
@@ -327,7 +329,7 @@ def _measure_and_select(out: Path, sc: Scenario, bands: list, prov, summary: dic
         with timer("selection"):
             from .selection import score_run_selection
 
-            summary["selection"] = score_run_selection(out, sc, prov)
+            summary["selection"] = score_run_selection(out, sc, prov, workers)
             files.extend(out / "selection" / s / "summary.json" for s in summary["selection"])
 
 

@@ -70,24 +70,55 @@ def _needs_photoz(samples) -> bool:
     return any(c.kind == "photoz" for s in samples for c in s.conditions)
 
 
-def _score_all(run_dir, det, band, selections: dict, samples, sc, out_root, prov):
+_JOB = None  # (arguments of score_sample but the sample), set before forking sample workers
+
+
+def _score_one(i: int):
+    from .score import score_sample
+
+    samples, selections, det, truth, matched, cfg, z_max, out_root, bands, prov = _JOB
+    s = samples[i]
+    return score_sample(s, selections[s.name], det, truth, matched, cfg, z_max,
+                        Path(out_root) / s.name, bands, prov=prov)
+
+
+def _score_all(run_dir, det, band, selections: dict, samples, sc, out_root, prov,
+               workers: int = 1):
+    """Score every sample (:func:`.score.score_sample`), in ``workers`` forked processes if
+    more than one: each sample writes only its own folder and draws nothing at random, so the
+    files do not depend on the number of processes."""
     from ..bands import make_band
     from ..score.run import load_truth
-    from .score import match_catalogue, score_sample
+    from .score import match_catalogue
 
+    global _JOB
     truth = load_truth(run_dir, band)
     matched = match_catalogue(truth, det, sc.score, band)
     bands = [make_band(b.name, b.center_nm, b.width_nm, b.throughput, b.sky_mjy_sr)
              for b in sc.telescope.bands]  # as simfield.pipeline.make_bands, for the tracks
-    res = {}
-    for s in samples:
-        res[s.name] = score_sample(s, selections[s.name], det, truth, matched, sc.selection,
-                                   sc.population.z_max, Path(out_root) / s.name, bands,
-                                   prov=prov)
-    return res
+    _JOB = (samples, selections, det, truth, matched, sc.selection, sc.population.z_max,
+            out_root, bands, prov)
+    try:
+        n = min(workers, len(samples))
+        if n <= 1:
+            got = [_score_one(i) for i in range(len(samples))]
+        else:
+            import multiprocessing
+            import os
+            from concurrent.futures import ProcessPoolExecutor
+
+            from .._procs import die_with_parent
+
+            with ProcessPoolExecutor(n, mp_context=multiprocessing.get_context("fork"),
+                                     initializer=die_with_parent,
+                                     initargs=(os.getpid(),)) as pool:
+                got = list(pool.map(_score_one, range(len(samples))))
+    finally:
+        _JOB = None
+    return {s.name: r for s, r in zip(samples, got)}
 
 
-def score_run_selection(run_dir, sc, prov=None) -> dict:
+def score_run_selection(run_dir, sc, prov=None, workers: int = 1) -> dict:
     """Apply and score every sample of ``sc.selection`` on the run's ``photometry.fits``.
 
     Parameters
@@ -95,6 +126,8 @@ def score_run_selection(run_dir, sc, prov=None) -> dict:
     run_dir : str or Path
     sc : Scenario
     prov : Provenance, optional
+    workers : int
+        Local processes for the samples (forked; 1: here, one after the other).
 
     Returns
     -------
@@ -114,7 +147,8 @@ def score_run_selection(run_dir, sc, prov=None) -> dict:
     samples = usable
     check_columns(det, samples, "photometry.fits (+ photoz.fits)")
     masks = {k: v[0] for k, v in apply_samples(det, samples).items()}
-    return _score_all(run_dir, det, band, masks, samples, sc, Path(run_dir) / "selection", prov)
+    return _score_all(run_dir, det, band, masks, samples, sc, Path(run_dir) / "selection", prov,
+                      workers)
 
 
 def _pick(samples, names):
