@@ -29,8 +29,8 @@ from .bands import AB_NJY_ZERO
 from .config import DetectionConfig
 from .errors import ConfigError, check_range, require
 
-__all__ = ["Detections", "detect_sources", "matched_filter", "detect_mosaic", "run_detection", "tile_bounds",
-           "TILE_CORE_PIX", "TILE_MARGIN_PIX", "SEAM_MATCH_PIX", "SEGM_MATCH_PIX"]
+__all__ = ["Detections", "detect_sources", "matched_filter", "detect_mosaic", "run_detection",
+           "tile_bounds", "TILE_CORE_PIX", "TILE_MARGIN_PIX", "SEAM_MATCH_PIX", "SEGM_MATCH_PIX"]
 
 # 2.5 / ln(10): magnitude error per unit fractional flux error
 _MAG_PER_FRAC = 2.5 / np.log(10.0)
