@@ -459,9 +459,12 @@ class PixelNoise:
         out = np.empty(self.shape, np.float32)
         for by, bx in self._blocks():
             rng = stream(self.seed, *self.names, slot, by, bx)
-            blk = rng.random((b, b), np.float32) if uniform else                 rng.standard_normal((b, b), np.float32)
             ys = slice(max(self.y0, by * b), min(self.y0 + self.shape[0], (by + 1) * b))
             xs = slice(max(self.x0, bx * b), min(self.x0 + self.shape[1], (bx + 1) * b))
+            # a block's deviates fill it row by row: its first rows, up to the last one the
+            # window reads, are the same numbers as the whole block's (tested)
+            rows = (ys.stop - by * b, b)
+            blk = rng.random(rows, np.float32) if uniform else rng.standard_normal(rows, np.float32)
             out[ys.start - self.y0:ys.stop - self.y0, xs.start - self.x0:xs.stop - self.x0] = \
                 blk[ys.start - by * b:ys.stop - by * b, xs.start - bx * b:xs.stop - bx * b]
         return out

@@ -326,6 +326,28 @@ def test_pixel_noise_windows_agree_where_they_overlap():
     assert np.any(a.dq[sa] & dt.DQ_COSMIC_RAY)  # the overlap does hold cosmic-ray hits
 
 
+def test_pixel_noise_window_deviates_are_those_of_whole_blocks():
+    """A window's deviates are those of the whole NOISE_BLOCK^2 blocks of the pixels' own
+    streams (numpy's Generator draws from each stream in a fixed order; common practice),
+    normal and uniform, for windows that start and end inside blocks and at block edges."""
+    from simfield.random import stream
+
+    b = dt.NOISE_BLOCK
+    for y0, x0, shape in ((37, 11, (200, 150)), (0, 0, (b, 2 * b)), (b - 1, 5, (3, b + 7))):
+        noise = dt.PixelNoise(5, ("exposure", "t", 1), y0, x0, shape)
+        for uniform in (False, True):
+            got = noise._field("read", uniform)
+            ref = np.empty(shape, np.float32)
+            for y in range(y0, y0 + shape[0]):
+                for bx in range(x0 // b, (x0 + shape[1] - 1) // b + 1):
+                    rng = stream(5, "exposure", "t", 1, "read", y // b, bx)
+                    blk = rng.random((b, b), np.float32) if uniform else \
+                        rng.standard_normal((b, b), np.float32)
+                    lo, hi = max(x0, bx * b), min(x0 + shape[1], (bx + 1) * b)
+                    ref[y - y0, lo - x0:hi - x0] = blk[y % b, lo - bx * b:hi - bx * b]
+            assert np.array_equal(got, ref), (y0, x0, shape, uniform)
+
+
 def test_second_band_on_a_window_equals_a_fresh_pattern():
     """expose keeps what it derives from the fixed pattern alone (response, dark, its
     calibration, bad-pixel flags) for the next exposure of the window: a second band, and a
