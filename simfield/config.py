@@ -526,7 +526,8 @@ class Scenario:
     """One complete scenario: what simfield needs to make a field and score it."""
 
     seed: int = 0
-    #: processes for the mosaic and detection tiles; 0: one per core (at most one per tile)
+    #: processes for the mosaic and detection tiles and the selection's samples; 0: one per core
+    #: (at most one per tile)
     workers: int = 0
     telescope: TelescopeConfig = MISSING
     population: PopulationConfig = MISSING
