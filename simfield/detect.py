@@ -115,7 +115,7 @@ def matched_filter(image: np.ndarray, bad: np.ndarray, fwhm_pix: float) -> np.nd
 
 def detect_sources(sci, wht, wcs: WCS, cfg: DetectionConfig, psf_fwhm_arcsec: float,
                    zeropoint: float, pixel_scale_arcsec: float, exptime: float | None = None,
-                   mask=None, noise_table=None, flags=None) -> Detections:
+                   mask=None, noise_table=None, flags=None, processes: int = 1) -> Detections:
     """Detect and measure sources on one mosaic.
 
     Parameters
@@ -148,6 +148,9 @@ def detect_sources(sci, wht, wcs: WCS, cfg: DetectionConfig, psf_fwhm_arcsec: fl
         (circular aperture: its radius; Kron ellipse and isophotal area: the radius of a
         circle of the same area), since the pixels of a drizzled mosaic are correlated.
         None: errors from the pixel variances alone.
+    processes : int
+        Local processes for the deblending (:func:`simfield.deblend.deblend`: the same
+        segmentation with any number).
 
     Returns
     -------
@@ -161,9 +164,11 @@ def detect_sources(sci, wht, wcs: WCS, cfg: DetectionConfig, psf_fwhm_arcsec: fl
         segment), the segmentation image and the background.
     """
     from photutils.background import Background2D, MedianBackground
-    from photutils.segmentation import SourceCatalog, deblend_sources
+    from photutils.segmentation import SourceCatalog
     from photutils.segmentation import detect_sources as _segment
     from photutils.utils import NoDetectionsWarning, calc_total_error
+
+    from .deblend import deblend
 
     sci = np.asarray(sci, dtype=float)
     wht = np.asarray(wht, dtype=float)
@@ -204,8 +209,7 @@ def detect_sources(sci, wht, wcs: WCS, cfg: DetectionConfig, psf_fwhm_arcsec: fl
     if segm is None:
         return Detections(_columns_empty(meta), np.zeros(sci.shape, int), back)
     if cfg.deblend and segm.n_labels > 0:
-        segm = deblend_sources(conv, segm, n_pixels=int(cfg.npixels), n_levels=int(cfg.nlevels),
-                               contrast=float(cfg.contrast), progress_bar=False)
+        segm = deblend(conv, segm, cfg.npixels, cfg.nlevels, cfg.contrast, processes)
 
     if exptime is not None and exptime > 0:
         error = calc_total_error(sub, np.where(bad, 0.0, rms), float(exptime))
@@ -343,7 +347,7 @@ class _TileJob:
     noise_table: tuple | None = None
 
 
-def _detect_tile(job: _TileJob, tile):
+def _detect_tile(job: _TileJob, tile, processes: int = 1):
     """:func:`detect_sources` on one tile of ``job``'s mosaic. Returns the tile's catalogue
     (mosaic pixel positions), its photutils labels, which rows the tile owns (centroid pixel
     in its core), the positions, the core's segmentation (tile labels, or None) and the
@@ -357,7 +361,8 @@ def _detect_tile(job: _TileJob, tile):
     det = detect_sources(_window(job.path, *job.maps["IMAGE"], win).astype(float),
                          _window(job.path, *job.maps["INVVAR"], win).astype(float),
                          twcs, job.cfg, job.fwhm, job.zp, job.scale, exptime=job.exptime,
-                         mask=mask, noise_table=job.noise_table, flags=flags)
+                         mask=mask, noise_table=job.noise_table, flags=flags,
+                         processes=processes)
     cat = det.catalog
     gx = np.asarray(cat["x"], float) + xlo
     gy = np.asarray(cat["y"], float) + ylo
@@ -411,7 +416,10 @@ def _compute_tiles(job: _TileJob, tiles: list, workers: int, engine=None):
         return
     n = min(len(tiles), os.cpu_count() or 1) if workers == 0 else min(workers, len(tiles))
     if n <= 1:
-        yield from (_detect_tile(job, t) for t in tiles)
+        # one tile: its deblending may use the local processes the tiles do not
+        local = (os.cpu_count() or 1) if workers == 0 else workers
+        apart = local if len(tiles) == 1 else 1
+        yield from (_detect_tile(job, t, apart) for t in tiles)
         return
     from ._procs import die_with_parent
 

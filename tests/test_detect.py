@@ -129,6 +129,44 @@ def test_matched_filter_equals_astropy_convolve_fft():
         assert np.all(got[bad] == 0.0)
 
 
+def test_deblending_in_two_processes_equals_photutils(monkeypatch):
+    """simfield.deblend in two forked processes against the reference library: photutils'
+    deblend_sources in one pass, on a field of blended pairs and triples drawn by GalSim; the
+    same segmentation pixel for pixel (labels included), and detect_sources gives the same
+    catalogue with one or two processes."""
+    from photutils.segmentation import deblend_sources
+    from photutils.segmentation import detect_sources as segment
+
+    from simfield import deblend as db
+
+    rng = np.random.default_rng(5)
+    size = 400
+    img = galsim.ImageD(size, size, scale=SCALE)
+    for cx, cy in rng.uniform(15, size - 15, (60, 2)):
+        for _ in range(rng.integers(1, 4)):  # a few sources close together: blends
+            x, y = cx + rng.normal(0, 2.5), cy + rng.normal(0, 2.5)
+            galsim.Gaussian(fwhm=2 * FWHM, flux=rng.uniform(2.0, 20.0)).drawImage(
+                img, center=galsim.PositionD(x + 1, y + 1), add_to_image=True, method="auto")
+    sci = img.array + rng.normal(0, 0.003, img.array.shape)
+    conv = matched_filter(sci, np.zeros(sci.shape, bool), 3.0)
+    segm = segment(conv, 0.005, n_pixels=9)
+    cfg = DetectionConfig()
+    ref = deblend_sources(conv, segm, n_pixels=9, n_levels=int(cfg.nlevels),
+                          contrast=float(cfg.contrast), progress_bar=False)
+    monkeypatch.setattr(db, "MIN_LABELS_APART", 10)
+    got = db.deblend(conv, segm, 9, cfg.nlevels, cfg.contrast, processes=2)
+    assert segm.n_labels >= 40 and ref.n_labels > segm.n_labels  # there was deblending
+    assert np.array_equal(got.data, ref.data)
+    g = Grid(nx=size, ny=size, scale=SCALE, ra0=53.0, dec0=-27.8)
+    one = detect_sources(sci, np.full(sci.shape, 0.003**-2), g.wcs, cfg, FWHM, ZP, SCALE)
+    two = detect_sources(sci, np.full(sci.shape, 0.003**-2), g.wcs, cfg, FWHM, ZP, SCALE,
+                         processes=2)
+    assert len(one.catalog) > 40 and np.array_equal(one.segmentation, two.segmentation)
+    for c in one.catalog.colnames:
+        assert np.array_equal(np.asarray(one.catalog[c]), np.asarray(two.catalog[c]),
+                              equal_nan=True), c
+
+
 def test_rejects_mismatched_weight_shape():
     """A weight map of another shape is refused naming 'wht'."""
     g = Grid(nx=50, ny=50, scale=SCALE, ra0=53.0, dec0=-27.8)

@@ -286,11 +286,11 @@ def test_run_stopped_in_detection_renders_nothing_again(local_run, tmp_path, mon
         calls["render"] += 1
         return real_render(ctx, i)
 
-    def stop_at_third(job, tile):
+    def stop_at_third(job, tile, *rest):
         calls["detect"] += 1
         if calls["detect"] == 3:
             raise RuntimeError("interrupted")
-        return real_detect(job, tile)
+        return real_detect(job, tile, *rest)
 
     monkeypatch.setattr(pipeline, "_render_tile", render)
     monkeypatch.setattr(detect, "_detect_tile", stop_at_third)
