@@ -72,39 +72,70 @@ _COVARIANCES: dict = {}
 _COVARIANCES_KEPT = 4
 
 
-def noise_correlations(sc: Scenario, bands: list[Band], egrids: list, mgrid: Grid) -> dict:
+def _covariance_key(sc: Scenario, egrids: list, mgrid: Grid) -> str:
+    # the covariances depend on the seed, the detector, the survey and the grids only
+    return repr((sc.seed, sc.detector, sc.survey, list(egrids), mgrid))
+
+
+def noise_covariances(sc: Scenario, egrids: list, mgrid: Grid) -> tuple:
+    """The drizzle's noise covariances of the run's geometry (white, IPC-spread and, with
+    ``detector.correlated_noise``, correlated-readout noise; :mod:`simfield.survey.noise`),
+    kept for the last few geometries of this process: a process that runs the same geometry
+    again (a notebook, a test session) reuses them."""
+    from .survey import drizzle_noise_covariance
+
+    det, srv = sc.detector, sc.survey
+    key = _covariance_key(sc, egrids, mgrid)
+    if key in _COVARIANCES:
+        return _COVARIANCES[key]
+    alpha = det.ipc_alpha if det.ipc else 0.0
+    cov_w, cov_c = drizzle_noise_covariance(egrids, mgrid, srv.drizzle_kernel, srv.pixfrac,
+                                            alpha, stream(sc.seed, "noise_correlation"))
+    cov_r = None
+    if det.correlated_noise:
+        from ._readout_hooks import readout_covariance
+
+        cov_r = readout_covariance(sc, egrids, mgrid)
+    return _remember(key, (cov_w, cov_c, cov_r))
+
+
+def _remember(key: str, covs: tuple) -> tuple:
+    for a in covs:
+        if a is not None:
+            a.setflags(write=False)
+    while len(_COVARIANCES) >= _COVARIANCES_KEPT:
+        _COVARIANCES.pop(next(iter(_COVARIANCES)))
+    _COVARIANCES[key] = covs
+    return covs
+
+
+def noise_correlations(sc: Scenario, bands: list[Band], egrids: list, mgrid: Grid,
+                       covariances: tuple | None = None) -> dict:
     """Each band's mosaic noise correlation (:mod:`simfield.survey.noise`): the drizzle's
     covariance for white and IPC-spread noise (the same geometry for all bands), weighted by
-    the detector's split of a sky pixel's variance into those parts."""
+    the detector's split of a sky pixel's variance into those parts. ``covariances``: those
+    of :func:`noise_covariances` if already made (e.g. in another process; kept here then)."""
     from .detector import sky_noise_terms
-    from .survey import drizzle_noise_covariance, noise_correlation
+    from .survey import noise_correlation
 
     tel, srv, det = sc.telescope, sc.survey, sc.detector
-    # the covariances depend on the seed, the detector, the survey and the grids only: a
-    # process that runs the same geometry again (a notebook, a test session) reuses them
-    key = repr((sc.seed, det, srv, list(egrids), mgrid))
-    if key not in _COVARIANCES:
-        alpha = det.ipc_alpha if det.ipc else 0.0
-        cov_w, cov_c = drizzle_noise_covariance(egrids, mgrid, srv.drizzle_kernel, srv.pixfrac,
-                                                alpha, stream(sc.seed, "noise_correlation"))
-        cov_r = None
-        if det.correlated_noise:
-            from ._readout_hooks import readout_covariance
-
-            cov_r = readout_covariance(sc, egrids, mgrid)
-        for a in (cov_w, cov_c, cov_r):
-            if a is not None:
-                a.setflags(write=False)
-        while len(_COVARIANCES) >= _COVARIANCES_KEPT:
-            _COVARIANCES.pop(next(iter(_COVARIANCES)))
-        _COVARIANCES[key] = (cov_w, cov_c, cov_r)
-    cov_w, cov_c, cov_r = _COVARIANCES[key]
+    if covariances is None:
+        covariances = noise_covariances(sc, egrids, mgrid)
+    else:
+        key = _covariance_key(sc, egrids, mgrid)
+        covariances = _COVARIANCES.get(key) or _remember(key, covariances)
+    cov_w, cov_c, cov_r = covariances
     out = {}
     for b in bands:
         sky = b.sky_rate(tel.collecting_area_m2, tel.pixel_scale_arcsec)
         white, charge, _ = sky_noise_terms(det, srv.exposure_time_s, sky)
         out[b.name] = noise_correlation(cov_w, cov_c, white, charge, cov_r)
     return out
+
+
+def covariances_kept(sc: Scenario, egrids: list, mgrid: Grid) -> bool:
+    """Whether this process keeps the noise covariances of this geometry already."""
+    return _covariance_key(sc, egrids, mgrid) in _COVARIANCES
 
 
 def image_files(out: Path, sc: Scenario, bands: list[Band], mgrid: Grid, egrids: list,

@@ -15,6 +15,7 @@ import multiprocessing
 import os
 import sys
 import time
+import weakref
 from concurrent.futures import ProcessPoolExecutor
 from contextlib import contextmanager
 from dataclasses import dataclass, field
@@ -29,8 +30,9 @@ from .bands import Band, ab_to_njy, make_bands, njy_to_ab
 from .columns import POINT_KINDS, SOURCE_KINDS
 from .config import Scenario, hash_and_yaml
 from .grid import Grid
-from ._products import (SEGMENTATION_NSIGMA, artefact_map, image_files,
-                        noise_correlations, write_lens_maps, write_psf, write_truth)
+from ._products import (SEGMENTATION_NSIGMA, artefact_map, covariances_kept, image_files,
+                        noise_correlations, noise_covariances, write_lens_maps, write_psf,
+                        write_truth)
 from .io import COMPLETE_MARKER, Provenance, write_json, write_table, write_text
 from .fieldconv import add_bright_field, field_axes
 from .random import stream
@@ -137,8 +139,14 @@ def _run_scenario(sc: Scenario, out_dir: str | Path, progress: bool, engine) -> 
     with timer("setup"):
         sgrid: Grid = scene_grid(srv, tel)
         mgrid: Grid = mosaic_grid(srv)
+        egrids = exposure_grids(srv, tel, stream(sc.seed, "dither"))
         files.append(write_table(out / "bands.ecsv", _bands_table(bands, area), prov))
         files.append(write_text(out / "scenario.yaml", prov.config_yaml))  # = to_yaml(sc)
+    # the mosaic noise covariances depend on the geometry alone: with several local workers
+    # they are drizzled in a process of their own while the population and PSFs are made
+    local = sc.workers or os.cpu_count() or 1  # processes (0: one per core)
+    covariances = None if covariances_kept(sc, egrids, mgrid) else \
+        _Beside(noise_covariances, (sc, egrids, mgrid), engine is None and local > 1)
 
     # ---------------------------------------------------------------- population (+ lens)
     with timer("population"):
@@ -206,10 +214,10 @@ def _run_scenario(sc: Scenario, out_dir: str | Path, progress: bool, engine) -> 
     # ---------------------------------------------------------------- tiles
     from .survey import plan_tiles
 
-    egrids = exposure_grids(srv, tel, stream(sc.seed, "dither"))
     tiles = plan_tiles(mgrid, egrids, sgrid, srv.tile_pixels)
-    with timer("noise_correlation"):
-        noise = noise_correlations(sc, bands, egrids, mgrid)
+    with timer("noise_correlation"):  # what is left of it here
+        noise = noise_correlations(sc, bands, egrids, mgrid,
+                                   None if covariances is None else covariances.result())
     rates, bright = {}, {}
     mu = np.maximum(np.asarray(sources["magnification"], float), 1e-6)
     for b in bands:
@@ -282,11 +290,10 @@ def _run_scenario(sc: Scenario, out_dir: str | Path, progress: bool, engine) -> 
     # workers it runs in a process of its own beside photometry, photo-z and selection
     scoring = None
     if sc.score.enabled and sc.detection.enabled:
-        local = sc.workers or os.cpu_count() or 1  # processes (0: one per core)
-        scoring = _Scoring(out, sc, prov, engine is None and local > 1)
+        scoring = _Beside(_score_task, (out, sc, prov), engine is None and local > 1)
     try:
         _measure_and_select(out, sc, bands, prov, summary, files, timer,
-                            (sc.workers or os.cpu_count() or 1) if engine is None else 1)
+                            local if engine is None else 1)
         if scoring is not None:
             summary["score"], res.timings["score"] = scoring.result()
             if progress:
@@ -340,23 +347,31 @@ def _score_task(out: Path, sc: Scenario, prov) -> tuple[dict, float]:
     return score_pipeline_run(out, sc, prov), time.perf_counter() - t0
 
 
-class _Scoring:
-    """The run's scoring (:func:`simfield.score.run.score_pipeline_run`), started now: in a
-    forked process of its own (which dies with this one) if ``apart``, else here and at once.
-    :meth:`result` gives (its summary, its seconds)."""
+class _Beside:
+    """``fn(*args)`` started now: in a forked process of its own (which dies with this one)
+    if ``apart``, else here and at once. :meth:`result` gives what it returned. Used for the
+    run's scoring (:func:`_score_task`) beside photometry and selection, and for the mosaic
+    noise covariances beside the population and PSFs."""
 
-    def __init__(self, out: Path, sc: Scenario, prov, apart: bool):
+    def __init__(self, fn, args: tuple, apart: bool):
         self._pool = self._future = self._done = None
         if apart:
             self._pool = ProcessPoolExecutor(1, mp_context=multiprocessing.get_context("fork"),
                                              initializer=die_with_parent,
                                              initargs=(os.getpid(),))
-            self._future = self._pool.submit(_score_task, out, sc, prov)
+            self._future = self._pool.submit(fn, *args)
+            # a run that stops before asking for the result leaves no process behind
+            weakref.finalize(self, self._pool.shutdown, wait=False, cancel_futures=True)
         else:
-            self._done = _score_task(out, sc, prov)
+            self._done = fn(*args)
 
-    def result(self) -> tuple[dict, float]:
-        return self._done if self._future is None else self._future.result()
+    def result(self):
+        if self._future is None:
+            return self._done
+        try:
+            return self._future.result()
+        finally:
+            self.close()
 
     def close(self) -> None:
         if self._pool is not None:
