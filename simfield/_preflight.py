@@ -108,6 +108,13 @@ def _override_for(message: str, overrides: list):
     return None
 
 
+def _value_text(o) -> str:
+    """An override's value as typed (a sweep's whole list, e.g. ``1,x``)."""
+    if o.is_sweep_override():
+        return _split(o.input_line)[1] if o.input_line else str(o.value())
+    return o.get_value_element_as_str()
+
+
 def _translate(exc: Exception, overrides: list) -> ConfigError:
     """A Hydra / OmegaConf composition error as a ConfigError naming the key and value."""
     from hydra.errors import MissingConfigException
@@ -125,7 +132,7 @@ def _translate(exc: Exception, overrides: list) -> ConfigError:
     o = _override_for(text, overrides)
     full_key = str(getattr(cause, "full_key", "") or "")
     key = o.key_or_group if o is not None else (full_key or "command line")
-    value = o.get_value_element_as_str() if o is not None and not o.is_delete() else \
+    value = _value_text(o) if o is not None and not o.is_delete() else \
         getattr(cause, "value", None)
     if isinstance(cause, (ConfigKeyError, ConfigAttributeError)) or "Could not override" in text:
         parent = key.rpartition(".")[0]

@@ -148,6 +148,11 @@ def test_preflight_expands_sweeps_like_the_basic_sweeper():
         [(1, "cluster"), (1, "none"), (2, "cluster"), (2, "none")]
     with pytest.raises(ConfigError, match="survey.exposure_time_s"):
         cli.preflight(["-m", "seed=1,2", "survey=quick", "survey.exposure_time_s=1,-5"])
+    # a sweep element of the wrong type: the line names the key and the sweep as typed
+    with pytest.raises(ConfigError) as info:
+        cli.preflight(["-m", "survey=quick", "seed=1,x"])
+    line = cli.refusal_line(info.value)
+    assert line.startswith("seed: '1,x' is not accepted") and "Integer" in line, line
 
 
 @pytest.mark.parametrize("overrides, key, text", [
