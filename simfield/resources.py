@@ -5,32 +5,33 @@ the expected source count), no stage imports it. :func:`estimate` predicts a sce
 resources without drawing or writing anything; :func:`check_run` refuses (ConfigError naming
 the key to change) a run that would fail or exceed ``limits`` after work had started.
 
-Calibration (2026-12-02, 2-core development machine, ``simfield`` under GNU time; disk =
-``du -sb`` of the run folder, peak = summed PSS of the run and its workers sampled every
-0.25 s; max RSS of the largest process in brackets):
+Calibration (2026-12-04, 2-core development machine; disk = ``du -sb`` of the run folder,
+peak = summed PSS of the run and its worker processes sampled every 0.25 s):
 
-==============================================  =========  =========  ===============  =======
-run                                             disk       estimate   peak PSS (RSS)   estim.
-==============================================  =========  =========  ===============  =======
-8" x 8", one band (tests/test_resources.py)     4.81 MB    4.77 MB    --               0.34 GB
-``survey=quick``                                36.3 MB    36.3 MB    0.36 (0.38) GB   0.36 GB
-``survey=quick survey.write_exposures=true``    58.0 MB    57.9 MB    0.36 (0.38) GB   0.36 GB
-default, ``workers=1``                          795 MB     796 MB     1.15 (1.37) GB   1.18 GB
-default (2 tile processes)                      795 MB     796 MB     1.21 (1.23) GB   1.18 GB
-60" x 60", 4 tiles of 750^2, 2 procs, no det.  286 MB     286 MB     0.60 (0.36) GB   0.60 GB
-==============================================  =========  =========  ===============  =======
+==========================================  ==========  ==========  =========  =========
+run                                         disk        estimate    peak PSS   estimate
+==========================================  ==========  ==========  =========  =========
+8" x 8", one band (tests/test_resources.py)  (15%, test)
+``survey=quick``                            47.68 MB    47.05 MB    0.96 GB    0.96 GB
+``survey=quick workers=1``                  47.68 MB    47.05 MB    0.57 GB    0.56 GB
+default, ``workers=1``                      870.4 MB    869.8 MB    1.57 GB    1.56 GB
+default (2 local processes)                 870.4 MB    869.8 MB    2.43 GB    2.56 GB
+==========================================  ==========  ==========  =========  =========
 
 Disk is the image bytes (exact: each extension's pixels times its type's size, plus the
-measured header blocks; the 60" run was not used in the fit and agrees to 0.03%), the PSF
-files (their stamp sizes) and constants for the truth table, the score folder (its mosaic
-preview grows with the mosaic up to a cap) and the small files, fitted to the other runs.
-Memory is a base (interpreter, libraries, PSFs) plus the parent's share per mosaic pixel,
-plus the larger of the tile phase (processes x :data:`TILE_BYTES_PER_SCENE_PIXEL` x the scene
-window of a tile) and the detection phase (processes x :data:`DETECTION_BYTES_PER_PIXEL` x
-the mosaic pixels of a detection tile). Each coefficient rests on one or two of these runs (the
-default run's peak is its one detection tile; the 60" run's its two tile processes), so
-expect it within ~10% for fields like these and treat it as a guide (~30%) for other tile
-sizes, source densities and many processes.
+measured header blocks), the PSF files (exact, :func:`_psf_file_bytes`) and, fitted to the
+quick and default runs, constants and per-candidate-source terms for the truth table, the
+photo-z file, the score folder (its mosaic preview grows with the mosaic up to a cap), the
+selection's sample folders and the small files (``psf.png`` ~1 MB). Memory is the largest of
+two phases. The tile and detection phases: a base (interpreter, libraries, PSFs) plus the
+parent's share per mosaic pixel, plus the larger of the tile phase (processes x
+:data:`TILE_BYTES_PER_SCENE_PIXEL` x the scene window of a tile; the default run's peak) and
+the detection phase (processes x :data:`DETECTION_BYTES_PER_PIXEL` x the mosaic pixels of a
+detection tile). The tail: :data:`TAIL_BYTES_PER_PROCESS` for the parent, the scoring beside
+it and each selection process (the quick run's peak, four processes). Two local processes
+share some pages the one-process fit counts twice (+5% on the default run). Expect it within
+~10% for fields like these and treat it as a guide (~30%) for other tile sizes, source
+densities and many processes.
 """
 
 from __future__ import annotations
@@ -44,16 +45,20 @@ from .config import Scenario
 from .errors import ConfigError, require
 
 __all__ = ["Estimate", "estimate", "check_run", "check_cache_dir", "BASE_MEMORY_BYTES",
-           "PARENT_BYTES_PER_MOSAIC_PIXEL", "TILE_BYTES_PER_SCENE_PIXEL",
+           "PARENT_BYTES_PER_MOSAIC_PIXEL", "TILE_BYTES_PER_SCENE_PIXEL", "TAIL_BYTES_PER_PROCESS",
            "DETECTION_BYTES_PER_PIXEL"]
 
 GB = 1e9
 #: Memory of the parent before any tile (interpreter, numpy/astropy/galsim/photutils, PSFs).
-BASE_MEMORY_BYTES = 0.33e9
+BASE_MEMORY_BYTES = 0.47e9
 #: Memory the parent grows by per mosaic pixel of one band (sources, mapped file pages).
 PARENT_BYTES_PER_MOSAIC_PIXEL = 16.0
-#: Memory of one tile's rendering per scene pixel of its window (all bands in turn).
-TILE_BYTES_PER_SCENE_PIXEL = 32.0
+#: Memory of one tile's rendering per scene pixel of its window (all bands in turn; the
+#: field-dependent PSF's weighted images and the drift modes' scenes included).
+TILE_BYTES_PER_SCENE_PIXEL = 118.0
+#: Memory of each process of the run's tail: the parent, the scoring beside it and the
+#: selection's sample processes (forked: each ~0.2-0.3 GB of private pages).
+TAIL_BYTES_PER_PROCESS = 0.24e9
 #: Memory of one detection tile per mosaic pixel (photutils segmentation and catalogue;
 #: 1.2-1.6 GB for a 3584^2 tile in DEVELOPERS.md, 1.54 GB here).
 DETECTION_BYTES_PER_PIXEL = 120.0
@@ -64,11 +69,16 @@ _TABLE_BYTES_PER_SOURCE = 150.0  # truth.fits, per expected candidate source
 _DETECTION_BYTES_PER_SOURCE = 25.0  # detection catalogue, per expected candidate source
 _PHOTOMETRY_BYTES_PER_SOURCE_BAND = 6.0  # photometry.fits: 5 columns of 4-8 bytes per band
 # score/<band>/ (tables, plots, report page): grows with the mosaic's preview up to a cap
-_SCORE_BYTES, _SCORE_BYTES_PER_PIXEL, _SCORE_PREVIEW_PIXELS = 0.3e6, 7.5, 2.8e5
-_SMALL_BYTES, _SMALL_BYTES_PER_BAND = 0.05e6, 0.11e6  # psf.png, tables, logs
-_PSF_OVERHEAD = 1.048  # psf_<band>.fits over its two stamps (effective PSF, headers)
+_SCORE_BYTES, _SCORE_BYTES_PER_PIXEL, _SCORE_PREVIEW_PIXELS = 0.90e6, 7.5, 2.8e5
+_SCORE_BYTES_PER_SOURCE = 11.7
+_SMALL_BYTES = 1.07e6  # psf.png (~1.0 MB), tables, logs, Hydra's files
+_PHOTOZ_BYTES, _PHOTOZ_BYTES_PER_SOURCE = 0.046e6, 125.0  # photoz.fits (P(z) rows of detections)
+# selection/<sample>/ (tables, plots, report page), per sample
+_SELECTION_BYTES, _SELECTION_BYTES_PER_SOURCE = 0.341e6, 9.3
 _SCORE_FILES = 20
+_SELECTION_FILES = 11  # per sample (10 when it selects nothing: no P(z) figure)
 _RUN_FILES = 11  # 8 run files + Hydra's 3 bookkeeping files
+_PSF_HEADER_BLOCKS = 18  # psf_<band>.fits primary header (the scenario's HISTORY cards)
 _DETECTION_CORE, _DETECTION_MARGIN = 3072, 256  # simfield.detect.TILE_CORE_PIX, TILE_MARGIN_PIX
 _TILE_MARGIN_ARCSEC = 4.0  # scene window beyond the tile: core PSF, lensing grid, padding
 
@@ -95,7 +105,8 @@ class Estimate:
             f"{self.detector_pixels:,} detector pixels each",
             f"tiles: {self.n_tiles} (scene window up to {self.scene_window_pixels:,} pixels), "
             f"{self.tile_processes} tile and {self.detection_processes} detection processes",
-            f"sources: ~{self.expected_sources:,.0f} expected",
+            f"candidate sources: ~{self.expected_sources:,.0f} (drawn before the exact "
+            "magnitude cut: the truth table keeps fewer, about a third in the default scenario)",
             f"files: {self.n_files}",
             f"disk: {self.disk_bytes / GB:.3g} GB",
             f"peak memory: {self.memory_bytes / GB:.3g} GB",
@@ -169,11 +180,9 @@ def estimate(sc: Scenario, galaxies: float | None = None) -> Estimate:
     det_procs = _processes(sc.workers, dt[0] * dt[1]) if n_det_bands else 0
 
     block = _FITS_BLOCK
-    psf_pix = sum((2 * math.ceil(r / sg.scale) + 1) ** 2
-                  for r in (tel.psf.core_radius_arcsec, tel.psf.spike_radius_arcsec))
     disk = nb * (16 * npix + _HEADER_BLOCKS["mosaic"] * block  # IMAGE INVVAR EXPOSURE FLAGS
                  + 10 * npix + _HEADER_BLOCKS["truth_image"] * block  # IMAGE SEGMAP ARTEFACT
-                 + 4 * _PSF_OVERHEAD * psf_pix)
+                 + _psf_file_bytes(sc, sg.scale))
     n_files = _RUN_FILES + 3 * nb
     if srv.write_exposures:
         disk += nb * n_exp * (12 * ndet + _HEADER_BLOCKS["exposure"] * block)  # IMAGE VARIANCE FLAGS
@@ -185,17 +194,59 @@ def estimate(sc: Scenario, galaxies: float | None = None) -> Estimate:
         disk += (_HEADER_BLOCKS["photometry"] * block
                  + _PHOTOMETRY_BYTES_PER_SOURCE_BAND * nb * sources)
         n_files += 1
+        if sc.photoz.enabled and nb >= 2:
+            disk += _PHOTOZ_BYTES + _PHOTOZ_BYTES_PER_SOURCE * sources
+            n_files += 1
+        if sc.selection.enabled:
+            n_samples = len(sc.selection.samples)
+            disk += n_samples * (_SELECTION_BYTES + _SELECTION_BYTES_PER_SOURCE * sources)
+            n_files += n_samples * _SELECTION_FILES
     if sc.score.enabled and n_det_bands:
         disk += n_det_bands * (_SCORE_BYTES + _SCORE_BYTES_PER_PIXEL
-                               * min(npix, _SCORE_PREVIEW_PIXELS))
+                               * min(npix, _SCORE_PREVIEW_PIXELS)
+                               + _SCORE_BYTES_PER_SOURCE * sources)
         n_files += n_det_bands * _SCORE_FILES
-    disk += _TABLE_BYTES_PER_SOURCE * sources + _SMALL_BYTES + _SMALL_BYTES_PER_BAND * nb
+    disk += _TABLE_BYTES_PER_SOURCE * sources + _SMALL_BYTES
 
     tiles_mem = tile_procs * TILE_BYTES_PER_SCENE_PIXEL * window
     detect_mem = det_procs * DETECTION_BYTES_PER_PIXEL * det_tile
     memory = BASE_MEMORY_BYTES + PARENT_BYTES_PER_MOSAIC_PIXEL * npix + max(tiles_mem, detect_mem)
+    # the tail: with several local processes the scoring runs beside photometry and the
+    # selection's samples, which are scored in up to that many processes of their own
+    local = _processes(sc.workers, 10 ** 9)
+    n_tail = 1
+    if n_det_bands and local > 1 and sc.cluster.kind == "none":
+        n_tail += 1 if sc.score.enabled else 0
+        if sc.photometry.enabled and sc.selection.enabled and sc.selection.samples:
+            n_tail += min(local, len(sc.selection.samples))
+    memory = max(memory, TAIL_BYTES_PER_PROCESS * n_tail)
     return Estimate(npix, ndet, window, n_tiles, tile_procs, det_procs, sources, n_files,
                     float(disk), float(memory))
+
+
+def _hdu_bytes(data_bytes: int, header_blocks: int = 1) -> int:
+    """Bytes of one FITS HDU: its header blocks and its data padded to whole blocks."""
+    return (header_blocks + math.ceil(data_bytes / _FITS_BLOCK)) * _FITS_BLOCK
+
+
+def _psf_file_bytes(sc: Scenario, scale_arcsec: float) -> int:
+    """Exact size of one ``psf_<band>.fits`` (bytes): primary header, ``PSF``, ``PSF_WIDE``,
+    ``PSF_DET`` (float32 stamps), ``EE`` (two float64 columns per stamp radius); with the
+    field-dependent PSF ``FIELD_MODES`` (mean + modes, float64) and ``FIELD_GRID`` (ten
+    float64 columns per grid point, two header blocks); with drift ``PSF_MOSAIC`` and
+    ``PSF_EXPOSURES`` (one float32 stamp per exposure)."""
+    tel = sc.telescope
+    core, wide = (2 * math.ceil(r / scale_arcsec) + 1
+                  for r in (tel.psf.core_radius_arcsec, tel.psf.spike_radius_arcsec))
+    stamp = 4 * core * core
+    n = _PSF_HEADER_BLOCKS * _FITS_BLOCK + 2 * _hdu_bytes(stamp) + _hdu_bytes(4 * wide * wide) \
+        + _hdu_bytes(16 * core)
+    if tel.field_psf.enabled:
+        n += _hdu_bytes(2 * stamp * (tel.field_psf.n_modes + 1)) \
+            + _hdu_bytes(80 * tel.field_psf.grid ** 2, 2)
+    if tel.drift.enabled:
+        n += _hdu_bytes(stamp) + _hdu_bytes(stamp * sc.survey.n_exposures)
+    return n
 
 
 def check_cache_dir(key: str, path: str | os.PathLike) -> None:
