@@ -130,6 +130,32 @@ def test_presets_select_their_window_and_reject_low_z_tracks(name, low_z_max):
         assert not res[name][0].any(), (fam, zlo[res[name][0]])
 
 
+def test_tracks_printout_has_rest_frame_colours_at_z0_and_no_warnings(capsys):
+    """``python -m simfield.selection.tracks`` (README): no RuntimeWarning, and its z = 0.00
+    rows are the rest-frame colours, the limit of the templates computed here with their
+    distance (astropy's distance modulus) at z = 1e-4 (printed to 0.01 mag)."""
+    import warnings
+
+    from simfield.selection import tracks
+
+    _, bands = _lantern_bands()
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        tracks._main()
+    rows = {}
+    for line in capsys.readouterr().out.splitlines():
+        if line.startswith("#"):
+            fam = line[2:].split(":")[0]
+        elif line.split()[0] == "0.00":
+            rows[fam] = np.array(line.split()[1:], float)
+    assert set(rows) == {"starforming", "evolved", "evolved_red"}
+    for fam, got in rows.items():
+        m = _tracks(bands, [1e-4], fam)[0]
+        assert_allclose(got, m[:-1] - m[1:], atol=0.006, err_msg=fam)
+    with pytest.raises(ValueError, match="'z' must be > 0"):
+        tracks.band_tracks(bands, [0.0, 1.0], "starforming")
+
+
 # ------------------------------------------------------------------------------ volumes, counts
 def test_veff_of_a_step_function_is_the_comoving_volume_of_the_step():
     """S = 1 for z in [6.5, 8], 0 elsewhere: V_eff = [V_c(8) - V_c(6.5)] Omega / 4 pi
