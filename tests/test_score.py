@@ -724,7 +724,8 @@ def test_default_band_is_the_runs_detection_band(tmp_path):
 
 def test_each_catalogue_gets_its_own_default_folder(run_dir, capsys):
     """Two catalogues scored without --out land in score_<stem>/<band>, apart from each other
-    and from the run's own score/; the band and the folder are printed."""
+    and from the run's own score/; the band and the folder are printed. A catalogue of the
+    same stem scored again replaces the earlier results."""
     path, _ = run_dir
     Table.read(path / "cat.ecsv").write(path / "other.ecsv", overwrite=True)
     for stem in ("cat", "other"):
@@ -735,3 +736,9 @@ def test_each_catalogue_gets_its_own_default_folder(run_dir, capsys):
         js = json.loads((path / f"score_{stem}" / BAND / "summary.json").read_text())
         assert js["catalog"].endswith(f"{stem}.ecsv")
     assert not (path / "score").exists()
+    # the same stem again (README: cat.csv after cat.ecsv writes over cat.ecsv's results)
+    t = Table.read(path / "cat.ecsv")
+    t[:-1].write(path / "cat.csv", format="ascii.csv", overwrite=True)
+    rc, _, _ = _cli([path, "--catalog", path / "cat.csv", "--no-report"], capsys)
+    js = json.loads((path / "score_cat" / BAND / "summary.json").read_text())
+    assert rc == 0 and js["catalog"].endswith("cat.csv") and js["n_detections"] == len(t) - 1
