@@ -517,6 +517,30 @@ def test_cli_error_is_one_line_exit_2_and_writes_nothing(run_dir, tmp_path, caps
     assert rc == 2 and capsys.readouterr().err.startswith("simfield-score: error: ")
 
 
+@pytest.mark.parametrize("opt,value,want", [
+    ("--band", "b99", f"--band: 'b99' is not a band of this run (no mosaic_b99.fits); one of "
+                      f"{BAND}"),
+    ("--radius", "-1", "--radius: -1 must be in (0, 10] arcsec"),
+])
+def test_cli_bad_band_or_radius_is_named_as_typed(run_dir, tmp_path, capsys, opt, value, want):
+    """A band the run lacks lists the run's bands (its mosaic files, made by the fixture); a
+    bad radius names --radius, not the configuration key it sets; one line, exit 2, nothing
+    written."""
+    path, _ = run_dir
+    out = tmp_path / "o"
+    args = [path, "--catalog", path / "cat.ecsv", "--band", BAND, "--out", out, opt, value]
+    rc, _, err = _cli(args, capsys)
+    assert rc == 2 and err == [f"simfield-score: error: {want}"] and not out.exists()
+
+
+def test_score_run_of_a_missing_band_lists_the_runs_bands(run_dir, tmp_path):
+    """From Python too: the bands of the run's mosaic files (the fixture made only one)."""
+    path, _ = run_dir
+    with pytest.raises(CatalogError, match=f"lacks mosaic_b99.fits .*; its bands: {BAND}$"):
+        score_run(path, path / "cat.ecsv", "b99", out_dir=tmp_path / "o")
+    assert not (tmp_path / "o").exists()
+
+
 def test_cli_scores_a_catalogue(run_dir, tmp_path):
     """The command-line scorer runs end to end and writes summary.json."""
     path, _ = run_dir
@@ -700,7 +724,8 @@ def test_default_band_is_the_runs_detection_band(tmp_path):
 
 def test_each_catalogue_gets_its_own_default_folder(run_dir, capsys):
     """Two catalogues scored without --out land in score_<stem>/<band>, apart from each other
-    and from the run's own score/; the band and the folder are printed."""
+    and from the run's own score/; the band and the folder are printed. A catalogue of the
+    same stem scored again replaces the earlier results."""
     path, _ = run_dir
     Table.read(path / "cat.ecsv").write(path / "other.ecsv", overwrite=True)
     for stem in ("cat", "other"):
@@ -711,3 +736,9 @@ def test_each_catalogue_gets_its_own_default_folder(run_dir, capsys):
         js = json.loads((path / f"score_{stem}" / BAND / "summary.json").read_text())
         assert js["catalog"].endswith(f"{stem}.ecsv")
     assert not (path / "score").exists()
+    # the same stem again (README: cat.csv after cat.ecsv writes over cat.ecsv's results)
+    t = Table.read(path / "cat.ecsv")
+    t[:-1].write(path / "cat.csv", format="ascii.csv", overwrite=True)
+    rc, _, _ = _cli([path, "--catalog", path / "cat.csv", "--no-report"], capsys)
+    js = json.loads((path / "score_cat" / BAND / "summary.json").read_text())
+    assert rc == 0 and js["catalog"].endswith("cat.csv") and js["n_detections"] == len(t) - 1

@@ -2,6 +2,7 @@
 contamination classes, outputs and refusals (simfield.selection)."""
 
 import json
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -128,6 +129,32 @@ def test_presets_select_their_window_and_reject_low_z_tracks(name, low_z_max):
     for fam in ("starforming", "evolved", "evolved_red"):
         res = apply_samples(_noise_free_table(_tracks(bands, zlo, fam), names, ref), samples)
         assert not res[name][0].any(), (fam, zlo[res[name][0]])
+
+
+def test_tracks_printout_has_rest_frame_colours_at_z0_and_no_warnings(capsys):
+    """``python -m simfield.selection.tracks`` (README): no RuntimeWarning, and its z = 0.00
+    rows are the rest-frame colours, the limit of the templates computed here with their
+    distance (astropy's distance modulus) at z = 1e-4 (printed to 0.01 mag)."""
+    import warnings
+
+    from simfield.selection import tracks
+
+    _, bands = _lantern_bands()
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        tracks._main()
+    rows = {}
+    for line in capsys.readouterr().out.splitlines():
+        if line.startswith("#"):
+            fam = line[2:].split(":")[0]
+        elif line.split()[0] == "0.00":
+            rows[fam] = np.array(line.split()[1:], float)
+    assert set(rows) == {"starforming", "evolved", "evolved_red"}
+    for fam, got in rows.items():
+        m = _tracks(bands, [1e-4], fam)[0]
+        assert_allclose(got, m[:-1] - m[1:], atol=0.006, err_msg=fam)
+    with pytest.raises(ValueError, match="'z' must be > 0"):
+        tracks.band_tracks(bands, [0.0, 1.0], "starforming")
 
 
 # ------------------------------------------------------------------------------ volumes, counts
@@ -342,6 +369,93 @@ def test_cli_zphot_col_selects_inside_the_window(tmp_path, capsys):
     rc = score_main_args([str(tmp_path), "--catalog", str(tmp_path / "zcat.fits"), "--band",
                           BAND, "--zphot-col", "zp", "--sample", "z99"])
     assert rc == 2 and "--sample: 'z99' is not a sample" in capsys.readouterr().err
+
+
+def _flag_only_catalogue(tmp_path, sc, name="mine.fits"):
+    """The tiny run with its scenario, and a catalogue of positions, magnitudes, a selection
+    flag and redshifts only (no flux_<b> columns), upper-case names: row 0 is the in-window
+    galaxy (hand-placed in _make_run), flagged and at z 7.1."""
+    _make_run(tmp_path, sc)
+    from simfield.config import to_yaml
+    (tmp_path / "scenario.yaml").write_text(to_yaml(sc))
+    ph = Table.read(tmp_path / "photometry.fits", hdu="PHOTOMETRY")
+    n = len(ph)
+    Table({"RA": ph["ra"], "DEC": ph["dec"], "MAG": np.full(n, 27.0),
+           "IS_Z8": np.arange(n) == 0, "ZPHOT": np.r_[7.1, np.full(n - 1, 2.0)]}) \
+        .write(tmp_path / name)
+    return tmp_path / name
+
+
+def test_cli_selection_of_a_flag_only_catalogue_is_scored_without_its_colours(tmp_path,
+                                                                               capsys):
+    """README's command: a catalogue with a flag (or redshifts) and positions but no fluxes is
+    scored for a sample with colour conditions (the z7 preset); the report leaves out the
+    colour-colour diagram and says which columns it lacks. Expected counts by hand from the
+    layout: one selected, the in-window galaxy (z 7.0 in [6.5, 7.5] of the z7 window)."""
+    sc = make_scenario()
+    sc.selection.report = True
+    cat = _flag_only_catalogue(tmp_path, sc)
+    z7 = next(s for s in sc.selection.samples if s.name == "z7")
+    assert z7.z_min <= 7.0 <= z7.z_max and any(c.kind == "colour" for c in z7.conditions)
+    for opt in (["--select-col", "IS_Z8"], ["--zphot-col", "ZPHOT"]):
+        rc = score_main_args([str(tmp_path), "--catalog", str(cat), "--band", BAND, *opt,
+                              "--sample", "z7", "--ra-col", "RA", "--dec-col", "DEC",
+                              "--mag-col", "MAG"])
+        assert rc == 0, capsys.readouterr().err
+        out = tmp_path / "selection_mine" / "z7"
+        s = json.loads((out / "summary.json").read_text())
+        assert s["n_selected"] == 1 and s["contamination"]["in_window"] == 1
+        page = (out / "report.html").read_text()
+        assert "not drawn: the catalogue has no flux_b10, flux_b13, flux_b17 (nJy)" in page
+        assert not (out / "colour_colour.png").exists()
+        assert sorted(p.name for p in (tmp_path / "selection_mine").iterdir()) == ["z7"]
+
+
+def test_cli_selection_finds_ra_dec_as_plain_scoring_does(tmp_path, capsys):
+    """Without --ra-col/--dec-col the selection finds RA and DEC as plain scoring does
+    (simfield.score.catalog.resolve_columns: the name as given, else ignoring case); a
+    catalogue with neither is refused in one line naming the role and the available columns,
+    nothing written."""
+    sc = _select_everything(make_scenario())
+    sc.selection.report = False
+    cat = _flag_only_catalogue(tmp_path, sc)
+    rc = score_main_args([str(tmp_path), "--catalog", str(cat), "--band", BAND,
+                          "--select-col", "IS_Z8"])
+    assert rc == 0, capsys.readouterr().err
+    s = json.loads((tmp_path / "selection_mine" / "all" / "summary.json").read_text())
+    assert s["n_selected"] == 1 and s["contamination"]["in_window"] == 1
+    t = Table.read(cat)
+    t.rename_column("RA", "alpha")
+    t.write(tmp_path / "nora.fits")
+    capsys.readouterr()
+    rc = score_main_args([str(tmp_path), "--catalog", str(tmp_path / "nora.fits"), "--band",
+                          BAND, "--select-col", "IS_Z8"])
+    err = capsys.readouterr().err.strip()
+    assert rc == 2 and "\n" not in err
+    assert "lacks column(s) ra='ra'; available: alpha, DEC, MAG, IS_Z8, ZPHOT" in err
+    assert not (tmp_path / "selection_nora").exists()
+
+
+def test_failed_catalogue_selection_leaves_no_partial_folder(tmp_path, monkeypatch):
+    """A failure after the first sample's files were written (the report of the second,
+    made to fail here) removes the folder the command created."""
+    from simfield.selection import report, run
+
+    sc = make_scenario()
+    sc.selection.report = True
+    cat = _flag_only_catalogue(tmp_path, sc)
+    calls = []
+
+    def fail_second(*args, **kw):
+        calls.append(1)
+        if len(calls) == 2:
+            raise RuntimeError("disk full")
+        return Path(args[0]) / "report.html"
+
+    monkeypatch.setattr(report, "make_report", fail_second)
+    with pytest.raises(RuntimeError, match="disk full"):
+        run.score_catalogue_selection(tmp_path, cat, sc, BAND, "IS_Z8", samples=["z6", "z7"])
+    assert len(calls) == 2 and not (tmp_path / "selection_mine").exists()
 
 
 def test_photoz_condition_refused_up_front_without_its_cut_or_photoz():

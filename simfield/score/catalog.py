@@ -26,7 +26,8 @@ from ..bands import AB_NJY_ZERO
 from ..errors import CatalogError
 
 __all__ = ["FLUX_UNITS", "DUPLICATE_ARCSEC", "MAG_OFFSET_MAX", "MAG_CHECK_MIN_PAIRS",
-           "MAG_CHECK_PAIRS", "ISOLATION_ARCSEC", "parse_column", "load_catalog", "check_magnitude_scale"]
+           "MAG_CHECK_PAIRS", "ISOLATION_ARCSEC", "parse_column", "resolve_columns",
+           "load_catalog", "check_magnitude_scale"]
 
 #: AB magnitude of unit flux in each accepted flux unit (m = ZP - 2.5 log10 f):
 #: nJy 31.4, uJy 23.9, mJy 16.4, Jy 8.9 (Oke & Gunn 1983, ApJ 266, 713); e-/s needs the
@@ -98,6 +99,43 @@ def _read_table(path: Path) -> Table:
                            f"{str(exc).splitlines()[0] if str(exc) else type(exc).__name__}"
                            ) from None
     raise CatalogError(f"catalogue {str(path)!r}: unknown format; use .fits, .ecsv or .csv")
+
+
+def resolve_columns(t: Table, columns: dict, path) -> dict:
+    """The table's column for each role, found as given or else ignoring case (``RA`` for
+    ``ra``).
+
+    Parameters
+    ----------
+    t : Table
+    columns : dict
+        ``{role: "NAME" or "NAME[i]"}``.
+    path : str or Path
+        The catalogue, for the message.
+
+    Returns
+    -------
+    dict
+        ``{role: (column name, 0-based element index or None)}``.
+
+    Raises
+    ------
+    CatalogError
+        Naming every missing column (``role='NAME'``) and listing the available ones.
+    """
+    avail = list(t.colnames)
+    lower = {c.lower(): c for c in avail}
+    missing, found = [], {}
+    for role, spec in columns.items():
+        name, index = parse_column(spec)
+        if name in avail or name.lower() in lower:
+            found[role] = (name if name in avail else lower[name.lower()], index)
+        else:
+            missing.append(f"{role}={spec!r}")
+    if missing:
+        raise CatalogError(f"catalogue {str(path)!r} lacks column(s) {', '.join(missing)}; "
+                           f"available: {', '.join(avail)}")
+    return found
 
 
 def _column_values(t: Table, role: str, name: str, index: int | None) -> np.ndarray:
@@ -193,21 +231,9 @@ def load_catalog(path, columns: dict | None = None, skip_invalid: bool = False,
     t = _read_table(path)
     if len(t) == 0:
         raise CatalogError(f"catalogue {str(path)!r} is empty (no rows)")
-    avail = list(t.colnames)
-    lower = {c.lower(): c for c in avail}
-    missing = []
-    resolved, index = {}, {}
-    for role, spec in cols.items():
-        name, index[role] = parse_column(spec)
-        if name in avail:
-            resolved[role] = name
-        elif name.lower() in lower:
-            resolved[role] = lower[name.lower()]
-        else:
-            missing.append(f"{role}={spec!r}")
-    if missing:
-        raise CatalogError(f"catalogue {str(path)!r} lacks column(s) {', '.join(missing)}; "
-                           f"available: {', '.join(avail)}")
+    found = resolve_columns(t, cols, path)
+    resolved = {role: name for role, (name, _) in found.items()}
+    index = {role: i for role, (_, i) in found.items()}
     data = {role: _column_values(t, role, name, index[role]) for role, name in resolved.items()}
     label = {role: name + (f"[{index[role]}]" if index[role] is not None else "")
              for role, name in resolved.items()}

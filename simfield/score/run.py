@@ -53,6 +53,12 @@ def _need(path: Path) -> Path:
     return path
 
 
+def run_bands(run_dir) -> list[str]:
+    """Bands of the run's ``mosaic_<band>.fits`` files, sorted by name."""
+    return sorted(p.name[len("mosaic_"):-len(".fits")]
+                  for p in Path(run_dir).glob("mosaic_*.fits"))
+
+
 #: numpy dtype of each FITS BITPIX (FITS data are big-endian)
 _BITPIX_DTYPE = {8: "u1", 16: ">i2", 32: ">i4", 64: ">i8", -32: ">f4", -64: ">f8"}
 
@@ -129,7 +135,10 @@ def load_truth(run_dir, band: str) -> dict:
     run_dir = Path(run_dir)
     if not run_dir.is_dir():
         raise CatalogError(f"run directory {str(run_dir)!r} does not exist")
-    mpath = _need(run_dir / f"mosaic_{band}.fits")
+    mpath = run_dir / f"mosaic_{band}.fits"
+    if not mpath.is_file():
+        raise CatalogError(f"run directory lacks {mpath.name} ({str(mpath)!r}); its bands: "
+                           f"{', '.join(run_bands(run_dir)) or 'none'}")
     with fits.open(mpath, memmap=True) as hl:
         hdr = hl["IMAGE"].header.copy()
         dq_bits = None
@@ -663,7 +672,7 @@ def run_detection_band(run_dir: Path) -> tuple[str, str]:
     sc = run_scenario_of(run_dir)
     if sc is not None:
         return sc.detection_bands[0], "the scenario's detection band"
-    found = sorted(p.name[len("mosaic_"):-len(".fits")] for p in run_dir.glob("mosaic_*.fits"))
+    found = run_bands(run_dir)
     if len(found) == 1:
         return found[0], "the run's only mosaic"
     if not found:
@@ -682,12 +691,20 @@ def score_main_args(argv: list[str]) -> int:
         if not run_dir.is_dir():
             raise CatalogError(f"run directory {a.run_dir!r} does not exist")
         band, why = (a.band, "given") if a.band else run_detection_band(run_dir)
+        if a.band and not (run_dir / f"mosaic_{band}.fits").is_file():
+            raise ArgError(f"--band: {band!r} is not a band of this run (no mosaic_{band}.fits);"
+                           f" one of {', '.join(run_bands(run_dir)) or 'none'}")
         sc = run_scenario_of(run_dir)  # the run's own score settings, where it has them
         cfg = sc.score if sc is not None else ScoreConfig()
         if a.radius is not None:
             cfg.match_radius_arcsec = a.radius
         cfg.report = not a.no_report
-        _validate_score(cfg)
+        try:
+            _validate_score(cfg)
+        except ConfigError as exc:  # a bad --radius is named as the user typed it
+            if a.radius is None or exc.key != "score.match_radius_arcsec":
+                raise
+            raise ArgError(f"--radius: {a.radius:g} {exc.allowed} arcsec") from None
         cols = {"ra": a.ra_col, "dec": a.dec_col}
         if a.flux_col:
             cols.update(flux=a.flux_col, flux_unit=a.flux_unit)

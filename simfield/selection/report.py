@@ -2,7 +2,8 @@
 
 Sections: headline numbers, S(z) curves at several M_UV with their Jeffreys intervals, a
 colour-colour diagram with the template tracks (:mod:`simfield.selection.tracks`), the region
-the sample's colour conditions select and the truth classes of the selected detections, the
+the sample's colour conditions select and the truth classes of the selected detections (left
+out, and the page says so, for a catalogue without the fluxes of its bands), the
 truth-redshift distribution of the selection against the target window, and expected versus
 observed counts per M_UV bin. Images are embedded as base64 PNG.
 """
@@ -75,7 +76,8 @@ def make_report(out_dir, sample, bands, det, selected, cls, tables: dict, summar
     bands : sequence of simfield.bands.Band or None
         Bands for the template tracks (None: no tracks).
     det : Table
-        Catalogue, ``flux_<b>`` in nJy.
+        Catalogue; ``flux_<b>`` (nJy) of the colour-colour diagram's three bands, without
+        which the diagram is left out (the page says so).
     selected : ndarray of bool
         Per detection.
     cls : ndarray of str
@@ -142,9 +144,11 @@ def make_report(out_dir, sample, bands, det, selected, cls, tables: dict, summar
                  "for cells of 3 or more galaxies; every cell's n and k in "
                  "completeness.ecsv."))
 
-    # ---- colour-colour diagram
+    # ---- colour-colour diagram (of a catalogue with the fluxes of its bands)
     axes = _colour_axes(sample)
-    if axes is not None:
+    lacking = [] if axes is None else [f"flux_{b}" for b in (*axes[0], axes[1][1])
+                                       if f"flux_{b}" not in det.colnames]
+    if axes is not None and not lacking:
         y, x = axes
         fig, ax = plt.subplots(figsize=(6, 5))
         ys, xs = np.linspace(-1.5, 4.0, 221), np.linspace(-1.0, 2.5, 141)
@@ -236,5 +240,8 @@ def make_report(out_dir, sample, bands, det, selected, cls, tables: dict, summar
             ("in window: observed / expected", f"{cw['n_observed']} / {cw['n_expected']:.2f}"),
             ("Poisson P(N = obs), P(N = 0)", f"{cw['p_equal']:.3g}, {cw['p_zero']:.3g}"),
             ("source-plane area (arcsec^2)", f"{summary['area_source_arcsec2']:.1f}")]
+    if lacking:
+        rows.append(("colour-colour diagram", f"not drawn: the catalogue has no "
+                                              f"{', '.join(lacking)} (nJy)"))
     return write_page(out / "report.html", f"simfield selection: {name}",
                       f"simfield selection, sample {name}", rows, figs)

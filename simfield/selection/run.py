@@ -15,6 +15,7 @@ Units: deg, nJy, AB mag.
 from __future__ import annotations
 
 import logging
+import shutil
 from pathlib import Path
 
 import numpy as np
@@ -184,31 +185,30 @@ def score_catalogue_selection(run_dir, catalog, sc, band: str, select_col: str |
     out_root : str or Path, optional
         Default ``<run_dir>/selection_<catalogue stem>``.
     columns : dict, optional
-        ``{"ra": name, "dec": name}``.
+        ``{"ra": name, "dec": name}``; default ``ra``, ``dec``, found ignoring case as by
+        :func:`simfield.score.catalog.resolve_columns`.
 
     Returns
     -------
     dict
         Per sample, its summary.
     """
-    from ..score.catalog import _read_table
+    from ..score.catalog import _column_values, _read_table, resolve_columns
 
     chosen = _pick(list(sc.selection.samples), samples)
     path = Path(catalog)
     if not path.is_file():
         raise CatalogError(f"catalogue {str(catalog)!r} does not exist")
     t = _read_table(path)
-    cols = columns or {}
-    for role in ("ra", "dec"):
-        name = cols.get(role, role)
-        if name not in t.colnames:
-            raise CatalogError(f"catalogue lacks column {name!r} ({role}); available: "
-                               f"{', '.join(t.colnames)}")
-        if name != role:
-            t[role] = t[name]
+    # ra and dec found as simfield-score finds them (RA for ra, NAME[i] for an element)
+    want = {"ra": "ra", "dec": "dec", **{k: v for k, v in (columns or {}).items()
+                                         if k in ("ra", "dec") and v is not None}}
+    found = resolve_columns(t, want, path)
     for c in (select_col, zphot_col):
         if c is not None and c not in t.colnames:
             raise CatalogError(f"catalogue lacks column {c!r}; available: {', '.join(t.colnames)}")
+    for role, (name, index) in found.items():
+        t[role] = _column_values(t, role, name, index)
     if select_col is not None:
         v = np.asarray(t[select_col])
         if v.dtype.kind not in "bi" or (v.dtype.kind == "i" and not np.isin(v, (0, 1)).all()):
@@ -225,4 +225,10 @@ def score_catalogue_selection(run_dir, catalog, sc, band: str, select_col: str |
         masks = {k: v[0] for k, v in apply_samples(t, run).items()}
     stem = path.name.split(".")[0] or "catalog"
     out = Path(out_root) if out_root is not None else Path(run_dir) / f"selection_{stem}"
-    return _score_all(run_dir, t, band, masks, chosen, sc, out, None)
+    fresh = not out.exists()
+    try:
+        return _score_all(run_dir, t, band, masks, chosen, sc, out, None)
+    except BaseException:  # an unforeseen failure leaves no partial folder behind
+        if fresh:
+            shutil.rmtree(out, ignore_errors=True)
+        raise

@@ -47,6 +47,14 @@ def template_parameters(family: str, z, abs_mag_uv: float = -20.0):
     raise ValueError(f"'family' must be one of {', '.join(FAMILIES)}, not {family!r}")
 
 
+def _magnitudes(bands, z, family: str, abs_mag_uv: float, dist_mod=None) -> np.ndarray:
+    """AB magnitudes of a family's template (distance moduli ``dist_mod``, default DM(z))."""
+    beta, brk, bopt = template_parameters(family, z, abs_mag_uv)
+    wave = wave_grid(bands)
+    fnu = galaxy_fnu(wave, z, abs_mag_uv * np.ones_like(z), beta, brk, bopt, dist_mod=dist_mod)
+    return band_magnitudes(wave, fnu, bands)
+
+
 def band_tracks(bands, z, family: str, abs_mag_uv: float = -20.0) -> np.ndarray:
     """AB magnitudes of a family's template in ``bands`` at redshifts ``z``.
 
@@ -54,7 +62,8 @@ def band_tracks(bands, z, family: str, abs_mag_uv: float = -20.0) -> np.ndarray:
     ----------
     bands : sequence of simfield.bands.Band
     z : array_like
-        Redshifts.
+        Redshifts, > 0 (at z = 0 the luminosity distance is 0; :func:`colour_tracks` gives
+        colours there).
     family : str
         One of :data:`FAMILIES`.
     abs_mag_uv : float (AB mag)
@@ -65,14 +74,23 @@ def band_tracks(bands, z, family: str, abs_mag_uv: float = -20.0) -> np.ndarray:
         +inf where a band receives no flux.
     """
     z = np.atleast_1d(np.asarray(z, float))
-    beta, brk, bopt = template_parameters(family, z, abs_mag_uv)
-    wave = wave_grid(bands)
-    fnu = galaxy_fnu(wave, z, abs_mag_uv * np.ones_like(z), beta, brk, bopt)
-    return band_magnitudes(wave, fnu, bands)
+    if not np.all(z > 0):
+        raise ValueError(f"'z' must be > 0 (apparent magnitudes need a distance), not "
+                         f"{float(z[~(z > 0)][0])!r}")
+    return _magnitudes(bands, z, family, abs_mag_uv)
 
 
 def colour_tracks(bands, z, families=FAMILIES, abs_mag_uv: float = -20.0) -> dict:
     """Adjacent-band colours of each family versus redshift.
+
+    Parameters
+    ----------
+    bands : sequence of simfield.bands.Band
+    z : array_like
+        Redshifts, >= 0 (z = 0: rest-frame colours).
+    families : sequence of str
+        Of :data:`FAMILIES`.
+    abs_mag_uv : float (AB mag)
 
     Returns
     -------
@@ -80,9 +98,13 @@ def colour_tracks(bands, z, families=FAMILIES, abs_mag_uv: float = -20.0) -> dic
         ``{family: {"<a>-<b>": ndarray (AB mag)}}`` for each pair of neighbouring bands.
     """
     names = [b.name for b in bands]
+    z = np.atleast_1d(np.asarray(z, float))
     out = {}
     for fam in families:
-        m = band_tracks(bands, z, fam, abs_mag_uv)
+        # a colour does not depend on the distance (DM(z) and 2.5 log10(1 + z) shift every
+        # band alike): the template at 10 pc (DM = 0) gives the same colours, and at z = 0,
+        # where DM is -inf, the rest-frame colours
+        m = _magnitudes(bands, z, fam, abs_mag_uv, dist_mod=np.zeros(z.size))
         with np.errstate(invalid="ignore"):  # inf - inf (NaN) where both bands drop out
             out[fam] = {f"{a}-{b}": m[:, i] - m[:, i + 1] for i, (a, b) in
                         enumerate(zip(names[:-1], names[1:]))}
