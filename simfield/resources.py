@@ -249,6 +249,32 @@ def _psf_file_bytes(sc: Scenario, scale_arcsec: float) -> int:
     return n
 
 
+def _check_match_to(sc: Scenario) -> None:
+    """Refuse a ``photometry.match_to`` band whose PSF is narrower than another band's, which
+    the photometry would refuse after the mosaics are made (matching to it would deconvolve):
+    the bands' effective PSFs at the field centre (the run's ``PSF_DET``), read from the PSF
+    cache or made without writing it (~1 s a band)."""
+    ph = sc.photometry
+    if not (ph.match_to and ph.enabled and sc.detection.enabled):
+        return
+    from .bands import make_bands
+    from .optics.psf import cached_band_psf, effective_psf
+    from .survey import scene_grid
+
+    tel = sc.telescope
+    scale = scene_grid(sc.survey, tel).scale
+    fwhm = {b.name: effective_psf(cached_band_psf(tel, b, scale, tel.psf.core_radius_arcsec,
+                                                  sc.seed, tel.psf.cache_dir,
+                                                  pixel_integrated=False, store=False),
+                                  tel.pixel_scale_arcsec).fwhm_arcsec
+            for b in make_bands(sc)}
+    broader = [b for b, w in fwhm.items() if w > fwhm[ph.match_to] * 1.001]
+    require(not broader, "photometry.match_to", ph.match_to,
+            f"has a PSF of FWHM {fwhm[ph.match_to]:.4g} arcsec, narrower than that of "
+            f"{', '.join(broader)}: leave it empty (the broadest PSF, "
+            f"{max(fwhm, key=fwhm.get)}) or name the band with the broadest PSF")
+
+
 def check_cache_dir(key: str, path: str | os.PathLike) -> None:
     """Refuse ``path`` unless it is, or can be created as, a writable folder (creates nothing).
 
@@ -287,6 +313,7 @@ def check_run(sc: Scenario) -> Estimate:
                           "raise it, or shrink survey.width_arcsec / survey.height_arcsec, "
                           "or lower population.mag_limit")
     check_cache_dir("telescope.psf.cache_dir", sc.telescope.psf.cache_dir)
+    _check_match_to(sc)
     est = estimate(sc, galaxies)
     lim = sc.limits
     if est.disk_bytes > lim.disk_gb * GB:

@@ -185,6 +185,23 @@ def test_too_many_sources_refused_up_front():
         cli.preflight(["survey.width_arcsec=3600", "survey.height_arcsec=3600"])
 
 
+def test_narrow_match_to_band_refused_up_front(tmp_path):
+    """photometry.match_to naming a band whose PSF is narrower than another's is refused by
+    the preflight, before any file (matching to it would deconvolve: the photometry itself
+    refuses it, but only after the mosaics); the PSFs it compares are made without writing
+    the PSF cache. The reddest band has the broadest diffraction-limited PSF (FWHM ~ lambda /
+    D, common practice) and is accepted."""
+    cache = tmp_path / "cache"
+    with pytest.raises(ConfigError) as info:
+        cli.preflight(["survey=quick", "photometry.match_to=b10",
+                       f"telescope.psf.cache_dir={cache}"])
+    line = cli.refusal_line(info.value)
+    assert line.startswith("photometry.match_to: 'b10'") and "narrower than" in line \
+        and "b36" in line, line
+    assert not cache.exists()
+    cli.preflight(["survey=quick", "photometry.match_to=b36", f"telescope.psf.cache_dir={cache}"])
+
+
 def test_unwritable_cache_folder_refused(tmp_path):
     """The PSF cache folder must be creatable and writable: a path under a file or under a
     pseudo file system (/proc) is refused, a new folder under a writable one is accepted and

@@ -473,7 +473,8 @@ def cached_band_psf(tel: TelescopeConfig, band: Band, scale_arcsec: float,
                     radius_arcsec: float, seed: int = 0,
                     cache_dir: str | os.PathLike | None = None,
                     pixel_integrated: bool = True,
-                    field_zernike_nm: Sequence[float] = (), segment_terms_nm=None) -> PSFImage:
+                    field_zernike_nm: Sequence[float] = (), segment_terms_nm=None,
+                    store: bool = True) -> PSFImage:
     """:func:`band_psf`, read from / written to an ``.npz`` disk cache.
 
     The file name holds a SHA-256 of everything that changes the PSF (pupil and PSF settings,
@@ -484,6 +485,9 @@ def cached_band_psf(tel: TelescopeConfig, band: Band, scale_arcsec: float,
     ----------
     cache_dir : path, optional
         Default ``tel.psf.cache_dir``.
+    store : bool
+        Write a PSF that is not in the cache into it (False: read only, e.g. for a check made
+        before a run that may be refused).
     """
     folder = Path(cache_dir if cache_dir is not None else tel.psf.cache_dir)
     key = _cache_key(tel, band, scale_arcsec, radius_arcsec, seed, pixel_integrated,
@@ -499,6 +503,8 @@ def cached_band_psf(tel: TelescopeConfig, band: Band, scale_arcsec: float,
                             from_cache=True)
     psf = band_psf(tel, band, scale_arcsec, radius_arcsec, seed, pixel_integrated,
                    field_zernike_nm, segment_terms_nm)
+    if not store:
+        return psf
     with atomic_path(path) as tmp, open(tmp, "wb") as fh:
         np.savez(fh, image=psf.image, scale_arcsec=psf.scale_arcsec, band=psf.band,
                  pivot_nm=psf.pivot_nm, fwhm_arcsec=psf.fwhm_arcsec,
