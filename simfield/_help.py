@@ -115,8 +115,8 @@ def help_page(conf_dir: str | Path, width: int = 92) -> str:
         "Top-level keys:",
         f"  seed={seed}  the one seed of every random stream (an integer, no unit): the same "
         "seed and settings give identical files",
-        f"  workers={workers}  processes (a count) for the mosaic and detection tiles; 0 = one "
-        "per core; the files do not depend on it",
+        f"  workers={workers}  processes (a count) for the mosaic and detection tiles and the "
+        "selection's samples; 0 = one per core; the files do not depend on it",
         "  Keys inside a group: group.key=value, units in the key names, e.g. "
         "survey.exposure_time_s=2500 (s), detector.read_noise_e=6 (e-); all of them with "
         "their values: simfield --cfg job",
@@ -125,6 +125,8 @@ def help_page(conf_dir: str | Path, width: int = 92) -> str:
         "multirun/<date>/<time>/<job>/):",
         "  mosaic_<band>.fits       IMAGE (e-/s), INVVAR, EXPOSURE, FLAGS, NOISECOR",
         "  truth.fits, truth_image_<band>.fits   truth tables (SOURCES, IMAGES) and images",
+        "  psf_<band>.fits, psf.png   the PSFs (scene, wide, effective, encircled energy)",
+        "  bands.ecsv               pivot, width, AB zero point and sky of each band",
         "  detections_<band>.fits, photometry.fits, photoz.fits   catalogues",
         "  score/<band>/, selection/<sample>/   completeness, purity, volume, report.html",
         "  summary.json, scenario.yaml, COMPLETE (written last)",
