@@ -550,6 +550,23 @@ def test_cli_scores_a_catalogue(run_dir, tmp_path):
     assert rc == 0 and json.loads((out / "summary.json").read_text())["match_radius_arcsec"] == 0.1
 
 
+def test_cli_radius_wins_over_the_runs_radius_in_fwhm(run_dir, tmp_path, monkeypatch):
+    """A run scored with its match radius in PSF widths (score.match_radius_fwhm > 0) is
+    rescored with the --radius asked for, not silently with the run's FWHM multiple."""
+    from types import SimpleNamespace
+
+    from simfield.config import ScoreConfig
+    from simfield.score import run as score_module
+
+    path, _ = run_dir
+    monkeypatch.setattr(score_module, "run_scenario_of",
+                        lambda folder: SimpleNamespace(score=ScoreConfig(match_radius_fwhm=3.0)))
+    out = tmp_path / "o"
+    rc = score_main_args([str(path), "--catalog", str(path / "cat.ecsv"), "--band", BAND,
+                          "--radius", "0.1", "--out", str(out), "--no-report"])
+    assert rc == 0 and json.loads((out / "summary.json").read_text())["match_radius_arcsec"] == 0.1
+
+
 # ------------------------------------------------------------------------------ bounded memory
 def test_load_truth_maps_images_and_reads_them_like_astropy(run_dir):
     """load_truth returns memory maps (no float64 / int64 copies) whose values at any pixel

@@ -696,8 +696,8 @@ def score_main_args(argv: list[str]) -> int:
                            f" one of {', '.join(run_bands(run_dir)) or 'none'}")
         sc = run_scenario_of(run_dir)  # the run's own score settings, where it has them
         cfg = sc.score if sc is not None else ScoreConfig()
-        if a.radius is not None:
-            cfg.match_radius_arcsec = a.radius
+        if a.radius is not None:  # the radius asked for, even where the run matched in FWHMs
+            cfg.match_radius_arcsec, cfg.match_radius_fwhm = a.radius, 0.0
         cfg.report = not a.no_report
         try:
             _validate_score(cfg)
