@@ -188,8 +188,9 @@ def test_selection_page_has_header_and_faint_small_cells(figures):
 
 
 def test_lens_picture(tmp_path):
-    """lens.png of a small lens: labels, title, field outline, halo centre, kpc scale, plain
-    colour-bar ticks (kpc per arcsec from astropy.cosmology, not the project's own)."""
+    """lens.png of a small lens: labels, title, field outline (the field, not the map, with
+    the map's margin outlined apart), halo centre, kpc scale, plain colour-bar ticks (kpc per
+    arcsec from astropy.cosmology, not the project's own), the legend off the map."""
     from astropy.cosmology import FlatLambdaCDM
 
     from simfield.lensing import write_lens_png
@@ -198,11 +199,21 @@ def test_lens_picture(tmp_path):
 
     cosmo = FlatLambdaCDM(H0=70, Om0=0.3, Tcmb0=2.725)
     lens = Lens(0.4, (SIE(0.0, 0.0, 3.0, 0.7, 20.0),), cosmo)
-    fig = write_lens_png(lens, tmp_path / "lens.png", 20.0, 0.1, seed=7)
+    fig = write_lens_png(lens, tmp_path / "lens.png", 20.0, 0.1, seed=7,
+                         field_arcsec=(-8.0, 8.0, -8.0, 8.0))
     ax = fig.axes[0]
     assert ax.get_xlabel() and ax.get_ylabel() and "seed 7" in ax.get_title()
     labels = ax.get_legend_handles_labels()[1]
-    assert "field outline" in labels and "halo centre" in labels
+    assert "field (mosaic)" in labels and "halo centre" in labels
+    assert 'field + 2" margin (sources drawn)' in labels
+    boxes = {p.get_gid(): p.get_bbox().extents for p in ax.patches}
+    np.testing.assert_allclose(boxes["field"], [-8, -8, 8, 8])
+    np.testing.assert_allclose(boxes["margin"], [-10, -10, 10, 10])
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+    (legend,) = fig.legends
+    r = FigureCanvasAgg(fig).get_renderer()  # the figure is closed: a canvas to measure on
+    assert not legend.get_window_extent(r).overlaps(ax.get_window_extent(r))
     (bar,) = [a for a in ax.get_children() if getattr(a, "get_gid", None)
               and a.get_gid() == "scale_bar"]
     kpc = cosmo.kpc_proper_per_arcmin(0.4).value / 60 * 4  # the 4" bar of a 20" field
