@@ -239,3 +239,44 @@ def test_intervals_contain_their_points(figures):
                 assert lo - 1e-12 <= yi <= hi + 1e-12 and abs(seg[0, 0] - xi) < 1e-9
                 checked += 1
     assert checked > 0
+
+
+def _renderer(fig):
+    """A renderer of ``fig`` as saved (the report closes its figures after laying them out)."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+    return FigureCanvasAgg(fig).get_renderer()
+
+
+def _inside(bb, fig, tol=0.5):
+    """Whether the window extent ``bb`` lies within the figure (``tol`` pixels)."""
+    f = fig.bbox
+    return (bb.x0 >= f.x0 - tol and bb.y0 >= f.y0 - tol and bb.x1 <= f.x1 + tol
+            and bb.y1 <= f.y1 + tol)
+
+
+def _overlapping(extents, gap=0.0):
+    """Pairs (i, j) of window extents closer than ``gap`` pixels (overlapping: gap 0)."""
+    return [(i, j) for i, a in enumerate(extents) for j, b in enumerate(extents[:i])
+            if min(a.x1, b.x1) - max(a.x0, b.x0) > -gap
+            and min(a.y1, b.y1) - max(a.y0, b.y0) > -gap]
+
+
+def test_false_cause_names_do_not_overlap(figures):
+    """false_causes.png: the cause names under the bars are clear of each other ("artefact"
+    and "persistence" ran together): their boxes apart by 2 pixels, or, slanted alike, the
+    bands of their lines of text apart by 2 pixels across the slant."""
+    _, saved = figures
+    (fig,) = _named(saved, "false_causes.png")
+    r = _renderer(fig)
+    ticks = [t for t in fig.axes[0].get_xticklabels() if t.get_text()]
+    assert len(ticks) >= 7
+    for a, b in zip(ticks, ticks[1:]):
+        if not _overlapping([a.get_window_extent(r), b.get_window_extent(r)], gap=2.0):
+            continue
+        angle = np.deg2rad(a.get_rotation())
+        assert angle != 0 and b.get_rotation() == a.get_rotation(), (a, b)
+        pa, pb = (t.get_transform().transform(t.get_unitless_position()) for t in (a, b))
+        across = abs(np.dot(pb - pa, [-np.sin(angle), np.cos(angle)]))
+        line = a.get_fontsize() * fig.dpi / 72 * 1.2  # a line of text (pixels)
+        assert across >= line + 2, (a.get_text(), b.get_text(), across, line)

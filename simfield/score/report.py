@@ -335,6 +335,10 @@ def make_report(out_dir, truth: dict, det, tables: dict, fits_: dict, summary: d
     bars = ax.bar(names, [counts[n] for n in names], color=[_CAUSE_COLOURS[n] for n in names])
     ax.bar_label(bars, fontsize=8, gid="count")
     ax.set_ylim(0, 1.15 * max(1, max(counts.values())))
+    # slanted: the names of the causes are longer than their bars are apart
+    ax.tick_params(axis="x", labelrotation=30)
+    for t in ax.get_xticklabels():
+        t.set(ha="right", rotation_mode="anchor")
     ax.set(xlabel="cause of the false detection", ylabel="unmatched detections (count)",
            title=run_title(f"false detections by cause ({sum(counts.values())} of "
                            f"{summary['n_detections']})", band, seed))
