@@ -262,6 +262,44 @@ def _overlapping(extents, gap=0.0):
             and min(a.y1, b.y1) - max(a.y0, b.y0) > -gap]
 
 
+def test_false_examples_fit_the_figure(figures, tmp_path, monkeypatch):
+    """The cut-outs of false_examples.png lie inside the figure with their labels (the bottom
+    row's x labels were cut off) and clear of each other (a row's x labels ran into the titles
+    of the row below). The run's own detections and a few made-up ones away from every truth
+    image, scored by simfield-score, make the false detections."""
+    import simfield.score.report as sr
+    from astropy.table import Table, vstack
+
+    from simfield.score.run import score_main_args
+
+    out, _ = figures
+    band = "b23"
+    own = Table.read(out / f"detections_{band}.fits", hdu="DETECTIONS")["ra", "dec", "mag"]
+    img = Table.read(out / "truth.fits", hdu="IMAGES")
+    ra0, dec0 = np.median(own["ra"]), np.median(own["dec"])
+    fake = []
+    for dx in np.linspace(-3.0, 3.0, 9):  # arcsec
+        for dy in np.linspace(-3.0, 3.0, 9):
+            ra, dec = ra0 + dx / 3600 / np.cos(np.deg2rad(dec0)), dec0 + dy / 3600
+            sep = np.hypot((img["ra"] - ra) * np.cos(np.deg2rad(dec0)), img["dec"] - dec)
+            if sep.min() * 3600 > 0.5 and len(fake) < 4:
+                fake.append((ra, dec, 27.0))
+    assert len(fake) == 4
+    cat = vstack([own, Table(rows=fake, names=("ra", "dec", "mag"))])
+    cat.write(tmp_path / "cat.ecsv")
+    saved = {}
+    orig = sr._save
+    monkeypatch.setattr(sr, "_save", lambda fig, path: saved.setdefault(Path(path).name, fig)
+                        and orig(fig, path))
+    assert score_main_args([str(out), "--catalog", str(tmp_path / "cat.ecsv"), "--band", band,
+                            "--allow-flux-offset", "--out", str(tmp_path / "s")]) == 0
+    fig = saved["false_examples.png"]
+    r = _renderer(fig)
+    boxes = [ax.get_tightbbox(r) for ax in fig.axes if ax.axison]
+    assert len(boxes) >= 4 and not _overlapping(boxes)
+    assert all(_inside(b, fig) for b in boxes)
+
+
 def test_false_cause_names_do_not_overlap(figures):
     """false_causes.png: the cause names under the bars are clear of each other ("artefact"
     and "persistence" ran together): their boxes apart by 2 pixels, or, slanted alike, the
