@@ -23,11 +23,14 @@ def run_title(what: str, band: str | None = None, seed=None) -> str:
     return ", ".join(parts)
 
 
-def count_labels(ax, x, y, k, n, colour="k", fontsize=6):
-    """Write ``k/n`` beside each point (x, y) of a fraction plot."""
+def count_labels(ax, x, y, k, n, colour="k", fontsize=6, rotation=0):
+    """Write ``k/n`` beside each point (x, y) of a fraction plot, to its upper right;
+    ``rotation`` (deg) 90 writes them upright, one line of text wide (for points close
+    together in x)."""
+    upright = {"rotation": rotation, "va": "bottom"} if rotation else {}
     for xi, yi, ki, ni in zip(x, y, k, n):
         ax.annotate(f"{int(ki)}/{int(ni)}", (xi, yi), fontsize=fontsize, color=colour,
-                    xytext=(2, 3), textcoords="offset points", gid="count")
+                    xytext=(2, 3), textcoords="offset points", gid="count", **upright)
 
 
 def scale_bar(ax, length: float, label: str, loc: str = "lower right", colour: str = "w"):

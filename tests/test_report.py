@@ -103,7 +103,8 @@ def test_fraction_plots_carry_counts(figures):
             assert counts, (name, ax.get_title())
     (fig,) = _named(saved, "completeness_purity.png")
     assert re.fullmatch(r"\d+/\d+", _texts(fig, "count")[0].get_text())
-    text = " ".join(t.get_text() for ax in fig.axes for t in ax.texts)
+    text = " ".join(t.get_text() for ax in fig.axes
+                    for t in [*ax.texts, *ax.get_legend().get_texts()])
     assert "m50" in text and "m90" in text and "purity at" in text
 
 
@@ -318,3 +319,30 @@ def test_false_cause_names_do_not_overlap(figures):
         across = abs(np.dot(pb - pa, [-np.sin(angle), np.cos(angle)]))
         line = a.get_fontsize() * fig.dpi / 72 * 1.2  # a line of text (pixels)
         assert across >= line + 2, (a.get_text(), b.get_text(), across, line)
+
+
+def test_completeness_labels_and_boxes_leave_the_data_clear(figures):
+    """completeness_purity.png: the k/n labels do not overlap each other, and the text boxes
+    (fit results, purity at the reference magnitude) and legends cover no point, error bar or
+    k/n label."""
+    _, saved = figures
+    (fig,) = _named(saved, "completeness_purity.png")
+    r = _renderer(fig)
+    for ax in fig.axes:
+        labels = [t.get_window_extent(r) for t in ax.texts if t.get_gid() == "count"]
+        assert labels and not _overlapping(labels), ax.get_title()
+        boxes = [t.get_bbox_patch().get_window_extent(r) for t in ax.texts
+                 if t.get_gid() != "count" and t.get_bbox_patch() is not None]
+        boxes += [leg.get_window_extent(r) for leg in [ax.get_legend(), *fig.legends] if leg]
+        assert boxes
+        points = []
+        for cont in ax.containers:
+            data_line, _, barcols = cont.lines
+            points += list(ax.transData.transform(np.column_stack(data_line.get_data())))
+            for seg in barcols[0].get_segments():  # each bar sampled along its length
+                points += list(ax.transData.transform(
+                    np.column_stack([np.full(20, seg[0, 0]), np.linspace(*seg[:, 1], 20)])))
+        assert points
+        for b in boxes:
+            assert not any(b.contains(*p) for p in points), ax.get_title()
+            assert not any(_overlapping([b, lab]) for lab in labels), ax.get_title()
