@@ -263,6 +263,28 @@ def _overlapping(extents, gap=0.0):
             and min(a.y1, b.y1) - max(a.y0, b.y0) > -gap]
 
 
+def test_titles_and_axis_labels_stay_inside_the_figure(figures):
+    """Every report figure's titles, axis labels and tick labels lie inside the saved figure
+    (a title longer than its figure, e.g. photometry.png's, or a bottom row's x label were
+    cut off at the edge)."""
+    _, saved = figures
+    outside = []
+    for path, fig in saved.items():
+        if path.startswith("optics/"):
+            continue  # the PSF picture is the optics' own, not a report's
+        r = _renderer(fig)
+        boxes = [("suptitle", fig._suptitle.get_window_extent(r))] if fig._suptitle else []
+        for ax in fig.axes:
+            if ax.get_visible() and ax.axison:
+                # each axis: its drawn tick labels and its label
+                boxes += [(ax.get_title(), ax.title.get_window_extent(r)),
+                          (ax.get_xlabel(), ax.xaxis.get_tightbbox(r)),
+                          (ax.get_ylabel(), ax.yaxis.get_tightbbox(r))]
+        outside += [(path.rsplit("/", 1)[-1], what, b.extents.round()) for what, b in boxes
+                    if b is not None and not _inside(b, fig)]
+    assert not outside
+
+
 def test_false_examples_fit_the_figure(figures, tmp_path, monkeypatch):
     """The cut-outs of false_examples.png lie inside the figure with their labels (the bottom
     row's x labels were cut off) and clear of each other (a row's x labels ran into the titles

@@ -328,7 +328,8 @@ def make_report(out_dir, truth: dict, det, tables: dict, fits_: dict, summary: d
     ax.axhline(0, color="0.7")
     ax.set(xlabel=f"true observed {band} magnitude (AB mag)",
            ylabel="measured - true (mag)",
-           title=run_title(f"photometric bias of {measure}", band, seed))
+           title=run_title("photometric bias", band, seed) + "\n"
+           + textwrap.fill(f"measured: {measure}", 70))  # each line within the figure
     figs.append(("Photometry", _save(fig, out / "photometry.png"),
                  f"Measured magnitude: {measure}. Points: median of measured - true per bin of "
                  "true magnitude over the matched detections; bars: 1.4826 x MAD; numbers: "
