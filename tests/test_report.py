@@ -368,3 +368,14 @@ def test_completeness_labels_and_boxes_leave_the_data_clear(figures):
         for b in boxes:
             assert not any(b.contains(*p) for p in points), ax.get_title()
             assert not any(_overlapping([b, lab]) for lab in labels), ax.get_title()
+
+
+def test_counts_start_at_zero(figures):
+    """Selection counts.png: counts cannot be negative, so both panels start at 0 (an empty
+    sample's axis ran from -0.04 to 0.04)."""
+    _, saved = figures
+    paths = [p for p in saved if p.endswith("/counts.png") and "/selection/" in p]
+    assert paths
+    for p in paths:
+        for ax in saved[p].axes:
+            assert ax.get_ylim()[0] == 0, (p, ax.get_title(), ax.get_ylim())
