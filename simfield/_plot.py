@@ -23,11 +23,14 @@ def run_title(what: str, band: str | None = None, seed=None) -> str:
     return ", ".join(parts)
 
 
-def count_labels(ax, x, y, k, n, colour="k", fontsize=6):
-    """Write ``k/n`` beside each point (x, y) of a fraction plot."""
+def count_labels(ax, x, y, k, n, colour="k", fontsize=6, rotation=0):
+    """Write ``k/n`` beside each point (x, y) of a fraction plot, to its upper right;
+    ``rotation`` (deg) 90 writes them upright, one line of text wide (for points close
+    together in x)."""
+    upright = {"rotation": rotation, "va": "bottom"} if rotation else {}
     for xi, yi, ki, ni in zip(x, y, k, n):
         ax.annotate(f"{int(ki)}/{int(ni)}", (xi, yi), fontsize=fontsize, color=colour,
-                    xytext=(2, 3), textcoords="offset points", gid="count")
+                    xytext=(2, 3), textcoords="offset points", gid="count", **upright)
 
 
 def scale_bar(ax, length: float, label: str, loc: str = "lower right", colour: str = "w"):
@@ -83,7 +86,8 @@ def compass(ax, north, east, size: float = 0.1, colour: str = "w", origin=(0.25,
 
 
 def png_bytes(fig, dpi: int = 90) -> bytes:
-    """``fig`` laid out (``tight_layout``) and drawn once into PNG bytes.
+    """``fig`` laid out (``tight_layout``, twice with images of fixed aspect) and drawn once
+    into PNG bytes.
 
     The count labels (``gid="count"``) sit beside their points inside the axes, so they are
     left out of the layout: measuring every one of them cost as much as drawing the figure.
@@ -97,6 +101,12 @@ def png_bytes(fig, dpi: int = 90) -> bytes:
             if t.get_gid() == "count":
                 t.set_in_layout(False)
     fig.tight_layout()
+    if any(ax.get_aspect() != "auto" for ax in fig.axes):
+        # an image's axes keeps its aspect inside the box it is given: tight_layout measures
+        # its labels where the default box left it and gives it a box of another shape, which
+        # moves them (a bottom row's x labels fell off the figure); the second pass measures
+        # them in that box
+        fig.tight_layout()
     # tight_layout leaves a placeholder layout engine, and savefig draws a figure that has
     # one twice (once to "lay it out"): the layout is done, so drop it
     fig.set_layout_engine(None)

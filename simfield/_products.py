@@ -207,7 +207,8 @@ CONVERGENCE_PIXEL_ARCSEC = 0.2
 def write_lens_maps(out: Path, lens, sc: Scenario, mgrid: Grid, hx: float, hy: float,
                      prov) -> list[Path]:
     """Convergence map (FITS), critical curves and caustics (ECSV) and a picture (PNG), all
-    for sources at ``lens.reference_redshift``."""
+    for sources at ``lens.reference_redshift``, over the area the sources are drawn on: the
+    mosaic ``mgrid`` and a margin around it, ``hx``, ``hy`` half its sides (arcsec)."""
     from .lensing import critical_curves, write_lens_png
 
     z_ref = sc.lens.reference_redshift
@@ -217,8 +218,13 @@ def write_lens_maps(out: Path, lens, sc: Scenario, mgrid: Grid, hx: float, hy: f
                  mgrid.dec0)
     xi, eta = kgrid.pixel_offsets()
     kappa = lens.convergence(xi, eta, z_ref).reshape(kgrid.shape)
+    # the mosaic's footprint, centred on the map (xi east, eta north; arcsec)
+    fx, fy = 0.5 * mgrid.nx * mgrid.scale, 0.5 * mgrid.ny * mgrid.scale
     cards = [("ZSOURCE", z_ref, "source redshift of the map"),
-             ("ZLENS", sc.lens.redshift, "lens redshift")]
+             ("ZLENS", sc.lens.redshift, "lens redshift"),
+             ("MOSAICW", round(2 * fx, 6), "[arcsec] width of the mosaic, centred here"),
+             ("MOSAICH", round(2 * fy, 6), "[arcsec] height of the mosaic, centred here"),
+             ("MARGIN", round(hx - fx, 6), "[arcsec] map covers the mosaic + this margin")]
     files.append(write_fits(out / "convergence.fits",
                             [image_hdu(kappa.astype(np.float32), "KAPPA", kgrid, "", cards)],
                             prov, cards))
@@ -235,9 +241,11 @@ def write_lens_maps(out: Path, lens, sc: Scenario, mgrid: Grid, hx: float, hy: f
     t["xi"].unit = t["eta"].unit = "arcsec"
     t["ra"].unit = t["dec"].unit = "deg"
     t.meta["description"] = (f"critical curves (image plane) and caustics (source plane) for "
-                             f"sources at z = {z_ref}; xi east, eta north")
+                             f"sources at z = {z_ref}; xi east, eta north; over the mosaic "
+                             f"({2 * fx:g} x {2 * fy:g} arcsec) and a {hx - fx:g} arcsec margin")
     files.append(write_table(out / "critical_curves.ecsv", t, prov))
-    write_lens_png(lens, out / "lens.png", (-hx, hx, -hy, hy), 0.1, z_ref, seed=sc.seed)
+    write_lens_png(lens, out / "lens.png", (-hx, hx, -hy, hy), 0.1, z_ref, seed=sc.seed,
+                   field_arcsec=(-fx, fx, -fy, fy))
     files.append(out / "lens.png")
     return files
 

@@ -158,11 +158,20 @@ def test_same_seed_identical_other_seed_different(run, mosaics_only, tmp_path):
     assert not np.array_equal(a, fits.getdata(other.out_dir / "mosaic_b13.fits", "IMAGE"))
 
 
-def test_lensed_run_lists_every_image_with_magnification(tmp_path):
+def test_lensed_run_lists_every_image_with_magnification(tmp_path, monkeypatch):
     """lens=cluster: images solve the lens equation and carry mu = 1/((1-k)^2-g^2)
-    (Schneider, Ehlers & Falco 1992, eq. 5.26); lens maps are written."""
+    (Schneider, Ehlers & Falco 1992, eq. 5.26); lens maps are written, lens.png outlining the
+    mosaic's footprint as the field and convergence.fits stating the margin it covers besides."""
+    import simfield.lensing
     from simfield.lensing import build_lens
 
+    pictures, draw = [], simfield.lensing.write_lens_png
+
+    def keep(*a, **k):  # lens.png's figure, to read its outlines back
+        pictures.append(draw(*a, **k))
+        return pictures[-1]
+
+    monkeypatch.setattr(simfield.lensing, "write_lens_png", keep)
     # one exposure: the checks are of the truth tables and truth images, not of the mosaic
     sc = small_scenario(tmp_path, "lens=cluster", "survey.width_arcsec=24",
                         "survey.height_arcsec=24", "detection.enabled=false",
@@ -170,6 +179,20 @@ def test_lensed_run_lists_every_image_with_magnification(tmp_path):
     res = run_scenario(sc, tmp_path / "lensed")
     for name in ("convergence.fits", "critical_curves.ecsv", "lens.png"):
         assert (res.out_dir / name).exists()
+    # the mosaic's footprint (arcsec) from its own header (astropy), centred on the field
+    from astropy.wcs.utils import proj_plane_pixel_scales
+
+    hdr = fits.getheader(res.out_dir / "mosaic_b13.fits", "IMAGE")
+    w, h = np.array([hdr["NAXIS1"], hdr["NAXIS2"]]) * proj_plane_pixel_scales(WCS(hdr)) * 3600
+    (field,) = [p for p in pictures[0].axes[0].patches if p.get_gid() == "field"]
+    assert_allclose(field.get_bbox().extents, [-w / 2, -h / 2, w / 2, h / 2], atol=1e-9)
+    kappa = fits.getheader(res.out_dir / "convergence.fits", "KAPPA")
+    assert_allclose([kappa["MOSAICW"], kappa["MOSAICH"]], [w, h])
+    # the map covers the mosaic and the margin the sources are drawn on (0.2" pixels)
+    assert kappa["MARGIN"] > 0
+    assert_allclose(kappa["NAXIS1"] * 0.2, w + 2 * kappa["MARGIN"], atol=0.2)
+    (margin,) = [p for p in pictures[0].axes[0].patches if p.get_gid() == "margin"]
+    assert_allclose(margin.get_bbox().width, w + 2 * kappa["MARGIN"], atol=1e-9)
     src = Table.read(res.out_dir / "truth.fits", hdu="SOURCES")
     img = Table.read(res.out_dir / "truth.fits", hdu="IMAGES")
     assert np.any(src["n_images"] > 1)

@@ -103,7 +103,8 @@ def test_fraction_plots_carry_counts(figures):
             assert counts, (name, ax.get_title())
     (fig,) = _named(saved, "completeness_purity.png")
     assert re.fullmatch(r"\d+/\d+", _texts(fig, "count")[0].get_text())
-    text = " ".join(t.get_text() for ax in fig.axes for t in ax.texts)
+    text = " ".join(t.get_text() for ax in fig.axes
+                    for t in [*ax.texts, *ax.get_legend().get_texts()])
     assert "m50" in text and "m90" in text and "purity at" in text
 
 
@@ -188,8 +189,9 @@ def test_selection_page_has_header_and_faint_small_cells(figures):
 
 
 def test_lens_picture(tmp_path):
-    """lens.png of a small lens: labels, title, field outline, halo centre, kpc scale, plain
-    colour-bar ticks (kpc per arcsec from astropy.cosmology, not the project's own)."""
+    """lens.png of a small lens: labels, title, field outline (the field, not the map, with
+    the map's margin outlined apart), halo centre, kpc scale, plain colour-bar ticks (kpc per
+    arcsec from astropy.cosmology, not the project's own), the legend off the map."""
     from astropy.cosmology import FlatLambdaCDM
 
     from simfield.lensing import write_lens_png
@@ -198,11 +200,21 @@ def test_lens_picture(tmp_path):
 
     cosmo = FlatLambdaCDM(H0=70, Om0=0.3, Tcmb0=2.725)
     lens = Lens(0.4, (SIE(0.0, 0.0, 3.0, 0.7, 20.0),), cosmo)
-    fig = write_lens_png(lens, tmp_path / "lens.png", 20.0, 0.1, seed=7)
+    fig = write_lens_png(lens, tmp_path / "lens.png", 20.0, 0.1, seed=7,
+                         field_arcsec=(-8.0, 8.0, -8.0, 8.0))
     ax = fig.axes[0]
     assert ax.get_xlabel() and ax.get_ylabel() and "seed 7" in ax.get_title()
     labels = ax.get_legend_handles_labels()[1]
-    assert "field outline" in labels and "halo centre" in labels
+    assert "field (mosaic)" in labels and "halo centre" in labels
+    assert 'field + 2" margin (sources drawn)' in labels
+    boxes = {p.get_gid(): p.get_bbox().extents for p in ax.patches}
+    np.testing.assert_allclose(boxes["field"], [-8, -8, 8, 8])
+    np.testing.assert_allclose(boxes["margin"], [-10, -10, 10, 10])
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+    (legend,) = fig.legends
+    r = FigureCanvasAgg(fig).get_renderer()  # the figure is closed: a canvas to measure on
+    assert not legend.get_window_extent(r).overlaps(ax.get_window_extent(r))
     (bar,) = [a for a in ax.get_children() if getattr(a, "get_gid", None)
               and a.get_gid() == "scale_bar"]
     kpc = cosmo.kpc_proper_per_arcmin(0.4).value / 60 * 4  # the 4" bar of a 20" field
@@ -228,3 +240,142 @@ def test_intervals_contain_their_points(figures):
                 assert lo - 1e-12 <= yi <= hi + 1e-12 and abs(seg[0, 0] - xi) < 1e-9
                 checked += 1
     assert checked > 0
+
+
+def _renderer(fig):
+    """A renderer of ``fig`` as saved (the report closes its figures after laying them out)."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+    return FigureCanvasAgg(fig).get_renderer()
+
+
+def _inside(bb, fig, tol=0.5):
+    """Whether the window extent ``bb`` lies within the figure (``tol`` pixels)."""
+    f = fig.bbox
+    return (bb.x0 >= f.x0 - tol and bb.y0 >= f.y0 - tol and bb.x1 <= f.x1 + tol
+            and bb.y1 <= f.y1 + tol)
+
+
+def _overlapping(extents, gap=0.0):
+    """Pairs (i, j) of window extents closer than ``gap`` pixels (overlapping: gap 0)."""
+    return [(i, j) for i, a in enumerate(extents) for j, b in enumerate(extents[:i])
+            if min(a.x1, b.x1) - max(a.x0, b.x0) > -gap
+            and min(a.y1, b.y1) - max(a.y0, b.y0) > -gap]
+
+
+def test_titles_and_axis_labels_stay_inside_the_figure(figures):
+    """Every report figure's titles, axis labels and tick labels lie inside the saved figure
+    (a title longer than its figure, e.g. photometry.png's, or a bottom row's x label were
+    cut off at the edge)."""
+    _, saved = figures
+    outside = []
+    for path, fig in saved.items():
+        if path.startswith("optics/"):
+            continue  # the PSF picture is the optics' own, not a report's
+        r = _renderer(fig)
+        boxes = [("suptitle", fig._suptitle.get_window_extent(r))] if fig._suptitle else []
+        for ax in fig.axes:
+            if ax.get_visible() and ax.axison:
+                # each axis: its drawn tick labels and its label
+                boxes += [(ax.get_title(), ax.title.get_window_extent(r)),
+                          (ax.get_xlabel(), ax.xaxis.get_tightbbox(r)),
+                          (ax.get_ylabel(), ax.yaxis.get_tightbbox(r))]
+        outside += [(path.rsplit("/", 1)[-1], what, b.extents.round()) for what, b in boxes
+                    if b is not None and not _inside(b, fig)]
+    assert not outside
+
+
+def test_false_examples_fit_the_figure(figures, tmp_path, monkeypatch):
+    """The cut-outs of false_examples.png lie inside the figure with their labels (the bottom
+    row's x labels were cut off) and clear of each other (a row's x labels ran into the titles
+    of the row below). The run's own detections and a few made-up ones away from every truth
+    image, scored by simfield-score, make the false detections."""
+    import simfield.score.report as sr
+    from astropy.table import Table, vstack
+
+    from simfield.score.run import score_main_args
+
+    out, _ = figures
+    band = "b23"
+    own = Table.read(out / f"detections_{band}.fits", hdu="DETECTIONS")["ra", "dec", "mag"]
+    img = Table.read(out / "truth.fits", hdu="IMAGES")
+    ra0, dec0 = np.median(own["ra"]), np.median(own["dec"])
+    fake = []
+    for dx in np.linspace(-3.0, 3.0, 9):  # arcsec
+        for dy in np.linspace(-3.0, 3.0, 9):
+            ra, dec = ra0 + dx / 3600 / np.cos(np.deg2rad(dec0)), dec0 + dy / 3600
+            sep = np.hypot((img["ra"] - ra) * np.cos(np.deg2rad(dec0)), img["dec"] - dec)
+            if sep.min() * 3600 > 0.5 and len(fake) < 4:
+                fake.append((ra, dec, 27.0))
+    assert len(fake) == 4
+    cat = vstack([own, Table(rows=fake, names=("ra", "dec", "mag"))])
+    cat.write(tmp_path / "cat.ecsv")
+    saved = {}
+    orig = sr._save
+    monkeypatch.setattr(sr, "_save", lambda fig, path: saved.setdefault(Path(path).name, fig)
+                        and orig(fig, path))
+    assert score_main_args([str(out), "--catalog", str(tmp_path / "cat.ecsv"), "--band", band,
+                            "--allow-flux-offset", "--out", str(tmp_path / "s")]) == 0
+    fig = saved["false_examples.png"]
+    r = _renderer(fig)
+    boxes = [ax.get_tightbbox(r) for ax in fig.axes if ax.axison]
+    assert len(boxes) >= 4 and not _overlapping(boxes)
+    assert all(_inside(b, fig) for b in boxes)
+
+
+def test_false_cause_names_do_not_overlap(figures):
+    """false_causes.png: the cause names under the bars are clear of each other ("artefact"
+    and "persistence" ran together): their boxes apart by 2 pixels, or, slanted alike, the
+    bands of their lines of text apart by 2 pixels across the slant."""
+    _, saved = figures
+    (fig,) = _named(saved, "false_causes.png")
+    r = _renderer(fig)
+    ticks = [t for t in fig.axes[0].get_xticklabels() if t.get_text()]
+    assert len(ticks) >= 7
+    for a, b in zip(ticks, ticks[1:]):
+        if not _overlapping([a.get_window_extent(r), b.get_window_extent(r)], gap=2.0):
+            continue
+        angle = np.deg2rad(a.get_rotation())
+        assert angle != 0 and b.get_rotation() == a.get_rotation(), (a, b)
+        pa, pb = (t.get_transform().transform(t.get_unitless_position()) for t in (a, b))
+        across = abs(np.dot(pb - pa, [-np.sin(angle), np.cos(angle)]))
+        line = a.get_fontsize() * fig.dpi / 72 * 1.2  # a line of text (pixels)
+        assert across >= line + 2, (a.get_text(), b.get_text(), across, line)
+
+
+def test_completeness_labels_and_boxes_leave_the_data_clear(figures):
+    """completeness_purity.png: the k/n labels do not overlap each other, and the text boxes
+    (fit results, purity at the reference magnitude) and legends cover no point, error bar or
+    k/n label."""
+    _, saved = figures
+    (fig,) = _named(saved, "completeness_purity.png")
+    r = _renderer(fig)
+    for ax in fig.axes:
+        labels = [t.get_window_extent(r) for t in ax.texts if t.get_gid() == "count"]
+        assert labels and not _overlapping(labels), ax.get_title()
+        boxes = [t.get_bbox_patch().get_window_extent(r) for t in ax.texts
+                 if t.get_gid() != "count" and t.get_bbox_patch() is not None]
+        boxes += [leg.get_window_extent(r) for leg in [ax.get_legend(), *fig.legends] if leg]
+        assert boxes
+        points = []
+        for cont in ax.containers:
+            data_line, _, barcols = cont.lines
+            points += list(ax.transData.transform(np.column_stack(data_line.get_data())))
+            for seg in barcols[0].get_segments():  # each bar sampled along its length
+                points += list(ax.transData.transform(
+                    np.column_stack([np.full(20, seg[0, 0]), np.linspace(*seg[:, 1], 20)])))
+        assert points
+        for b in boxes:
+            assert not any(b.contains(*p) for p in points), ax.get_title()
+            assert not any(_overlapping([b, lab]) for lab in labels), ax.get_title()
+
+
+def test_counts_start_at_zero(figures):
+    """Selection counts.png: counts cannot be negative, so both panels start at 0 (an empty
+    sample's axis ran from -0.04 to 0.04)."""
+    _, saved = figures
+    paths = [p for p in saved if p.endswith("/counts.png") and "/selection/" in p]
+    assert paths
+    for p in paths:
+        for ax in saved[p].axes:
+            assert ax.get_ylim()[0] == 0, (p, ax.get_title(), ax.get_ylim())

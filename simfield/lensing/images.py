@@ -314,10 +314,11 @@ def critical_curves(lens: Lens, z_s: float, extent_arcsec, resolution_arcsec: fl
 
 
 def write_lens_png(lens: Lens, path, extent_arcsec=100.0, resolution_arcsec: float = 0.05,
-                   z_s: float | None = None, seed: int | None = None):
+                   z_s: float | None = None, seed: int | None = None, field_arcsec=None):
     """Save a picture of the convergence map with critical curves and caustics, the field
-    outline, the halo centres, a scale bar in arcsec and kpc (at the lens redshift) and N/E
-    arrows (xi east, eta north); returns the (closed) Figure.
+    outline (and the margin around it the map covers), the halo centres, a scale bar in arcsec
+    and kpc (at the lens redshift) and N/E arrows (xi east, eta north); returns the (closed)
+    Figure.
 
     Parameters
     ----------
@@ -325,11 +326,15 @@ def write_lens_png(lens: Lens, path, extent_arcsec=100.0, resolution_arcsec: flo
     path : str or path-like
         Output PNG.
     extent_arcsec : float or (xmin, xmax, ymin, ymax) (arcsec)
+        Area of the map.
     resolution_arcsec : float (arcsec)
     z_s : float, optional
         Source redshift; defaults to ``lens.reference_redshift``.
     seed : int, optional
         The run's seed, for the title.
+    field_arcsec : float or (xmin, xmax, ymin, ymax) (arcsec), optional
+        The field (a run's mosaic footprint), outlined as "field"; where it is smaller than
+        the map, the map's edge is outlined as the margin. Defaults to the map's extent.
     """
     import matplotlib
 
@@ -342,7 +347,7 @@ def write_lens_png(lens: Lens, path, extent_arcsec=100.0, resolution_arcsec: flo
     fld = field_for_extent(lens, extent_arcsec, resolution_arcsec)
     kappa = lens.distance_ratio(z_s) * fld.kappa
     xmin, xmax, ymin, ymax = _extent_box(extent_arcsec)
-    fig, ax = plt.subplots(figsize=(7, 6))
+    fig, ax = plt.subplots(figsize=(7, 6.6), layout="constrained")
     pos = kappa[kappa > 0]
     vmin = max(np.percentile(pos, 1), 1e-3) if pos.size else 1e-3
     vmax = max(min(np.percentile(kappa, 99.9), 10.0), 2 * vmin)  # singular centres aside
@@ -364,8 +369,16 @@ def write_lens_png(lens: Lens, path, extent_arcsec=100.0, resolution_arcsec: flo
     from matplotlib.ticker import LogLocator, ScalarFormatter
 
     from .._plot import compass, scale_bar
-    ax.add_patch(Rectangle((xmin, ymin), xmax - xmin, ymax - ymin, fill=False, ec="tab:green",
-                           lw=1.5, ls="--", label="field outline"))
+    fx0, fx1, fy0, fy1 = _extent_box(extent_arcsec if field_arcsec is None else field_arcsec)
+    ax.add_patch(Rectangle((fx0, fy0), fx1 - fx0, fy1 - fy0, fill=False, ec="tab:green",
+                           lw=1.5, ls="--", gid="field",
+                           label="field" if field_arcsec is None else "field (mosaic)"))
+    margin = max(fx0 - xmin, xmax - fx1, fy0 - ymin, ymax - fy1)
+    if margin > 1e-9:
+        # the map's edge: sources are drawn over the field plus this margin
+        ax.add_patch(Rectangle((xmin, ymin), xmax - xmin, ymax - ymin, fill=False, ec="0.45",
+                               lw=1.0, ls=":", gid="margin",
+                               label=f'field + {margin:.3g}" margin (sources drawn)'))
     from .profiles import TruncatedSIS
 
     halos = [c for c in lens.components if hasattr(c, "x0") and not isinstance(c, TruncatedSIS)]
@@ -376,7 +389,7 @@ def write_lens_png(lens: Lens, path, extent_arcsec=100.0, resolution_arcsec: flo
     if halos:
         ax.plot([c.x0 for c in halos], [c.y0 for c in halos], "x", color="tab:orange", ms=11,
                 mew=2.5, label="halo centre")
-    pad = 0.04 * max(xmax - xmin, ymax - ymin)  # so the field outline shows inside the axes
+    pad = 0.04 * max(xmax - xmin, ymax - ymin)  # so the outlines show inside the axes
     ax.set_xlim(xmax + pad, xmin - pad)
     ax.set_ylim(ymin - pad, ymax + pad)
     # physical scale at the lens redshift (the lens's astropy cosmology, kpc per arcsec)
@@ -390,7 +403,8 @@ def write_lens_png(lens: Lens, path, extent_arcsec=100.0, resolution_arcsec: flo
     cb.ax.yaxis.set_major_formatter(ScalarFormatter())
     cb.ax.yaxis.set_minor_formatter(ScalarFormatter())
     cb.ax.yaxis.set_minor_locator(LogLocator(subs=()))
-    ax.legend(loc="upper right", fontsize=8)
+    # below the axes, off the map
+    fig.legend(loc="outside lower center", ncol=3, fontsize=8)
     fig.savefig(path, dpi=120)
     plt.close(fig)
     return fig

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import base64
 import html
+import textwrap
 from pathlib import Path
 
 import numpy as np
@@ -238,40 +239,40 @@ def make_report(out_dir, truth: dict, det, tables: dict, fits_: dict, summary: d
     # ---- completeness (true magnitude) and purity (measured magnitude), one panel each
     cm, pm = tables["completeness_mag"], tables["purity_mag"]
     interval = str(cm.meta.get("interval", "intervals"))
-    fig, (ac, ap) = plt.subplots(1, 2, figsize=(12, 4.4), sharey=True)
+    fig, (ac, ap) = plt.subplots(1, 2, figsize=(12, 5.4), sharey=True)
     for ax, t, col in ((ac, cm, "k"), (ap, pm, "tab:red")):
         ok = np.asarray(t["n"]) > 0
         x = np.asarray(t["mag_mid"])[ok]
         _plot_fraction(ax, x, t, ok, col, "per bin (k/n beside each point)")
+        # upright: a label is then as wide as a line of text, less than a bin's width apart
         count_labels(ax, x, np.asarray(t["fraction"], float)[ok], np.asarray(t["k"])[ok],
-                     np.asarray(t["n"])[ok], col)
+                     np.asarray(t["n"])[ok], col, rotation=90)
         for lev in (0.5, 0.9):
             ax.axhline(lev, color="0.85", lw=0.8, zorder=0)
-        ax.set_ylim(-0.02, 1.12)
+        ax.set_ylim(-0.02, 1.2)  # room above 1 for the upright k/n labels
+        ax.set_yticks(np.linspace(0, 1, 6))
     mm = np.linspace(float(cm["mag_lo"][0]), float(cm["mag_hi"][-1]), 300)
     for model, ls in (("logistic", "-"), ("erf", "--")):
         f = fits_.get(model)
         if isinstance(f, metrics.CompletenessFit):
             ac.plot(mm, f(mm), ls, color="0.4" if f.describes_data else "0.75",
                     label=f"{model} fit (p = {f.p_value:.2g})")
-    lines = []
-    for key, lev, ls in (("m50", 0.5, ":"), ("m90", 0.9, "-.")):
+    # the fit's m50 and m90 (and the purity's reference magnitude) as lines named in the
+    # legends, which sit below the panels, off the data
+    head = summary["headline_fit"]
+    for key, ls in (("m50", ":"), ("m90", "-.")):
         v = summary.get(key)
         if v is not None:
-            ac.axvline(v, color="tab:blue", ls=ls, lw=1.2)
-            ac.annotate(f"{key} = {v:.2f}", (v, lev), xytext=(4, -12), textcoords="offset points",
-                        color="tab:blue", fontsize=8)
-            lines.append(f"{key} = {v:.2f} +/- {summary[key + '_err']:.2f}")
+            ac.axvline(v, color="tab:blue", ls=ls, lw=1.2,
+                       label=f"{key} = {v:.2f} +/- {summary[key + '_err']:.2f} ({head} fit)")
         else:
-            lines.append(f"{key} not quoted: {summary.get(key + '_reason')}")
-    ac.text(0.98, 0.6, f"{summary['headline_fit']} fit:\n" + "\n".join(lines),
-            transform=ac.transAxes, ha="right", va="top", fontsize=8, color="tab:blue",
-            bbox={"fc": "w", "ec": "0.8"})
+            ac.plot([], [], ls="none", label=textwrap.fill(
+                f"{key} not quoted ({head} fit): {summary.get(key + '_reason')}", 40))
     ref, pref = summary["reference_mag"], summary.get("purity_at_reference_mag")
-    ap.axvline(ref, color="tab:blue", ls=":", lw=1.2)
-    ap.text(0.02, 0.06, (f"purity at {band} = {ref:g}: {pref:.3f}" if pref is not None else
-                         f"purity at {band} = {ref:g}: not quoted: no detections in that bin"),
-            transform=ap.transAxes, fontsize=8, color="tab:blue", bbox={"fc": "w", "ec": "0.8"})
+    quoted = pref is not None and np.isfinite(pref)
+    ap.axvline(ref, color="tab:blue", ls=":", lw=1.2, label=textwrap.fill(
+        f"purity at {band} = {ref:g}: {pref:.3f}" if quoted else
+        f"purity at {band} = {ref:g}: not quoted: no detections in that bin", 40))
     ac.set(xlabel=f"true observed {band} magnitude (AB mag)",
            ylabel="completeness (fraction of truth galaxies)",
            title=run_title("completeness against true magnitude", band, seed))
@@ -279,8 +280,13 @@ def make_report(out_dir, truth: dict, det, tables: dict, fits_: dict, summary: d
            ylabel="purity (fraction of detections matched)",
            title=run_title("purity against measured magnitude", band, seed))
     ap.yaxis.set_tick_params(labelleft=True)
-    ac.legend(fontsize=7, loc="lower left")
-    ap.legend(fontsize=7, loc="lower right")
+    from matplotlib.transforms import offset_copy
+
+    for ax in (ac, ap):
+        # 40 points below the axes: under the tick labels and the x label; two columns of
+        # at most 40 characters fit the axes' width
+        ax.legend(loc="upper center", bbox_to_anchor=(0.5, 0.0), ncol=2, fontsize=7,
+                  bbox_transform=offset_copy(ax.transAxes, fig=fig, y=-40, units="points"))
     figs.append(("Completeness and purity", _save(fig, out / "completeness_purity.png"),
                  "Left: fraction of the truth galaxies recovered, per bin of true observed "
                  "magnitude; right: fraction of the detections matched to a truth image, per bin "
@@ -322,7 +328,8 @@ def make_report(out_dir, truth: dict, det, tables: dict, fits_: dict, summary: d
     ax.axhline(0, color="0.7")
     ax.set(xlabel=f"true observed {band} magnitude (AB mag)",
            ylabel="measured - true (mag)",
-           title=run_title(f"photometric bias of {measure}", band, seed))
+           title=run_title("photometric bias", band, seed) + "\n"
+           + textwrap.fill(f"measured: {measure}", 70))  # each line within the figure
     figs.append(("Photometry", _save(fig, out / "photometry.png"),
                  f"Measured magnitude: {measure}. Points: median of measured - true per bin of "
                  "true magnitude over the matched detections; bars: 1.4826 x MAD; numbers: "
@@ -335,6 +342,10 @@ def make_report(out_dir, truth: dict, det, tables: dict, fits_: dict, summary: d
     bars = ax.bar(names, [counts[n] for n in names], color=[_CAUSE_COLOURS[n] for n in names])
     ax.bar_label(bars, fontsize=8, gid="count")
     ax.set_ylim(0, 1.15 * max(1, max(counts.values())))
+    # slanted: the names of the causes are longer than their bars are apart
+    ax.tick_params(axis="x", labelrotation=30)
+    for t in ax.get_xticklabels():
+        t.set(ha="right", rotation_mode="anchor")
     ax.set(xlabel="cause of the false detection", ylabel="unmatched detections (count)",
            title=run_title(f"false detections by cause ({sum(counts.values())} of "
                            f"{summary['n_detections']})", band, seed))

@@ -196,10 +196,17 @@ def make_report(out_dir, sample, bands, det, selected, cls, tables: dict, summar
     comp_k = np.asarray(comp["k"]).reshape(len(vol), -1)
     mm = 0.5 * (np.asarray(vol["abs_mag_uv_lo"]) + np.asarray(vol["abs_mag_uv_hi"]))
     a2.step(mm, vol["n_expected"], where="mid", label="expected (S x phi x V)")
-    a2.plot(mm, comp_k.sum(axis=1), "ko", ms=4, label="observed (truth galaxies selected)")
+    # unclipped: the points at 0 sit on the axis
+    a2.plot(mm, comp_k.sum(axis=1), "ko", ms=4, label="observed (truth galaxies selected)",
+            clip_on=False)
     a2.set(xlabel="true M_UV (AB mag)", ylabel="selected galaxies per M_UV bin (count)",
            title=run_title(f"expected and observed counts, sample {name}", None, seed))
     a2.legend(fontsize=7)
+    from matplotlib.ticker import MaxNLocator
+
+    for ax in (a1, a2):  # counts from 0 (and up to 1 at least, when nothing was selected)
+        ax.set_ylim(0, max(1.0, ax.get_ylim()[1]))
+    a1.yaxis.set_major_locator(MaxNLocator(integer=True))  # detections: whole numbers
     figs.append(("Redshift distribution and counts", _save(fig, out / "counts.png"),
                  "Left: truth redshifts of the matched selected detections. Right: expected "
                  "versus observed selected galaxies, all z bins."))
