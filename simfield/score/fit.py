@@ -43,7 +43,7 @@ def completeness_model(mag, model: str, c0: float, m_t: float, width: float):
     ``erf``: C = c0 / 2 erfc((m - m_t) / (sqrt(2) width)) (Fleming et al. 1995, AJ 109, 1044).
     In both, C(m_t) = c0 / 2; c0 is the bright-end plateau, width in mag.
     """
-    with np.errstate(divide="ignore", invalid="ignore"):  # width -> 0 is a step, tried by fits
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):  # width -> 0: a step
         u = (np.asarray(mag, float) - m_t) / width
     if model == "logistic":
         return c0 * special.expit(-u)
