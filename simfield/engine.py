@@ -149,6 +149,31 @@ class DaskEngine:
             bar.close()
             c.cancel([f for f in futures if f is not None] + [ctx_f], force=True)
 
+    @property
+    def separate_processes(self) -> bool:
+        """Whether the tasks run in processes other than this one (not in threads of a
+        LocalCluster with ``processes=false``, which share this process's matplotlib)."""
+        return not (self.cluster is not None and getattr(self.cluster, "processes", True)
+                    is False)
+
+    def submit(self, fn: Callable, *args):
+        """``fn(*args)`` as one Dask task, started now; :meth:`wait` gives its result."""
+        return self.client.submit(fn, *args, pure=False, key=f"simfield-{fn.__name__}")
+
+    def wait(self, future, desc: str):
+        """The result of a :meth:`submit` task; :class:`WorkerLost` if its worker or the
+        scheduler went away."""
+        from distributed.comm.core import CommClosedError
+        from distributed.scheduler import KilledWorker
+
+        try:
+            return future.result()
+        except (KilledWorker, CommClosedError, OSError, TimeoutError) as exc:
+            raise WorkerLost(
+                f"a Dask worker was lost during the {desc} ({type(exc).__name__}: "
+                f"{str(exc).splitlines()[0] if str(exc) else 'no detail'}); no file was "
+                f"renamed into place: run the same command again") from None
+
     def close(self) -> None:
         with contextlib.suppress(Exception):
             self.client.close()

@@ -287,10 +287,11 @@ def _run_scenario(sc: Scenario, out_dir: str | Path, progress: bool, engine) -> 
                                                   engine, resume_folder(out, key))
             files.extend(out / f"detections_{b}.fits" for b in summary["detections"])
     # scoring reads only the images, the truth and the detections: with several local
-    # workers it runs in a process of its own beside photometry, photo-z and selection
+    # workers it runs in a process of its own beside photometry, photo-z and selection, on
+    # a Dask cluster as one of its tasks
     scoring = None
     if sc.score.enabled and sc.detection.enabled:
-        scoring = _Beside(_score_task, (out, sc, prov), engine is None and local > 1)
+        scoring = _Beside(_score_task, (out, sc, prov), engine is None and local > 1, engine)
     try:
         _measure_and_select(out, sc, bands, prov, summary, files, timer,
                             local if engine is None else 1)
@@ -348,14 +349,18 @@ def _score_task(out: Path, sc: Scenario, prov) -> tuple[dict, float]:
 
 
 class _Beside:
-    """``fn(*args)`` started now: in a forked process of its own (which dies with this one)
+    """``fn(*args)`` started now: as a task of ``engine`` (a Dask engine whose workers are
+    processes of their own), else in a forked process of its own (which dies with this one)
     if ``apart``, else here and at once. :meth:`result` gives what it returned. Used for the
     run's scoring (:func:`_score_task`) beside photometry and selection, and for the mosaic
     noise covariances beside the population and PSFs."""
 
-    def __init__(self, fn, args: tuple, apart: bool):
-        self._pool = self._future = self._done = None
-        if apart:
+    def __init__(self, fn, args: tuple, apart: bool, engine=None):
+        self._pool = self._future = self._done = self._task = None
+        self._engine, self._desc = engine, fn.__name__.strip("_").replace("_", " ")
+        if engine is not None and engine.separate_processes:
+            self._task = engine.submit(fn, *args)
+        elif apart:
             self._pool = ProcessPoolExecutor(1, mp_context=multiprocessing.get_context("fork"),
                                              initializer=die_with_parent,
                                              initargs=(os.getpid(),))
@@ -366,6 +371,8 @@ class _Beside:
             self._done = fn(*args)
 
     def result(self):
+        if self._task is not None:
+            return self._engine.wait(self._task, self._desc)
         if self._future is None:
             return self._done
         try:

@@ -326,3 +326,22 @@ def test_local_cluster_workers_keep_the_default_allocator_settings():
         env = engine.client.run(lambda: (os.environ.get("MALLOC_TRIM_THRESHOLD_"),
                                          os.environ.get("OMP_NUM_THREADS")))
     assert list(env.values()) == [(None, "1")]
+
+
+def test_run_tail_task_runs_on_a_worker_process_not_in_threads_here(tmp_path):
+    """The run's scoring goes to the cluster as one task beside photometry and selection
+    (pipeline._Beside with an engine): on a worker process of its own; with a LocalCluster of
+    threads (processes=false, sharing this process's matplotlib) it runs here, at once."""
+    import os
+    import threading
+
+    from simfield.pipeline import _Beside
+
+    sc = tiny(tmp_path, "cluster=local", "cluster.n_workers=1")
+    with open_engine(sc.cluster) as engine:
+        task = _Beside(os.getpid, (), apart=False, engine=engine)
+        assert task.result() != os.getpid()
+    sc = tiny(tmp_path, "cluster=local", "cluster.processes=false")
+    with open_engine(sc.cluster) as engine:
+        task = _Beside(threading.get_ident, (), apart=False, engine=engine)
+        assert task.result() == threading.get_ident()
