@@ -24,6 +24,7 @@ import os
 import re
 import socket
 import sys
+import uuid
 from typing import Callable, Iterator, Sequence
 
 from .errors import ConfigError, SimfieldError
@@ -91,6 +92,13 @@ def _run_task(fn: Callable, ctx, i: int, sync: Sequence[str]):
     return out
 
 
+def _task_key(name: str) -> str:
+    """A Dask key readable on the dashboard and unique to this call: the scheduler shares a
+    task among clients that submit the same key, so two runs on one scheduler (a sweep's jobs
+    side by side) must not name their tiles alike."""
+    return f"simfield-{name}-{uuid.uuid4().hex[:12]}"
+
+
 class DaskEngine:
     """A Dask client (and the cluster it started, if any) mapping tiles to tasks."""
 
@@ -129,7 +137,7 @@ class DaskEngine:
         c = self.client
         ctx_f = c.scatter(ctx, broadcast=True, hash=False)
         futures = [c.submit(_run_task, fn, ctx_f, i, list(sync), pure=False,
-                            key=f"simfield-{desc.replace(' ', '-')}-{i}") for i in items]
+                            key=_task_key(f"{desc.replace(' ', '-')}-{i}")) for i in items]
         bar = tqdm(total=len(futures), desc=desc, unit="tile", disable=not progress,
                    leave=False)
         try:
@@ -158,7 +166,7 @@ class DaskEngine:
 
     def submit(self, fn: Callable, *args):
         """``fn(*args)`` as one Dask task, started now; :meth:`wait` gives its result."""
-        return self.client.submit(fn, *args, pure=False, key=f"simfield-{fn.__name__}")
+        return self.client.submit(fn, *args, pure=False, key=_task_key(fn.__name__))
 
     def wait(self, future, desc: str):
         """The result of a :meth:`submit` task; :class:`WorkerLost` if its worker or the

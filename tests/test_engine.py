@@ -341,6 +341,10 @@ def test_run_tail_task_runs_on_a_worker_process_not_in_threads_here(tmp_path):
     with open_engine(sc.cluster) as engine:
         task = _Beside(os.getpid, (), apart=False, engine=engine)
         assert task.result() != os.getpid()
+        # two tasks of one function are two tasks (the scheduler shares a task among clients
+        # that submit the same key: runs side by side on one scheduler must not collide)
+        a, b = engine.submit(abs, -1), engine.submit(abs, -2)
+        assert (engine.wait(a, "test"), engine.wait(b, "test")) == (1, 2)
     sc = tiny(tmp_path, "cluster=local", "cluster.processes=false")
     with open_engine(sc.cluster) as engine:
         task = _Beside(threading.get_ident, (), apart=False, engine=engine)
