@@ -59,8 +59,10 @@ def readout_model(sc: Scenario, band: str, k: int, shape, white=None):
         return z.astype(float)
 
     unit = pixel_white if white is None else white
+    # the pixel-tied deviates are named by the exposure: windows share the estimates
+    key = ("pixel", sc.seed, band, k, float(sig_f)) if white is None else None
     return readout_for(det, shape, sc.seed, band, k, float(np.sqrt(a_full)),
-                       lambda *box: sig_f * unit(*box))
+                       lambda *box: sig_f * unit(*box), key)
 
 
 def correlated_readout(sc: Scenario, band: str, k: int, shape, e, box):

@@ -518,22 +518,28 @@ def _pink_window(grids, c0, width, row_len, step, s_off, y0, x0, per_col, cm, ha
                  out):
     inv = np.float32(1.0 / step)
     one = np.float32(1.0)
+    nx = out.shape[1]
     for yy in range(out.shape[0]):
         base = (y0 + yy) * row_len - s_off
-        for xx in range(out.shape[1]):
-            x = x0 + xx
-            c = x // width
-            u = x - c * width
-            if c % 2 == 1:
-                u = width - 1 - u
-            s = base + u
-            k = s // step
-            w = np.float32(s - k * step) * inv
+        cmy = cm[yy] if has_corr else 0.0
+        xa = 0
+        while xa < nx:  # the row's run of columns of one output
+            c = (x0 + xa) // width
+            xb = min(nx, (c + 1) * width - x0)
             g = grids[c - c0]
-            v = g[k] * (one - w) + g[k + 1] * w
-            if has_corr:
-                v = np.float32(np.float64(v) - (per_col[xx] + cm[yy]))
-            out[yy, xx] = spf * v
+            odd = c % 2 == 1
+            for xx in range(xa, xb):
+                u = x0 + xx - c * width
+                if odd:
+                    u = width - 1 - u
+                s = base + u
+                k = s // step
+                w = np.float32(s - k * step) * inv
+                v = g[k] * (one - w) + g[k + 1] * w
+                if has_corr:
+                    v = np.float32(np.float64(v) - (per_col[xx] + cmy))
+                out[yy, xx] = spf * v
+            xa = xb
 
 
 def pink_window(grids, c0: int, width: int, row_len: int, step: int, s_off: int, y0: int,

@@ -70,7 +70,7 @@ class ExposureReadout:
 
 
 def readout_for(det, shape: tuple, seed: int, band: str, k: int, slope_per_frame: float,
-                white) -> ExposureReadout:
+                white, white_key=None) -> ExposureReadout:
     """The readout of exposure ``k`` of ``band`` on a detector of ``shape`` (ny, nx).
 
     Parameters
@@ -83,12 +83,16 @@ def readout_for(det, shape: tuple, seed: int, band: str, k: int, slope_per_frame
     slope_per_frame : float (1/s)
     white : callable (y0, y1, x0, x1) -> ndarray (e- per frame)
         The detector's white frame read noise on a window (for the reference pixels).
+    white_key : hashable or None
+        Names ``white``'s numbers (:class:`RefCorrection`'s ``key``): windows of one exposure
+        then share the correction's estimates.
     """
     lay = ReadoutLayout(tuple(int(s) for s in shape), int(det.n_channels),
                         int(det.row_overhead_pix), float(det.pixel_time_us) * 1e-6)
     noise = CorrelatedNoise(lay, int(seed), ("readout", band, int(k)), float(det.pink_common_e),
                             float(det.pink_channel_e), float(det.channel_offset_e))
-    corr = RefCorrection(noise, white, det.reference_pixels, det.refpix_half_rows) \
+    corr = RefCorrection(noise, white, det.reference_pixels, det.refpix_half_rows,
+                         white_key) \
         if det.refpix_correction else None
     return ExposureReadout(noise, corr, int(det.reference_pixels), float(slope_per_frame))
 

@@ -36,6 +36,7 @@ independent and their spectra add to S(f) below that frequency (checked in the t
 from __future__ import annotations
 
 import math
+from collections import OrderedDict
 from functools import lru_cache
 
 import numpy as np
@@ -116,9 +117,10 @@ def _chunk_shape(layout: ReadoutLayout, a: float) -> tuple:
     return n, gain, np.sin(s), np.cos(s)
 
 
-#: High-frequency chunks made so far in this process, (layout, a, seed, names, j) -> values:
-#: the reference-pixel correction asks again for the rows a window has just drawn.
-_CHUNKS: dict = {}
+#: High-frequency chunks made so far in this process, (layout, a, seed, names, j) -> values,
+#: least recently used first: the reference-pixel correction asks again for the rows a window
+#: has just drawn.
+_CHUNKS: OrderedDict = OrderedDict()
 _CHUNKS_KEPT = 4096
 
 
@@ -129,7 +131,11 @@ def _chunks(layout: ReadoutLayout, a: float, seed: int, names: tuple, j0: int,
     ones not made yet are transformed together (one batched inverse FFT, the same numbers as
     one transform each: pocketfft transforms every row alike)."""
     keys = [(layout, a, seed, names, j) for j in range(j0, j1)]
-    got = {k: _CHUNKS[k] for k in keys if k in _CHUNKS}
+    got = {}
+    for k in keys:
+        if k in _CHUNKS:
+            got[k] = _CHUNKS[k]
+            _CHUNKS.move_to_end(k)
     todo = [k for k in keys if k not in got]
     if todo:
         n, gain, up, down = _chunk_shape(layout, a)
@@ -144,9 +150,9 @@ def _chunks(layout: ReadoutLayout, a: float, seed: int, names: tuple, j0: int,
         x[:, -m:] *= down
         x.setflags(write=False)
         got.update(zip(todo, x))
-        if len(_CHUNKS) + len(todo) > _CHUNKS_KEPT:
-            _CHUNKS.clear()
         _CHUNKS.update(zip(todo, x))
+        while len(_CHUNKS) > _CHUNKS_KEPT:  # the least recently used go first
+            _CHUNKS.popitem(last=False)
     return [got[k] for k in keys]
 
 

@@ -19,11 +19,20 @@ sliding sums, so it is the same for every window of the detector.
 
 from __future__ import annotations
 
-from typing import Callable
+from collections import OrderedDict
+from typing import Callable, Hashable
 
 import numpy as np
 
 __all__ = ["reference_mask", "RefCorrection"]
+
+#: Estimates made so far in this process, per exposure (the correlated noise, the key of its
+#: white noise and the border width): its outputs' offsets and each detector row's mean of
+#: the reference columns, with which rows are known. Every tile of an exposure needs the
+#: offsets and the tiles side by side the same rows: they are read once per process.
+_MADE: OrderedDict = OrderedDict()
+#: Exposures kept (a few hundred bytes per detector row each).
+_MADE_KEPT = 64
 
 
 def reference_mask(shape: tuple, n: int, y0: int = 0, y1: int | None = None, x0: int = 0,
@@ -53,12 +62,27 @@ class RefCorrection:
         Reference border width (pixels).
     half_rows : int
         k: the common mode of a row is the running mean of 2k + 1 rows of reference columns.
+    key : hashable or None
+        Names ``white``'s deviates (the same key: the same numbers), so that corrections of
+        one exposure made for different windows share their estimates (offsets, row means)
+        within the process; None: this object keeps its own.
     """
 
-    def __init__(self, noise, white: Callable, n: int, half_rows: int):
+    def __init__(self, noise, white: Callable, n: int, half_rows: int,
+                 key: Hashable | None = None):
         self.noise, self.white, self.n, self.k = noise, white, int(n), int(half_rows)
         self.layout = noise.layout
-        self._off: dict[int, float] = {}
+        made = None if key is None else _MADE.get((noise, key, self.n))
+        if made is None:
+            ny = self.layout.shape[0]
+            made = ({}, np.zeros(ny), np.zeros(ny, bool))
+            if key is not None:
+                _MADE[(noise, key, self.n)] = made
+                if len(_MADE) > _MADE_KEPT:
+                    _MADE.popitem(last=False)
+        else:
+            _MADE.move_to_end((noise, key, self.n))
+        self._off, self._rows, self._known = made
 
     def _read(self, y0, y1, x0, x1) -> np.ndarray:
         return self.noise.window(y0, y1, x0, x1) + self.white(y0, y1, x0, x1)
@@ -79,9 +103,15 @@ class RefCorrection:
         ny, nx = self.layout.shape
         n, k = self.n, self.k
         ya, yb = max(0, y0 - k), min(ny, y1 + k)
-        left = self._read(ya, yb, 0, n) - self.offset(0)
-        right = self._read(ya, yb, nx - n, nx) - self.offset(int(self.layout.channel_of(nx - 1)))
-        per_row = np.concatenate([left, right], axis=1).mean(axis=1)
+        todo = np.flatnonzero(~self._known[ya:yb]) + ya
+        if todo.size:  # each row's mean is its own: rows read for another window are kept
+            ra, rb = int(todo[0]), int(todo[-1]) + 1
+            left = self._read(ra, rb, 0, n) - self.offset(0)
+            right = self._read(ra, rb, nx - n, nx) - \
+                self.offset(int(self.layout.channel_of(nx - 1)))
+            self._rows[ra:rb] = np.concatenate([left, right], axis=1).mean(axis=1)
+            self._known[ra:rb] = True
+        per_row = self._rows[ya:yb]
         pad = np.concatenate([np.zeros(k), per_row, np.zeros(k)])
         cnt = np.concatenate([np.zeros(k), np.ones(per_row.size), np.zeros(k)])
         # row y (index y - ya + k in pad) averages pad[y - ya : y - ya + 2k + 1]
