@@ -490,13 +490,23 @@ class PixelNoise:
 
         from .pixelops import cornish_fisher
 
-        lam = np.asarray(lam, np.float32)
+        return self.poisson_scaled(lam, 1.0, 1.0)
+
+    def poisson_scaled(self, f: np.ndarray, lam_scale: float, out_scale: float) -> np.ndarray:
+        """``poisson(f lam_scale) out_scale`` (float32 products), in one fused pass."""
+        from scipy import special, stats
+
+        from .pixelops import cornish_fisher
+
+        f = np.asarray(f, np.float32)
         z = self._field("counts")
-        out, n_small = cornish_fisher(lam, z, POISSON_EXACT_BELOW)  # one fused pass
+        out, n_small = cornish_fisher(f, z, POISSON_EXACT_BELOW, lam_scale, out_scale)
         if n_small:
+            lam = f * np.float32(lam_scale)
             small = lam < POISSON_EXACT_BELOW
             out[small] = stats.poisson.ppf(special.ndtr(z[small].astype(float)),
-                                           lam[small].astype(float))
+                                           lam[small].astype(float)).astype(np.float32) \
+                * np.float32(out_scale)
         return out
 
     def cosmic_rays(self, det: DetectorConfig, pixel_size_um: float, duration_s: float,
@@ -537,6 +547,11 @@ class _GeneratorNoise:
 
     def poisson(self, lam):
         return self.rng.poisson(lam).astype(np.float32)
+
+    def poisson_scaled(self, f, lam_scale, out_scale):
+        out = self.poisson(f * np.float32(lam_scale))
+        out *= np.float32(out_scale)
+        return out
 
     def cosmic_rays(self, det, pixel_size_um, duration_s, n_intervals):
         return _cosmic_rays(self.shape, det, pixel_size_um, duration_s, n_intervals, self.rng)
@@ -667,7 +682,8 @@ def expose(rate: np.ndarray, sky_rate, dark, det: DetectorConfig, exptime_s: flo
             f"must have the image's shape {rate.shape}")
     check_range("exptime_s", exptime_s, 0, None, lo_open=True)
     check_range("pixel_size_um", pixel_size_um, 0, None, lo_open=True)
-    require(np.all(rate >= 0), "rate", float(rate.min()), "must be >= 0 everywhere")
+    lowest = float(rate.min())  # NaN where any pixel is NaN: refused too
+    require(lowest >= 0, "rate", lowest, "must be >= 0 everywhere")
     if isinstance(rng, PixelNoise):
         require(rng.shape == rate.shape, "rng.shape", rng.shape,
                 f"must be the image's shape {rate.shape}")
@@ -700,20 +716,18 @@ def expose(rate: np.ndarray, sky_rate, dark, det: DetectorConfig, exptime_s: flo
         # one scaled Poisson deviate with the slope's exact mean and variance (module notes)
         d_mean, d_sq = float(d_int.mean()), float((d_int * d_int).mean())
         scale = d_sq / d_mean
-        slope = noise.poisson(f * (duration * d_mean / scale))
-        slope *= np.float32(scale)
+        slope = noise.poisson_scaled(f, duration * d_mean / scale, scale)
     else:
         slope = f.copy()
     dq = dq0.copy()
 
     n_cr = 0
-    jump = np.zeros(rate.shape, bool)
+    jump = None
     when = None
     if det.cosmic_rays and det.cosmic_ray_rate_cm2_s > 0:
         cr_q, when, n_cr = noise.cosmic_rays(det, pixel_size_um, duration, n_int)
-        cr_q = cr_q.astype(np.float32)
-        if alpha > 0:
-            cr_q = pixelops.ipc(cr_q, alpha)
+        # float32 from here on (pixelops.ipc rounds a float64 image pixel by pixel)
+        cr_q = pixelops.ipc(cr_q, alpha) if alpha > 0 else cr_q.astype(np.float32)
         # per pixel (simfield.pixelops.jumps): an IPC-spread deposit arrives with its
         # neighbour's event; a deposit above jump_threshold_sigma x the noise of a group
         # difference, sqrt(2 sig_f2 / m + f t_g), is detected, and hit neighbours of a
@@ -736,6 +750,8 @@ def expose(rate: np.ndarray, sky_rate, dark, det: DetectorConfig, exptime_s: flo
 
     # group k is usable while the charge at its last read, f (k + 1) t_g, is below full well
     sat = f * (n * tg) >= det.full_well_e if det.saturation else np.zeros(rate.shape, bool)
+    if jump is None:
+        jump = np.zeros(rate.shape, bool)
     idx = pixelops.either(sat, jump)  # np.nonzero(sat | jump) in one fused pass
     special = idx[0].size > 0
     if special:
@@ -749,9 +765,9 @@ def expose(rate: np.ndarray, sky_rate, dark, det: DetectorConfig, exptime_s: flo
         # per pixel (simfield.pixelops.refit): groups below full well, n_ok; the jump's group
         # kc (spoilt unless the jump falls on its first frame); the longer of the runs before
         # and after it (_best_runs_one_break); its slope variance; sci ~ N(IPC f, that)
-        length = pixelops.refit(idx, sat, jump, when, f, pixelops.ipc(f, alpha) if alpha > 0
-                                else f, z_fit, n, m, tg, det.full_well_e, table_a, table_b,
-                                sig_f2, ipc_var, det.poisson, slope, dq,
+        length = pixelops.refit(idx, sat, jump, when, f, alpha, z_fit, n, m, tg,
+                                det.full_well_e, table_a, table_b, sig_f2, ipc_var,
+                                det.poisson, slope, dq,
                                 (DQ_SATURATED, DQ_COSMIC_RAY, DQ_NO_SLOPE))
 
     pois = ipc_var if det.poisson else 0.0
@@ -763,11 +779,10 @@ def expose(rate: np.ndarray, sky_rate, dark, det: DetectorConfig, exptime_s: flo
     # sci = (slope - dark_cal) / cal in place; var and var_sky = (pb f + base + ferr2
     # signal^2) / cal^2 at the expected rate and at the sky (one fused pass)
     sci = slope
-    var, var_sky = pixelops.calibrate(sci, dark_cal, cal, f, f_sky, rate, resp, sky, base,
-                                      pb, ferr2)
+    var, var_sky, artefact = pixelops.calibrate(sci, dark_cal, cal, f, f_sky, rate, resp, sky,
+                                                base, pb, ferr2, bias if n_cr else None)
     if special:
         pixelops.refit_variance(idx, length, f, cal, rate, resp, sky, var_dcal, table_a,
                                 table_b, sig_f2, pois, ferr2, sci, var)
-    artefact = bias * (np.float32(1.0) / cal) if n_cr else None
     return Exposure(sci=sci, var=var, var_sky=var_sky, dq=dq, exptime=float(exptime_s),
                     sky=float(np.mean(sky)), n_cr=int(n_cr), artefact=artefact)

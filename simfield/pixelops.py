@@ -22,52 +22,80 @@ _jit = numba.njit(cache=True, nogil=True)
 
 
 @_jit
+def _ipc_at(img, y, x, centre, alpha):
+    # one pixel of the IPC convolution, in float32 (float64 images are rounded pixel by pixel)
+    ny, nx = img.shape
+    v = centre * np.float32(img[y, x])
+    if y > 0:
+        v += alpha * np.float32(img[y - 1, x])
+    if y < ny - 1:
+        v += alpha * np.float32(img[y + 1, x])
+    if x > 0:
+        v += alpha * np.float32(img[y, x - 1])
+    if x < nx - 1:
+        v += alpha * np.float32(img[y, x + 1])
+    return v
+
+
+@_jit
 def _ipc(img, centre, alpha, out):
+    # _ipc_at over the image, written out so that the loop stays tight
     ny, nx = img.shape
     for y in range(ny):
         for x in range(nx):
-            v = centre * img[y, x]
+            v = centre * np.float32(img[y, x])
             if y > 0:
-                v += alpha * img[y - 1, x]
+                v += alpha * np.float32(img[y - 1, x])
             if y < ny - 1:
-                v += alpha * img[y + 1, x]
+                v += alpha * np.float32(img[y + 1, x])
             if x > 0:
-                v += alpha * img[y, x - 1]
+                v += alpha * np.float32(img[y, x - 1])
             if x < nx - 1:
-                v += alpha * img[y, x + 1]
+                v += alpha * np.float32(img[y, x + 1])
             out[y, x] = v
     return out
 
 
 def ipc(img: np.ndarray, alpha: float) -> np.ndarray:
-    """:func:`simfield.detector.apply_ipc` of a float32 image in one pass (a new array)."""
-    img = np.asarray(img, np.float32)
+    """:func:`simfield.detector.apply_ipc` of an image in float32, in one pass (a new float32
+    array); a float64 image is rounded to float32 pixel by pixel on the way, as
+    ``ipc(img.astype(np.float32))`` without the copy."""
+    img = np.asarray(img)
+    if img.dtype != np.float64:
+        img = np.asarray(img, np.float32)
     return _ipc(img, np.float32(1.0 - 4.0 * alpha), np.float32(alpha),
                 np.empty(img.shape, np.float32))
 
 
 @_jit
-def _cornish_fisher(lam, z, small_below, out):
+def _cornish_fisher(lam, z, small_below, lam_scale, out_scale, scaled, out):
     n_small = 0
     for y in range(lam.shape[0]):
         for x in range(lam.shape[1]):
-            m = np.float64(lam[y, x])
+            m32 = lam[y, x] * lam_scale if scaled else lam[y, x]
+            m = np.float64(m32)
             zz = np.float64(z[y, x])
             v = m + np.sqrt(m) * zz
             v += (zz * zz - 1.0) / 6.0
-            out[y, x] = np.float32(max(v, 0.0))
+            c = np.float32(max(v, 0.0))
+            out[y, x] = c * out_scale if scaled else c
             if m < small_below:
                 n_small += 1
     return n_small
 
 
-def cornish_fisher(lam: np.ndarray, z: np.ndarray, small_below: float):
+def cornish_fisher(lam: np.ndarray, z: np.ndarray, small_below: float, lam_scale=None,
+                   out_scale=None):
     """Poisson counts lam + sqrt(lam) z + (z^2 - 1) / 6, clipped at 0, as float32 (computed
     in float64), and the number of pixels with lam < ``small_below`` (which the caller
-    replaces by exact counts)."""
+    replaces by exact counts). With ``lam_scale`` and ``out_scale``: the mean is ``lam x
+    lam_scale`` and the counts come out times ``out_scale``, both in float32, as
+    ``cornish_fisher(lam * lam_scale, z, small_below)[0] * out_scale`` without the copies."""
     out = np.empty(lam.shape, np.float32)
+    scaled = lam_scale is not None
     n_small = _cornish_fisher(np.asarray(lam, np.float32), np.asarray(z, np.float32),
-                              float(small_below), out)
+                              float(small_below), np.float32(lam_scale if scaled else 1.0),
+                              np.float32(out_scale if scaled else 1.0), scaled, out)
     return out, n_small
 
 
@@ -91,11 +119,14 @@ def expected_rates(rate, resp, sky, dark):
 
 
 @_jit
-def _calibrate(slope, dark_cal, cal, f, f_sky, rate, resp, sky, base, pb, ferr2, var, var_sky):
+def _calibrate(slope, dark_cal, cal, f, f_sky, rate, resp, sky, base, pb, ferr2, var, var_sky,
+               bias, has_bias, art):
     one = np.float32(1.0)
     for y in range(slope.shape[0]):
         for x in range(slope.shape[1]):
             inv = one / cal[y, x]
+            if has_bias:
+                art[y, x] = bias[y, x] * inv
             s = slope[y, x] - dark_cal[y, x]
             slope[y, x] = s * inv
             inv2 = inv * inv
@@ -112,21 +143,26 @@ def _calibrate(slope, dark_cal, cal, f, f_sky, rate, resp, sky, base, pb, ferr2,
             var[y, x] = v * inv2
 
 
-def calibrate(slope, dark_cal, cal, f, f_sky, rate, resp, sky, base, pb, ferr2):
+def calibrate(slope, dark_cal, cal, f, f_sky, rate, resp, sky, base, pb, ferr2, bias=None):
     """In place: slope -> (slope - dark_cal) / cal (e-/s); returns (var, var_sky), the noise
     model pb f + base + ferr2 (signal)^2, over cal^2, at the expected rate and at the sky
-    (``signal`` = rate resp + sky resp). Scalars or broadcastable arrays, float32."""
+    (``signal`` = rate resp + sky resp), and ``bias`` (1 / cal) (float32; None without a
+    ``bias``). Scalars or broadcastable arrays, float32."""
     shape = slope.shape
     b = [np.broadcast_to(np.asarray(a, np.float32), shape)
          for a in (dark_cal, cal, f, f_sky, rate, resp, sky, base)]
     var, var_sky = np.empty(shape, np.float32), np.empty(shape, np.float32)
-    _calibrate(slope, *b, np.float32(pb), np.float32(ferr2), var, var_sky)
-    return var, var_sky
+    has = bias is not None
+    art = np.empty(shape, np.float32) if has else np.empty((1, 1), np.float32)
+    _calibrate(slope, *b, np.float32(pb), np.float32(ferr2), var, var_sky,
+               np.asarray(bias, np.float32) if has else art, has, art)
+    return var, var_sky, (art if has else None)
 
 
 @_jit
-def _refit(iy, ix, sat, jump, when, has_when, f, f_src, z, n, m, tg, full_well, table_a,
-           table_b, sig_f2, ipc_var, poisson, slope, dq, dq_sat, dq_cr, dq_none, length):
+def _refit(iy, ix, sat, jump, when, has_when, f, centre, alpha, z, n, m, tg, full_well,
+           table_a, table_b, sig_f2, ipc_var, poisson, slope, dq, dq_sat, dq_cr, dq_none,
+           length):
     for k in range(iy.size):
         y, x = iy[k], ix[k]
         n_ok = n
@@ -146,23 +182,26 @@ def _refit(iy, ix, sat, jump, when, has_when, f, f_src, z, n, m, tg, full_well, 
         length[k] = ln
         var = table_a[ln] * sig_f2 + (table_b[ln] * np.float64(f[y, x]) * ipc_var
                                        if poisson else 0.0)
-        new = np.float64(f_src[y, x]) + np.sqrt(var) * z[k]
+        f_src = _ipc_at(f, y, x, centre, alpha) if alpha > 0 else f[y, x]
+        new = np.float64(f_src) + np.sqrt(var) * z[k]
         slope[y, x] = np.float32(0.0 if ln < 2 else new)
         flags = (dq_sat if n_ok < n else 0) | (dq_cr if jmp else 0) | (dq_none if ln < 2 else 0)
         dq[y, x] |= flags
 
 
-def refit(idx, sat, jump, when, f, f_src, z, n, m, tg, full_well, table_a, table_b, sig_f2,
+def refit(idx, sat, jump, when, f, alpha, z, n, m, tg, full_well, table_a, table_b, sig_f2,
           ipc_var, poisson, slope, dq, dq_bits):
     """Refit the slopes of pixels ``idx`` (saturated or hit by a detected jump) to their
     longest clean run of groups, in place in ``slope`` (e-/s, N(f_src, var of the run) from
-    the pixel's deviate ``z``) and ``dq`` (``dq_bits`` = saturated, cosmic ray, no slope);
-    returns the run lengths. The loop of :func:`simfield.detector.expose`, per pixel."""
+    the pixel's deviate ``z``, f_src = ``ipc(f, alpha)`` at the pixel, or f where alpha = 0)
+    and ``dq`` (``dq_bits`` = saturated, cosmic ray, no slope); returns the run lengths. The
+    loop of :func:`simfield.detector.expose`, per pixel."""
     iy, ix = (np.ascontiguousarray(a, np.int64) for a in idx)
     length = np.empty(iy.size, np.int64)
     has_when = when is not None
     when = when if has_when else np.zeros((1, 1), np.int32)
-    _refit(iy, ix, sat, jump, when, has_when, f, f_src, np.asarray(z, np.float64), int(n),
+    _refit(iy, ix, sat, jump, when, has_when, np.asarray(f, np.float32),
+           np.float32(1.0 - 4.0 * alpha), np.float32(alpha), np.asarray(z, np.float64), int(n),
            int(m), float(tg), float(full_well), table_a, table_b, float(sig_f2),
            float(ipc_var), bool(poisson), slope, dq, *(int(b) for b in dq_bits), length)
     return length
