@@ -473,10 +473,6 @@ class PixelNoise:
         """Standard normal deviates (float32) of the window, one per pixel."""
         return self._field(slot)
 
-    def normal_at(self, slot: str, idx) -> np.ndarray:
-        """The deviates of :meth:`normal` at ``idx`` (a numpy index of the window)."""
-        return self._field(slot)[idx].astype(float)
-
     def poisson(self, lam: np.ndarray) -> np.ndarray:
         """Poisson counts of mean ``lam`` (window-shaped), from the pixels' own deviates.
 
@@ -541,9 +537,6 @@ class _GeneratorNoise:
 
     def normal(self, slot):
         return self.rng.standard_normal(self.shape, dtype=np.float32)
-
-    def normal_at(self, slot, idx):
-        return self.rng.standard_normal(np.shape(idx[0]))
 
     def poisson(self, lam):
         return self.rng.poisson(lam).astype(np.float32)
@@ -749,26 +742,21 @@ def expose(rate: np.ndarray, sky_rate, dark, det: DetectorConfig, exptime_s: flo
             slope += np.float32(math.sqrt(a_full * sig_f2)) * z_read
 
     # group k is usable while the charge at its last read, f (k + 1) t_g, is below full well
-    sat = f * (n * tg) >= det.full_well_e if det.saturation else np.zeros(rate.shape, bool)
-    if jump is None:
-        jump = np.zeros(rate.shape, bool)
-    idx = pixelops.either(sat, jump)  # np.nonzero(sat | jump) in one fused pass
-    special = idx[0].size > 0
-    if special:
-        table_a = np.zeros(n + 1)
-        table_b = np.zeros(n + 1)
-        for cnt in range(2, n + 1):
-            table_a[cnt], table_b[cnt] = slope_variance_factors(n, m, tf, cnt)
-        # the refitted slope replaces the pixel's whole slope: its read-noise deviate, used
-        # nowhere else, is free for it (a window-independent deviate of the pixel)
-        z_fit = z_read[idx] if z_read is not None else noise.normal_at("refit", idx)
-        # per pixel (simfield.pixelops.refit): groups below full well, n_ok; the jump's group
-        # kc (spoilt unless the jump falls on its first frame); the longer of the runs before
-        # and after it (_best_runs_one_break); its slope variance; sci ~ N(IPC f, that)
-        length = pixelops.refit(idx, sat, jump, when, f, alpha, z_fit, n, m, tg,
-                                det.full_well_e, table_a, table_b, sig_f2, ipc_var,
-                                det.poisson, slope, dq,
-                                (DQ_SATURATED, DQ_COSMIC_RAY, DQ_NO_SLOPE))
+    table_a = np.zeros(n + 1)
+    table_b = np.zeros(n + 1)
+    for cnt in range(2, n + 1):
+        table_a[cnt], table_b[cnt] = slope_variance_factors(n, m, tf, cnt)
+    # the refitted slope replaces the pixel's whole slope: its read-noise deviate, used
+    # nowhere else, is free for it (a window-independent deviate of the pixel)
+    z_fit = z_read if z_read is not None else noise.normal("refit")
+    # per pixel (simfield.pixelops.refit, one scan): saturated where f n t_g >= full well,
+    # groups below it n_ok; the jump's group kc (spoilt unless the jump falls on its first
+    # frame); the longer of the runs before and after it (_best_runs_one_break); its slope
+    # variance; sci ~ N(IPC f, that)
+    n_refit, length = pixelops.refit(f, n * tg, det.full_well_e, det.saturation, jump, when,
+                                     alpha, z_fit, n, m, tg, table_a, table_b, sig_f2,
+                                     ipc_var, det.poisson, slope, dq,
+                                     (DQ_SATURATED, DQ_COSMIC_RAY, DQ_NO_SLOPE))
 
     pois = ipc_var if det.poisson else 0.0
     # the calibration flat's error leaves -epsilon x signal, epsilon ~ N(0, flat_error_rms):
@@ -779,10 +767,10 @@ def expose(rate: np.ndarray, sky_rate, dark, det: DetectorConfig, exptime_s: flo
     # sci = (slope - dark_cal) / cal in place; var and var_sky = (pb f + base + ferr2
     # signal^2) / cal^2 at the expected rate and at the sky (one fused pass)
     sci = slope
-    var, var_sky, artefact = pixelops.calibrate(sci, dark_cal, cal, f, f_sky, rate, resp, sky,
-                                                base, pb, ferr2, bias if n_cr else None)
-    if special:
-        pixelops.refit_variance(idx, length, f, cal, rate, resp, sky, var_dcal, table_a,
-                                table_b, sig_f2, pois, ferr2, sci, var)
+    # (refitted pixels: sci = 0 without a slope, and the variance of their run, same pass)
+    var, var_sky, artefact = pixelops.calibrate(
+        sci, dark_cal, cal, f, f_sky, rate, resp, sky, base, pb, ferr2,
+        bias if n_cr else None,
+        (length, var_dcal, table_a, table_b, sig_f2, pois) if n_refit else None)
     return Exposure(sci=sci, var=var, var_sky=var_sky, dq=dq, exptime=float(exptime_s),
                     sky=float(np.mean(sky)), n_cr=int(n_cr), artefact=artefact)

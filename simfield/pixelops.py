@@ -120,7 +120,8 @@ def expected_rates(rate, resp, sky, dark):
 
 @_jit
 def _calibrate(slope, dark_cal, cal, f, f_sky, rate, resp, sky, base, pb, ferr2, var, var_sky,
-               bias, has_bias, art):
+               bias, has_bias, art, length, has_refit, dcal, table_a, table_b, sig_f2,
+               fb_pois):
     one = np.float32(1.0)
     for y in range(slope.shape[0]):
         for x in range(slope.shape[1]):
@@ -141,102 +142,107 @@ def _calibrate(slope, dark_cal, cal, f, f_sky, rate, resp, sky, base, pb, ferr2,
             v += base[y, x]
             v += ferr2 * s_all * s_all
             var[y, x] = v * inv2
+            if has_refit and length[y, x] >= 0:
+                # a refitted pixel: no slope (sci = 0) below two groups, and the variance of
+                # its run, (a sig_f2 + b pois f + dcal) / cal^2 + ferr2 (signal / cal)^2
+                ln = length[y, x]
+                if ln < 2:
+                    slope[y, x] = np.float32(0.0)
+                sig2 = s_all * s_all * inv2
+                vr = (table_a[ln] * sig_f2 + table_b[ln] * fb_pois * np.float64(f[y, x])
+                      + np.float64(dcal[y, x])) * np.float64(inv2) + np.float64(ferr2 * sig2)
+                var[y, x] = np.float32(vr)
 
 
-def calibrate(slope, dark_cal, cal, f, f_sky, rate, resp, sky, base, pb, ferr2, bias=None):
+def calibrate(slope, dark_cal, cal, f, f_sky, rate, resp, sky, base, pb, ferr2, bias=None,
+              refit=None):
     """In place: slope -> (slope - dark_cal) / cal (e-/s); returns (var, var_sky), the noise
     model pb f + base + ferr2 (signal)^2, over cal^2, at the expected rate and at the sky
     (``signal`` = rate resp + sky resp), and ``bias`` (1 / cal) (float32; None without a
-    ``bias``). Scalars or broadcastable arrays, float32."""
+    ``bias``). Scalars or broadcastable arrays, float32.
+
+    ``refit`` = (run-length image of :func:`refit`, variance of the calibration dark dcal,
+    table_a, table_b, sig_f2, pois) or None: refitted pixels get sci = 0 below two groups and
+    the variance of their run, (a sig_f2 + b pois f + dcal) / cal^2 + ferr2 (signal / cal)^2
+    ((e-/s)^2), a = table_a[run], b = table_b[run]."""
     shape = slope.shape
     b = [np.broadcast_to(np.asarray(a, np.float32), shape)
          for a in (dark_cal, cal, f, f_sky, rate, resp, sky, base)]
     var, var_sky = np.empty(shape, np.float32), np.empty(shape, np.float32)
     has = bias is not None
     art = np.empty(shape, np.float32) if has else np.empty((1, 1), np.float32)
+    has_refit = refit is not None
+    if has_refit:
+        length, dcal, table_a, table_b, sig_f2, pois = refit
+        dcal = np.broadcast_to(np.asarray(dcal, np.float32), shape)
+    else:
+        length, dcal = np.zeros((1, 1), np.int16), np.zeros((1, 1), np.float32)
+        table_a = table_b = np.zeros(1)
+        sig_f2 = pois = 0.0
     _calibrate(slope, *b, np.float32(pb), np.float32(ferr2), var, var_sky,
-               np.asarray(bias, np.float32) if has else art, has, art)
+               np.asarray(bias, np.float32) if has else art, has, art, length, has_refit,
+               dcal, table_a, table_b, float(sig_f2), float(pois))
     return var, var_sky, (art if has else None)
 
 
 @_jit
-def _refit(iy, ix, sat, jump, when, has_when, f, centre, alpha, z, n, m, tg, full_well,
-           table_a, table_b, sig_f2, ipc_var, poisson, slope, dq, dq_sat, dq_cr, dq_none,
-           length):
-    for k in range(iy.size):
-        y, x = iy[k], ix[k]
-        n_ok = n
-        if sat[y, x]:
-            q = min(np.float32(full_well) / (f[y, x] * np.float32(tg)), np.float32(n + 1))
-            n_ok = min(max(int(np.ceil(q)) - 1, 0), n)
-        kc, skip = n, 0
-        jmp = has_when and jump[y, x]
-        if jmp:
-            w = when[y, x]
-            kc = w // m
-            skip = 1 if w % m != 0 else 0
-        # the longest clean run: before the jump, [0, min(kc, n_ok)), or after it
-        la = min(kc, n_ok)
-        lb = max(n_ok - (kc + skip), 0)
-        ln = lb if lb > la else la
-        length[k] = ln
-        var = table_a[ln] * sig_f2 + (table_b[ln] * np.float64(f[y, x]) * ipc_var
-                                       if poisson else 0.0)
-        f_src = _ipc_at(f, y, x, centre, alpha) if alpha > 0 else f[y, x]
-        new = np.float64(f_src) + np.sqrt(var) * z[k]
-        slope[y, x] = np.float32(0.0 if ln < 2 else new)
-        flags = (dq_sat if n_ok < n else 0) | (dq_cr if jmp else 0) | (dq_none if ln < 2 else 0)
-        dq[y, x] |= flags
+def _refit_scan(sat_c, fw, has_sat, jump, has_when, when, f, centre, alpha, z, n, m, tg,
+                full_well, table_a, table_b, sig_f2, ipc_var, poisson, slope, dq, dq_sat,
+                dq_cr, dq_none, length):
+    count = 0
+    for y in range(f.shape[0]):
+        for x in range(f.shape[1]):
+            sat = has_sat and f[y, x] * sat_c >= fw
+            jmp = has_when and jump[y, x]
+            if not (sat or jmp):
+                length[y, x] = -1
+                continue
+            count += 1
+            n_ok = n
+            if sat:
+                q = min(np.float32(full_well) / (f[y, x] * np.float32(tg)), np.float32(n + 1))
+                n_ok = min(max(int(np.ceil(q)) - 1, 0), n)
+            kc, skip = n, 0
+            if jmp:
+                w = when[y, x]
+                kc = w // m
+                skip = 1 if w % m != 0 else 0
+            # the longest clean run: before the jump, [0, min(kc, n_ok)), or after it
+            la = min(kc, n_ok)
+            lb = max(n_ok - (kc + skip), 0)
+            ln = lb if lb > la else la
+            length[y, x] = ln
+            var = table_a[ln] * sig_f2 + (table_b[ln] * np.float64(f[y, x]) * ipc_var
+                                           if poisson else 0.0)
+            f_src = _ipc_at(f, y, x, centre, alpha) if alpha > 0 else f[y, x]
+            new = np.float64(f_src) + np.sqrt(var) * np.float64(z[y, x])
+            slope[y, x] = np.float32(0.0 if ln < 2 else new)
+            flags = (dq_sat if n_ok < n else 0) | (dq_cr if jmp else 0) | \
+                (dq_none if ln < 2 else 0)
+            dq[y, x] |= flags
+    return count
 
 
-def refit(idx, sat, jump, when, f, alpha, z, n, m, tg, full_well, table_a, table_b, sig_f2,
-          ipc_var, poisson, slope, dq, dq_bits):
-    """Refit the slopes of pixels ``idx`` (saturated or hit by a detected jump) to their
-    longest clean run of groups, in place in ``slope`` (e-/s, N(f_src, var of the run) from
-    the pixel's deviate ``z``, f_src = ``ipc(f, alpha)`` at the pixel, or f where alpha = 0)
-    and ``dq`` (``dq_bits`` = saturated, cosmic ray, no slope); returns the run lengths. The
-    loop of :func:`simfield.detector.expose`, per pixel."""
-    iy, ix = (np.ascontiguousarray(a, np.int64) for a in idx)
-    length = np.empty(iy.size, np.int64)
-    has_when = when is not None
-    when = when if has_when else np.zeros((1, 1), np.int32)
-    _refit(iy, ix, sat, jump, when, has_when, np.asarray(f, np.float32),
-           np.float32(1.0 - 4.0 * alpha), np.float32(alpha), np.asarray(z, np.float64), int(n),
-           int(m), float(tg), float(full_well), table_a, table_b, float(sig_f2),
-           float(ipc_var), bool(poisson), slope, dq, *(int(b) for b in dq_bits), length)
-    return length
-
-
-@_jit
-def _refit_variance(iy, ix, length, f, cal, rate, resp, sky, dcal, table_a, table_b, sig_f2,
-                    fb_pois, ferr2, sci, var):
-    one = np.float32(1.0)
-    for k in range(iy.size):
-        y, x = iy[k], ix[k]
-        ln = length[k]
-        if ln < 2:
-            sci[y, x] = np.float32(0.0)
-        inv = one / cal[y, x]
-        inv2 = inv * inv
-        s_all = rate[y, x] * resp[y, x]
-        s_all += sky[y, x] * resp[y, x]
-        sig2 = s_all * s_all * inv2
-        v = (table_a[ln] * sig_f2 + table_b[ln] * fb_pois * np.float64(f[y, x])
-             + np.float64(dcal[y, x])) * np.float64(inv2) + np.float64(ferr2 * sig2)
-        var[y, x] = np.float32(v)
-
-
-def refit_variance(idx, length, f, cal, rate, resp, sky, dcal, table_a, table_b, sig_f2, pois,
-                   ferr2, sci, var):
-    """After :func:`calibrate`: refitted pixels without a slope get sci = 0, and every
-    refitted pixel the variance of its run, (a sig_f2 + b pois f + dcal) / cal^2 + ferr2
-    (signal / cal)^2 ((e-/s)^2), in place."""
-    iy, ix = (np.ascontiguousarray(a, np.int64) for a in idx)
-    shape = sci.shape
-    b = [np.broadcast_to(np.asarray(a, np.float32), shape)
-         for a in (f, cal, rate, resp, sky, dcal)]
-    _refit_variance(iy, ix, length, *b, table_a, table_b, float(sig_f2), float(pois),
-                    np.float32(ferr2), sci, var)
+def refit(f, sat_factor, full_well, saturation, jump, when, alpha, z, n, m, tg, table_a,
+          table_b, sig_f2, ipc_var, poisson, slope, dq, dq_bits):
+    """Refit, in one scan, the slopes of the pixels that saturate (``f sat_factor >=
+    full_well`` in float32, when ``saturation``) or carry a detected jump (``jump``, None:
+    none) to their longest clean run of groups, in place in ``slope`` (e-/s, N(f_src, var of
+    the run) from the pixel's deviate ``z``, f_src = ``ipc(f, alpha)`` at the pixel, or f
+    where alpha = 0) and ``dq`` (``dq_bits`` = saturated, cosmic ray, no slope). Returns
+    (number refitted, run-length image: -1 where not refitted), the latter for
+    :func:`calibrate`. The loop of :func:`simfield.detector.expose`, per pixel."""
+    f = np.asarray(f, np.float32)
+    length = np.empty(f.shape, np.int16)
+    has_when = when is not None and jump is not None
+    dummy_b, dummy_i = np.zeros((1, 1), np.bool_), np.zeros((1, 1), np.int32)
+    count = _refit_scan(np.float32(sat_factor), np.float32(full_well), bool(saturation),
+                        jump if has_when else dummy_b, has_when,
+                        when if has_when else dummy_i, f, np.float32(1.0 - 4.0 * alpha),
+                        np.float32(alpha), np.asarray(z, np.float32), int(n), int(m), float(tg),
+                        float(full_well), table_a, table_b, float(sig_f2), float(ipc_var),
+                        bool(poisson), slope, dq, *(int(b) for b in dq_bits), length)
+    return count, length
 
 
 @_jit
@@ -625,29 +631,3 @@ def add_readout(sci, var, var_sky, res, v: float, y0: int, x0: int, n_ref: int, 
     _add_readout(*b, res, np.float32(v), int(y0), int(x0), int(n_ref), int(det_shape[0]),
                  int(det_shape[1]), *out)
     return tuple(out)
-
-
-# --------------------------------------------------------------------------- refit pixels
-@_jit
-def _either(a, b, rows, cols):
-    # with rows.size == 0: count only; else fill the first n entries
-    n = 0
-    for y in range(a.shape[0]):
-        for x in range(a.shape[1]):
-            if a[y, x] or b[y, x]:
-                if rows.size:
-                    rows[n], cols[n] = y, x
-                n += 1
-    return n
-
-
-def either(a: np.ndarray, b: np.ndarray) -> tuple:
-    """``np.nonzero(a | b)`` of two boolean images of one shape, (rows, columns) in C order,
-    in two passes (count, fill) without the combined image."""
-    a, b = np.ascontiguousarray(a, np.bool_), np.ascontiguousarray(b, np.bool_)
-    none = np.empty(0, np.int64)
-    n = _either(a, b, none, none)
-    rows, cols = np.empty(n, np.int64), np.empty(n, np.int64)
-    if n:
-        _either(a, b, rows, cols)
-    return rows, cols

@@ -99,17 +99,3 @@ def test_above_equals_the_numpy_chain():
     np.testing.assert_array_equal(got_f, f[idx])
     (r, c), v = above(img, -1e9, 1.0, 0.0)  # everything clipped to 0: nothing above
     assert r.size == c.size == v.size == 0
-
-
-def test_either_equals_nonzero_of_the_union():
-    """pixelops.either(a, b) is np.nonzero(a | b): the same rows and columns, in C order, with
-    numpy's index type; none, some and all pixels set."""
-    from simfield import pixelops
-
-    rng = np.random.default_rng(11)
-    for pa, pb in ((0.0, 0.0), (0.01, 0.002), (0.3, 0.5), (1.0, 0.0)):
-        a, b = rng.random((37, 53)) < pa, rng.random((37, 53)) < pb
-        got, ref = pixelops.either(a, b), np.nonzero(a | b)
-        for g, r in zip(got, ref):
-            assert g.dtype == r.dtype
-            assert_array_equal(g, r)
