@@ -86,10 +86,19 @@ def calibration_error(seed: int, y0: int, x0: int, idx: tuple) -> np.ndarray:
     ys, xs = np.asarray(idx[0]) + y0, np.asarray(idx[1]) + x0
     out = np.empty(ys.size)
     by, bx = ys // CAL_BLOCK, xs // CAL_BLOCK
-    for b in set(zip(by.tolist(), bx.tolist())):
-        sel = (by == b[0]) & (bx == b[1])
-        blk = stream(seed, "nonlinearity_cal", *b).standard_normal((CAL_BLOCK, CAL_BLOCK))
-        out[sel] = blk[ys[sel] - b[0] * CAL_BLOCK, xs[sel] - b[1] * CAL_BLOCK]
+    key = by * (int(xs.max()) // CAL_BLOCK + 1) + bx if ys.size else by
+    order = np.argsort(key, kind="stable")
+    cuts = np.flatnonzero(np.diff(key[order])) + 1
+    for sel in np.split(order, cuts):
+        if sel.size == 0:
+            continue
+        b = (int(by[sel[0]]), int(bx[sel[0]]))
+        ry, rx = ys[sel] - b[0] * CAL_BLOCK, xs[sel] - b[1] * CAL_BLOCK
+        # a block's deviates fill it row by row: its first rows, up to the last one asked
+        # for, are the whole block's
+        blk = stream(seed, "nonlinearity_cal", *b).standard_normal((int(ry.max()) + 1,
+                                                                    CAL_BLOCK))
+        out[sel] = blk[ry, rx]
     return out
 
 
