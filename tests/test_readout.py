@@ -305,3 +305,31 @@ def test_fused_residual_equals_the_numpy_chain(corrected):
             assert a.dtype == np.float32
             np.testing.assert_array_equal(a, b)
         np.testing.assert_array_equal(e.sci, sci0)  # the exposure given is left as it was
+
+
+def test_windows_sharing_estimates_get_the_correction_of_a_fresh_one():
+    """Corrections of one exposure made for different windows share its offsets and row means
+    within the process (RefCorrection's key): each window still gets exactly the correction
+    a fresh object computes from the whole reference rows and columns (rows read for an
+    earlier, overlapping window are reused, not read again)."""
+    noise = _noise(offset=10.0, common=2.0, own=1.5)
+
+    def white(y0, y1, x0, x1):  # a pixel's white noise depends on the pixel only
+        yy, xx = np.mgrid[y0:y1, x0:x1]
+        return 8.5 * np.sin(0.37 * yy * 512 + 1.3 * xx)
+
+    reads = []
+
+    def counted(*box):
+        reads.append(box)
+        return white(*box)
+
+    key = ("test", 1)
+    boxes = [(0, 100, 0, 200), (60, 180, 300, 512), (150, 256, 100, 400), (0, 100, 200, 512)]
+    for box in boxes:
+        shared = RefCorrection(noise, counted, 4, 8, key=key).window(*box)
+        fresh = RefCorrection(noise, white, 4, 8).window(*box)
+        np.testing.assert_array_equal(shared, fresh)
+    # each reference row is read once: the last window's rows were all read before
+    rows = sorted(r for y0, y1, x0, x1 in reads if x1 - x0 == 4 for r in range(y0, y1))
+    assert len(rows) == 2 * len(set(rows))  # left and right reference columns, once each
