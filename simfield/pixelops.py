@@ -573,17 +573,30 @@ def _pink_window(grids, c0, width, row_len, step, s_off, y0, x0, per_col, cm, ha
             xb = min(nx, (c + 1) * width - x0)
             g = grids[c - c0]
             odd = c % 2 == 1
+            # the run's first sample, then one sample on (or back, on odd outputs) per column:
+            # its grid point k and remainder r kept by counting, not by division
+            u = x0 + xa - c * width
+            if odd:
+                u = width - 1 - u
+            s = base + u
+            k = s // step
+            r = s - k * step
             for xx in range(xa, xb):
-                u = x0 + xx - c * width
-                if odd:
-                    u = width - 1 - u
-                s = base + u
-                k = s // step
-                w = np.float32(s - k * step) * inv
+                w = np.float32(r) * inv
                 v = g[k] * (one - w) + g[k + 1] * w
                 if has_corr:
                     v = np.float32(np.float64(v) - (per_col[xx] + cmy))
                 out[yy, xx] = spf * v
+                if odd:
+                    r -= 1
+                    if r < 0:
+                        r = step - 1
+                        k -= 1
+                else:
+                    r += 1
+                    if r == step:
+                        r = 0
+                        k += 1
             xa = xb
 
 
