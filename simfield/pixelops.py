@@ -299,15 +299,24 @@ def _jumps(cr_q, when_raw, spread, f, c0, tg, thr, d_int, when, hit, jump, bias)
             h = cr_q[y, x] > 0 and w >= 0
             hit[y, x] = h
             jump[y, x] = h and cr_q[y, x] > thr * np.sqrt(c0 + f[y, x] * tg)
-    for y in range(ny):
+    # the 3 x 3 dilation of jump, as the row-wise dilation (three columns) of rows y - 1, y
+    # and y + 1, kept in three row buffers
+    rows = np.zeros((3, nx), np.bool_)
+    for y in range(-1, ny):
+        if y + 1 < ny:  # the row-wise dilation of row y + 1 into its buffer
+            r = rows[(y + 1) % 3]
+            for x in range(nx):
+                r[x] = jump[y + 1, x] or (x > 0 and jump[y + 1, x - 1]) or \
+                    (x < nx - 1 and jump[y + 1, x + 1])
+        if y < 0:
+            continue
+        above, here = rows[(y - 1) % 3], rows[y % 3]
+        below = rows[(y + 1) % 3]
         for x in range(nx):
             if not hit[y, x]:
                 bias[y, x] = np.float32(0.0)
                 continue
-            j = False
-            for yy in range(max(y - 1, 0), min(y + 2, ny)):
-                for xx in range(max(x - 1, 0), min(x + 2, nx)):
-                    j = j or jump[yy, xx]
+            j = here[x] or (y > 0 and above[x]) or (y < ny - 1 and below[x])
             hit[y, x] = j  # hit now holds the refitted pixels (jump or next to one)
             bias[y, x] = np.float32(0.0) if j else np.float32(np.float64(cr_q[y, x])
                                                                 * d_int[when[y, x]])
