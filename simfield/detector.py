@@ -218,7 +218,7 @@ FIXED_BLOCK = 256
 
 
 def fixed_pattern_window(det: DetectorConfig, seed: int, y0: int, y1: int, x0: int,
-                         x1: int) -> FixedPattern:
+                         x1: int, blocks: dict | None = None) -> FixedPattern:
     """Rows ``y0:y1`` and columns ``x0:x1`` of a detector's fixed pattern.
 
     The detector is cut into ``FIXED_BLOCK`` x ``FIXED_BLOCK`` pixel blocks, each made by
@@ -233,6 +233,10 @@ def fixed_pattern_window(det: DetectorConfig, seed: int, y0: int, y1: int, x0: i
         Scenario seed.
     y0, y1, x0, x1 : int (detector pixels, 0-based, end exclusive)
         Window; must satisfy 0 <= y0 < y1 and 0 <= x0 < x1.
+    blocks : dict, optional
+        Blocks made so far, (block row, block column) -> pattern, shared by the calls for
+        windows of one detector (the dithered windows of a tile cover nearly the same
+        blocks); filled here. The caller drops it when done.
     """
     from .random import stream
 
@@ -245,7 +249,11 @@ def fixed_pattern_window(det: DetectorConfig, seed: int, y0: int, y1: int, x0: i
               ("hot_dark", np.float32), ("dead", bool), ("dark_z", np.float32))}
     for by in range(y0 // b, (y1 - 1) // b + 1):
         for bx in range(x0 // b, (x1 - 1) // b + 1):
-            blk = make_fixed_pattern((b, b), det, stream(seed, "detector_fixed", by, bx))
+            blk = None if blocks is None else blocks.get((by, bx))
+            if blk is None:
+                blk = make_fixed_pattern((b, b), det, stream(seed, "detector_fixed", by, bx))
+                if blocks is not None:
+                    blocks[(by, bx)] = blk
             ys = slice(max(y0, by * b), min(y1, (by + 1) * b))
             xs = slice(max(x0, bx * b), min(x1, (bx + 1) * b))
             src = (slice(ys.start - by * b, ys.stop - by * b),

@@ -504,7 +504,10 @@ def _render_tile(ctx: _TileContext, i: int) -> dict:
         stamps = _draw_tile(ctx, acc_box, acc_grid, _grow(tile.scene, hw, sgrid.shape),
                             bright_any, _grow(tile.scene, hw, None))
     ids = np.asarray(ctx.sources["id"])
-    fixed = [fixed_pattern_window(sc.detector, sc.seed, *w) for w in tile.exposures]
+    made: dict = {}  # the dithered windows share most of their detector blocks
+    fixed = [fixed_pattern_window(sc.detector, sc.seed, *w, blocks=made)
+             for w in tile.exposures]
+    del made
     sy0, sy1, sx0, sx1 = tile.scene
     my0, my1, mx0, mx1 = tile.mosaic
     msec = (slice(my0, my1), slice(mx0, mx1))

@@ -281,6 +281,15 @@ def test_fixed_pattern_window_does_not_depend_on_the_window():
         assert_array_equal(getattr(small, name), getattr(big, name)[cut])
     other = dt.fixed_pattern_window(det, 8, 250, 530, 300, 310)
     assert not np.array_equal(other.flat, small.flat)
+    # windows sharing the blocks made for earlier windows: the same values, blocks made once
+    made = {}
+    first = dt.fixed_pattern_window(det, 7, 100, 700, 50, 600, blocks=made)
+    n_blocks = len(made)
+    again = dt.fixed_pattern_window(det, 7, 250, 530, 300, 310, blocks=made)
+    assert len(made) == n_blocks == 3 * 3
+    for name in ("flat", "flat_cal", "hot", "hot_dark", "dead", "dark_z"):
+        assert_array_equal(getattr(first, name), getattr(big, name))
+        assert_array_equal(getattr(again, name), getattr(small, name))
     with pytest.raises(ConfigError, match="window"):
         dt.fixed_pattern_window(det, 7, 10, 10, 0, 5)
 
