@@ -490,22 +490,16 @@ class PixelNoise:
         the Poisson mean, its skewness to O(lam^-1), variance lam + 1/18 and is continuous in
         lam, so the same pixel gets the same count whichever window draws it.
         """
-        from scipy import special, stats
-
-        from .pixelops import cornish_fisher
-
         return self.poisson_scaled(lam, 1.0, 1.0)
 
     def poisson_scaled(self, f: np.ndarray, lam_scale: float, out_scale: float) -> np.ndarray:
         """``poisson(f lam_scale) out_scale`` (float32 products), in one fused pass."""
-        from scipy import special, stats
-
-        from .pixelops import cornish_fisher
-
         f = np.asarray(f, np.float32)
         z = self._field("counts")
-        out, n_small = cornish_fisher(f, z, POISSON_EXACT_BELOW, lam_scale, out_scale)
+        out, n_small = pixelops.cornish_fisher(f, z, POISSON_EXACT_BELOW, lam_scale, out_scale)
         if n_small:
+            from scipy import special, stats
+
             lam = f * np.float32(lam_scale)
             small = lam < POISSON_EXACT_BELOW
             out[small] = stats.poisson.ppf(special.ndtr(z[small].astype(float)),

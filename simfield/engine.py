@@ -99,6 +99,21 @@ def _task_key(name: str) -> str:
     return f"simfield-{name}-{uuid.uuid4().hex[:12]}"
 
 
+def _result(future, desc: str, kept: str = ""):
+    """``future.result()``, or one :class:`WorkerLost` line if its worker or the scheduler
+    went away during the ``desc`` (``kept``: what of the run survives, appended)."""
+    from distributed.comm.core import CommClosedError
+    from distributed.scheduler import KilledWorker
+
+    try:
+        return future.result()
+    except (KilledWorker, CommClosedError, OSError, TimeoutError) as exc:
+        raise WorkerLost(
+            f"a Dask worker was lost during the {desc} ({type(exc).__name__}: "
+            f"{str(exc).splitlines()[0] if str(exc) else 'no detail'}); no file was renamed "
+            f"into place: run the same command again{kept}") from None
+
+
 class DaskEngine:
     """A Dask client (and the cluster it started, if any) mapping tiles to tasks."""
 
@@ -127,8 +142,6 @@ class DaskEngine:
         the worker. Raises :class:`WorkerLost` if a worker dies (Dask retries a task on
         another worker first) or the scheduler goes away.
         """
-        from distributed.comm.core import CommClosedError
-        from distributed.scheduler import KilledWorker
         from tqdm import tqdm
 
         items = range(n) if isinstance(n, int) else list(n)
@@ -142,14 +155,7 @@ class DaskEngine:
                    leave=False)
         try:
             for k in range(len(futures)):
-                try:
-                    out = futures[k].result()
-                except (KilledWorker, CommClosedError, OSError, TimeoutError) as exc:
-                    raise WorkerLost(
-                        f"a Dask worker was lost during the {desc} ({type(exc).__name__}: "
-                        f"{str(exc).splitlines()[0] if str(exc) else 'no detail'}); no file "
-                        f"was renamed into place: run the same command again (finished "
-                        f"mosaic tiles are kept)") from None
+                out = _result(futures[k], desc, " (finished mosaic tiles are kept)")
                 futures[k] = None
                 bar.update()
                 yield out
@@ -171,16 +177,7 @@ class DaskEngine:
     def wait(self, future, desc: str):
         """The result of a :meth:`submit` task; :class:`WorkerLost` if its worker or the
         scheduler went away."""
-        from distributed.comm.core import CommClosedError
-        from distributed.scheduler import KilledWorker
-
-        try:
-            return future.result()
-        except (KilledWorker, CommClosedError, OSError, TimeoutError) as exc:
-            raise WorkerLost(
-                f"a Dask worker was lost during the {desc} ({type(exc).__name__}: "
-                f"{str(exc).splitlines()[0] if str(exc) else 'no detail'}); no file was "
-                f"renamed into place: run the same command again") from None
+        return _result(future, desc)
 
     def close(self) -> None:
         with contextlib.suppress(Exception):

@@ -14,9 +14,9 @@ from __future__ import annotations
 import numba
 import numpy as np
 
-__all__ = ["ipc", "cornish_fisher", "expected_rates", "calibrate", "refit", "refit_variance",
-           "deposit", "jumps", "nearest_counts", "nearest_weighted_add", "box_sum", "above",
-           "pink_window", "add_readout", "either"]
+__all__ = ["ipc", "cornish_fisher", "expected_rates", "calibrate", "refit", "deposit", "jumps",
+           "nearest_counts", "nearest_weighted_add", "box_sum", "above", "pink_window",
+           "add_readout"]
 
 _jit = numba.njit(cache=True, nogil=True)
 
@@ -39,7 +39,8 @@ def _ipc_at(img, y, x, centre, alpha):
 
 @_jit
 def _ipc(img, centre, alpha, out):
-    # _ipc_at over the image, written out so that the loop stays tight
+    # _ipc_at over the image, written out: calling it per pixel, even inlined (numba
+    # inline="always"), ran 25x slower (7.9 against 0.3 ms on 1272 x 1259), not vectorised
     ny, nx = img.shape
     for y in range(ny):
         for x in range(nx):

@@ -259,6 +259,7 @@ def _check_match_to(sc: Scenario) -> None:
         return
     from .bands import make_bands
     from .optics.psf import cached_band_psf, effective_psf
+    from .photometry import check_match_target
     from .survey import scene_grid
 
     tel = sc.telescope
@@ -268,11 +269,7 @@ def _check_match_to(sc: Scenario) -> None:
                                                   pixel_integrated=False, store=False),
                                   tel.pixel_scale_arcsec).fwhm_arcsec
             for b in make_bands(sc)}
-    broader = [b for b, w in fwhm.items() if w > fwhm[ph.match_to] * 1.001]
-    require(not broader, "photometry.match_to", ph.match_to,
-            f"has a PSF of FWHM {fwhm[ph.match_to]:.4g} arcsec, narrower than that of "
-            f"{', '.join(broader)}: leave it empty (the broadest PSF, "
-            f"{max(fwhm, key=fwhm.get)}) or name the band with the broadest PSF")
+    check_match_target(fwhm, ph.match_to)  # the photometry's own rule
 
 
 def check_cache_dir(key: str, path: str | os.PathLike) -> None:

@@ -9,10 +9,11 @@ native ones take the mosaic's aperture noise factor, the matched ones also the n
 correlation the matching kernel adds (:mod:`.kernels`).
 """
 
-from .catalog import PSFInfo, measure_catalog, measure_run, read_psf, target_band
+from .catalog import (PSFInfo, check_match_target, measure_catalog, measure_run, read_psf,
+                      target_band)
 from .forced import ApertureSums, aperture_sums
 from .kernels import aperture_weights, matched_noise_ratio, matching_kernel, resample_kernel
 
-__all__ = ["measure_run", "measure_catalog", "read_psf", "target_band", "PSFInfo",
-           "aperture_sums", "ApertureSums", "matching_kernel", "resample_kernel",
+__all__ = ["measure_run", "measure_catalog", "read_psf", "target_band", "check_match_target",
+           "PSFInfo", "aperture_sums", "ApertureSums", "matching_kernel", "resample_kernel",
            "aperture_weights", "matched_noise_ratio"]

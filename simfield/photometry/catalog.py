@@ -23,7 +23,8 @@ from .encircled import drop_width, effective_ee
 from .forced import BLOCK_PIXELS, aperture_sums
 from .kernels import matched_noise_ratio, matching_kernel
 
-__all__ = ["PSFInfo", "read_psf", "target_band", "measure_catalog", "measure_run"]
+__all__ = ["PSFInfo", "read_psf", "target_band", "check_match_target", "measure_catalog",
+           "measure_run"]
 
 
 class PSFInfo:
@@ -53,6 +54,17 @@ def read_psf(path) -> PSFInfo:
 def target_band(psfs: dict[str, PSFInfo], match_to: str = "") -> str:
     """``match_to``, or else the band of the broadest PSF (largest FWHM)."""
     return match_to or max(psfs, key=lambda b: psfs[b].fwhm)
+
+
+def check_match_target(fwhm: dict[str, float], match_to: str) -> None:
+    """Refuse (ConfigError on ``photometry.match_to``) a target band whose PSF FWHM (arcsec,
+    ``fwhm`` per band) is narrower than another band's: matching to it would deconvolve."""
+    broader = [b for b, w in fwhm.items() if w > fwhm[match_to] * 1.001]
+    if broader:
+        raise ConfigError("photometry.match_to", match_to,
+                          f"has a PSF of FWHM {fwhm[match_to]:.4g} arcsec, narrower than that "
+                          f"of {', '.join(broader)}: leave it empty (the broadest PSF, "
+                          f"{max(fwhm, key=fwhm.get)}) or name the band with the broadest PSF")
 
 
 def measure_catalog(det: Table, mosaics: dict[str, Path], psfs: dict[str, PSFInfo],
@@ -85,11 +97,7 @@ def measure_catalog(det: Table, mosaics: dict[str, Path], psfs: dict[str, PSFInf
     """
     target = target_band(psfs, match_to)
     tp = psfs[target]
-    broader = [b for b in mosaics if psfs[b].fwhm > tp.fwhm * 1.001]
-    if broader:  # matching to a narrower PSF would deconvolve
-        raise ConfigError("photometry.match_to", match_to,
-                          f"has FWHM {tp.fwhm:.4g} arcsec, narrower than band(s) "
-                          f"{', '.join(broader)}: choose the broadest or leave it empty")
+    check_match_target({b: psfs[b].fwhm for b in {target, *mosaics}}, target)
     out = Table({k: np.asarray(det[k]) for k in ("id", "ra", "dec", "x", "y")})
     out.meta.update(MATCHTO=target, APER_AS=float(radius_arcsec))
     for i, (b, path) in enumerate(mosaics.items(), start=1):

@@ -85,13 +85,12 @@ def calibration_error(seed: int, y0: int, x0: int, idx: tuple) -> np.ndarray:
 
     ys, xs = np.asarray(idx[0]) + y0, np.asarray(idx[1]) + x0
     out = np.empty(ys.size)
+    if ys.size == 0:
+        return out
     by, bx = ys // CAL_BLOCK, xs // CAL_BLOCK
-    key = by * (int(xs.max()) // CAL_BLOCK + 1) + bx if ys.size else by
+    key = by * (int(bx.max()) + 1) + bx  # the pixels grouped by block
     order = np.argsort(key, kind="stable")
-    cuts = np.flatnonzero(np.diff(key[order])) + 1
-    for sel in np.split(order, cuts):
-        if sel.size == 0:
-            continue
+    for sel in np.split(order, np.flatnonzero(np.diff(key[order])) + 1):
         b = (int(by[sel[0]]), int(bx[sel[0]]))
         ry, rx = ys[sel] - b[0] * CAL_BLOCK, xs[sel] - b[1] * CAL_BLOCK
         # a block's deviates fill it row by row: its first rows, up to the last one asked
