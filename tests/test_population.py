@@ -728,6 +728,25 @@ def _median_of_bins(first, width, dens):
     return float(np.interp(0.5, c, first + width * np.arange(len(dens))))
 
 
+def _rest_colour(sed, a, b):
+    """Rest-frame AB colour between ``a`` and ``b`` (nm) of the first template of ``sed``."""
+    return float(-2.5 * np.log10(
+        seds.rest_fnu_shape(a, sed.beta, sed.break_strength, sed.beta_opt)
+        / seds.rest_fnu_shape(b, sed.beta, sed.break_strength, sed.beta_opt))[0])
+
+
+def _mean_template(evolved, m_r):
+    """The mean template (zero deviates) at z = 0.1 with rest 616 nm magnitude ``m_r``:
+    M_UV from M_r = M_UV - 2.5 log10 f(616 nm)/f(150 nm), iterated."""
+    m = m_r
+    for _ in range(20):
+        s = seds.sed_parameters_from_deviates(np.array([0.1]), np.array([m]),
+                                              np.array([evolved]), np.zeros((3, 1)))
+        m = m_r + 2.5 * np.log10(float(seds.rest_fnu_shape(
+            616.0, s.beta, s.break_strength, s.beta_opt)[0]))
+    return s
+
+
 def test_template_optical_colours_against_sdss_are_too_blue():
     """A known shortfall, kept measured: the templates' rest-frame optical colours against the
     SDSS distributions (_SDSS_UR, _SDSS_GR, read). The mean star-forming template at z = 0.1
@@ -744,23 +763,9 @@ def test_template_optical_colours_against_sdss_are_too_blue():
     0.6 um counts meet the published ones:
     test_optical_counts_match_where_near_infrared_counts_fall_short). The bounds fail if the
     templates change, so this record is kept true."""
-    def colour(sed, a, b):
-        return float(-2.5 * np.log10(
-            seds.rest_fnu_shape(a, sed.beta, sed.break_strength, sed.beta_opt)
-            / seds.rest_fnu_shape(b, sed.beta, sed.break_strength, sed.beta_opt))[0])
-
-    def template(evolved, m_r):
-        # M_UV of the mean template with M_r = m_r: M_r = M_UV - 2.5 log10 f(616 nm)/f(150 nm)
-        m = m_r
-        for _ in range(20):
-            s = seds.sed_parameters_from_deviates(np.array([0.1]), np.array([m]),
-                                                  np.array([evolved]), np.zeros((3, 1)))
-            m = m_r + 2.5 * np.log10(float(seds.rest_fnu_shape(
-                616.0, s.beta, s.break_strength, s.beta_opt)[0]))
-        return s
-
     h = 5 * np.log10(0.7)
-    sf, ev = template(False, -17.5 + h), template(True, -21.25 + h)
+    sf, ev = _mean_template(False, -17.5 + h), _mean_template(True, -21.25 + h)
+    colour = _rest_colour
     gap = {
         "sf u-r": _median_of_bins(*_SDSS_UR[-17.5]) - colour(sf, 356.0, 616.0),
         "sf g-r": _median_of_bins(*_SDSS_GR[-17.5]) - colour(sf, 470.0, 616.0),
@@ -769,6 +774,73 @@ def test_template_optical_colours_against_sdss_are_too_blue():
     }
     assert 0.45 < gap["sf u-r"] < 0.8 and 0.05 < gap["sf g-r"] < 0.3, gap
     assert 0.6 < gap["ev u-r"] < 1.0 and 0.25 < gap["ev g-r"] < 0.55, gap
+
+
+def _blue_peak(first, width, dens, p0):
+    """Centre of the bluer of two Gaussians fitted (least squares) to a binned colour
+    distribution: the blue cloud (galaxy colours are bimodal, two Gaussians per luminosity bin:
+    Baldry et al. 2004, ApJ 600, 681 [mem]). ``p0``: (amplitude, centre, sigma) of each."""
+    from scipy.optimize import curve_fit
+
+    def two(x, a1, m1, s1, a2, m2, s2):
+        return a1 * np.exp(-0.5 * ((x - m1) / s1) ** 2) + a2 * np.exp(-0.5 * ((x - m2) / s2) ** 2)
+
+    x = first + width * np.arange(len(dens))
+    p, _ = curve_fit(two, x, np.asarray(dens, float), p0=p0, maxfev=20000)
+    return float(min(p[1], p[4]))
+
+
+def test_sdss_anchored_star_forming_template_breaks_the_k_counts(monkeypatch):
+    """Why the star-forming template keeps its blue rest-optical shape (seds.SF_OPT_OFFSET =
+    0.8, seds.SF_BREAK = 1.25) although it lies below the SDSS colours (test above).
+
+    Anchored instead to the blue cloud of the faint SDSS bin (the blue Gaussian of _SDSS_UR and
+    _SDSS_GR at M_r - 5 log h = -17.5: u - r 1.22, g - r 0.415; the offset and break that put
+    the mean template there, solved here: 1.415 and 1.59), star-forming galaxies are ~0.5 mag
+    brighter at 1.6 um for their UV light. Measured (2026-12-04, the fields of
+    test_number_counts_near_infrared): the 1.6 um counts of Driver et al. 2016 are then met
+    within 30 % in 15 of 16 bins (10 now; AB 20-21 at 0.71-0.72, AB 26-28 rises from
+    0.57-0.71 to 0.65-0.83, AB 27.5-28 stays short at 0.65), and the 0.6 um counts of the
+    same compilation stay within 30 % (0.85-1.29); but the same galaxies' 2.15 um counts
+    exceed those of Weaver et al. 2022 by 29-48 % at AB 23-25.5 (test_number_counts_k_band:
+    within 30 % now), and in the full suite K20's median redshift moved to 0.93 (published
+    0.80, test_k_band_counts_and_redshifts_of_k20). The published 1.6 um and 2.15 um counts
+    cannot both be met through the template's rest-optical shape: which to follow is not a
+    choice the project can make from the published numbers alone."""
+    from scipy.optimize import fsolve
+
+    from simfield.population.counts import population_counts, reference_counts, \
+        reference_counts_k
+
+    ur = _blue_peak(*_SDSS_UR[-17.5], p0=(1.2, 1.2, 0.2, 0.3, 2.0, 0.3))
+    gr = _blue_peak(*_SDSS_GR[-17.5], p0=(3.0, 0.42, 0.1, 1.0, 0.7, 0.08))
+    m_r = -17.5 + 5 * np.log10(0.7)
+
+    def miss(p):
+        monkeypatch.setattr(seds, "SF_OPT_OFFSET", p[0])
+        monkeypatch.setattr(seds, "SF_BREAK", p[1])
+        sf = _mean_template(False, m_r)
+        return [_rest_colour(sf, 356.0, 616.0) - ur, _rest_colour(sf, 470.0, 616.0) - gr]
+
+    offset, brk = fsolve(miss, [1.2, 1.5])
+    assert np.allclose(miss([offset, brk]), 0.0, atol=1e-6)
+    print("blue cloud u-r %.3f g-r %.3f: offset %.3f break %.3f" % (ur, gr, offset, brk))
+    r16, rk = [], None
+    for side, lim, lo, hi, seed in _COUNT_FIELDS:
+        pop = _pop(selection_band="b16", mag_limit=lim, star_density_arcmin2=0.0,
+                   dwarf_density_arcmin2=0.0, placement="uniform")
+        t = make_population(pop, _B16, (-side / 2, side / 2), (-side / 2, side / 2),
+                            np.random.default_rng(seed))
+        mid, n, _ = population_counts(t, "b16", side ** 2, np.arange(lo, hi + 0.01, 0.5))
+        r16.append(n / reference_counts(mid))
+        if lim > 24.0:
+            mk, nk, _ = population_counts(t, "bk", side ** 2, np.arange(23.0, 25.51, 0.5))
+            rk = nk / reference_counts_k(mk)
+    r16 = np.concatenate(r16)
+    print("1.6 um", np.round(r16, 2), "2.15 um", np.round(rk, 2))
+    ok = (r16 > 0.7) & (r16 < 1.3)
+    assert ok.sum() >= 12 and ok[-1] == False, r16  # noqa: E712
+    assert np.sum(rk > 1.3) >= 2, rk
 
 
 def test_k_band_counts_and_redshifts_of_k20():

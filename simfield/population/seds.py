@@ -57,6 +57,8 @@ __all__ = [
     "wave_grid",
     "uv_slope_relation",
     "BETA_SCATTER",
+    "SF_OPT_OFFSET",
+    "SF_BREAK",
     "evolved_probability",
     "sed_parameters_from_deviates",
     "draw_sed_parameters",
@@ -286,6 +288,11 @@ _BETA_195 = np.array([-1.50, -1.70, -1.85, -1.91, -2.00, -2.05, -2.13, -2.30])
 _BETA_SLOPE = np.array([-0.20, -0.20, -0.11, -0.14, -0.20, -0.20, -0.15, -0.15])
 #: Intrinsic scatter of beta at fixed M_UV and z (~0.35, Bouwens et al. 2014 [mem]).
 BETA_SCATTER = 0.35
+#: Star-forming template: rest-optical slope beta_opt = clip(beta + SF_OPT_OFFSET, -2.2, 0.5)
+#: and median break SF_BREAK (common practice; bluer than the SDSS blue cloud at z ~ 0.1, and
+#: why they are kept: tests/test_population.py, test_sdss_anchored_star_forming_template_...)
+SF_OPT_OFFSET = 0.8
+SF_BREAK = 1.25
 
 
 def uv_slope_relation(z, abs_mag_uv):
@@ -368,8 +375,8 @@ def sed_parameters_from_deviates(z, abs_mag_uv, evolved, deviates) -> SEDParamet
     evolved = np.asarray(evolved, dtype=bool)
     g = np.clip(np.asarray(deviates, dtype=float), -4.0, 4.0)
     b_sf = np.clip(uv_slope_relation(z, abs_mag_uv) + BETA_SCATTER * g[0], -3.2, 0.5)
-    bo_sf = np.clip(b_sf + 0.8, -2.2, 0.5) + 0.15 * g[1]
-    br_sf = 10.0 ** (np.log10(1.25) + 0.08 * g[2])
+    bo_sf = np.clip(b_sf + SF_OPT_OFFSET, -2.2, 0.5) + 0.15 * g[1]
+    br_sf = 10.0 ** (np.log10(SF_BREAK) + 0.08 * g[2])
     b_ev = np.clip(1.0 + 0.4 * g[0], 0.0, 2.0)
     bo_ev = -0.7 + 0.2 * g[1]
     br_ev = np.clip(1.9 + 0.2 * g[2], 1.4, 2.6)
