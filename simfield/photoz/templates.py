@@ -94,12 +94,6 @@ def _continuum(wave_rest_nm, beta, break_strength, beta_opt):
                           _col(beta_opt, w.ndim))
 
 
-def _sf_beta_opt(beta):
-    """The population's mean star-forming rest-optical slope at UV slope ``beta``
-    (:func:`simfield.population.seds.sed_parameters_from_deviates`, zero deviates)."""
-    return np.clip(np.asarray(beta, dtype=float) + seds.SF_OPT_OFFSET, -2.2, 0.5)
-
-
 def starforming_family(betas: Sequence[float], breaks: Sequence[float] | None = None) -> Family:
     """Star-forming templates for each UV slope in ``betas`` and each weak break in
     ``breaks`` (default: the population's median break,
@@ -108,7 +102,7 @@ def starforming_family(betas: Sequence[float], breaks: Sequence[float] | None = 
     breaks = (seds.SF_BREAK,) if breaks is None else breaks
     b, k = (a.ravel() for a in np.meshgrid(np.asarray(betas, dtype=float),
                                            np.asarray(breaks, dtype=float), indexing="ij"))
-    beta_opt = _sf_beta_opt(b)
+    beta_opt = seds.sf_beta_opt(b)
 
     def family(wave_rest_nm):
         names = [f"starforming_beta{x:+.2f}_break{y:.2f}" for x, y in zip(b, k)]
@@ -150,7 +144,7 @@ def dusty_family(a_v: Sequence[float], beta: float = -2.2) -> Family:
 
     def family(wave_rest_nm):
         w = np.asarray(wave_rest_nm, dtype=float)
-        base = _continuum(w, [beta], [seds.SF_BREAK], [_sf_beta_opt(beta)])
+        base = _continuum(w, [beta], [seds.SF_BREAK], [seds.sf_beta_opt(beta)])
         names = [f"dusty_av{a:.2f}" for a in a_v]
         return names, base * attenuation_ratio(w[None], _col(a_v, w.ndim), _UV_NM)
 
@@ -166,7 +160,7 @@ def line_family(ew_oiii_hb_nm: Sequence[float], beta: float = -2.2) -> Family:
         w = np.asarray(wave_rest_nm, dtype=float)
         n = ews.size
         cont = _continuum(w, np.full(n, beta), np.full(n, seds.SF_BREAK),
-                          np.full(n, _sf_beta_opt(beta)))
+                          np.full(n, seds.sf_beta_opt(beta)))
         names = [f"lines_ew{e:.0f}nm" for e in ews]
         return names, add_lines(w[None], cont, _col(ews, w.ndim))
 

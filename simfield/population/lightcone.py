@@ -44,6 +44,7 @@ from ..bands import Band
 from ..config import PopulationConfig
 from ..cosmo import default_cosmology
 from ..errors import ConfigError, require
+from . import seds
 from ._photometry import Distances, Photometry
 from ._table import GALAXY_DEFAULTS, POINT_DEFAULTS, galaxy_columns, stack_families
 from .clustering import place_clustered
@@ -56,7 +57,6 @@ from .luminosity import (draw_redshift_magnitude, expected_counts, nir_lf_parame
 from .morphology import Morphology, draw_morphology
 from .restk import (NIR_LF_Z_MAX, QUIESCENT_Z_MAX, abs_mag_k_faint, faint_k_cut,
                     quiescent_fraction, uv_excess_fraction, uv_from_k)
-from . import seds
 from .seds import (BETA_SCATTER, SEDParameters, evolved_probability, rest_fnu_shape,
                    sed_parameters_from_deviates, uv_slope_relation)
 from .stars import draw_stars, star_band_magnitudes
@@ -95,7 +95,7 @@ class _Envelope:
         # star-forming: every beta of the grid with beta_opt and break at their +4 sigma values
         zz = np.repeat(self.z, nb)
         bb = np.tile(_ENVELOPE_BETAS, nz)
-        bo = np.clip(bb + seds.SF_OPT_OFFSET, -2.2, 0.5) + 0.15 * 4.0
+        bo = seds.sf_beta_opt(bb) + 0.15 * 4.0
         br = np.full(zz.size, 10.0 ** (np.log10(seds.SF_BREAK) + 0.08 * 4.0))
         # lines at their largest equivalent width (the +3 sigma clip of draw_halpha_ew)
         ew = draw_halpha_ew(zz, phot.lines, np.full(zz.size, 3.0)) if phot.lines else None

@@ -59,6 +59,7 @@ __all__ = [
     "BETA_SCATTER",
     "SF_OPT_OFFSET",
     "SF_BREAK",
+    "sf_beta_opt",
     "evolved_probability",
     "sed_parameters_from_deviates",
     "draw_sed_parameters",
@@ -295,6 +296,13 @@ SF_OPT_OFFSET = 0.8
 SF_BREAK = 1.25
 
 
+def sf_beta_opt(beta):
+    """Mean rest-optical slope of the star-forming template at UV slope ``beta``:
+    clip(beta + :data:`SF_OPT_OFFSET`, -2.2, 0.5) (:func:`sed_parameters_from_deviates` adds
+    its scatter)."""
+    return np.clip(np.asarray(beta, dtype=float) + SF_OPT_OFFSET, -2.2, 0.5)
+
+
 def uv_slope_relation(z, abs_mag_uv):
     """Mean rest-UV slope beta(M_UV, z) of star-forming galaxies (Bouwens et al. 2014 [mem]).
 
@@ -375,7 +383,7 @@ def sed_parameters_from_deviates(z, abs_mag_uv, evolved, deviates) -> SEDParamet
     evolved = np.asarray(evolved, dtype=bool)
     g = np.clip(np.asarray(deviates, dtype=float), -4.0, 4.0)
     b_sf = np.clip(uv_slope_relation(z, abs_mag_uv) + BETA_SCATTER * g[0], -3.2, 0.5)
-    bo_sf = np.clip(b_sf + SF_OPT_OFFSET, -2.2, 0.5) + 0.15 * g[1]
+    bo_sf = sf_beta_opt(b_sf) + 0.15 * g[1]
     br_sf = 10.0 ** (np.log10(SF_BREAK) + 0.08 * g[2])
     b_ev = np.clip(1.0 + 0.4 * g[0], 0.0, 2.0)
     bo_ev = -0.7 + 0.2 * g[1]

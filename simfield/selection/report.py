@@ -138,7 +138,7 @@ def make_report(out_dir, sample, bands, det, selected, cls, tables: dict, summar
            ylim=(-0.03, 1.03),
            title=run_title(f"selection completeness S(z), sample {name}", None, seed))
     # beside the axes: it never hides a point, and no search for the emptiest corner (that
-    # search measured every k/n label: half the figure's drawing time)
+    # search measured every k/n label: a third of the figure's drawing time)
     ax.legend(fontsize=7, loc="upper left", bbox_to_anchor=(1.01, 1.0), borderaxespad=0.0)
     figs.append(("Selection completeness S(z)", _save(fig, out / "completeness_z.png"),
                  "Points: k/n of the truth galaxies per (M_UV, z) cell, each labelled k/n (faint "

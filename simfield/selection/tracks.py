@@ -40,7 +40,7 @@ def template_parameters(family: str, z, abs_mag_uv: float = -20.0):
     one = np.ones_like(z)
     if family == "starforming":
         beta = uv_slope_relation(z, abs_mag_uv * one)
-        return beta, seds.SF_BREAK * one, np.clip(beta + seds.SF_OPT_OFFSET, -2.2, 0.5)
+        return beta, seds.SF_BREAK * one, seds.sf_beta_opt(beta)
     if family == "evolved":
         return 1.0 * one, 1.9 * one, -0.7 * one
     if family == "evolved_red":
