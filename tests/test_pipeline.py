@@ -332,3 +332,39 @@ def test_field_without_empty_sky_still_completes(tmp_path):
     depth = json.loads((res.out_dir / "summary.json").read_text())["depth_ab"]
     for d in depth.values():
         assert d["measured_5sigma"] is None and np.isfinite(d["predicted_5sigma"])
+
+
+def test_one_arcsec_field_without_detections_completes(tmp_path, capsys):
+    """The smallest field validation accepts (1" x 1", 25 mosaic pixels: smaller than the
+    41 x 41 lags of the read-noise covariance) with no detection: the run completes with
+    empty catalogues, completeness 0 and empty selections, and simfield-score rescores it
+    (status 0). Before, the covariance failed on the small patch, and zero detections
+    crashed the selection's join, the scorer and the injector with tracebacks (a user's
+    empty or tiny field is an answer, not an error: common practice)."""
+    from simfield.score.run import score_main_args
+
+    sc = make_scenario("survey=quick", "survey.width_arcsec=1", "survey.height_arcsec=1",
+                       "telescope.psf.spike_radius_arcsec=2.0",
+                       "telescope.psf.core_radius_arcsec=1.0", "score.report=false",
+                       "selection.report=false", "population.star_density_arcmin2=0")
+    out = tmp_path / "tiny"
+    res = run_scenario(sc, out)  # all five bands: every selection sample is evaluated
+    assert (out / COMPLETE_MARKER).exists()
+    s = res.summary
+    assert s["detections"] == {"b36": 0}
+    assert s["score"]["b36"]["n_detections"] == 0 and s["score"]["b36"]["n_matched"] == 0
+    assert s["selection"] and all(v["n_selected"] == 0 for v in s["selection"].values())
+    assert score_main_args([str(out), "--out", str(tmp_path / "rescored")]) == 0
+    assert "0 of 0 detections matched" in capsys.readouterr().out
+
+
+def test_gather_takes_from_empty_arrays():
+    """score.match.gather: values[index] where index >= 0, fill at -1, as numpy's take; an
+    empty array with only -1 gives the fill (the no-detection case)."""
+    from simfield.score.match import gather
+
+    assert_allclose(gather([1.0, 2.0, 3.0], [2, -1, 0], np.nan), [3.0, np.nan, 1.0])
+    assert list(gather(np.array([], bool), [-1, -1], False)) == [False, False]
+    assert list(gather(np.array([], "U3"), [-1], "")) == [""]
+    with pytest.raises(IndexError):
+        gather(np.array([]), [0], 0.0)

@@ -28,7 +28,8 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.spatial import cKDTree
 
-__all__ = ["MatchResult", "tangent_offsets", "match_positions", "match_sky", "match_radius"]
+__all__ = ["MatchResult", "tangent_offsets", "match_positions", "match_sky", "match_radius",
+           "gather"]
 
 _DEG = np.pi / 180.0
 _ARCSEC_PER_RAD = 180.0 / np.pi * 3600.0
@@ -55,6 +56,18 @@ class MatchResult:
     separation: np.ndarray
     truth_to_det: np.ndarray
     det_to_truth: np.ndarray
+
+
+def gather(values, index, fill):
+    """``values[index]`` where ``index >= 0`` and ``fill`` where it is -1 (nothing matched),
+    as ``np.where``; also when ``values`` is empty (a run without detections or without truth
+    images), where indexing with the clipped index would fail."""
+    values, index = np.asarray(values), np.asarray(index)
+    if values.size == 0:
+        if np.any(index >= 0):
+            raise IndexError("gather: an index >= 0 into an empty array")
+        return np.full(index.shape, fill)
+    return np.where(index >= 0, values[np.maximum(index, 0)], fill)
 
 
 def tangent_offsets(ra, dec, ra0: float, dec0: float):

@@ -32,13 +32,13 @@ from astropy.io import fits
 from astropy.table import Table
 from astropy.wcs import WCS
 
-from .._argparse import ArgError, DefaultsHelpFormatter, OneLineParser
+from .._argparse import ArgError, DefaultsHelpFormatter, OneLineParser, check_out_folder
 from ..columns import POINT_KINDS, SCORE_COLUMNS, SCORE_TABLES, describe
 from ..config import ScoreConfig, _validate_score
 from ..errors import CatalogError, ConfigError
 from . import metrics
 from .catalog import FLUX_UNITS, ISOLATION_ARCSEC, check_magnitude_scale, load_catalog
-from .match import match_radius, match_sky
+from .match import gather, match_radius, match_sky
 from .volume import binned_effective_volume
 
 __all__ = ["FLUX_UNITS", "load_catalog", "load_truth", "image_map", "pixel_values",
@@ -459,12 +459,12 @@ def score_run(run_dir, catalog, band: str, cfg: ScoreConfig | None = None, out_d
     sid = np.asarray(sources["id"], np.int64)
     ns = len(sources)
     recovered, best_img, det_for_src = source_recovery(sid, img_src, mag_img, m)
-    best_mag = np.where(best_img >= 0, mag_img[np.maximum(best_img, 0)], np.nan)
+    best_mag = gather(mag_img, best_img, np.nan)
     has_img = best_img >= 0
     kind = np.asarray(sources["kind"]).astype(str)
     gal = has_img & ~np.isin(kind, POINT_KINDS)
     mu_img = np.abs(np.asarray(images["magnification"], float))
-    mu_best = np.where(has_img, mu_img[np.maximum(best_img, 0)], np.nan)
+    mu_best = gather(mu_img, best_img, np.nan)
     r_half = np.asarray(sources["r_half"], float) if "r_half" in sources.colnames else \
         np.full(ns, np.nan)
     r_obs = r_half * np.sqrt(mu_best)  # lensing stretches sizes by ~sqrt(|mu|) on average
@@ -513,12 +513,11 @@ def score_run(run_dir, catalog, band: str, cfg: ScoreConfig | None = None, out_d
             _edges(-24.0, -14.0, 1.0), cfg.z_bins, float(nx * ny) * truth["pixel_scale"] ** 2,
             lvl)
 
+    det_row = gather(det["row"] if "row" in det.colnames else np.arange(len(det)), det_for_src,
+                     -1)
     rec_t = Table({"id": sid, "kind": kind, "mag_obs": best_mag, "r_half_obs": r_obs,
                    "redshift": z, "magnification": mu_best, "recovered": recovered,
-                   "det_row": np.where(det_for_src >= 0,
-                                       np.asarray(det["row"] if "row" in det.colnames else
-                                                  np.arange(len(det)))[np.maximum(det_for_src,
-                                                                                  0)], -1)})
+                   "det_row": det_row})
     tables["recovered"] = rec_t[has_img]
 
     # ---- fits and headline numbers
@@ -690,6 +689,8 @@ def score_main_args(argv: list[str]) -> int:
         run_dir = Path(a.run_dir)
         if not run_dir.is_dir():
             raise CatalogError(f"run directory {a.run_dir!r} does not exist")
+        if a.out:
+            check_out_folder(Path(a.out), "--out")
         band, why = (a.band, "given") if a.band else run_detection_band(run_dir)
         if a.band and not (run_dir / f"mosaic_{band}.fits").is_file():
             raise ArgError(f"--band: {band!r} is not a band of this run (no mosaic_{band}.fits);"
@@ -713,6 +714,7 @@ def score_main_args(argv: list[str]) -> int:
         if a.select_col or a.zphot_col:
             return _selection_main(a, run_dir, band, sc, cols)
         out = Path(a.out) if a.out else default_out_dir(run_dir, a.catalog, band)
+        check_out_folder(out, "--out" if a.out else "the output folder")  # the default's
         summ = score_run(run_dir, a.catalog, band, cfg, out, cols, a.skip_invalid,
                          drop_duplicates=a.drop_duplicates,
                          allow_flux_offset=a.allow_flux_offset)
@@ -738,6 +740,8 @@ def _selection_main(a, run_dir: Path, band: str, sc, cols: dict) -> int:
         raise CatalogError(f"{opt}: run directory {str(run_dir)!r} has no readable "
                            f"scenario.yaml (its samples and bands)")
     sc.score.report = sc.selection.report = not a.no_report
+    if not a.out:
+        check_out_folder(run_dir, "the run directory")
     res = score_catalogue_selection(run_dir, a.catalog, sc, band, a.select_col, a.zphot_col,
                                     a.sample, a.out, {"ra": cols["ra"], "dec": cols["dec"]})
     print("simfield-score: selection " + "; ".join(

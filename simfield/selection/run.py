@@ -19,7 +19,7 @@ import shutil
 from pathlib import Path
 
 import numpy as np
-from astropy.table import Table, join
+from astropy.table import MaskedColumn, Table, join
 
 from ..errors import CatalogError
 from .cuts import apply_samples, check_columns
@@ -55,11 +55,19 @@ def load_photometry(run_dir, need_photoz: bool = False):
                     and len(hl["PZ"].data) == len(z):
                 z["pz"] = np.asarray(hl["PZ"].data, np.float32)
                 t.meta["pz_grid"] = [float(v) for v in Table(hl["ZGRID"].data).columns[0]]
-        t["_order"] = np.arange(len(t))
-        t = join(t, z, keys="id", join_type="left", table_names=["", "photoz"],
-                 metadata_conflicts="silent")
-        t.sort("_order")
-        t.remove_column("_order")
+        if len(t) and len(z):
+            t["_order"] = np.arange(len(t))
+            t = join(t, z, keys="id", join_type="left", table_names=["", "photoz"],
+                     metadata_conflicts="silent")
+            t.sort("_order")
+            t.remove_column("_order")
+        else:  # astropy's join refuses an empty table: the left join by hand, all masked
+            for name in z.colnames:
+                if name != "id":
+                    c = z[name]
+                    t[f"{name}_photoz" if name in t.colnames else name] = MaskedColumn(
+                        np.zeros((len(t),) + c.shape[1:], c.dtype), mask=True, unit=c.unit,
+                        description=c.description)
         t.meta["photoz"] = True
     elif need_photoz:
         raise CatalogError(f"selection: a photoz condition needs photoz.fits, not found in "

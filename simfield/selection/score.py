@@ -24,6 +24,7 @@ import numpy as np
 from astropy.table import Table
 
 from ..score.metrics import INTERVAL_NOTE, beta_interval, binned_fraction_2d
+from ..score.match import gather
 from ..score.run import false_detection_causes, match_to_truth, source_recovery
 from .volume import expected_counts, poisson_summary, selection_volume, source_plane_area
 
@@ -118,8 +119,8 @@ def match_catalogue(truth: dict, det: Table, score_cfg, band: str) -> dict:
     d_src[m.det_index] = img_src[m.truth_index]
     row = np.array([pos.get(int(s), -1) for s in d_src], np.int64)
     z_all = np.asarray(sources["redshift"], float)
-    d_kind = np.where(row >= 0, kind[np.maximum(row, 0)], "")
-    d_z = np.where(row >= 0, z_all[np.maximum(row, 0)], np.nan)
+    d_kind = gather(kind, row, "")
+    d_z = gather(z_all, row, np.nan)
     return {"kind": d_kind, "z": d_z, "source_id": d_src, "cause": cause,
             "det_for_src": det_for_src, "has_img": best_img >= 0, "images": images,
             "radius": radius}
@@ -171,7 +172,7 @@ def score_sample(sample, selected, det: Table, truth: dict, matched: dict, sel_c
     z = np.asarray(sources["redshift"], float)
     M = np.asarray(sources["abs_mag_uv"], float)
     dfs = matched["det_for_src"]
-    detsel = (dfs >= 0) & selected[np.maximum(dfs, 0)]
+    detsel = gather(selected, dfs, False)
     gal = matched["has_img"] & np.isin(kind, GALAXY_KINDS)
     me = _edges(sel_cfg.abs_mag_min, sel_cfg.abs_mag_max, sel_cfg.abs_mag_step)
     # regular z bins, split at the window's edges so the window is a union of bins

@@ -120,8 +120,11 @@ def _lag_covariance(mosaics, k: int, cut: int, subtract_mean: bool) -> np.ndarra
         full_u = signal.fftconvolve(u, u[::-1, ::-1], mode="full")
         full_g = signal.fftconvolve(g, g[::-1, ::-1], mode="full")
         cy, cx = u.shape[0] - 1, u.shape[1] - 1
-        num += full_u[cy - k:cy + k + 1, cx - k:cx + k + 1]
-        cnt += np.round(full_g[cy - k:cy + k + 1, cx - k:cx + k + 1])
+        # a patch narrower than the lags has no pairs beyond its width: those lags stay 0
+        ky, kx = min(k, cy), min(k, cx)
+        into = (slice(k - ky, k + ky + 1), slice(k - kx, k + kx + 1))
+        num[into] += full_u[cy - ky:cy + ky + 1, cx - kx:cx + kx + 1]
+        cnt[into] += np.round(full_g[cy - ky:cy + ky + 1, cx - kx:cx + kx + 1])
     cov = num / np.maximum(cnt, 1)
     return 0.5 * (cov + cov[::-1, ::-1])
 
