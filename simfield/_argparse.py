@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import argparse
 
-__all__ = ["ArgError", "DefaultsHelpFormatter", "OneLineParser"]
+__all__ = ["ArgError", "DefaultsHelpFormatter", "OneLineParser", "check_out_folder"]
 
 
 class DefaultsHelpFormatter(argparse.ArgumentDefaultsHelpFormatter):
@@ -25,6 +25,19 @@ class DefaultsHelpFormatter(argparse.ArgumentDefaultsHelpFormatter):
 
 class ArgError(Exception):
     """A command-line argument error (the message is the one line to print)."""
+
+
+def check_out_folder(out, name: str) -> None:
+    """Refuse, before any work, an output folder ``out`` that cannot be made or written
+    (:func:`simfield.resources.check_writable_folder`), naming it as the user gave it
+    (``name``: the option, or what the default is)."""
+    from .errors import ConfigError
+    from .resources import check_writable_folder
+
+    try:
+        check_writable_folder(name, out)
+    except ConfigError as exc:
+        raise ArgError(f"{name}: {str(out)!r} {exc.allowed}") from None
 
 
 class OneLineParser(argparse.ArgumentParser):

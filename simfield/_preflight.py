@@ -289,6 +289,23 @@ def _jobs(hy, conf_dir: str, config_name: str, texts: list[str], parsed: list,
         yield cfg
 
 
+def check_run_folder(argv: list[str]) -> None:
+    """Refuse a ``simfield`` command line whose run folder (``hydra.run.dir``, or
+    ``hydra.sweep.dir`` with ``-m``) cannot be made or written: its fixed part, before any
+    ``${...}``, is checked (:func:`simfield.resources.check_writable_folder`; creates
+    nothing). Hydra would otherwise fail making it, with a traceback."""
+    from .resources import check_writable_folder
+
+    args = _parse_args(list(argv))
+    if any(getattr(args, flag, None) for flag in _PRINT_ONLY):
+        return
+    key = "hydra.sweep.dir" if args.multirun else "hydra.run.dir"
+    given = [o for o in _parse_overrides(list(args.overrides))
+             if o.key_or_group == key and not o.is_sweep_override()]
+    text = str(given[-1].value()) if given else ("multirun" if args.multirun else "outputs")
+    check_writable_folder(key, text.split("${", 1)[0] or ".")
+
+
 def preflight(argv: list[str], check: bool = True) -> list[Scenario]:
     """Validate a ``simfield`` command line without running it or writing anything.
 

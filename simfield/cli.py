@@ -12,7 +12,7 @@ import logging
 import sys
 from pathlib import Path
 
-from ._preflight import preflight
+from ._preflight import check_run_folder, preflight
 from .config import CONF_DIR
 from .errors import ConfigError
 
@@ -131,6 +131,7 @@ def main() -> None:
             _print_job_script([a for a in argv if a != "--job-script"])
             return
         _check_clusters(preflight(argv))
+        check_run_folder(argv)
     except ConfigError as exc:
         _fail("simfield", refusal_line(exc))
     register_configs()
@@ -191,6 +192,7 @@ def inject_main(argv: list[str] | None = None) -> None:
 
     from hydra import compose, initialize_config_dir
 
+    from ._argparse import ArgError, check_out_folder
     from .config import register_configs, to_scenario
     from .inject import inject_into_image
 
@@ -202,9 +204,10 @@ def inject_main(argv: list[str] | None = None) -> None:
         with initialize_config_dir(CONF_DIR, version_base=None):
             sc = to_scenario(compose("config", overrides=overrides))
         out = Path(a.out or f"outputs/inject_{Path(a.image).stem}")
+        check_out_folder(out, "--out" if a.out else "the output folder")
         summary = inject_into_image(a.image, sc, a.band, out, a.psf, hdu(a.hdu), a.zeropoint,
                                     hdu(a.weight_hdu))
-    except SimfieldError as exc:
+    except (SimfieldError, ArgError) as exc:
         _fail("simfield-inject", str(exc))
     except Exception as exc:  # Hydra override syntax errors and the like
         _fail("simfield-inject", f"{type(exc).__name__}: {exc}")

@@ -44,7 +44,7 @@ from pathlib import Path
 from .config import Scenario
 from .errors import ConfigError, require
 
-__all__ = ["Estimate", "estimate", "check_run", "check_cache_dir", "BASE_MEMORY_BYTES",
+__all__ = ["Estimate", "estimate", "check_run", "check_writable_folder", "BASE_MEMORY_BYTES",
            "PARENT_BYTES_PER_MOSAIC_PIXEL", "TILE_BYTES_PER_SCENE_PIXEL", "TAIL_BYTES_PER_PROCESS",
            "DETECTION_BYTES_PER_PIXEL"]
 
@@ -272,7 +272,7 @@ def _check_match_to(sc: Scenario) -> None:
     check_match_target(fwhm, ph.match_to)  # the photometry's own rule
 
 
-def check_cache_dir(key: str, path: str | os.PathLike) -> None:
+def check_writable_folder(key: str, path: str | os.PathLike) -> None:
     """Refuse ``path`` unless it is, or can be created as, a writable folder (creates nothing).
 
     The nearest existing ancestor must be a writable, searchable directory on a file system
@@ -309,7 +309,7 @@ def check_run(sc: Scenario) -> Estimate:
                           f"is too small: {galaxies:.0f} sources expected over the field; "
                           "raise it, or shrink survey.width_arcsec / survey.height_arcsec, "
                           "or lower population.mag_limit")
-    check_cache_dir("telescope.psf.cache_dir", sc.telescope.psf.cache_dir)
+    check_writable_folder("telescope.psf.cache_dir", sc.telescope.psf.cache_dir)
     _check_match_to(sc)
     est = estimate(sc, galaxies)
     lim = sc.limits

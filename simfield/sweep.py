@@ -40,7 +40,7 @@ from typing import Any, Iterable
 import numpy as np
 from astropy.table import Column, MaskedColumn, Table
 
-from ._argparse import ArgError, DefaultsHelpFormatter, OneLineParser
+from ._argparse import ArgError, DefaultsHelpFormatter, OneLineParser, check_out_folder
 from .io import COMPLETE_MARKER, atomic_path, write_json
 
 __all__ = [
@@ -634,6 +634,8 @@ def collect_main_args(argv: list[str]) -> int:
         root = Path(a.sweep_dir)
         if not root.is_dir():
             raise ArgError(f"sweep directory {a.sweep_dir!r} does not exist")
+        check_out_folder(Path(a.out) if a.out else root / "collected",
+                         "--out" if a.out else "SWEEP_DIR/collected")
         t = collect(root)
         inc = t.meta["incomplete_jobs"]
         if len(t) == 0:

@@ -174,3 +174,42 @@ def test_killed_run_takes_its_workers_with_it(tmp_path):
     finally:
         if proc.poll() is None:
             proc.kill()
+
+
+@pytest.mark.slow
+@pytest.mark.skipif(not Path("/proc/self").is_dir(), reason="needs Linux /proc")
+def test_run_and_output_folders_that_cannot_be_made_are_refused(tmp_path, capsys):
+    """A run folder under /proc (a file system that holds no files) or through a file, and an
+    --out of simfield-score, simfield-collect, simfield-inject or the counts figure there: one
+    line naming the option or key, status 2, before any work (common practice: refuse what
+    would fail later). Before, Hydra's mkdir or the tools' writers raised tracebacks."""
+    (tmp_path / "f").write_text("")
+    for args, key in ((["survey=quick", "hydra.run.dir=/proc/simfield_x"], "hydra.run.dir"),
+                      (["survey=quick", f"hydra.run.dir={tmp_path / 'f' / 'x'}"],
+                       "hydra.run.dir"),
+                      (["-m", "survey=quick", "seed=1,2", "hydra.sweep.dir=/proc/simfield_x"],
+                       "hydra.sweep.dir")):
+        code, err, _ = _simfield(args, tmp_path)
+        assert code == 2 and len(err) == 1 and err[0].startswith(f"simfield: error: {key}: "), err
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["f"]
+    from simfield.score.run import score_main_args
+    from simfield.sweep import collect_main_args
+
+    run, sweep = tmp_path / "run", tmp_path / "sweep"
+    run.mkdir()
+    sweep.mkdir()
+    for prog, fn, where in (("simfield-score", score_main_args, run),
+                            ("simfield-collect", collect_main_args, sweep)):
+        assert fn([str(where), "--out", "/proc/simfield_x"]) == 2
+        assert capsys.readouterr().err.strip() == (
+            f"{prog}: error: --out: '/proc/simfield_x' must be a writable folder "
+            "(/proc is not writable)")
+    for cmd in ([sys.executable, "-c", "from simfield.cli import inject_main; inject_main()",
+                 str(tmp_path / "f"), "--band", "b10", "--out", "/proc/simfield_x"],
+                [sys.executable, "-m", "simfield.population.counts", "--out",
+                 "/proc/simfield_x/c.png"]):
+        r = subprocess.run(cmd, cwd=tmp_path, capture_output=True, text=True, timeout=120)
+        lines = [ln for ln in r.stderr.splitlines() if ln.strip()]
+        assert r.returncode == 2 and len(lines) == 1 and "--out: '/proc/simfield_x" in lines[0] \
+            and "must be a writable folder" in lines[0], lines
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["f", "run", "sweep"]

@@ -9,7 +9,7 @@ from simfield.errors import ConfigError
 from simfield.pipeline import FIELD_MARGIN_ARCSEC, make_bands
 from simfield.population.lightcone import expected_galaxies, make_population
 from simfield.random import stream
-from simfield.resources import check_cache_dir, check_run, estimate
+from simfield.resources import check_writable_folder, check_run, estimate
 from tests.conftest import make_scenario
 
 TINY = ["survey=quick", "survey.width_arcsec=8", "survey.height_arcsec=8",
@@ -68,12 +68,12 @@ def test_memory_estimate_grows_with_processes_not_field():
 def test_cache_dir_check_creates_nothing(tmp_path):
     """A new folder under a writable one passes and is not created; a path through a file or
     inside /proc (no blocks: a pseudo file system) is refused."""
-    check_cache_dir("k", tmp_path / "a" / "b")
+    check_writable_folder("k", tmp_path / "a" / "b")
     assert not (tmp_path / "a").exists()
     (tmp_path / "f").write_text("")
     for bad in (tmp_path / "f", tmp_path / "f" / "x", "/proc/simfield"):
         with pytest.raises(ConfigError, match="^invalid configuration: k="):
-            check_cache_dir("k", bad)
+            check_writable_folder("k", bad)
 
 
 def test_limits_refuse_with_the_key_that_raises_them():

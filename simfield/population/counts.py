@@ -181,7 +181,11 @@ def main(argv=None) -> int:
     """Command line: the figure of the scenario's counts against the reference."""
     import dataclasses
 
+    from pathlib import Path
+
     from .. import cli
+    from .._argparse import ArgError, check_out_folder
+    from ..errors import ConfigError
     from ..bands import make_band, make_bands
     from ..random import stream
     from .figure import figure_bands, write_population_figure
@@ -194,7 +198,18 @@ def main(argv=None) -> int:
     ap.add_argument("--side", type=float, default=180.0, help="field side (arcsec)")
     ap.add_argument("overrides", nargs="*", help="scenario overrides, e.g. seed=3")
     a = ap.parse_args(argv)
-    sc = cli.preflight(list(a.overrides))[0]
+    prog = "python -m simfield.population.counts"
+    try:  # every refusal before the population is drawn, in one line
+        if not (np.isfinite(a.side) and 0 < a.side <= 3600):
+            raise ArgError(f"--side: {a.side:g} must be in (0, 3600] (arcsec)")
+        check_out_folder(Path(a.out).absolute().parent, "--out")
+        sc = cli.preflight(list(a.overrides))[0]
+    except ArgError as exc:
+        print(f"{prog}: error: {exc}", file=sys.stderr)
+        return 2
+    except ConfigError as exc:
+        print(f"{prog}: error: {cli.refusal_line(exc)}", file=sys.stderr)
+        return 2
     bands = make_bands(sc)
     band = figure_bands(bands)[1]
     # the 2.15 um band joins the draw; the selection band is fixed first so it stays the same
