@@ -714,7 +714,8 @@ def score_main_args(argv: list[str]) -> int:
         if a.select_col or a.zphot_col:
             return _selection_main(a, run_dir, band, sc, cols)
         out = Path(a.out) if a.out else default_out_dir(run_dir, a.catalog, band)
-        check_out_folder(out, "--out" if a.out else "the output folder")  # the default's
+        if not a.out:  # the default folder (--out itself was checked first)
+            check_out_folder(out, "the output folder")
         summ = score_run(run_dir, a.catalog, band, cfg, out, cols, a.skip_invalid,
                          drop_duplicates=a.drop_duplicates,
                          allow_flux_offset=a.allow_flux_offset)
