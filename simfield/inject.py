@@ -101,6 +101,10 @@ def read_image(path, hdu=None, zeropoint: float | None = None, weight_hdu=None):
         else:
             good = np.isfinite(sci)
             _, _, std = sigma_clipped_stats(sci[good], sigma=3.0)
+            if not np.isfinite(std) or std <= 0:
+                raise CatalogError(f"{path.name}[{hdu}]: the image's pixels have no scatter "
+                                   f"(sigma-clipped std {std:g}) to weigh them by; give an "
+                                   f"inverse-variance HDU with --weight-hdu")
             wht = np.where(good, 1.0 / std**2, 0.0)
     return sci, wht, wcs, float(zp), header, noise
 
@@ -175,6 +179,11 @@ def inject_into_image(image_path, sc: Scenario, band: str, out_dir, psf_path=Non
         raise CatalogError(f"band {band!r} is not a band of the scenario ({', '.join(names)})")
     b = bands[names.index(band)]
     sci, wht, wcs, zp, header, noise = read_image(image_path, hdu, zeropoint, weight_hdu)
+    said = header.get("BAND", fits.getheader(image_path, 0).get("BAND"))
+    if said is not None and str(said).strip() != band:
+        raise CatalogError(f"band {band!r} asked for, but {Path(image_path).name}'s BAND "
+                           f"card says {str(said).strip()!r}: inject in the image's own band "
+                           f"(--band {str(said).strip()})")
     jac = _pixel_jacobian(wcs)
     scale = float(np.sqrt(abs(np.linalg.det(jac))))
     psf = (read_psf(psf_path, scale) if psf_path is not None else

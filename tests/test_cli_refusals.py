@@ -213,3 +213,49 @@ def test_run_and_output_folders_that_cannot_be_made_are_refused(tmp_path, capsys
         assert r.returncode == 2 and len(lines) == 1 and "--out: '/proc/simfield_x" in lines[0] \
             and "must be a writable folder" in lines[0], lines
     assert sorted(p.name for p in tmp_path.iterdir()) == ["f", "run", "sweep"]
+
+
+def test_unfinished_runs_sample_without_selection_and_another_band_are_refused(tmp_path,
+                                                                              capsys):
+    """simfield-score on a run folder without COMPLETE (the run stopped part way: its files
+    may be partial), and --sample without --select-col or --zphot-col (it would be ignored);
+    simfield-inject into an image whose BAND card names another band (its zero point and PSF
+    would be the wrong band's). One line each, status 2, nothing written (common practice:
+    refuse rather than score or inject what would mislead). Before, the first two went on
+    silently and the third injected with the asked band's PSF. An image of one value, with no
+    weight map, is refused too (its weights were 1/0)."""
+    import numpy as np
+    from astropy.io import fits
+
+    from simfield.errors import CatalogError
+    from simfield.grid import Grid
+    from simfield.inject import inject_into_image
+    from simfield.score.run import score_main_args
+    from tests.conftest import make_scenario
+
+    run = tmp_path / "run"
+    run.mkdir()
+    (run / "mosaic_b36.fits").write_bytes(b"")
+    assert score_main_args([str(run)]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "has no COMPLETE file: the run did not finish" in err[0], err
+    assert score_main_args([str(run), "--sample", "z8"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert err == ["simfield-score: error: --sample z8: picks the samples that --select-col "
+                   "or --zphot-col score; give one of them, or leave --sample out"]
+    assert sorted(p.name for p in run.iterdir()) == ["mosaic_b36.fits"]
+
+    g = Grid(64, 64, 0.04, 53.1, -27.8)
+    h = fits.Header(g.wcs.to_header())
+    h["ZP_AB"], h["BAND"] = 28.0, "b36"
+    noise = np.random.default_rng(1).normal(0, 0.01, g.shape).astype(np.float32)
+    fits.writeto(tmp_path / "img.fits", noise, h)
+    with pytest.raises(CatalogError, match=r"band 'b23' asked for, but img.fits's BAND card "
+                                           r"says 'b36'.*--band b36"):
+        inject_into_image(tmp_path / "img.fits", make_scenario(), "b23", tmp_path / "out")
+    # an image of one value has no scatter to make a weight map from (it was 1/0 = inf)
+    fits.writeto(tmp_path / "flat.fits", np.zeros(g.shape, np.float32), h)
+    with pytest.raises(CatalogError, match=r"flat.fits\[0\]: the image's pixels have no "
+                                           r"scatter .*--weight-hdu"):
+        inject_into_image(tmp_path / "flat.fits", make_scenario(), "b36", tmp_path / "out")
+    assert not (tmp_path / "out").exists()

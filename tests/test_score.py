@@ -338,6 +338,7 @@ def _make_run(path, seed=5):
         .writeto(path / "truth.fits")
     with fits.open(path / "truth.fits", mode="update") as hl:
         hl[1].name, hl[2].name = "SOURCES", "IMAGES"
+    (path / "COMPLETE").write_text("a finished run\n")  # as simfield leaves one
     return g, sci, wht, src
 
 

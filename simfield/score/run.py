@@ -36,6 +36,7 @@ from .._argparse import ArgError, DefaultsHelpFormatter, OneLineParser, check_ou
 from ..columns import POINT_KINDS, SCORE_COLUMNS, SCORE_TABLES, describe
 from ..config import ScoreConfig, _validate_score
 from ..errors import CatalogError, ConfigError
+from ..io import COMPLETE_MARKER
 from . import metrics
 from .catalog import FLUX_UNITS, ISOLATION_ARCSEC, check_magnitude_scale, load_catalog
 from .match import gather, match_radius, match_sky
@@ -691,6 +692,13 @@ def score_main_args(argv: list[str]) -> int:
             raise CatalogError(f"run directory {a.run_dir!r} does not exist")
         if a.out:
             check_out_folder(Path(a.out), "--out")
+        if a.sample and not (a.select_col or a.zphot_col):
+            raise ArgError(f"--sample {a.sample[0]}: picks the samples that --select-col or "
+                           f"--zphot-col score; give one of them, or leave --sample out")
+        if not (run_dir / COMPLETE_MARKER).is_file():
+            raise CatalogError(f"run directory {a.run_dir!r} has no {COMPLETE_MARKER} file: the "
+                               f"run did not finish (its files may be partial); relaunch "
+                               f"the command that made it to finish it")
         band, why = (a.band, "given") if a.band else run_detection_band(run_dir)
         if a.band and not (run_dir / f"mosaic_{band}.fits").is_file():
             raise ArgError(f"--band: {band!r} is not a band of this run (no mosaic_{band}.fits);"
