@@ -124,7 +124,8 @@ def _translate(exc: Exception, overrides: list) -> ConfigError:
         missing = exc.missing_cfg_file or ""
         group, _, name = missing.rpartition("/")
         if exc.options:
-            return ConfigError(group or "config", name, "is not a preset; must be one of: "
+            return ConfigError(group or "config", name, "is not a preset"
+                               + _did_you_mean(name, exc.options) + "; must be one of: "
                                + ", ".join(sorted(exc.options)))
         return ConfigError(group or "config", name, f"is not accepted: {_first_line(exc)}")
     cause = exc.__cause__
@@ -135,14 +136,53 @@ def _translate(exc: Exception, overrides: list) -> ConfigError:
     value = _value_text(o) if o is not None and not o.is_delete() else \
         getattr(cause, "value", None)
     if isinstance(cause, (ConfigKeyError, ConfigAttributeError)) or "Could not override" in text:
-        parent = key.rpartition(".")[0]
+        parent, _, last = key.rpartition(".")
         known = _known_keys(parent)
         if known:
-            return ConfigError(key, value, f"is not a key of {parent or 'the scenario'}; "
-                               f"known keys: {', '.join(known)}")
-        return ConfigError(key, value, "is not a known key")
+            return ConfigError(key, value, f"is not a key of {parent or 'the scenario'}"
+                               f"{_did_you_mean(last, known)}; known keys: {', '.join(known)}")
+        return ConfigError(key, value, "is not a known key" + _nearest_key(key))
     why = _first_line(cause) if cause is not None else _first_line(exc)
-    return ConfigError(key, value, f"is not accepted: {why}")
+    return ConfigError(key, value, f"is not accepted: {_plain_type(why)}")
+
+
+def _did_you_mean(word: str, options) -> str:
+    """`` (did you mean X?)`` for the option closest to a mistyped ``word`` (difflib's ratio
+    at least 0.7), else ''."""
+    import difflib
+
+    near = difflib.get_close_matches(word, sorted(options), n=1, cutoff=0.7)
+    return f" (did you mean {near[0]}?)" if near else ""
+
+
+def _nearest_key(key: str) -> str:
+    """`` (did you mean a.b.c?)`` for a dotted ``key`` whose first unknown part is close to a
+    key of its parent (the parts after it kept as typed), else ''."""
+    import difflib
+
+    parts = key.split(".")
+    for i, part in enumerate(parts):
+        known = _known_keys(".".join(parts[:i]))
+        if part in known:
+            continue
+        near = difflib.get_close_matches(part, known, n=1, cutoff=0.7)
+        return f" (did you mean {'.'.join([*parts[:i], near[0], *parts[i + 1:]])}?)" \
+            if near else ""
+    return ""
+
+
+#: OmegaConf's names of the types a value failed to convert to, as a user would say them
+_TYPE_WORDS = {"Integer": "must be a whole number", "Float": "must be a number",
+               "Boolean": "must be true or false"}
+
+
+def _plain_type(why: str) -> str:
+    """OmegaConf's "Value 'x' of type 'str' could not be converted to Integer" as "must be a
+    whole number" (the key and value are already in the line); other reasons as they are."""
+    import re
+
+    m = re.search(r"could not be converted to (\w+)", why)
+    return _TYPE_WORDS.get(m.group(1), why) if m else why
 
 
 def _check_read_noise_pair(job: list) -> None:
