@@ -15,7 +15,7 @@ from pathlib import Path
 
 from .config import (CONF_DIR, Scenario, _known_keys, check_raw_value, consistent_read_noise,
                      read_noise_conflict, register_configs, to_scenario)
-from .errors import ConfigError
+from .errors import ConfigError, did_you_mean, plain_type
 
 __all__ = ["preflight"]
 
@@ -125,7 +125,7 @@ def _translate(exc: Exception, overrides: list) -> ConfigError:
         group, _, name = missing.rpartition("/")
         if exc.options:
             return ConfigError(group or "config", name, "is not a preset"
-                               + _did_you_mean(name, exc.options) + "; must be one of: "
+                               + did_you_mean(name, exc.options) + "; must be one of: "
                                + ", ".join(sorted(exc.options)))
         return ConfigError(group or "config", name, f"is not accepted: {_first_line(exc)}")
     cause = exc.__cause__
@@ -140,19 +140,10 @@ def _translate(exc: Exception, overrides: list) -> ConfigError:
         known = _known_keys(parent)
         if known:
             return ConfigError(key, value, f"is not a key of {parent or 'the scenario'}"
-                               f"{_did_you_mean(last, known)}; known keys: {', '.join(known)}")
+                               f"{did_you_mean(last, known)}; known keys: {', '.join(known)}")
         return ConfigError(key, value, "is not a known key" + _nearest_key(key))
     why = _first_line(cause) if cause is not None else _first_line(exc)
-    return ConfigError(key, value, f"is not accepted: {_plain_type(why)}")
-
-
-def _did_you_mean(word: str, options) -> str:
-    """`` (did you mean X?)`` for the option closest to a mistyped ``word`` (difflib's ratio
-    at least 0.7), else ''."""
-    import difflib
-
-    near = difflib.get_close_matches(word, sorted(options), n=1, cutoff=0.7)
-    return f" (did you mean {near[0]}?)" if near else ""
+    return ConfigError(key, value, f"is not accepted: {plain_type(why)}")
 
 
 def _nearest_key(key: str) -> str:
@@ -169,20 +160,6 @@ def _nearest_key(key: str) -> str:
         return f" (did you mean {'.'.join([*parts[:i], near[0], *parts[i + 1:]])}?)" \
             if near else ""
     return ""
-
-
-#: OmegaConf's names of the types a value failed to convert to, as a user would say them
-_TYPE_WORDS = {"Integer": "must be a whole number", "Float": "must be a number",
-               "Boolean": "must be true or false"}
-
-
-def _plain_type(why: str) -> str:
-    """OmegaConf's "Value 'x' of type 'str' could not be converted to Integer" as "must be a
-    whole number" (the key and value are already in the line); other reasons as they are."""
-    import re
-
-    m = re.search(r"could not be converted to (\w+)", why)
-    return _TYPE_WORDS.get(m.group(1), why) if m else why
 
 
 def _check_read_noise_pair(job: list) -> None:

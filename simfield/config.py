@@ -24,7 +24,7 @@ from omegaconf import MISSING, DictConfig, OmegaConf
 from omegaconf.errors import ConfigKeyError, MissingMandatoryValue, ValidationError
 
 from ._typed import build_exact
-from .errors import ConfigError, check_range, require
+from .errors import ConfigError, check_range, did_you_mean, plain_type, require
 
 #: The Hydra configuration folder: the repository's ``conf/``, installed as package data
 #: ``simfield.conf`` (so it is found from any directory, editable install or not).
@@ -1068,16 +1068,19 @@ def to_scenario(cfg: DictConfig | dict[str, Any]) -> Scenario:
     except ConfigKeyError as exc:  # a key the schema does not know
         key = str(exc.full_key or exc.key)
         parent = key.rpartition(".")[0]
+        known = _known_keys(parent)
         raise ConfigError(key, _lookup(data, key),
-                          f"is not a key of {parent or 'the scenario'}; known keys: "
-                          f"{', '.join(_known_keys(parent))}") from None
+                          f"is not a key of {parent or 'the scenario'}"
+                          f"{did_you_mean(key.rpartition('.')[2], known)}; known keys: "
+                          f"{', '.join(known)}") from None
     except (ValidationError, MissingMandatoryValue) as exc:  # wrong type, missing value
         key = str(exc.full_key or exc.key or "?")
         if "." not in key and key not in _known_keys(""):
             # omegaconf names only the field inside a list of records: find its full path
             key = next(iter(_paths_ending(data, key, getattr(exc, "value", None))), key)
         msg = str(exc).splitlines()[0]
-        raise ConfigError(key, getattr(exc, "value", None), f"is not accepted: {msg}") from None
+        raise ConfigError(key, getattr(exc, "value", None),
+                          f"is not accepted: {plain_type(msg)}") from None
     validate(sc)
     if not sc.telescope.psf.cache_dir:
         sc.telescope.psf.cache_dir = str(default_cache_dir() / "psf")

@@ -9,7 +9,8 @@ from __future__ import annotations
 import numbers
 from typing import Any
 
-__all__ = ["SimfieldError", "ConfigError", "CatalogError", "require", "check_range"]
+__all__ = ["SimfieldError", "ConfigError", "CatalogError", "require", "check_range",
+           "did_you_mean", "plain_type"]
 
 
 class SimfieldError(Exception):
@@ -69,3 +70,26 @@ def check_range(key: str, value: float, lo: float | None = None, hi: float | Non
         lo_s = "-inf" if lo is None else f"{lo:g}"
         hi_s = "inf" if hi is None else f"{hi:g}"
         raise ConfigError(key, value, f"must be in {left}{lo_s}, {hi_s}{right}")
+
+
+def did_you_mean(word: str, options) -> str:
+    """`` (did you mean X?)`` for the option closest to a mistyped ``word`` (difflib's ratio
+    at least 0.7), else ''."""
+    import difflib
+
+    near = difflib.get_close_matches(word, sorted(options), n=1, cutoff=0.7)
+    return f" (did you mean {near[0]}?)" if near else ""
+
+
+#: OmegaConf's names of the types a value failed to convert to, as a user would say them
+_TYPE_WORDS = {"Integer": "must be a whole number", "Float": "must be a number",
+               "Boolean": "must be true or false"}
+
+
+def plain_type(why: str) -> str:
+    """OmegaConf's "Value 'x' of type 'str' could not be converted to Integer" as "must be a
+    whole number" (the key and value are already in the line); other reasons as they are."""
+    import re
+
+    m = re.search(r"could not be converted to (\w+)", why)
+    return _TYPE_WORDS.get(m.group(1), why) if m else why

@@ -227,3 +227,18 @@ def test_estimate_reports_a_run_over_the_limits(capsys):
     cli._print_estimate(["survey.mosaic_pixel_arcsec=0.001"])
     out = capsys.readouterr().out
     assert "disk: " in out and "would be refused: limits.disk_gb: 20.0 is exceeded" in out, out
+
+
+def test_notebook_scenarios_name_near_misses_and_types_plainly():
+    """The same wording from Python (simfield.config.to_scenario on a dict) as from the
+    command line: the closest known key (difflib, ratio >= 0.7), and 'must be a whole number'
+    for OmegaConf's failed conversion to Integer."""
+    from simfield.config import to_scenario
+
+    with pytest.raises(ConfigError, match=r"is not a key of survey \(did you mean "
+                                          r"width_arcsec\?\); known keys: name,"):
+        to_scenario({"survey": {"widht_arcsec": 20.0}})
+    with pytest.raises(ConfigError) as info:
+        to_scenario({"survey": {"n_exposures": "four"}})
+    assert info.value.key == "survey.n_exposures" and \
+        info.value.allowed == "is not accepted: must be a whole number", info.value
