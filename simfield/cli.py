@@ -62,6 +62,8 @@ def _task(cfg) -> None:
     for band, d in depth.items():
         print(f"  {band}: 5-sigma depth {d['measured_5sigma']:.2f} AB (measured), "
               f"{d['predicted_5sigma']:.2f} (predicted)")
+    for name, why in res.summary.get("skipped", {}).items():
+        print(f"  {name}: not run, {why}")
 
 
 def _print_estimate(argv: list[str]) -> None:

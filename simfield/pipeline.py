@@ -77,6 +77,25 @@ class _Timer:
             log.info("%s done in %.2f s", name, dt)
 
 
+def skipped_stages(sc: Scenario) -> dict[str, str]:
+    """The stages ``sc`` enables that will not run, each with why: what it reads is switched
+    off (detection, photometry) or it needs two bands or more (photo-z). Empty when every
+    enabled stage runs. Recorded in ``summary.json`` (``skipped``) and told at the start."""
+    why = {}
+    if not sc.detection.enabled:
+        for name in ("photometry", "photoz", "selection", "score"):
+            if getattr(sc, name).enabled:
+                why[name] = "needs detections (detection.enabled=false)"
+        return why
+    if not sc.photometry.enabled:
+        for name in ("photoz", "selection"):
+            if getattr(sc, name).enabled:
+                why[name] = "needs photometry (photometry.enabled=false)"
+    elif sc.photoz.enabled and len(sc.band_names) < 2:
+        why["photoz"] = f"needs two bands or more (bands: {', '.join(sc.band_names)})"
+    return why
+
+
 def _bands_table(bands: list[Band], area: float) -> Table:
     t = Table()
     t["name"] = [b.name for b in bands]
@@ -130,6 +149,9 @@ def _run_scenario(sc: Scenario, out_dir: str | Path, progress: bool, engine) -> 
         marker.unlink()
     res = RunResult(out_dir=out)
     timer = _Timer(res.timings, progress)
+    skipped = skipped_stages(sc)
+    for name, why in skipped.items() if progress else ():
+        log.info("%s will not run: %s", name, why)
     prov = Provenance(sc.seed, *hash_and_yaml(sc))
     tel, srv = sc.telescope, sc.survey
     area = tel.collecting_area_m2
@@ -273,6 +295,7 @@ def _run_scenario(sc: Scenario, out_dir: str | Path, progress: bool, engine) -> 
         "n_multiply_imaged": int(np.sum(np.asarray(sources["n_images"]) > 1)),
         "field_arcmin2": srv.width_arcsec * srv.height_arcsec / 3600.0,
         "depth_ab": depths,
+        "skipped": skipped,
     }
     # provisional: the score and selection reports read the depths from it; rewritten whole
     # at the end (COMPLETE, not this file, says a run finished)
@@ -291,6 +314,8 @@ def _run_scenario(sc: Scenario, out_dir: str | Path, progress: bool, engine) -> 
     # a Dask cluster as one of its tasks
     scoring = None
     if sc.score.enabled and sc.detection.enabled:
+        if progress:
+            log.info("score ...")
         scoring = _Beside(_score_task, (out, sc, prov), engine is None and local > 1, engine)
     try:
         _measure_and_select(out, sc, bands, prov, summary, files, timer,

@@ -368,3 +368,27 @@ def test_gather_takes_from_empty_arrays():
     assert list(gather(np.array([], "U3"), [-1], "")) == [""]
     with pytest.raises(IndexError):
         gather(np.array([]), [0], 0.0)
+
+
+def test_stages_that_cannot_run_are_told_not_skipped_silently(run, mosaics_only):
+    """A stage enabled but starved of its input says so (summary.json 'skipped', the
+    command's last lines, the log): photo-z and selection read the photometry, which reads
+    the detections; photo-z needs colours, so two bands or more (common practice). Before,
+    switching photometry off dropped the selection without a word."""
+    from simfield.pipeline import skipped_stages
+
+    sc, res = run
+    assert skipped_stages(sc) == {} and res.summary["skipped"] == {}
+    assert set(mosaics_only.summary["skipped"]) == {"photometry", "photoz", "selection",
+                                                    "score"}
+    off = make_scenario("photometry.enabled=false")
+    assert skipped_stages(off) == {
+        "photoz": "needs photometry (photometry.enabled=false)",
+        "selection": "needs photometry (photometry.enabled=false)"}
+    one = make_scenario()
+    one.telescope.bands = one.telescope.bands[-1:]
+    assert skipped_stages(one) == {"photoz": "needs two bands or more (bands: b36)"}
+    quiet = make_scenario("detection.enabled=false", "score.enabled=false",
+                          "photometry.enabled=false", "photoz.enabled=false",
+                          "selection.enabled=false")
+    assert skipped_stages(quiet) == {}
