@@ -650,8 +650,9 @@ def collect_main_args(argv: list[str]) -> int:
     with atomic_path(out / "sweep.ecsv") as tmp:
         t.write(tmp, format="ascii.ecsv", overwrite=True)
     plots = [] if a.no_plots else plot_sweep(t, out)
-    print(f"{prog}: {len(t)} jobs, swept: {', '.join(t.meta['swept']) or 'nothing'} -> "
-          f"{out / 'sweep.ecsv'} and {len(plots)} plots")
+    print(f"{prog}: {len(t)} job{'s' * (len(t) != 1)}, swept: "
+          f"{', '.join(t.meta['swept']) or 'nothing'} -> {out / 'sweep.ecsv'} and "
+          f"{len(plots)} plot{'s' * (len(plots) != 1)}")
     # selection functions: the (M_UV, z) cells of every complete job added up
     from .selection.combine import combine_completeness
 

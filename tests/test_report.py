@@ -77,7 +77,8 @@ def _named(saved, name):
 
 def test_every_axes_has_labels_and_title(figures):
     """Every visible axes of every report figure (and the run's PSF picture) has x and y labels
-    and a title naming the seed (its own or the figure's)."""
+    and a title naming the seed (its own or the figure's); panels stacked on one shared x axis
+    (S(z) over its n per cell) are one plot: the x label of one, the title of one."""
     _, saved = figures
     assert {"psf_picture.png", "completeness_purity.png", "completeness_z.png"} <= \
         {p.rsplit("/", 1)[-1] for p in saved}
@@ -85,11 +86,13 @@ def test_every_axes_has_labels_and_title(figures):
         for ax in fig.axes:
             if not ax.get_visible() or not ax.axison or ax.get_label() == "<colorbar>":
                 continue
-            assert ax.get_xlabel(), (path, "x label")
+            group = ax.get_shared_x_axes().get_siblings(ax)
+            assert any(a.get_xlabel() for a in group), (path, "x label")
             assert ax.get_ylabel(), (path, "y label")
-            assert ax.get_title(), (path, "title")
-            assert "seed" in ax.get_title() or "seed" in (fig._suptitle.get_text() if
-                                                         fig._suptitle else ""), path
+            title = next((a.get_title() for a in group if a.get_title()), "")
+            assert title, (path, "title")
+            assert "seed" in title or "seed" in (fig._suptitle.get_text() if
+                                                 fig._suptitle else ""), path
 
 
 def test_fraction_plots_carry_counts(figures):
@@ -167,23 +170,38 @@ def test_psf_picture_states_the_wavefront_rms(figures):
 
 
 def test_selection_page_has_header_and_faint_small_cells(figures):
-    """The selection page has the run's header; S(z) draws error bars only for n >= 3 cells
-    but labels every cell k/n."""
+    """The selection page has the run's header; S(z) draws error bars only for n >= 3 cells,
+    labels every cell k/n while a line has few enough cells to read them (faint where n < 3),
+    and its lower panel gives each line's n per cell as completeness.ecsv has it."""
     out, saved = figures
     page = next((out / "selection").glob("*/report.html")).read_text()
     hdr = fits.getheader(next(out.glob("mosaic_*.fits")), 0)
     assert str(hdr["SIMFHASH"]) in page and "measured depths" in page and 'class="toc"' in page
     from astropy.table import Table
 
-    for path in [p for p in saved if p.endswith("completeness_z.png")]:
+    from simfield.selection.report import _MAX_LABELLED_CELLS
+
+    paths = [p for p in saved if p.endswith("completeness_z.png")]
+    assert paths
+    for path in paths:
         comp = Table.read(Path(path).with_name("completeness.ecsv"))
         fig = saved[path]
-        labels = [a for a in fig.axes[0].texts if a.get_gid() == "count"]
-        assert labels and all(re.fullmatch(r"\d+/\d+", a.get_text()) for a in labels)
+        ax, axn = fig.axes[:2]
+        stairs = [p for p in axn.patches if p.get_gid() == "n_cells"]
+        assert 1 <= len(stairs) <= 4
+        lo = np.asarray(comp["abs_mag_uv_lo"], float)
+        for st in stairs:  # each line's n per cell, one M_UV bin of the table each
+            vals = np.asarray(st.get_data().values)
+            assert any(np.array_equal(vals, np.asarray(comp["n"])[lo == m])
+                       for m in np.unique(lo)), vals
+        cells = max(int(np.sum(np.asarray(st.get_data().values) > 0)) for st in stairs)
+        labels = [a for a in ax.texts if a.get_gid() == "count"]
+        assert bool(labels) == (cells <= _MAX_LABELLED_CELLS), (cells, len(labels))
+        assert all(re.fullmatch(r"\d+/\d+", a.get_text()) for a in labels)
         for a in labels:
             k, n = (int(v) for v in a.get_text().split("/"))
             assert (a.get_alpha() or 1.0) == (1.0 if n >= 3 else 0.5)
-        bars = sum(len(seg.get_segments()) for c in fig.axes[0].collections
+        bars = sum(len(seg.get_segments()) for c in ax.collections
                    for seg in [c] if hasattr(c, "get_segments"))
         assert bars <= int(np.sum(np.asarray(comp["n"]) >= 3))
 

@@ -23,6 +23,11 @@ _CLASS_COLOURS = {"in_window": "#2ca02c", "lowz_galaxy": "#d62728", "higher_z_ga
                   "blend": "#aec7e8", "shred": "#ffbb78", "spike": "#ff9896", "artefact": "#c7c7c7"}
 
 
+#: S(z) labels each point k/n only when no line has more cells than this (beyond it the
+#: labels run together at the default 8.5" width; n is always in the lower panel)
+_MAX_LABELLED_CELLS = 24
+
+
 def _save(fig, path: Path) -> str:
     """Write ``fig`` to ``path`` (PNG); returns it base64-encoded for the page."""
     from .._plot import save_png
@@ -109,41 +114,59 @@ def make_report(out_dir, sample, bands, det, selected, cls, tables: dict, summar
     seed = None if seed in (None, "n/a") else seed
     name = summary["sample"]
 
-    # ---- S(z) at several M_UV
+    # ---- S(z) at several M_UV, and below it the truth galaxies per cell
     comp = tables["completeness"]
-    fig, ax = plt.subplots(figsize=(8.5, 4))
+    fig, (ax, axn) = plt.subplots(2, 1, figsize=(8.5, 5), sharex=True,
+                                  gridspec_kw={"height_ratios": [3, 1.2]})
     lo_col = np.asarray(comp["abs_mag_uv_lo"], float)
     n_col, k_col = np.asarray(comp["n"]), np.asarray(comp["k"])
-    zc = 0.5 * (np.asarray(comp["z_lo"], float) + np.asarray(comp["z_hi"], float))
+    zlo, zhi = np.asarray(comp["z_lo"], float), np.asarray(comp["z_hi"], float)
+    zc = 0.5 * (zlo + zhi)
     mlo = np.unique(lo_col)
     # the (up to) four M_UV bins with the most truth galaxies inside the window
     n_win = [n_col[(lo_col == m) & (zc >= z0) & (zc <= z1)].sum() for m in mlo]
-    for m in sorted(mlo[np.argsort(n_win)[::-1][:4]]):
+    shown = sorted(mlo[np.argsort(n_win)[::-1][:4]])
+    # k/n beside each point only while the cells are few enough to read (~4 mm apart at
+    # the most cells a line has); always in the lower panel's n and in completeness.ecsv
+    cells = max([int(np.sum((lo_col == m) & (n_col > 0))) for m in shown] or [0])
+    label = cells <= _MAX_LABELLED_CELLS
+    for j, m in enumerate(shown):
         r = (lo_col == m) & (n_col > 0)
         mhi = float(np.asarray(comp["abs_mag_uv_hi"], float)[lo_col == m][0])
-        zm = zc[r]
+        # the lines side by side within their cells (an eighth of a cell apart), so points
+        # at the same S (often 0) do not hide each other
+        zm = zc[r] + (j - (len(shown) - 1) / 2) * (zhi - zlo)[r] / 8
         f = np.asarray(comp["fraction"], float)[r]
         lo, hi = np.asarray(comp["fraction_lo"])[r], np.asarray(comp["fraction_hi"])[r]
-        line = ax.plot(zm, f, "o-", ms=3, label=f"M_UV {m:g}..{mhi:g} (AB)")
-        # bars only for cells of at least 3 galaxies; smaller cells keep their point and count
+        line = ax.plot(zm, f, "o-", ms=3, lw=0.8, label=f"M_UV {m:g}..{mhi:g} (AB)")
+        colour = line[0].get_color()
+        # bars only for cells of at least 3 galaxies; smaller cells keep their point
         big = n_col[r] >= 3
         ax.errorbar(zm[big], f[big], yerr=[(f - lo)[big], (hi - f)[big]], fmt="none",
-                    elinewidth=0.6, ecolor=line[0].get_color())
-        for zi, fi, ki, ni in zip(zm, f, k_col[r], n_col[r]):
-            ax.annotate(f"{ki}/{ni}", (zi, fi), fontsize=6, color=line[0].get_color(),
+                    elinewidth=0.6, ecolor=colour)
+        for zi, fi, ki, ni in zip(zm, f, k_col[r], n_col[r]) if label else ():
+            ax.annotate(f"{ki}/{ni}", (zi, fi), fontsize=6, color=colour,
                         xytext=(2, 2), textcoords="offset points", gid="count",
                         alpha=1.0 if ni >= 3 else 0.5)
-    ax.axvspan(z0, z1, color="0.9", zorder=0, label="target window")
-    ax.set(xlabel="true redshift z", ylabel="S = P(detected and selected)",
-           ylim=(-0.03, 1.03),
+        every = lo_col == m
+        axn.stairs(n_col[every], np.append(zlo[every], zhi[every][-1]), color=colour, lw=0.9,
+                   gid="n_cells")
+    for a in (ax, axn):
+        a.axvspan(z0, z1, color="0.9", zorder=0, label="target window" if a is ax else None)
+    ax.set(ylabel="S = P(detected and selected)", ylim=(-0.03, 1.03),
            title=run_title(f"selection completeness S(z), sample {name}", None, seed))
+    axn.set(xlabel="true redshift z", ylabel="truth galaxies\nper cell, n")
+    axn.set_yscale("symlog", linthresh=1.0)
+    axn.set_ylim(bottom=0)
     # beside the axes: it never hides a point, and no search for the emptiest corner (that
     # search measured every k/n label: a third of the figure's drawing time)
     ax.legend(fontsize=7, loc="upper left", bbox_to_anchor=(1.01, 1.0), borderaxespad=0.0)
     figs.append(("Selection completeness S(z)", _save(fig, out / "completeness_z.png"),
-                 "Points: k/n of the truth galaxies per (M_UV, z) cell, each labelled k/n (faint "
-                 "where n < 3); bars: Jeffreys intervals (they contain their point), drawn only "
-                 "for cells of 3 or more galaxies; every cell's n and k in "
+                 "Points: S = k/n of the truth galaxies per (M_UV, z) cell, the lines set side "
+                 "by side within their cells"
+                 + (", each labelled k/n (faint where n < 3)" if label else "")
+                 + "; bars: Jeffreys intervals (they contain their point), drawn only for "
+                 "cells of 3 or more galaxies; below: n per cell; every cell's n and k in "
                  "completeness.ecsv."))
 
     # ---- colour-colour diagram (of a catalogue with the fluxes of its bands)
