@@ -79,6 +79,11 @@ _SCORE_FILES = 20
 _SELECTION_FILES = 11  # per sample (10 when it selects nothing: no P(z) figure)
 _RUN_FILES = 11  # 8 run files + Hydra's 3 bookkeeping files
 _PSF_HEADER_BLOCKS = 18  # psf_<band>.fits primary header (the scenario's HISTORY cards)
+# a lensed run: convergence.fits (KAPPA, float32), lens.png (0.11-0.20 MB) and
+# critical_curves.ecsv, whose curves grow with the map's side: 0.09, 0.25 and 0.75 MB for
+# maps of 12", 20" and 57" (tiny test field, survey=quick, survey=deep; lens=cluster)
+_LENS_FILES, _LENS_PNG_BYTES, _LENS_CURVE_BYTES_PER_ARCSEC, _LENS_HEADER_BLOCKS = 3, 0.15e6, \
+    13e3, 6
 _DETECTION_CORE, _DETECTION_MARGIN = 3072, 256  # simfield.detect.TILE_CORE_PIX, TILE_MARGIN_PIX
 _TILE_MARGIN_ARCSEC = 4.0  # scene window beyond the tile: core PSF, lensing grid, padding
 
@@ -207,6 +212,9 @@ def estimate(sc: Scenario, galaxies: float | None = None) -> Estimate:
                                + _SCORE_BYTES_PER_SOURCE * sources)
         n_files += n_det_bands * _SCORE_FILES
     disk += _TABLE_BYTES_PER_SOURCE * sources + _SMALL_BYTES
+    if sc.lens.kind != "none":
+        disk += _lens_bytes(sc)
+        n_files += _LENS_FILES
 
     tiles_mem = tile_procs * TILE_BYTES_PER_SCENE_PIXEL * window
     detect_mem = det_procs * DETECTION_BYTES_PER_PIXEL * det_tile
@@ -227,6 +235,19 @@ def estimate(sc: Scenario, galaxies: float | None = None) -> Estimate:
 def _hdu_bytes(data_bytes: int, header_blocks: int = 1) -> int:
     """Bytes of one FITS HDU: its header blocks and its data padded to whole blocks."""
     return (header_blocks + math.ceil(data_bytes / _FITS_BLOCK)) * _FITS_BLOCK
+
+
+def _lens_bytes(sc: Scenario) -> float:
+    """Bytes of a lensed run's own files: convergence.fits (float32 pixels of
+    ``simfield._products.CONVERGENCE_PIXEL_ARCSEC`` over the field and its margin), the
+    critical curves (by the map's mean side, arcsec) and lens.png."""
+    from ._products import CONVERGENCE_PIXEL_ARCSEC
+    from .pipeline import FIELD_MARGIN_ARCSEC
+
+    s, step = sc.survey, CONVERGENCE_PIXEL_ARCSEC
+    w, h = s.width_arcsec + 2 * FIELD_MARGIN_ARCSEC, s.height_arcsec + 2 * FIELD_MARGIN_ARCSEC
+    kappa = 4 * math.ceil(w / step) * math.ceil(h / step) + _LENS_HEADER_BLOCKS * _FITS_BLOCK
+    return kappa + _LENS_PNG_BYTES + _LENS_CURVE_BYTES_PER_ARCSEC * (w + h) / 2
 
 
 def _psf_file_bytes(sc: Scenario, scale_arcsec: float) -> int:

@@ -30,14 +30,16 @@ def test_expected_galaxies_is_the_mean_the_population_draws():
 
 
 @pytest.mark.slow
-def test_estimate_matches_the_files_of_a_real_run(tmp_path):
+@pytest.mark.parametrize("lens", ["none", "cluster"])
+def test_estimate_matches_the_files_of_a_real_run(tmp_path, lens):
     """The files of a real (tiny) run: their count and total size as estimated (within 15%:
     the tables, plots and headers are modelled by constants fitted to the quick and default
     runs, see the docstring of simfield.resources); the image files exactly, to the FITS
-    block (2880 bytes) per extension."""
+    block (2880 bytes) per extension. A lensed run adds its convergence map, critical curves
+    and lens picture (before, the estimate left them out)."""
     from simfield.pipeline import run_scenario
 
-    sc = make_scenario(*TINY)  # the session's PSF cache: tests/test_robustness.py's PSF
+    sc = make_scenario(*TINY, f"lens={lens}")  # the session's PSF cache: test_robustness's PSF
     est = estimate(sc)
     out = tmp_path / "run"
     run_scenario(sc, out)
@@ -45,7 +47,15 @@ def test_estimate_matches_the_files_of_a_real_run(tmp_path):
     # the command line adds .hydra/ (3), cli.log, job.json; false_examples.png is drawn only
     # when the field has false detections
     assert est.n_files - 6 <= len(files) <= est.n_files - 5
-    np.testing.assert_allclose(sum(p.stat().st_size for p in files), est.disk_bytes, rtol=0.15)
+    if lens == "none":
+        np.testing.assert_allclose(sum(p.stat().st_size for p in files), est.disk_bytes,
+                                   rtol=0.15)
+    else:  # what the lens adds, apart from the rest's own scatter (its score page is smaller)
+        plain = estimate(make_scenario(*TINY))
+        own = [out / n for n in ("convergence.fits", "critical_curves.ecsv", "lens.png")]
+        assert est.n_files - plain.n_files == len(own) == 3
+        np.testing.assert_allclose(sum(p.stat().st_size for p in own),
+                                   est.disk_bytes - plain.disk_bytes, rtol=0.5)
     for name, bytes_per_pixel, n_ext in (("mosaic_b17", 16, 5), ("truth_image_b17", 10, 3),
                                          ("detections_b17", 4, 2)):
         size = (out / f"{name}.fits").stat().st_size
