@@ -65,16 +65,12 @@ def add_bright_field(scene: np.ndarray, stamps: Sequence[Stamp], rate: np.ndarra
     stamp's centre. ``rate`` (e-/s per source row), ``bright`` (bool per row), ``origin`` and
     ``bulge_fraction`` are as for :func:`simfield.scene.add_bright`.
     """
-    hw, hc = wide.shape[0] // 2, core.shape[0] // 2
     cx, cy = sgrid.center_pixel
-    for st in stamps:
-        if not bright[st.index] or rate[st.index] == 0:
-            continue
+
+    def delta(st: Stamp) -> np.ndarray:
         sy = st.iy0 + (st.image.shape[0] - 1) / 2.0
         sx = st.ix0 + (st.image.shape[1] - 1) / 2.0
-        k = wide.copy()
-        k[hw - hc:hw + hc + 1, hw - hc:hw + hc + 1] += (
-            psf_at((sx - cx) * sgrid.scale, (sy - cy) * sgrid.scale) - core)
-        one = np.zeros_like(bright)
-        one[st.index] = True
-        add_bright(scene, [st], rate, one, k, origin=origin, bulge_fraction=bulge_fraction)
+        return psf_at((sx - cx) * sgrid.scale, (sy - cy) * sgrid.scale) - core
+
+    add_bright(scene, stamps, rate, bright, wide, origin=origin, bulge_fraction=bulge_fraction,
+               delta=delta)
