@@ -473,6 +473,10 @@ class WideKernel:
     ``next_fast_len``, the kernel transformed once per shape.
     """
 
+    #: transforms kept at most (each ~7 MB for the default 801^2 large PSF and a stamp of
+    #: 500^2; stamps of many sizes would otherwise hold hundreds of MB)
+    KEEP = 8
+
     def __init__(self, kernel: np.ndarray):
         ky, kx = kernel.shape
         if ky % 2 == 0 or kx % 2 == 0:
@@ -489,6 +493,8 @@ class WideKernel:
         fshape = tuple(sfft.next_fast_len(n, real=True) for n in shape)
         spec = self._spectra.get(fshape)
         if spec is None:
+            if len(self._spectra) >= self.KEEP:
+                self._spectra.clear()
             spec = self._spectra[fshape] = sfft.rfft2(self.kernel, fshape, workers=1)
         prod = sfft.rfft2(np.asarray(image, np.float32), fshape, workers=1)
         prod *= spec
