@@ -15,7 +15,7 @@ from pathlib import Path
 
 from .config import (CONF_DIR, Scenario, _known_keys, check_raw_value, consistent_read_noise,
                      read_noise_conflict, register_configs, to_scenario)
-from .errors import ConfigError, did_you_mean, plain_type
+from .errors import ConfigError, closest, did_you_mean, plain_type
 
 __all__ = ["preflight"]
 
@@ -149,15 +149,13 @@ def _translate(exc: Exception, overrides: list) -> ConfigError:
 def _nearest_key(key: str) -> str:
     """`` (did you mean a.b.c?)`` for a dotted ``key`` whose first unknown part is close to a
     key of its parent (the parts after it kept as typed), else ''."""
-    import difflib
-
     parts = key.split(".")
     for i, part in enumerate(parts):
         known = _known_keys(".".join(parts[:i]))
         if part in known:
             continue
-        near = difflib.get_close_matches(part, known, n=1, cutoff=0.7)
-        return f" (did you mean {'.'.join([*parts[:i], near[0], *parts[i + 1:]])}?)" \
+        near = closest(part, known)
+        return f" (did you mean {'.'.join([*parts[:i], near, *parts[i + 1:]])}?)" \
             if near else ""
     return ""
 

@@ -10,7 +10,7 @@ import numbers
 from typing import Any
 
 __all__ = ["SimfieldError", "ConfigError", "CatalogError", "require", "check_range",
-           "did_you_mean", "plain_type"]
+           "closest", "did_you_mean", "plain_type"]
 
 
 class SimfieldError(Exception):
@@ -72,13 +72,18 @@ def check_range(key: str, value: float, lo: float | None = None, hi: float | Non
         raise ConfigError(key, value, f"must be in {left}{lo_s}, {hi_s}{right}")
 
 
-def did_you_mean(word: str, options) -> str:
-    """`` (did you mean X?)`` for the option closest to a mistyped ``word`` (difflib's ratio
-    at least 0.7), else ''."""
+def closest(word: str, options) -> str | None:
+    """The option closest to a mistyped ``word`` (difflib's ratio at least 0.7), or None."""
     import difflib
 
     near = difflib.get_close_matches(word, sorted(options), n=1, cutoff=0.7)
-    return f" (did you mean {near[0]}?)" if near else ""
+    return near[0] if near else None
+
+
+def did_you_mean(word: str, options) -> str:
+    """`` (did you mean X?)`` for :func:`closest`, else ''."""
+    near = closest(word, options)
+    return f" (did you mean {near}?)" if near else ""
 
 
 #: OmegaConf's names of the types a value failed to convert to, as a user would say them

@@ -179,7 +179,9 @@ def inject_into_image(image_path, sc: Scenario, band: str, out_dir, psf_path=Non
         raise CatalogError(f"band {band!r} is not a band of the scenario ({', '.join(names)})")
     b = bands[names.index(band)]
     sci, wht, wcs, zp, header, noise = read_image(image_path, hdu, zeropoint, weight_hdu)
-    said = header.get("BAND", fits.getheader(image_path, 0).get("BAND"))
+    said = header.get("BAND")
+    if said is None:  # simfield's mosaics carry it in the primary header
+        said = fits.getheader(image_path, 0).get("BAND")
     if said is not None and str(said).strip() != band:
         raise CatalogError(f"band {band!r} asked for, but {Path(image_path).name}'s BAND "
                            f"card says {str(said).strip()!r}: inject in the image's own band "
